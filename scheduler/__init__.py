@@ -1,0 +1,1 @@
+"""lampyr.scheduler (see DESIGN.md)."""

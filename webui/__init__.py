@@ -1,0 +1,1 @@
+"""lampyr.webui (see DESIGN.md)."""

@@ -1,0 +1,1 @@
+"""lampyr.worker (see DESIGN.md)."""
