@@ -1,0 +1,106 @@
+"""The engine's front door: render a batch — (frame, tile, first sample, sample count) — to a Film.
+
+A batch's result depends on nothing but its five numbers and the shot (DESIGN invariant 1), so a
+`FrameRenderer` may be built anywhere: on the head, on a worker, in a test.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass
+
+import numpy as np
+
+from .compiler import Geometry, compile_frame, compile_geometry
+from .film import Film
+from .integrator import render_tile
+from .sampler import RANDOM, SOBOL
+
+SAMPLER_MODES = {"sobol": SOBOL, "random": RANDOM}
+
+
+@dataclass(frozen=True)
+class Tile:
+    """A rectangle of the image: columns [x0, x0 + w), rows [y0, y0 + h)."""
+
+    x0: int
+    y0: int
+    w: int
+    h: int
+
+
+def tiles_for(width: int, height: int, size: int) -> list[Tile]:
+    """Row-major tiles of at most size × size covering a width × height image."""
+    return [
+        Tile(x, y, min(size, width - x), min(size, height - y))
+        for y in range(0, height, size)
+        for x in range(0, width, size)
+    ]
+
+
+class FrameRenderer:
+    """Renders batches of one frame of a shot; geometry may be shared between frames."""
+
+    def __init__(self, shot, frame: int, geometry: Geometry | None = None):
+        self.shot = shot
+        self.frame = int(frame)
+        self.geometry = geometry if geometry is not None else compile_geometry(shot)
+        self.scene, self.camera = compile_frame(shot, self.geometry, self.frame)
+
+    def render(self, tile: Tile, first: int, count: int, film: Film | None = None) -> Film:
+        """Add samples [first, first + count) of every pixel in `tile` to `film` (new if None)."""
+        shot = self.shot
+        if film is None:
+            film = Film.zeros(tile.h, tile.w)
+        if count <= 0:
+            return film
+        render_tile(
+            self.scene, self.camera, float(shot.camera.aperture), float(shot.width), float(shot.height),
+            self.frame, int(shot.seed), SAMPLER_MODES[shot.sampler], int(shot.bounces), int(shot.roulette),
+            tile.x0, tile.y0, tile.w, tile.h, int(first), int(count),
+            film.n, film.rgb_sum, film.rgb_sq, film.alpha_sum, film.albedo_sum, film.normal_sum,
+            film.depth_sum, film.hits, film.dropped,
+        )
+        return film
+
+
+def render_frame(shot, frame: int, first: int = 0, count: int | None = None,
+                 tile_size: int = 64, geometry: Geometry | None = None, progress=None) -> Film:
+    """Render a whole frame in this process (tests, `refine` without a farm, benchmarks).
+
+    progress: optional callable(samples_done_in_pixels) called after each tile.
+    """
+    count = shot.samples - first if count is None else count
+    renderer = FrameRenderer(shot, frame, geometry)
+    film = Film.zeros(shot.height, shot.width)
+    for tile in tiles_for(shot.width, shot.height, tile_size):
+        part = renderer.render(tile, first, count)
+        film.add_into(part, tile.y0, tile.x0)
+        if progress is not None:
+            progress(tile.w * tile.h * count)
+    return film
+
+
+def warm_up() -> float:
+    """Compile (or load from cache) every kernel with a tiny scene; returns seconds taken."""
+    from .shot import parse_shot
+
+    start = time.perf_counter()
+    shot = parse_shot(
+        {
+            "name": "warmup", "frames": 1, "image": {"width": 2, "height": 2},
+            "sampling": {"samples": 1},
+            "camera": {"position": [0, 0, 3], "target": [0, 0, 0]},
+            "environment": {"color": [0.1, 0.1, 0.1]},
+            "material": [{"name": "m", "type": "diffuse", "emission": [1, 1, 1]}],
+            "object": [{"name": "s", "material": "m", "sphere": {"center": [0, 0, 0], "radius": 1}}],
+        },
+        root=None,
+    )
+    render_frame(shot, 1, 0, 1)
+    return time.perf_counter() - start
+
+
+def as_array(film: Film) -> np.ndarray:
+    """Mean beauty (h, w, 3) float64 of a film (a convenience for tests and previews)."""
+    return film.mean()

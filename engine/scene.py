@@ -1,0 +1,244 @@
+"""Scene compilation (shot → flat arrays) and ray queries against the compiled scene.
+
+The compiled scene is a two-level hierarchy, kept as a NamedTuple of plain arrays (which numba
+caches well; see LIBRARY-NOTES):
+
+* bottom level: one BVH per mesh in its own object space, all concatenated (`blas_*`, `tris`,
+  with per-mesh node and triangle offsets), built once per shot and shared by every frame;
+* top level: a BVH over *instances* (a mesh or an analytic sphere, with a material and a
+  placement at shutter open and close), built per frame over the instances' motion bounds.
+
+A ray is moved into an instance's object space with the placement interpolated at its time, so
+moving objects blur without re-building anything. Object-space `t` equals world `t` because the
+direction is transformed without re-normalising.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import NamedTuple
+
+import numpy as np
+from numba import njit
+
+from .bvh import build_bvh, intersect_mesh, occluded_mesh, pack_triangles
+from .intersect import ray_box, ray_sphere
+from .transforms import placement_at, quat_rotate
+
+KIND_MESH = 0
+KIND_SPHERE = 1
+
+
+class Scene(NamedTuple):
+    # bottom level, object space (float32 geometry)
+    blas_lo: np.ndarray  # (N, 3) float32
+    blas_hi: np.ndarray  # (N, 3) float32
+    blas_a: np.ndarray  # (N,) int32
+    blas_count: np.ndarray  # (N,) int32
+    blas_axis: np.ndarray  # (N,) int8
+    tris: np.ndarray  # (T, 3, 3) float32, in leaf order per mesh
+    mesh_node_base: np.ndarray  # (M,) int64
+    mesh_tri_base: np.ndarray  # (M,) int64
+    mesh_tri_count: np.ndarray  # (M,) int64
+    # top level, world space
+    tl_lo: np.ndarray  # (Q, 3) float32
+    tl_hi: np.ndarray
+    tl_a: np.ndarray
+    tl_count: np.ndarray
+    tl_axis: np.ndarray
+    tl_order: np.ndarray  # (K,) int32 instance ids in leaf order
+    # instances
+    inst_kind: np.ndarray  # (K,) int64: KIND_MESH | KIND_SPHERE
+    inst_mesh: np.ndarray  # (K,) int64 mesh index, -1 for spheres
+    inst_mat: np.ndarray  # (K,) int64 row of `mats`
+    inst_sphere: np.ndarray  # (K, 4) float64 object-space centre and radius
+    inst_moving: np.ndarray  # (K,) int64: 1 when open and close placements differ
+    inst_motion: np.ndarray  # (K, 2, 10) float64 placements at shutter open / close
+    inst_light_base: np.ndarray  # (K,) int64 first light index of the instance, -1 if it does not emit
+    mats: np.ndarray  # (m, 12) float64 material rows (see bsdf.py)
+    # lights: emissive triangles and spheres, chosen in proportion to power
+    light_inst: np.ndarray  # (L,) int64
+    light_prim: np.ndarray  # (L,) int64 absolute triangle index, -1 for a sphere
+    light_pmf: np.ndarray  # (L,) float64
+    light_cdf: np.ndarray  # (L + 1,) float64
+    # environment
+    env_color: np.ndarray  # (3,) float64 uniform radiance (used when there is no map)
+    env_map: np.ndarray  # (H, W, 3) float64 radiance, (1, 1, 3) when there is no map
+    env_row_cdf: np.ndarray  # (H + 1,) float64 marginal over rows
+    env_col_cdf: np.ndarray  # (H, W + 1) float64 conditional over columns per row
+    env_params: np.ndarray  # (4,) float64: [has_map, strength, rotate (radians), p_env]
+
+
+# ------------------------------------------------------------------------------------------
+# kernels
+
+
+@njit(cache=True, inline="always")
+def ray_to_object(motion, moving, time_u, ox, oy, oz, dx, dy, dz):
+    """Object-space ray under the instance placement at time_u: p_o = R^T (p_w - t) / s."""
+    if moving:
+        tx, ty, tz, qw, qx, qy, qz, sx, sy, sz = placement_at(motion, time_u)
+    else:
+        m = motion[0]
+        tx, ty, tz, qw, qx, qy, qz, sx, sy, sz = m[0], m[1], m[2], m[3], m[4], m[5], m[6], m[7], m[8], m[9]
+    px, py, pz = quat_rotate(qw, -qx, -qy, -qz, ox - tx, oy - ty, oz - tz)
+    vx, vy, vz = quat_rotate(qw, -qx, -qy, -qz, dx, dy, dz)
+    return px / sx, py / sy, pz / sz, vx / sx, vy / sy, vz / sz
+
+
+@njit(cache=True, inline="always")
+def normal_to_world(motion, moving, time_u, nx, ny, nz):
+    """World unit normal of an object-space normal: R S^-1 n (the inverse transpose of R S)."""
+    if moving:
+        tx, ty, tz, qw, qx, qy, qz, sx, sy, sz = placement_at(motion, time_u)
+    else:
+        m = motion[0]
+        qw, qx, qy, qz, sx, sy, sz = m[3], m[4], m[5], m[6], m[7], m[8], m[9]
+    wx, wy, wz = quat_rotate(qw, qx, qy, qz, nx / sx, ny / sy, nz / sz)
+    n = math.sqrt(wx * wx + wy * wy + wz * wz)
+    return wx / n, wy / n, wz / n
+
+
+@njit(cache=True, inline="always")
+def point_to_world(motion, moving, time_u, px, py, pz):
+    if moving:
+        tx, ty, tz, qw, qx, qy, qz, sx, sy, sz = placement_at(motion, time_u)
+    else:
+        m = motion[0]
+        tx, ty, tz, qw, qx, qy, qz, sx, sy, sz = m[0], m[1], m[2], m[3], m[4], m[5], m[6], m[7], m[8], m[9]
+    wx, wy, wz = quat_rotate(qw, qx, qy, qz, px * sx, py * sy, pz * sz)
+    return wx + tx, wy + ty, wz + tz
+
+
+@njit(cache=True)
+def intersect_instance(S, i, ox, oy, oz, dx, dy, dz, tmax, time_u, stack):
+    """Closest hit of a world ray with instance i: (t, k, u, v); k = -1 on a miss.
+
+    For meshes k is the absolute triangle index into S.tris; for spheres k = 0.
+    """
+    lox, loy, loz, ldx, ldy, ldz = ray_to_object(
+        S.inst_motion[i], S.inst_moving[i], time_u, ox, oy, oz, dx, dy, dz
+    )
+    if S.inst_kind[i] == KIND_SPHERE:
+        c = S.inst_sphere[i]
+        hit, t = ray_sphere(lox, loy, loz, ldx, ldy, ldz, 0.0, tmax, c[0], c[1], c[2], c[3])
+        if hit:
+            return t, 0, 0.0, 0.0
+        return tmax, -1, 0.0, 0.0
+    m = S.inst_mesh[i]
+    t, k, u, v = intersect_mesh(
+        S.blas_lo, S.blas_hi, S.blas_a, S.blas_count, S.blas_axis, S.tris,
+        S.mesh_node_base[m], S.mesh_tri_base[m], lox, loy, loz, ldx, ldy, ldz, 0.0, tmax, stack,
+    )
+    return t, k, u, v
+
+
+@njit(cache=True)
+def intersect_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack):
+    """Closest hit in the scene: (t, instance, k, u, v); instance = -1 on a miss.
+
+    stack_top, stack: (>= 64,) int32 scratch, allocated once per thread by the caller.
+    """
+    best_t = tmax
+    best_i = -1
+    best_k = -1
+    best_u = 0.0
+    best_v = 0.0
+    idx = 1.0 / dx if dx != 0.0 else math.copysign(math.inf, dx)
+    idy = 1.0 / dy if dy != 0.0 else math.copysign(math.inf, dy)
+    idz = 1.0 / dz if dz != 0.0 else math.copysign(math.inf, dz)
+    sp = 0
+    stack_top[0] = 0
+    sp = 1
+    while sp > 0:
+        sp -= 1
+        node = stack_top[sp]
+        hit, tnear = ray_box(ox, oy, oz, idx, idy, idz, 0.0, best_t, S.tl_lo[node], S.tl_hi[node])
+        if not hit:
+            continue
+        count = S.tl_count[node]
+        if count > 0:
+            first = S.tl_a[node]
+            for j in range(first, first + count):
+                i = S.tl_order[j]
+                t, k, u, v = intersect_instance(S, i, ox, oy, oz, dx, dy, dz, best_t, time_u, stack)
+                if k >= 0 and t < best_t:
+                    best_t, best_i, best_k, best_u, best_v = t, i, k, u, v
+        else:
+            left = node + 1
+            right = S.tl_a[node]
+            axis = S.tl_axis[node]
+            neg = (dx < 0.0) if axis == 0 else ((dy < 0.0) if axis == 1 else (dz < 0.0))
+            if neg:  # visit the near child first: push it last
+                stack_top[sp] = left
+                stack_top[sp + 1] = right
+            else:
+                stack_top[sp] = right
+                stack_top[sp + 1] = left
+            sp += 2
+    return best_t, best_i, best_k, best_u, best_v
+
+
+@njit(cache=True)
+def occluded_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack):
+    """True if anything lies on the ray strictly before tmax (shadow rays; early exit)."""
+    idx = 1.0 / dx if dx != 0.0 else math.copysign(math.inf, dx)
+    idy = 1.0 / dy if dy != 0.0 else math.copysign(math.inf, dy)
+    idz = 1.0 / dz if dz != 0.0 else math.copysign(math.inf, dz)
+    stack_top[0] = 0
+    sp = 1
+    while sp > 0:
+        sp -= 1
+        node = stack_top[sp]
+        hit, tnear = ray_box(ox, oy, oz, idx, idy, idz, 0.0, tmax, S.tl_lo[node], S.tl_hi[node])
+        if not hit:
+            continue
+        count = S.tl_count[node]
+        if count > 0:
+            first = S.tl_a[node]
+            for j in range(first, first + count):
+                i = S.tl_order[j]
+                lox, loy, loz, ldx, ldy, ldz = ray_to_object(
+                    S.inst_motion[i], S.inst_moving[i], time_u, ox, oy, oz, dx, dy, dz
+                )
+                if S.inst_kind[i] == KIND_SPHERE:
+                    c = S.inst_sphere[i]
+                    h, t = ray_sphere(lox, loy, loz, ldx, ldy, ldz, 0.0, tmax, c[0], c[1], c[2], c[3])
+                    if h:
+                        return True
+                else:
+                    m = S.inst_mesh[i]
+                    if occluded_mesh(
+                        S.blas_lo, S.blas_hi, S.blas_a, S.blas_count, S.blas_axis, S.tris,
+                        S.mesh_node_base[m], S.mesh_tri_base[m],
+                        lox, loy, loz, ldx, ldy, ldz, 0.0, tmax, stack,
+                    ):
+                        return True
+        else:
+            stack_top[sp] = node + 1
+            stack_top[sp + 1] = S.tl_a[node]
+            sp += 2
+    return False
+
+
+@njit(cache=True)
+def surface_at(S, i, k, u, v, px, py, pz, time_u):
+    """Geometric unit normal (world, outward for closed shapes) at a hit of instance i."""
+    motion = S.inst_motion[i]
+    moving = S.inst_moving[i]
+    if S.inst_kind[i] == KIND_SPHERE:
+        c = S.inst_sphere[i]
+        # object-space point of the world hit, then the radial direction
+        lox, loy, loz, _, _, _ = ray_to_object(motion, moving, time_u, px, py, pz, 0.0, 0.0, 1.0)
+        return normal_to_world(motion, moving, time_u, lox - c[0], loy - c[1], loz - c[2])
+    tri = S.tris[k]
+    e1x = tri[1, 0] - tri[0, 0]
+    e1y = tri[1, 1] - tri[0, 1]
+    e1z = tri[1, 2] - tri[0, 2]
+    e2x = tri[2, 0] - tri[0, 0]
+    e2y = tri[2, 1] - tri[0, 1]
+    e2z = tri[2, 2] - tri[0, 2]
+    nx = e1y * e2z - e1z * e2y
+    ny = e1z * e2x - e1x * e2z
+    nz = e1x * e2y - e1y * e2x
+    return normal_to_world(motion, moving, time_u, nx, ny, nz)
