@@ -1,0 +1,98 @@
+"""`lampyr render` as a person runs it: the real console command in a subprocess."""
+
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import OpenEXR
+import pytest
+from PIL import Image
+
+ROOT = Path(__file__).resolve().parents[2]
+DEMO = ROOT / "examples" / "courtyard" / "courtyard.toml"
+
+
+def lampyr(*args, **kw) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "lampyr.cli", *map(str, args)],
+                          capture_output=True, text=True, timeout=600, **kw)
+
+
+def test_demo_command_renders_frames_and_previews(tmp_path):
+    # the README's demo command, made small: same shot, fewer pixels, samples and frames
+    out = tmp_path / "renders"
+    res = lampyr("render", DEMO, "--out", out, "--frames", "1-2", "--width", 32, "--height", 18,
+                 "--samples", 2, "--workers", 2, "--quiet")
+    assert res.returncode == 0, res.stderr
+    for frame in (1, 2):
+        exr = out / f"courtyard.{frame:04d}.exr"
+        with OpenEXR.File(str(exr), separate_channels=True) as f:
+            ch = f.channels()
+            rgb = np.stack([np.array(ch[c].pixels) for c in "RGB"], -1)
+            spp = np.array(ch["spp"].pixels)
+        assert rgb.shape == (18, 32, 3)
+        assert np.all(spp + np.array(ch["dropped"].pixels) == 2)
+        assert np.isfinite(rgb).all() and rgb.max() > 0
+        with Image.open(out / f"courtyard.{frame:04d}.png") as im:
+            assert im.size == (32, 18)
+    assert "Wrote 2 frame(s)" in res.stdout
+
+
+@pytest.mark.parametrize("edit, message", [
+    (("fov = 50.0", "fov = 0"), "camera.fov: expected degrees between 1 and 179, got 0"),
+    (('mesh = "assets/walls.obj"', 'mesh = "assets/nowhere.obj"'), "object[walls].mesh"),
+    (('material = "glass"', 'material = "crystal"'), "object[glass_ball].material"),
+    (("width = 320", "width = 100000"), "image.width"),
+])
+def test_bad_shot_gives_one_line_and_status_2(tmp_path, edit, message):
+    text = DEMO.read_text().replace(*edit)
+    shot = tmp_path / "courtyard" / "bad.toml"
+    shot.parent.mkdir()
+    (shot.parent / "assets").symlink_to(DEMO.parent / "assets")
+    shot.write_text(text)
+    res = lampyr("render", shot, "--out", tmp_path / "out", "--quiet")
+    assert res.returncode == 2
+    lines = res.stderr.strip().splitlines()
+    assert len(lines) == 1, res.stderr
+    assert message in lines[0]
+    assert "Traceback" not in res.stderr
+    assert not (tmp_path / "out").exists()
+
+
+def test_bad_option_gives_status_2(tmp_path):
+    res = lampyr("render", DEMO, "--out", tmp_path, "--frames", "one-two")
+    assert res.returncode == 2
+    assert "--frames" in res.stderr
+
+
+def test_help_lists_the_render_command():
+    res = lampyr("--help")
+    assert res.returncode == 0
+    assert "render" in res.stdout
+
+
+def test_interrupt_keeps_the_frames_already_written(tmp_path):
+    out = tmp_path / "out"
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "lampyr.cli", "render", str(DEMO), "--out", str(out), "--frames", "1-48",
+         "--width", "24", "--height", "16", "--samples", "4", "--workers", "1", "--quiet"],
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True,
+    )
+    deadline = time.monotonic() + 300
+    while not list(out.glob("*.png")) and time.monotonic() < deadline and proc.poll() is None:
+        time.sleep(0.1)
+    assert proc.poll() is None, "the render ended before it could be interrupted"
+    os.killpg(proc.pid, signal.SIGINT)  # as Ctrl-C in a terminal: the whole process group
+    _, err = proc.communicate(timeout=120)
+    assert proc.returncode == 130, err
+    kept = sorted(out.glob("courtyard.*.exr"))
+    assert 1 <= len(kept) < 48
+    for path in kept:  # every kept frame is whole and readable
+        with OpenEXR.File(str(path), separate_channels=True) as f:
+            assert np.array(f.channels()["spp"].pixels).min() == 4
+    assert not list(out.glob("*.tmp*")), "a half-written file was left behind"
