@@ -24,7 +24,12 @@ def frame_path(out: Path, name: str, frame: int, ext: str = "exr") -> Path:
 
 
 def _init_worker(shot_path: str, overrides: dict) -> None:
+    import signal
+
     from .engine.shot import load_shot
+
+    # Ctrl-C reaches the whole process group; the parent alone decides how to stop
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
 
     shot = load_shot(shot_path)
     if overrides:

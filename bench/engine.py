@@ -1,0 +1,129 @@
+"""Engine benchmark: prints tables; compares side by side in one run (ratios), never asserts.
+
+    python bench/engine.py [--small]
+
+Sections:
+  1. kernel start-up: compile cold (empty cache folder) vs load from the cache, in fresh processes
+  2. courtyard: samples/s with one thread and with all cores
+  3. sampler quality: mean squared error at equal samples, Owen-scrambled Sobol vs independent
+  4. ray casting and BVH build against Embree (bench/rays.py)
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+ROOT = Path(__file__).resolve().parent.parent
+DEMO = ROOT / "examples" / "courtyard" / "courtyard.toml"
+
+
+def table(title: str, header: list[str], rows: list[list]) -> None:
+    print(f"\n{title}")
+    widths = [max(len(str(x)) for x in col) for col in zip(header, *rows)]
+    print("  ".join(h.ljust(w) for h, w in zip(header, widths)))
+    print("  ".join("-" * w for w in widths))
+    for row in rows:
+        print("  ".join(str(x).ljust(w) for x, w in zip(row, widths)))
+
+
+def startup() -> None:
+    code = ("import time; t=time.perf_counter(); from lampyr.engine.render import warm_up; "
+            "warm_up(); print(time.perf_counter()-t)")
+    rows = []
+    with tempfile.TemporaryDirectory() as cold:
+        for label, env in (("cold (empty cache)", {"LAMPYR_CACHE": cold}), ("cached", {"LAMPYR_CACHE": cold})):
+            e = dict(os.environ, **env)
+            e.pop("NUMBA_CACHE_DIR", None)
+            t0 = time.perf_counter()
+            out = subprocess.run([sys.executable, "-c", code], env=e, capture_output=True, text=True, check=True)
+            total = time.perf_counter() - t0
+            rows.append([label, f"{float(out.stdout.strip()):.2f}", f"{total:.2f}"])
+    table("1. kernel start-up (seconds)", ["case", "import→first sample", "whole process"], rows)
+
+
+def courtyard(small: bool) -> None:
+    import numba
+
+    from lampyr.engine.compiler import compile_geometry
+    from lampyr.engine.render import FrameRenderer, Tile
+    from lampyr.engine.shot import load_shot
+
+    w, h = (80, 45) if small else (320, 180)
+    spp = 4 if small else 16
+    shot = load_shot(DEMO).with_overrides(width=w, height=h, samples=spp)
+    geom = compile_geometry(shot)
+    renderer = FrameRenderer(shot, 12, geom)
+    renderer.render(Tile(0, 0, 4, 4), 0, 1)  # load kernels
+    rows = []
+    all_threads = numba.config.NUMBA_NUM_THREADS
+    base = None
+    for threads in sorted({1, all_threads}):
+        numba.set_num_threads(threads)
+        t0 = time.perf_counter()
+        film = renderer.render(Tile(0, 0, w, h), 0, spp)
+        dt = time.perf_counter() - t0
+        rate = film.n.sum() / dt
+        base = base or rate
+        rows.append([threads, f"{w}x{h}x{spp}", f"{dt:.2f}", f"{rate / 1e3:,.0f}", f"{rate / base:.2f}"])
+    numba.set_num_threads(all_threads)
+    table("2. courtyard frame 12 (triangles: %d)" % geom.triangle_count,
+          ["threads", "pixels x spp", "seconds", "k samples/s", "speed-up"], rows)
+
+
+def sampler_quality(small: bool) -> None:
+    from lampyr.engine.compiler import compile_geometry
+    from lampyr.engine.render import render_frame
+    from lampyr.engine.shot import load_shot
+
+    w, h = (48, 27) if small else (96, 54)
+    base = load_shot(DEMO).with_overrides(width=w, height=h)
+    geom = compile_geometry(base)
+    import dataclasses
+
+    ref_spp = 1024 if small else 4096
+    ref_shot = dataclasses.replace(base, sampler="random")
+    reference = render_frame(ref_shot, 12, 1 << 20, ref_spp, geometry=geom).mean()
+    rows = []
+    for spp in (16, 64):
+        mse = {}
+        for mode in ("sobol", "random"):
+            s = dataclasses.replace(base, sampler=mode)
+            errs = []
+            for seed in range(4):  # average over seeds: one image's MSE is itself noisy
+                s2 = dataclasses.replace(s, seed=100 + seed)
+                errs.append(np.mean((render_frame(s2, 12, 0, spp, geometry=geom).mean() - reference) ** 2))
+            mse[mode] = float(np.mean(errs))
+        rows.append([spp, f"{mse['sobol']:.3e}", f"{mse['random']:.3e}", f"{mse['random'] / mse['sobol']:.2f}"])
+    table(f"3. sampler: MSE against a {ref_spp}-spp reference ({w}x{h}, courtyard frame 12)",
+          ["spp", "Owen-Sobol", "random", "random/Sobol"], rows)
+
+
+def rays(small: bool) -> None:
+    sys.path.insert(0, str(Path(__file__).parent))
+    import rays as rays_bench
+
+    rays_bench.main(["--small"] if small else [])
+
+
+def main(argv=None) -> None:
+    ap = argparse.ArgumentParser(description="lampyr engine benchmark")
+    ap.add_argument("--small", action="store_true", help="quick, smaller sizes")
+    ap.add_argument("--only", choices=["startup", "courtyard", "sampler", "rays"], default=None)
+    args = ap.parse_args(argv)
+    sections = {"startup": lambda: startup(), "courtyard": lambda: courtyard(args.small),
+                "sampler": lambda: sampler_quality(args.small), "rays": lambda: rays(args.small)}
+    for name, fn in sections.items():
+        if args.only in (None, name):
+            fn()
+
+
+if __name__ == "__main__":
+    main()
