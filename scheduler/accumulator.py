@@ -1,0 +1,114 @@
+"""Per-tile accumulators on the head's disk: the truth about which batches are counted.
+
+One file per (frame, tile) under `<job>/tiles/<frame>/<tile>.acc` holds the tile's merged film
+and the sample ranges merged into it. A file is replaced atomically (written beside, fsynced,
+renamed), so after a crash it holds either the ranges before a merge or after it, never half.
+A batch whose range the file already holds — or overlaps — is dropped: every batch counts once.
+
+File layout: 8 bytes magic `LAMPACC1`, 4 bytes little-endian header length n, n bytes JSON header
+`{"ranges": [[first, count], ...], "w": w, "h": h}`, then `engine.film.to_bytes(film)`.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import struct
+from pathlib import Path
+
+from ..errors import LampyrError
+
+MAGIC = b"LAMPACC1"
+
+
+class AccumulatorError(LampyrError):
+    """A tile accumulator file that cannot be read."""
+
+
+def overlaps(ranges, first: int, count: int) -> bool:
+    return any(f < first + count and first < f + c for f, c in ranges)
+
+
+def samples_held(ranges) -> int:
+    return sum(c for _, c in ranges)
+
+
+def write_atomic(path: Path, data: bytes) -> None:
+    """Replace `path` with `data` so readers see the old or the new bytes, never a mix."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(path.name + ".tmp")
+    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o644)
+    try:
+        with os.fdopen(fd, "wb") as f:
+            f.write(data)
+            f.flush()
+            os.fsync(f.fileno())
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    os.replace(tmp, path)
+    try:  # make the rename itself durable
+        dfd = os.open(path.parent, os.O_RDONLY)
+        try:
+            os.fsync(dfd)
+        finally:
+            os.close(dfd)
+    except OSError:
+        pass
+
+
+class TileAccumulator:
+    """The merged film of one tile and the sample ranges (first, count) it holds."""
+
+    def __init__(self, path: Path, w: int, h: int, film=None, ranges=()):
+        self.path = Path(path)
+        self.w, self.h = int(w), int(h)
+        self.film = film
+        self.ranges: list[tuple[int, int]] = sorted((int(f), int(c)) for f, c in ranges)
+
+    @classmethod
+    def load(cls, path: Path, w: int, h: int) -> "TileAccumulator":
+        """Read `path`, or an empty accumulator when it does not exist."""
+        path = Path(path)
+        try:
+            data = path.read_bytes()
+        except FileNotFoundError:
+            return cls(path, w, h)
+        return cls.from_bytes(path, data)
+
+    @classmethod
+    def from_bytes(cls, path: Path, data: bytes) -> "TileAccumulator":
+        from ..engine.film import from_bytes
+
+        if data[:8] != MAGIC:
+            raise AccumulatorError(f"{path}: not a lampyr tile accumulator")
+        (n,) = struct.unpack("<I", data[8:12])
+        head = json.loads(data[12:12 + n])
+        film = from_bytes(data[12 + n:])
+        return cls(path, head["w"], head["h"], film, head["ranges"])
+
+    def to_bytes(self) -> bytes:
+        from ..engine.film import to_bytes
+
+        head = json.dumps({"ranges": self.ranges, "w": self.w, "h": self.h}).encode()
+        return MAGIC + struct.pack("<I", len(head)) + head + to_bytes(self.film)
+
+    def holds(self, first: int, count: int) -> bool:
+        return overlaps(self.ranges, first, count)
+
+    @property
+    def samples(self) -> int:
+        return samples_held(self.ranges)
+
+    def add(self, film, first: int, count: int) -> bool:
+        """Merge a batch's film in memory; False (and no change) when its range is held already."""
+        from ..engine.film import merge
+
+        if self.holds(first, count):
+            return False
+        self.film = film if self.film is None else merge(self.film, film)
+        self.ranges = sorted(self.ranges + [(int(first), int(count))])
+        return True
+
+    def save(self) -> None:
+        write_atomic(self.path, self.to_bytes())

@@ -1,0 +1,109 @@
+"""Merging batch results into tile accumulators and assembling frame files from them.
+
+A job's runtime view (`JobRun`) keeps the sample ranges of every tile in memory (read from the
+accumulators at start-up); tile films stay on disk and are read only to merge or to assemble a
+frame. A frame file is rewritten whenever the fewest samples any of its tiles holds grows, so
+the first pass already gives a complete frame and the last batch the final one.
+"""
+
+from __future__ import annotations
+
+import time
+from collections import deque
+from pathlib import Path
+
+from .accumulator import TileAccumulator, overlaps, samples_held
+from .jobs import JobFolder, JobRecord
+from .planner import plan_batches
+
+
+class JobRun:
+    """A job as the head runs it: record, shot, tiles, which batches are done, frames written."""
+
+    def __init__(self, state: Path, rec: JobRecord):
+        from ..engine.render import tiles_for
+        from ..engine.shot import load_shot
+
+        self.rec = rec
+        self.folder = JobFolder(state, rec.id)
+        shot = load_shot(self.folder.bundle / rec.shot)
+        self.shot = shot.with_overrides(**_overrides(rec)) if rec.overrides or rec.samples else shot
+        self.tiles = tiles_for(self.shot.width, self.shot.height, rec.tile_size)
+        self.frames = list(self.shot.frames())
+        self.held: dict[tuple[int, int], list] = {}
+        for f in self.frames:
+            for i, t in enumerate(self.tiles):
+                acc = TileAccumulator.load(self.folder.tile(f, i), t.w, t.h)
+                self.held[(f, i)] = acc.ranges
+        self.written: dict[int, int] = {}
+        self.seconds: dict[int, float] = {f: 0.0 for f in self.frames}
+        self.pending: deque = deque()
+        self.started = time.time()
+        self.samples_merged = 0  # pixel-samples merged by this head process (for the rate)
+        self.replan()
+
+    def replan(self) -> None:
+        """Rebuild `pending` from the plan: every batch neither held nor failed."""
+        self.pending = deque(
+            b for b in plan_batches(self.rec.id, self.frames, self.tiles, self.rec.ranges)
+            if not overlaps(self.held[(b.frame, b.tile)], b.first, b.count)
+            and b.id not in self.rec.failed
+        )
+
+    def is_done(self, b) -> bool:
+        return overlaps(self.held[(b.frame, b.tile)], b.first, b.count)
+
+    def merge(self, b, film, seconds: float) -> bool:
+        """Fold a batch's film into its tile accumulator on disk; False when already held."""
+        t = self.tiles[b.tile]
+        acc = TileAccumulator.load(self.folder.tile(b.frame, b.tile), t.w, t.h)
+        if not acc.add(film, b.first, b.count):
+            self.held[(b.frame, b.tile)] = acc.ranges
+            return False
+        acc.save()
+        self.held[(b.frame, b.tile)] = acc.ranges
+        self.seconds[b.frame] = self.seconds.get(b.frame, 0.0) + seconds
+        self.samples_merged += t.w * t.h * b.count
+        return True
+
+    def frame_level(self, frame: int) -> int:
+        return min(samples_held(self.held[(frame, i)]) for i in range(len(self.tiles)))
+
+    def frame_complete(self, frame: int) -> bool:
+        return self.frame_level(frame) >= self.rec.samples
+
+    def write_frame_if_grown(self, frame: int, force: bool = False) -> Path | None:
+        """Rewrite the frame file when its lowest tile sample count grew (or `force`)."""
+        level = self.frame_level(frame)
+        if level == 0 or (not force and level <= self.written.get(frame, 0)):
+            return None
+        from ..engine.film import Film
+        from ..local import write_frame_files
+
+        film = Film.zeros(self.shot.height, self.shot.width)
+        for i, t in enumerate(self.tiles):
+            acc = TileAccumulator.load(self.folder.tile(frame, i), t.w, t.h)
+            if acc.film is not None:
+                film.add_into(acc.film, t.y0, t.x0)
+        path = write_frame_files(Path(self.rec.out), self.shot, frame, film,
+                                 self.seconds.get(frame, 0.0))
+        self.written[frame] = level
+        return path
+
+    def frames_done(self) -> int:
+        return sum(1 for f in self.frames if self.frame_complete(f) and f in self.written)
+
+    def pixel_samples(self) -> tuple[int, int]:
+        """(pixel-samples held, pixel-samples planned)."""
+        held = sum(samples_held(r) * self.tiles[i].w * self.tiles[i].h
+                   for (f, i), r in self.held.items())
+        total = len(self.frames) * self.shot.width * self.shot.height * self.rec.samples
+        return held, total
+
+
+def _overrides(rec: JobRecord) -> dict:
+    o = dict(rec.overrides)
+    if "frames" in o and isinstance(o["frames"], list):
+        o["frames"] = tuple(o["frames"])
+    o["samples"] = rec.samples
+    return o

@@ -1,0 +1,441 @@
+"""The head: one loop that takes commands, merges results, keeps leases and queues batches.
+
+Each turn of `Head.step()`:
+1. carry out commands from `control` (submit, retry, pause, resume, cancel, refine);
+2. merge batch results: a notice is moved to `results:processing`, its film folded into the tile
+   accumulator on disk, and only then removed — a head killed mid-merge finds it again;
+3. queue again the batches whose lease expired, or that raised (up to the attempt limit);
+4. queue batches, by job priority then age, keeping only a few more queued than there are
+   worker cores (Redis has no real priorities, so the head holds the order itself);
+5. publish each job's status.
+
+At start-up (and after Redis comes back from a restart) `reconcile()` makes Redis agree with the
+disk: what the accumulators hold is done; every other batch is pending, and any batch Redis still
+lists as queued but not leased is queued again under a new ticket (the old message, if it still
+exists, is then skipped by its worker).
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import secrets
+import time
+from pathlib import Path
+
+from . import protocol as P
+from .accumulator import write_atomic
+from .assembler import JobRun
+from .jobs import JobFolder, JobRecord, list_jobs, new_job_id
+from .leases import LeaseKeeper
+
+log = logging.getLogger("lampyr.head")
+
+
+def make_sender(url: str):
+    """A Celery app used only to send TASK_RENDER messages (no result backend)."""
+    from celery import Celery
+
+    app = Celery("lampyr-head", set_as_current=False)
+    app.conf.update(P.celery_settings(url))
+    return app
+
+
+class Head:
+    """Runs a farm whose state lives under `state`; `url` is the Redis to use.
+
+    lease_seconds: how long a silent worker keeps its batches; max_attempts: starts of a batch
+    (crashes, lost leases, errors) before it is marked failed.
+    """
+
+    def __init__(self, state: Path, url: str, lease_seconds: float = 120.0, max_attempts: int = 3,
+                 redis_server=None):
+        from .store import connect
+
+        self.state = Path(state)
+        self.url = url
+        self.lease_seconds = float(lease_seconds)
+        self.max_attempts = int(max_attempts)
+        self.redis_server = redis_server
+        self.r = connect(url)
+        self.sender = make_sender(url)
+        self.jobs: dict[str, JobRun] = {}
+        self.leases = LeaseKeeper()
+        self.tickets: dict[str, int] = {}
+        self.epoch = None
+        self._status_at = 0.0
+
+    # -- start-up ---------------------------------------------------------------------------
+
+    def start(self) -> None:
+        write_atomic(self.state / "head.json", json.dumps({"address": self.url}).encode())
+        for job in list_jobs(self.state):
+            try:
+                self.jobs[job] = JobRun(self.state, JobFolder(self.state, job).load())
+            except Exception as err:  # a broken job must not keep the farm down
+                log.error("job %s cannot be resumed: %s", job, err)
+        for run in self.jobs.values():
+            for f in run.frames:
+                run.write_frame_if_grown(f)
+        self.reconcile()
+
+    def reconcile(self) -> None:
+        """Make Redis agree with the disk (see the module docstring)."""
+        r = self.r
+        epoch = r.get(P.K_EPOCH)
+        if epoch is None:
+            epoch = secrets.token_hex(8).encode()
+            r.set(P.K_EPOCH, epoch)
+        self.epoch = epoch
+        r.set(P.K_PROTOCOL, P.PROTOCOL_VERSION)
+        r.hset(P.K_CONFIG, mapping={"lease_seconds": self.lease_seconds,
+                                    "max_attempts": self.max_attempts})
+        # notices a killed head was merging go back in front of the queue
+        while r.lmove(P.K_PROCESSING, P.K_RESULTS, "RIGHT", "RIGHT") is not None:
+            pass
+        queued = {k.decode(): int(v) for k, v in r.hgetall(P.K_INFLIGHT).items()}
+        for bid, ticket in queued.items():
+            self.tickets[bid] = max(self.tickets.get(bid, 0), ticket)
+        self.leases = LeaseKeeper(self.leases.backstop)
+        for run in self.jobs.values():
+            run.replan()
+            r.zadd(P.K_JOBS, {run.rec.id: run.rec.submitted})
+        live = [bid for bid in queued if r.exists(P.k_lease(bid))]
+        for run in self.jobs.values():
+            keep = []
+            for b in run.pending:
+                if b.id in live and not run.rec.cancelled:
+                    self.leases.add(b, queued[b.id])
+                    self.leases.get(b.id).leased = True
+                else:
+                    keep.append(b)
+            run.pending.clear()
+            run.pending.extend(keep)
+        stale = [bid for bid in queued if bid not in self.leases]
+        if stale:
+            r.hdel(P.K_INFLIGHT, *stale)
+        self.publish(force=True)
+
+    # -- the loop ---------------------------------------------------------------------------
+
+    def run(self, stop=lambda: False, idle: float = 0.05) -> None:
+        import redis
+
+        down = False
+        while not stop():
+            try:
+                if self.redis_server is not None and not self.redis_server.alive():
+                    log.warning("embedded Redis stopped; starting it again")
+                    self.redis_server.start()
+                    down = True
+                if down:
+                    self.reconcile()
+                    down = False
+                busy = self.step()
+            except (redis.exceptions.ConnectionError, redis.exceptions.TimeoutError,
+                    redis.exceptions.BusyLoadingError) as err:
+                log.warning("Redis unreachable (%s); retrying", err)
+                down = True
+                time.sleep(0.5)
+                continue
+            if not busy:
+                time.sleep(idle)
+
+    def step(self) -> bool:
+        busy = self.take_commands()
+        busy |= self.take_results() > 0
+        self.reap()
+        busy |= self.dispatch() > 0
+        self.publish()
+        return busy
+
+    # -- commands ---------------------------------------------------------------------------
+
+    def take_commands(self, limit: int = 100) -> bool:
+        n = 0
+        while n < limit:
+            raw = self.r.lpop(P.K_CONTROL)
+            if raw is None:
+                break
+            n += 1
+            cmd = json.loads(raw)
+            try:
+                getattr(self, "cmd_" + cmd.pop("op"))(**cmd)
+            except Exception as err:
+                log.error("command %s failed: %s", raw[:200], err)
+                job = cmd.get("job")
+                if job:
+                    self.r.hset(P.k_job(job), mapping={"state": json.dumps("failed"),
+                                                       "error": json.dumps(str(err))})
+                    self.r.zadd(P.K_JOBS, {job: time.time()})
+        return n > 0
+
+    def cmd_submit(self, job: str, bundle: str, shot: str, overrides: dict, out: str | None,
+                   priority: int = 0, tile_size: int | None = None,
+                   batch_samples: int | None = None, submitted: float | None = None) -> None:
+        from ..engine.shot import load_shot
+        from .bundle import unpack
+        from .planner import choose_layout, first_pass_samples, probe_cost, sample_ranges
+
+        if job in self.jobs:
+            return
+        folder = JobFolder(self.state, job)
+        data = self.r.get(P.k_bundle(bundle))
+        if data is None:
+            raise ValueError(f"bundle {bundle[:12]} is not in Redis")
+        if not folder.bundle.exists():
+            folder.root.mkdir(parents=True, exist_ok=True)
+            unpack(data, folder.bundle, sha=bundle)
+        spec = load_shot(folder.bundle / shot)
+        o = dict(overrides)
+        if "frames" in o:
+            o["frames"] = tuple(o["frames"])
+        if o:
+            spec = spec.with_overrides(**o)
+        if tile_size is None or batch_samples is None:
+            layout = choose_layout(spec.width, spec.height, spec.samples, probe_cost(spec))
+            tile_size = tile_size or layout.tile_size
+            batch_samples = batch_samples or layout.batch_samples
+        ranges = sample_ranges(0, spec.samples, batch_samples,
+                               first_pass_samples(spec.samples, batch_samples))
+        rec = JobRecord(id=job, name=spec.name, bundle=bundle, shot=shot, overrides=overrides,
+                        out=out or str(folder.root / "frames"), priority=int(priority),
+                        submitted=submitted or time.time(), tile_size=int(tile_size),
+                        batch_samples=int(batch_samples), samples=int(spec.samples),
+                        ranges=ranges)
+        folder.save(rec)
+        self.jobs[job] = JobRun(self.state, rec)
+        self.r.zadd(P.K_JOBS, {job: rec.submitted})
+        log.info("job %s: %d batches, tiles %d px, %d samples per batch", job,
+                 len(self.jobs[job].pending), tile_size, batch_samples)
+
+    def _save(self, run: JobRun) -> None:
+        run.folder.save(run.rec)
+
+    def cmd_retry(self, job: str, frames: list | None = None) -> None:
+        run = self.jobs[job]
+        lo, hi = frames if frames else (-1, 1 << 30)
+        again = [bid for bid in run.rec.failed if lo <= P.parse_batch_id(bid)[1] <= hi]
+        for bid in again:
+            del run.rec.failed[bid]
+        if again:
+            self.r.hdel(P.K_ATTEMPTS, *again)
+        self._save(run)
+        run.replan()
+        self._drop_inflight_from_pending(run)
+
+    def cmd_pause(self, job: str) -> None:
+        self.jobs[job].rec.paused = True
+        self._save(self.jobs[job])
+
+    def cmd_resume(self, job: str) -> None:
+        self.jobs[job].rec.paused = False
+        self._save(self.jobs[job])
+
+    def cmd_cancel(self, job: str) -> None:
+        run = self.jobs[job]
+        run.rec.cancelled = True
+        self._save(run)
+        run.pending.clear()
+        gone = [bid for bid, e in self.leases.table.items() if e.batch.job == job]
+        for bid in gone:
+            self.leases.pop(bid)
+        if gone:
+            self.r.hdel(P.K_INFLIGHT, *gone)
+
+    def cmd_refine(self, job: str, samples: int) -> None:
+        """Add samples to every tile up to `samples` per pixel, in the job's batch size."""
+        from .planner import sample_ranges
+
+        run = self.jobs[job]
+        if samples <= run.rec.samples:
+            return
+        run.rec.ranges = list(run.rec.ranges) + sample_ranges(run.rec.samples, samples,
+                                                              run.rec.batch_samples)
+        run.rec.samples = int(samples)
+        self._save(run)
+        self.jobs[job] = JobRun(self.state, run.rec)
+        self.jobs[job].written = dict(run.written)
+        self._drop_inflight_from_pending(self.jobs[job])
+
+    def _drop_inflight_from_pending(self, run: JobRun) -> None:
+        keep = [b for b in run.pending if b.id not in self.leases]
+        run.pending.clear()
+        run.pending.extend(keep)
+
+    # -- results ----------------------------------------------------------------------------
+
+    def take_results(self, limit: int = 500) -> int:
+        from ..engine.film import from_bytes
+
+        r = self.r
+        n = 0
+        while n < limit:
+            raw = r.lmove(P.K_RESULTS, P.K_PROCESSING, "LEFT", "RIGHT")
+            if raw is None:
+                break
+            n += 1
+            note = json.loads(raw)
+            bid, ticket = note["batch"], int(note["ticket"])
+            job, frame, tile, first, count = P.parse_batch_id(bid)
+            run = self.jobs.get(job)
+            if run is not None and not run.rec.cancelled:
+                if note["kind"] == "result":
+                    data = r.get(P.k_result(bid, ticket))
+                    entry = self.leases.get(bid)
+                    b = entry.batch if entry else _batch_of(run, bid)
+                    if data is not None and b is not None:
+                        if run.merge(b, from_bytes(data), note.get("seconds", 0.0)):
+                            run.write_frame_if_grown(frame)
+                        self._finish(bid)
+                    elif data is None and entry is not None and entry.ticket == ticket:
+                        self._requeue(entry.batch)  # the result expired or was lost
+                else:
+                    self._on_error(run, bid, ticket, note["error"])
+            pipe = r.pipeline(transaction=False)
+            pipe.lrem(P.K_PROCESSING, 1, raw)
+            pipe.delete(P.k_result(bid, ticket))
+            pipe.execute()
+        return n
+
+    def _finish(self, bid: str) -> None:
+        self.leases.pop(bid)
+        self.r.hdel(P.K_INFLIGHT, bid)
+
+    def _on_error(self, run: JobRun, bid: str, ticket: int, error: str) -> None:
+        entry = self.leases.get(bid)
+        if entry is None or entry.ticket != ticket or run.is_done(entry.batch):
+            return  # a message the head had already replaced
+        attempts = int(self.r.hget(P.K_ATTEMPTS, bid) or 0)
+        if attempts >= self.max_attempts:
+            self._finish(bid)
+            run.rec.failed[bid] = f"{error} (after {attempts} attempt(s))"
+            self._save(run)
+            log.warning("batch %s failed: %s", bid, error)
+        else:
+            self._requeue(entry.batch)
+
+    # -- leases and dispatch ----------------------------------------------------------------
+
+    def reap(self) -> None:
+        for entry in self.leases.expired(self.r):
+            run = self.jobs.get(entry.batch.job)
+            if run is None or run.is_done(entry.batch):
+                self._finish(entry.batch.id)
+                continue
+            attempts = int(self.r.hget(P.K_ATTEMPTS, entry.batch.id) or 0)
+            if attempts >= self.max_attempts:
+                self._finish(entry.batch.id)
+                run.rec.failed[entry.batch.id] = (f"its worker stopped answering {attempts} "
+                                                  "time(s) (lease expired)")
+                self._save(run)
+            else:
+                log.info("lease of %s expired; queueing it again", entry.batch.id)
+                self._requeue(entry.batch)
+
+    def _requeue(self, b: P.Batch) -> None:
+        self.leases.pop(b.id)
+        self._send(b)
+
+    def worker_cores(self) -> int:
+        total = 0
+        for k in self.r.scan_iter(match=P.key("host", "*"), count=500):
+            raw = self.r.get(k)
+            if raw:
+                total += int(json.loads(raw).get("cores", 1))
+        return total
+
+    def dispatch(self) -> int:
+        """Queue pending batches while fewer than `cores + 2` wait unclaimed in the queue."""
+        room = max(2, self.worker_cores() + 2) - self.leases.waiting()
+        sent = 0
+        order = sorted((run for run in self.jobs.values()
+                        if run.pending and not run.rec.paused and not run.rec.cancelled),
+                       key=lambda run: (-run.rec.priority, run.rec.submitted))
+        for run in order:
+            while run.pending and sent < room:
+                b = run.pending.popleft()
+                if run.is_done(b) or b.id in self.leases:
+                    continue
+                self._send(b)
+                sent += 1
+        return sent
+
+    def _send(self, b: P.Batch) -> None:
+        run = self.jobs[b.job]
+        ticket = self.tickets.get(b.id, 0) + 1
+        self.tickets[b.id] = ticket
+        self.r.hset(P.K_INFLIGHT, b.id, ticket)
+        task = P.RenderTask(P.PROTOCOL_VERSION, b, ticket, run.rec.bundle, run.rec.shot,
+                            run.rec.overrides)
+        self.sender.send_task(P.TASK_RENDER, args=[task.to_json()], queue=P.QUEUE)
+        self.leases.add(b, ticket)
+
+    # -- status -----------------------------------------------------------------------------
+
+    def job_state(self, run: JobRun) -> str:
+        if run.rec.cancelled:
+            return "cancelled"
+        queued = [e for e in self.leases.table.values() if e.batch.job == run.rec.id]
+        if not run.pending and not queued:
+            return "failed" if run.rec.failed else "done"
+        if run.rec.paused:
+            return "paused"
+        held, _ = run.pixel_samples()
+        return "running" if held or any(e.leased for e in queued) else "queued"
+
+    def publish(self, force: bool = False, every: float = 0.25) -> None:
+        now = time.monotonic()
+        if not force and now - self._status_at < every:
+            return
+        self._status_at = now
+        pipe = self.r.pipeline(transaction=False)
+        for run in self.jobs.values():
+            held, total = run.pixel_samples()
+            elapsed = max(time.time() - run.started, 1e-6)
+            rate = run.samples_merged / elapsed
+            st = {
+                "job": run.rec.id, "name": run.rec.name, "state": self.job_state(run),
+                "frames": len(run.frames), "frames_done": run.frames_done(),
+                "samples": run.rec.samples, "pixel_samples_done": held,
+                "pixel_samples_total": total, "samples_per_second": round(rate, 1),
+                "eta_seconds": round((total - held) / rate, 1) if rate > 0 else None,
+                "priority": run.rec.priority, "out": run.rec.out,
+                "failed": [{"batch": k, "error": v} for k, v in sorted(run.rec.failed.items())],
+                "submitted": run.rec.submitted,
+                "tile_size": run.rec.tile_size, "batch_samples": run.rec.batch_samples,
+            }
+            pipe.delete(P.k_job(run.rec.id))
+            pipe.hset(P.k_job(run.rec.id), mapping={k: json.dumps(v) for k, v in st.items()})
+        pipe.execute()
+
+
+def _batch_of(run: JobRun, bid: str) -> P.Batch | None:
+    job, frame, tile, first, count = P.parse_batch_id(bid)
+    if frame not in run.frames or not 0 <= tile < len(run.tiles):
+        return None
+    t = run.tiles[tile]
+    return P.Batch(job, frame, tile, first, count, t.x0, t.y0, t.w, t.h)
+
+
+def submit_request(r, shot_path: Path, overrides: dict, out: str | None, priority: int = 0,
+                   tile_size: int | None = None, batch_samples: int | None = None) -> str:
+    """Validate and pack a shot, store its bundle and ask the head to run it; returns the job id."""
+    from ..engine.shot import load_shot
+    from .bundle import pack
+    from .store import send_command, store_bundle
+
+    spec = load_shot(shot_path)
+    if overrides:
+        o = dict(overrides)
+        spec = spec.with_overrides(**o)
+    data, sha, member = pack(spec)
+    store_bundle(r, data, sha)
+    job = new_job_id(spec.name)
+    o = dict(overrides)
+    if "frames" in o:
+        o["frames"] = list(o["frames"])
+    send_command(r, "submit", job=job, bundle=sha, shot=member, overrides=o,
+                 out=None if out is None else str(Path(out).resolve()), priority=priority,
+                 tile_size=tile_size, batch_samples=batch_samples, submitted=time.time())
+    return job

@@ -1,0 +1,93 @@
+"""Jobs on the head's disk: `<state>/jobs/<id>/` holds everything the head needs to resume one.
+
+    job.json      the record below (rewritten atomically on every change)
+    bundle/       the unpacked scene bundle the head renders frames' metadata from
+    tiles/<frame>/<tile>.acc   tile accumulators (see accumulator.py)
+
+`ranges` lists the sample ranges every tile gets, in dispatch order; `refine` appends to it.
+"""
+
+from __future__ import annotations
+
+import json
+import secrets
+import time
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+
+from .accumulator import write_atomic
+
+STATES = ("queued", "running", "paused", "done", "failed", "cancelled")
+
+
+def new_job_id(name: str) -> str:
+    stem = "".join(c if c.isalnum() or c in "-_" else "-" for c in name)[:24] or "job"
+    return f"{stem}-{secrets.token_hex(3)}"
+
+
+@dataclass
+class JobRecord:
+    """A submitted job. overrides: `Shot.with_overrides` arguments (frames as [first, last]).
+
+    samples: the samples per pixel the job reaches; failed: batch id → error text.
+    """
+
+    id: str
+    name: str
+    bundle: str
+    shot: str
+    overrides: dict
+    out: str
+    priority: int
+    submitted: float
+    tile_size: int
+    batch_samples: int
+    samples: int
+    ranges: list
+    paused: bool = False
+    cancelled: bool = False
+    failed: dict = field(default_factory=dict)
+
+    def to_json(self) -> str:
+        return json.dumps(asdict(self), indent=1, sort_keys=True)
+
+    @classmethod
+    def from_json(cls, text: str) -> "JobRecord":
+        d = json.loads(text)
+        d["ranges"] = [tuple(r) for r in d["ranges"]]
+        return cls(**d)
+
+
+class JobFolder:
+    """Paths of one job's folder under `<state>/jobs/`."""
+
+    def __init__(self, state: Path, job: str):
+        self.root = Path(state) / "jobs" / job
+
+    @property
+    def record(self) -> Path:
+        return self.root / "job.json"
+
+    @property
+    def bundle(self) -> Path:
+        return self.root / "bundle"
+
+    def tile(self, frame: int, tile: int) -> Path:
+        return self.root / "tiles" / f"{frame:04d}" / f"{tile:05d}.acc"
+
+    def save(self, rec: JobRecord) -> None:
+        write_atomic(self.record, rec.to_json().encode())
+
+    def load(self) -> JobRecord:
+        return JobRecord.from_json(self.record.read_text())
+
+
+def list_jobs(state: Path) -> list[str]:
+    folder = Path(state) / "jobs"
+    if not folder.exists():
+        return []
+    return sorted(p.name for p in folder.iterdir() if (p / "job.json").exists())
+
+
+def now() -> float:
+    return time.time()

@@ -1,0 +1,52 @@
+"""Running a head as a service: embedded or given Redis, signals, the address to print."""
+
+from __future__ import annotations
+
+import logging
+import signal
+import threading
+from pathlib import Path
+
+from .redis_server import LOOPBACK, EmbeddedRedis
+
+
+def run_head(state: Path, redis_url: str | None = None, listen: str = "127.0.0.1",
+             port: int = 0, lease_seconds: float = 120.0, max_attempts: int = 3,
+             on_ready=None, stop: threading.Event | None = None) -> None:
+    """Run a head until SIGTERM/SIGINT (or `stop` is set).
+
+    redis_url: an existing Redis to use; otherwise an embedded one is started under
+    `<state>/redis`, bound to `listen` (password-protected beyond loopback).
+    on_ready(address): called once the head serves, with the address workers need.
+    """
+    from .head import Head
+
+    logging.basicConfig(level=logging.INFO, format="%(asctime)s %(name)s %(message)s")
+    state = Path(state)
+    state.mkdir(parents=True, exist_ok=True)
+    server = None
+    if redis_url is None:
+        server = EmbeddedRedis(state / "redis", bind=listen, port=port).start()
+        redis_url = server.url
+    stop = stop or threading.Event()
+
+    def on_signal(signum, frame):
+        stop.set()
+
+    if threading.current_thread() is threading.main_thread():
+        signal.signal(signal.SIGTERM, on_signal)
+        signal.signal(signal.SIGINT, on_signal)
+    try:
+        head = Head(state, redis_url, lease_seconds=lease_seconds, max_attempts=max_attempts,
+                    redis_server=server)
+        head.start()
+        if on_ready:
+            on_ready(redis_url)
+        head.run(stop=stop.is_set)
+    finally:
+        if server is not None:
+            server.stop()
+
+
+def is_loopback(listen: str) -> bool:
+    return listen in LOOPBACK

@@ -1,0 +1,129 @@
+"""The scheduler's public state API over Redis: find a head, send it commands, read status.
+
+The command line and the web page use these functions and never raw keys. Commands are queued
+on `control` and carried out by the head in order, so they work while the head is busy or even
+briefly down (they wait in Redis).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import time
+from pathlib import Path
+
+from ..errors import LampyrError
+from . import protocol as P
+
+
+class FarmError(LampyrError):
+    """The farm cannot be reached or refused a request."""
+
+
+def default_state() -> Path:
+    env = os.environ.get("LAMPYR_STATE")
+    if env:
+        return Path(env)
+    xdg = os.environ.get("XDG_DATA_HOME")
+    return (Path(xdg) if xdg else Path.home() / ".local" / "share") / "lampyr"
+
+
+def head_file(state: Path) -> Path:
+    return Path(state) / "head.json"
+
+
+def resolve_address(head: str | None, state: Path | None) -> str:
+    """The Redis URL of a farm: given directly, or read from a head's state folder."""
+    if head:
+        return head
+    state = Path(state) if state else default_state()
+    path = head_file(state)
+    if not path.exists():
+        raise FarmError(f"no head has run with state folder {state} (no {path.name}); start one "
+                        "with `lampyr head --state DIR` or pass --head ADDRESS")
+    return json.loads(path.read_text())["address"]
+
+
+def connect(url: str, check: bool = True):
+    """A redis client for `url`; with `check`, fail with one clear line when it cannot talk."""
+    import redis
+
+    r = redis.Redis.from_url(url, socket_timeout=10, socket_connect_timeout=5,
+                             health_check_interval=15, retry_on_timeout=True)
+    if check:
+        try:
+            r.ping()
+        except redis.exceptions.AuthenticationError:
+            raise FarmError(f"the farm at {redact(url)} refused the password") from None
+        except redis.exceptions.ResponseError as err:
+            if "NOAUTH" in str(err):
+                raise FarmError(f"the farm at {redact(url)} requires a password "
+                                "(use the address the head prints)") from None
+            raise
+        except redis.exceptions.ConnectionError as err:
+            raise FarmError(f"cannot reach the farm at {redact(url)}: {err}") from None
+    return r
+
+
+def redact(url: str) -> str:
+    if "@" not in url:
+        return url
+    scheme, rest = url.split("://", 1)
+    return f"{scheme}://***@{rest.split('@', 1)[1]}"
+
+
+def check_protocol(r) -> None:
+    theirs = r.get(P.K_PROTOCOL)
+    if theirs is None:
+        raise FarmError("no lampyr head has set up this Redis yet (start `lampyr head`)")
+    if int(theirs) != P.PROTOCOL_VERSION:
+        raise P.ProtocolSkew(int(theirs))
+
+
+def send_command(r, op: str, **args) -> None:
+    r.rpush(P.K_CONTROL, json.dumps({"op": op, **args}))
+
+
+def store_bundle(r, data: bytes, sha: str) -> None:
+    r.set(P.k_bundle(sha), data)
+
+
+def job_status(r, job: str) -> dict | None:
+    raw = r.hgetall(P.k_job(job))
+    if not raw:
+        return None
+    return {k.decode(): json.loads(v) for k, v in raw.items()}
+
+
+def list_jobs(r) -> list[dict]:
+    return [s for j in r.zrange(P.K_JOBS, 0, -1) if (s := job_status(r, j.decode())) is not None]
+
+
+def workers(r) -> list[dict]:
+    """Live worker hosts with the batches their processes render now."""
+    hosts = {}
+    for k in r.scan_iter(match=P.key("host", "*"), count=500):
+        raw = r.get(k)
+        if raw:
+            info = json.loads(raw)
+            info["slots"] = []
+            hosts[info["name"]] = info
+    for k in r.scan_iter(match=P.key("slot", "*"), count=500):
+        raw = r.get(k)
+        if raw:
+            slot = json.loads(raw)
+            hosts.setdefault(slot["worker"], {"name": slot["worker"], "slots": []})["slots"].append(slot)
+    return sorted(hosts.values(), key=lambda h: h["name"])
+
+
+def wait_for_job(r, job: str, states=("done", "failed", "cancelled"), timeout: float = 600,
+                 poll: float = 0.2) -> dict:
+    """Poll a job's status until its state is one of `states`; returns the status."""
+    deadline = time.monotonic() + timeout
+    while True:
+        st = job_status(r, job)
+        if st is not None and st.get("state") in states:
+            return st
+        if time.monotonic() > deadline:
+            raise FarmError(f"job {job} still {st and st.get('state')} after {timeout:.0f} s")
+        time.sleep(poll)

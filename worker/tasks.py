@@ -1,0 +1,146 @@
+"""The one task: render a batch, put its film into Redis, tell the head. Thin and idempotent.
+
+`run_batch` decodes the JSON argument, skips a message the head has replaced (its ticket is no
+longer the batch's current one) or a batch another worker holds the lease on, counts the start in
+lampyr's own attempt counter (a batch that kills its process cannot loop: past `max_attempts`
+starts it is reported failed instead of run), renders the samples in chunks — renewing the lease
+and reporting speed between chunks, so a long numba call never lets the lease lapse unseen — and
+stores the result under `result:<batch>:<ticket>` before it lets the lease go.
+
+Test hooks (environment of the worker process, never set in production):
+`LAMPYR_TEST_POISON=frame/tile` makes that tile's batches raise; `LAMPYR_TEST_CHUNK_DELAY=s`
+sleeps s seconds after every one-sample chunk, so a fault can land in the middle of a batch.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import socket
+import time
+import traceback
+
+from ..scheduler import protocol as P
+
+CHUNK_SECONDS = 5.0  # longest render call between lease renewals (and status updates)
+
+
+class Context:
+    """Per-process worker state: Redis client, bundle cache, identity."""
+
+    def __init__(self, url: str, name: str):
+        from ..scheduler.store import connect
+        from .cache import BundleCache
+
+        self.r = connect(url, check=False)
+        self.name = name
+        self.pid = os.getpid()
+        self.holder = f"{name}:{self.pid}:{os.urandom(4).hex()}"
+        self.cache = BundleCache(self.r)
+        self._config = (0.0, {})
+
+    def config(self) -> dict:
+        at, conf = self._config
+        if time.monotonic() - at > 5:
+            raw = self.r.hgetall(P.K_CONFIG)
+            conf = {k.decode(): float(v) for k, v in raw.items()}
+            self._config = (time.monotonic(), conf)
+        return conf
+
+    def slot(self, batch: str | None, speed: float = 0.0) -> None:
+        k = P.k_slot(self.name, self.pid)
+        if batch is None:
+            self.r.delete(k)
+        else:
+            self.r.set(k, json.dumps({"worker": self.name, "pid": self.pid, "batch": batch,
+                                      "pixel_samples_per_second": round(speed, 1),
+                                      "since": time.time()}), ex=P.HEARTBEAT_TTL)
+
+
+def run_batch(ctx: Context, payload: str) -> dict:
+    """Carry out one TASK_RENDER message; returns a small JSON-able summary."""
+    try:
+        task = P.RenderTask.from_json(payload)
+    except P.ProtocolSkew as err:
+        d = json.loads(payload)
+        b = P.Batch(**d["batch"])
+        ctx.r.rpush(P.K_RESULTS, P.error_notice(b.id, int(d["ticket"]), ctx.name, str(err)))
+        return {"batch": b.id, "outcome": "refused", "error": str(err)}
+    b = task.batch
+    r = ctx.r
+    current = r.hget(P.K_INFLIGHT, b.id)
+    if current is None or int(current) != task.ticket:
+        return {"batch": b.id, "outcome": "stale"}
+    conf = ctx.config()
+    lease = conf.get("lease_seconds", 120.0)
+    max_attempts = int(conf.get("max_attempts", 3))
+    if not P.lease_acquire(r, b.id, ctx.holder, lease):
+        return {"batch": b.id, "outcome": "held elsewhere"}
+    try:
+        attempts = r.hincrby(P.K_ATTEMPTS, b.id, 1)
+        if attempts > max_attempts:
+            r.rpush(P.K_RESULTS, P.error_notice(
+                b.id, task.ticket, ctx.name,
+                f"gave up after {attempts - 1} start(s): its worker process died or went silent"))
+            return {"batch": b.id, "outcome": "gave up"}
+        try:
+            film, seconds = _render(ctx, task, lease)
+        except LeaseLost:
+            return {"batch": b.id, "outcome": "lease lost"}
+        except Exception as err:
+            text = "".join(traceback.format_exception_only(type(err), err)).strip()
+            r.rpush(P.K_RESULTS, P.error_notice(b.id, task.ticket, ctx.name, text))
+            return {"batch": b.id, "outcome": "error", "error": text}
+        from ..engine.film import to_bytes
+
+        pipe = r.pipeline(transaction=True)
+        pipe.set(P.k_result(b.id, task.ticket), to_bytes(film), ex=P.RESULT_TTL)
+        pipe.rpush(P.K_RESULTS, P.result_notice(b.id, task.ticket, ctx.name, seconds))
+        pipe.execute()
+        return {"batch": b.id, "outcome": "done", "seconds": round(seconds, 4)}
+    finally:
+        P.lease_release(r, b.id, ctx.holder)
+        ctx.slot(None)
+
+
+class LeaseLost(Exception):
+    """Our lease expired while rendering: the head has queued the batch again elsewhere."""
+
+
+def _render(ctx: Context, task: P.RenderTask, lease: float):
+    from ..engine.render import Tile
+
+    b = task.batch
+    poison = os.environ.get("LAMPYR_TEST_POISON")
+    if poison and poison == f"{b.frame}/{b.tile}":
+        raise RuntimeError(f"poisoned batch {b.id} (LAMPYR_TEST_POISON)")
+    delay = float(os.environ.get("LAMPYR_TEST_CHUNK_DELAY", "0") or 0)
+    renderer = ctx.cache.renderer(task.bundle, task.shot, task.overrides, b.frame)
+    tile = Tile(b.x0, b.y0, b.w, b.h)
+    budget = min(CHUNK_SECONDS, lease / 4)
+    film = None
+    done, step = 0, 1
+    start = time.perf_counter()
+    ctx.slot(b.id)
+    while done < b.count:
+        n = min(step, b.count - done)
+        t0 = time.perf_counter()
+        film = renderer.render(tile, b.first + done, n, film)
+        took = time.perf_counter() - t0
+        done += n
+        if delay:
+            time.sleep(delay)
+        else:
+            step = max(1, int(n * budget / max(took, 1e-6)))
+        if done < b.count and not P.lease_renew(ctx.r, b.id, ctx.holder, lease):
+            raise LeaseLost(b.id)
+        ctx.slot(b.id, b.w * b.h * done / max(time.perf_counter() - start, 1e-9))
+    return film, time.perf_counter() - start
+
+
+def host_info(name: str, cores: int, pool: str) -> dict:
+    from .. import __version__
+
+    return {"name": name, "host": socket.gethostname(), "cores": cores, "pool": pool,
+            "engine_version": __version__, "protocol": P.PROTOCOL_VERSION, "pid": os.getpid(),
+            "started": time.time()}
