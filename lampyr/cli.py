@@ -116,6 +116,191 @@ def render(shot, out, workers, samples, frames, width, height, tile_size, quiet)
     click.echo(f"Wrote {len(written)} frame(s) to {out} in {time.perf_counter() - start:.1f} s")
 
 
+
+# ---------------------------------------------------------------------------------------------
+# the farm: head, worker, submit, status, retry, pause, resume, cancel, refine
+
+_STATE_HELP = "The head's state folder (default: $LAMPYR_STATE or ~/.local/share/lampyr)."
+_HEAD_HELP = "The farm's address (redis://…) as `lampyr head` prints it; default: read it from --state."
+
+
+def _farm(head, state):
+    from .scheduler.store import check_protocol, connect, resolve_address
+
+    r = connect(resolve_address(head, state))
+    check_protocol(r)
+    return r
+
+
+def _job_or_fail(r, job):
+    from .scheduler.store import job_status
+
+    st = job_status(r, job)
+    if st is None:
+        raise UsageError(f"no job {job!r} on this farm (see `lampyr status`)")
+    return st
+
+
+@cli.command()
+@click.option("--state", type=click.Path(file_okay=False, path_type=Path), default=None, help=_STATE_HELP)
+@click.option("--redis", "redis_url", default=None, metavar="URL",
+              help="Use this Redis instead of starting an embedded one.")
+@click.option("--listen", default="127.0.0.1", show_default=True, metavar="ADDR",
+              help="Address the embedded Redis binds to; beyond loopback a password is generated.")
+@click.option("--port", type=click.IntRange(0, 65535), default=0,
+              help="Port of the embedded Redis (default: a free one, kept across restarts).")
+@click.option("--lease", "lease_seconds", type=click.FloatRange(0.5, 3600), default=120.0,
+              show_default=True, help="Seconds a silent worker keeps its batches.")
+@click.option("--attempts", "max_attempts", type=click.IntRange(1, 100), default=3,
+              show_default=True, help="Starts of a batch before it is marked failed.")
+def head(state, redis_url, listen, port, lease_seconds, max_attempts):
+    """Run the farm's head: Redis, planner, merger and lease keeper."""
+    from .scheduler.service import run_head
+    from .scheduler.store import default_state
+
+    state = state or default_state()
+
+    def ready(address):
+        click.echo(f"lampyr head: state in {state}")
+        click.echo(f"Workers join with:  lampyr worker {address}")
+        sys.stdout.flush()
+
+    run_head(state, redis_url, listen, port, lease_seconds, max_attempts, on_ready=ready)
+
+
+@cli.command()
+@click.argument("address")
+@click.option("--cores", type=click.IntRange(1, 256), default=None,
+              help="Batches rendered at once (default: every core).")
+@click.option("--pool", type=click.Choice(["prefork", "solo"]), default=None,
+              help="Celery pool (default: prefork; solo on Windows).")
+@click.option("--name", default=None, help="Name shown in status (default: host-pid).")
+def worker(address, cores, pool, name):
+    """Join the farm at ADDRESS and render batches until stopped."""
+    from .worker.app import run_worker
+
+    run_worker(address, cores or os.cpu_count() or 1, pool, name)
+
+
+@cli.command()
+@click.argument("shot", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--out", type=click.Path(file_okay=False, path_type=Path), default=None,
+              help="Folder the head writes the frames to (default: a folder per job under the state folder).")
+@click.option("--priority", type=int, default=0, show_default=True, help="Higher runs first.")
+@click.option("--samples", type=click.IntRange(1, 1_048_576), default=None, help="Override sampling.samples.")
+@click.option("--frames", "frames", default=None, metavar="A-B", help="Only these frames.")
+@click.option("--width", type=click.IntRange(1, 16384), default=None, help="Override image.width.")
+@click.option("--height", type=click.IntRange(1, 16384), default=None, help="Override image.height.")
+@click.option("--tile", "tile_size", type=click.IntRange(1, 4096), default=None,
+              help="Tile edge in pixels (default: chosen from a probe render).")
+@click.option("--batch", "batch_samples", type=click.IntRange(1, 1_048_576), default=None,
+              help="Samples per batch (default: chosen from a probe render).")
+@click.option("--head", "head_addr", default=None, help=_HEAD_HELP)
+@click.option("--state", type=click.Path(file_okay=False, path_type=Path), default=None, help=_STATE_HELP)
+def submit(shot, out, priority, samples, frames, width, height, tile_size, batch_samples,
+           head_addr, state):
+    """Queue SHOT on the farm; prints the job id as the last line."""
+    from .scheduler.head import submit_request
+
+    r = _farm(head_addr, state)
+    overrides = _overrides(samples, _parse_frames(frames), width, height)
+    job = submit_request(r, shot, overrides, None if out is None else str(out), priority,
+                         tile_size, batch_samples)
+    click.echo(job)
+
+
+@cli.command()
+@click.argument("job", required=False)
+@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
+@click.option("--head", "head_addr", default=None, help=_HEAD_HELP)
+@click.option("--state", type=click.Path(file_okay=False, path_type=Path), default=None, help=_STATE_HELP)
+def status(job, as_json, head_addr, state):
+    """Show the farm (jobs and workers), or one JOB."""
+    import json as _json
+
+    from .scheduler.store import list_jobs, workers
+
+    r = _farm(head_addr, state)
+    if job:
+        st = _job_or_fail(r, job)
+        if as_json:
+            click.echo(_json.dumps(st, sort_keys=True))
+            return
+        _print_job(st)
+        for f in st["failed"]:
+            click.echo(f"  failed {f['batch']}: {f['error']}")
+        return
+    farm = {"jobs": list_jobs(r), "workers": workers(r)}
+    if as_json:
+        click.echo(_json.dumps(farm, sort_keys=True))
+        return
+    for st in farm["jobs"]:
+        _print_job(st)
+    for w in farm["workers"]:
+        busy = ", ".join(s["batch"] for s in w.get("slots", [])) or "idle"
+        click.echo(f"worker {w['name']}: {w.get('cores', '?')} core(s), "
+                   f"lampyr {w.get('engine_version', '?')}: {busy}")
+
+
+def _print_job(st):
+    eta = st.get("eta_seconds")
+    eta = f", ETA {eta:.0f} s" if eta else ""
+    done, total = st["pixel_samples_done"], max(st["pixel_samples_total"], 1)
+    click.echo(f"{st['job']}  {st['state']:<9} frames {st['frames_done']}/{st['frames']}  "
+               f"{100 * done / total:5.1f}% of {st['samples']} spp  "
+               f"{st['samples_per_second'] / 1e3:,.1f} k samples/s{eta}  "
+               f"failed batches: {len(st['failed'])}")
+
+
+def _job_command(op, job, head_addr, state, **args):
+    from .scheduler.store import send_command
+
+    r = _farm(head_addr, state)
+    _job_or_fail(r, job)
+    send_command(r, op, job=job, **args)
+
+
+@cli.command()
+@click.argument("job")
+@click.option("--frames", "frames", default=None, metavar="A-B", help="Only failed work of these frames.")
+@click.option("--head", "head_addr", default=None, help=_HEAD_HELP)
+@click.option("--state", type=click.Path(file_okay=False, path_type=Path), default=None, help=_STATE_HELP)
+def retry(job, frames, head_addr, state):
+    """Queue JOB's failed batches again (attempt counts start afresh)."""
+    rng = _parse_frames(frames)
+    _job_command("retry", job, head_addr, state, frames=list(rng) if rng else None)
+    click.echo(f"retrying failed batches of {job}")
+
+
+@cli.command()
+@click.argument("job")
+@click.option("--samples", type=click.IntRange(1, 1_048_576), required=True,
+              help="Samples per pixel to reach.")
+@click.option("--head", "head_addr", default=None, help=_HEAD_HELP)
+@click.option("--state", type=click.Path(file_okay=False, path_type=Path), default=None, help=_STATE_HELP)
+def refine(job, samples, head_addr, state):
+    """Add samples to JOB's frames up to --samples, keeping what is rendered."""
+    _job_command("refine", job, head_addr, state, samples=samples)
+    click.echo(f"refining {job} to {samples} samples per pixel")
+
+
+def _simple_job_command(op, doc):
+    @click.argument("job")
+    @click.option("--head", "head_addr", default=None, help=_HEAD_HELP)
+    @click.option("--state", type=click.Path(file_okay=False, path_type=Path), default=None, help=_STATE_HELP)
+    def command(job, head_addr, state):
+        _job_command(op, job, head_addr, state)
+        click.echo(f"{op}: {job}")
+
+    command.__doc__ = doc
+    return cli.command(name=op)(command)
+
+
+pause = _simple_job_command("pause", "Stop queueing JOB's batches (running ones finish).")
+resume = _simple_job_command("resume", "Queue a paused JOB's batches again.")
+cancel = _simple_job_command("cancel", "Drop JOB's remaining work; frames written stay.")
+
+
 def main(argv=None) -> None:
     try:
         cli.main(args=argv, prog_name="lampyr", standalone_mode=False)
