@@ -34,6 +34,8 @@ from __future__ import annotations
 import json
 from dataclasses import asdict, dataclass
 
+from ..errors import LampyrError
+
 PROTOCOL_VERSION = 1
 TASK_RENDER = "lampyr.render_batch"
 QUEUE = "lampyr"
@@ -144,7 +146,7 @@ class RenderTask:
                    bundle=d["bundle"], shot=d["shot"], overrides=dict(d["overrides"]))
 
 
-class ProtocolSkew(Exception):
+class ProtocolSkew(LampyrError):
     """A message or a head speaking another PROTOCOL_VERSION than this side."""
 
     def __init__(self, theirs):

@@ -130,7 +130,7 @@ class Farm:
         full_env = dict(os.environ, PYTHONUNBUFFERED="1", **(env or {}))
         out = open(self.tmp / log, "ab")
         proc = subprocess.Popen(lampyr_cmd(*args), stdout=out, stderr=subprocess.STDOUT,
-                                env=full_env, start_new_session=True)
+                                env=full_env, start_new_session=True, cwd=self.tmp)
         self.procs.append(proc)
         return proc
 
@@ -170,7 +170,8 @@ class Farm:
             time.sleep(0.1)
 
     def cli(self, *args, check=True) -> subprocess.CompletedProcess:
-        res = subprocess.run(lampyr_cmd(*args), capture_output=True, text=True, timeout=120)
+        res = subprocess.run(lampyr_cmd(*args), capture_output=True, text=True, timeout=120,
+                             cwd=self.tmp)
         if check:
             assert res.returncode == 0, res.stderr
         return res
@@ -182,7 +183,7 @@ class Farm:
     def status(self, job: str) -> dict:
         return json.loads(self.cli("status", job, "--json", "--head", self.url).stdout)
 
-    def wait(self, job: str, states=("done", "failed", "cancelled"), timeout: float = 120) -> dict:
+    def wait(self, job: str, states=("done", "failed", "cancelled"), timeout: float = 60) -> dict:
         deadline = time.monotonic() + timeout
         while True:
             st = self.status(job)

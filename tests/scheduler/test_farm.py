@@ -1,0 +1,209 @@
+"""The farm end to end: a real redis-server, a real `lampyr head`, real Celery worker processes.
+
+Batches are kept tiny (16 × 12 px shots, a few samples) and leases short (3 s) so that faults
+resolve in seconds; every wait is bounded.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import time
+
+import pytest
+import redis
+
+from farmtools import assert_same_image, frame_mean, reference_mean
+
+LAYOUT = ("--tile", 8, "--batch", 3)  # 16 × 12 px → 4 tiles; 8 spp → ranges 1, 3, 3, 1
+
+
+def wait_for(cond, timeout=60, what="condition"):
+    deadline = time.monotonic() + timeout
+    while not (value := cond()):
+        if time.monotonic() > deadline:
+            raise AssertionError(f"timed out waiting for {what}")
+        time.sleep(0.05)
+    return value
+
+
+def busy_slot(url, worker):
+    """The first batch `worker` renders now, as its slot record (batch, pid)."""
+    r = redis.Redis.from_url(url)
+    for k in r.scan_iter(match=f"lampyr:slot:{worker}:*"):
+        raw = r.get(k)
+        if raw:
+            return json.loads(raw)
+    return None
+
+
+def assert_frames_match_engine(out, shot, frames=(1, 2)):
+    for f in frames:
+        assert_same_image(frame_mean(out, "tiny", f), reference_mean(shot, f))
+
+
+def test_farm_render_equals_engine_render(farm, tiny_shot, tmp_path):
+    farm.start_head()
+    farm.start_worker("a")
+    farm.start_worker("b")
+    job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
+    st = farm.wait(job)
+    assert (st["state"], st["frames"], st["frames_done"]) == ("done", 2, 2)
+    assert_frames_match_engine(tmp_path / "out", tiny_shot)
+
+
+def test_status_json_has_the_core_fields(farm, tiny_shot):
+    farm.start_head()
+    job = farm.submit(tiny_shot, *LAYOUT)
+    st = wait_for(lambda: farm.status(job), what="status")
+    assert st["state"] == "queued"  # no worker yet
+    assert (st["frames"], st["frames_done"], st["job"]) == (2, 0, job)
+
+
+def test_frames_default_to_a_folder_per_job_under_the_state(farm, tiny_shot):
+    farm.start_head()
+    farm.start_worker("a")
+    job = farm.submit(tiny_shot, *LAYOUT)
+    farm.wait(job)
+    assert (farm.state / "jobs" / job / "frames" / "tiny.0001.exr").exists()
+
+
+@pytest.mark.parametrize("victim", ["process", "whole worker"])
+def test_sigkill_mid_batch_job_completes_with_equal_frames(farm, tiny_shot, tmp_path, victim):
+    farm.start_head(lease=3)
+    slow = farm.start_worker("slow", env={"LAMPYR_TEST_CHUNK_DELAY": "0.4"})
+    job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
+    slot = wait_for(lambda: busy_slot(farm.url, "slow"), what="a batch on the slow worker")
+    if victim == "process":
+        os.kill(slot["pid"], signal.SIGKILL)  # the Celery pool process rendering the batch
+    else:
+        os.killpg(slow.pid, signal.SIGKILL)  # the machine is switched off
+    farm.start_worker("b")
+    st = farm.wait(job, timeout=90)
+    assert st["state"] == "done" and not st["failed"]
+    assert_frames_match_engine(tmp_path / "out", tiny_shot)
+
+
+def test_sigstop_lease_expires_and_late_result_changes_nothing(farm, tiny_shot, tmp_path):
+    farm.start_head(lease=2)
+    frozen = farm.start_worker("frozen", env={"LAMPYR_TEST_CHUNK_DELAY": "0.3"})
+    job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
+    slot = wait_for(lambda: busy_slot(farm.url, "frozen"), what="a batch on the worker")
+    os.killpg(frozen.pid, signal.SIGSTOP)
+    farm.start_worker("b")
+    st = farm.wait(job, timeout=90)
+    assert st["state"] == "done"
+    before = {f: frame_mean(tmp_path / "out", "tiny", f) for f in (1, 2)}
+    os.killpg(frozen.pid, signal.SIGCONT)
+    r = redis.Redis.from_url(farm.url)
+    # the thawed worker finishes its chunk, finds its lease gone or its result a duplicate
+    wait_for(lambda: not r.exists(f"lampyr:lease:{slot['batch']}")
+             and r.llen("lampyr:results") == 0 and r.llen("lampyr:results:processing") == 0,
+             what="the late worker to let go")
+    time.sleep(1.0)
+    for f in (1, 2):
+        assert (frame_mean(tmp_path / "out", "tiny", f) == before[f]).all()
+    assert_frames_match_engine(tmp_path / "out", tiny_shot)
+
+
+def test_a_result_delivered_twice_counts_once(farm, tiny_shot, tmp_path):
+    farm.start_head()
+    farm.start_worker("a")
+    job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
+    farm.wait(job)
+    r = redis.Redis.from_url(farm.url)
+    # deliver a finished batch's notice again, with a film of other samples under its name:
+    # merged, it would change the frame
+    from lampyr.engine.film import to_bytes
+    from lampyr.engine.render import FrameRenderer, Tile
+    from lampyr.engine.shot import load_shot
+
+    other = FrameRenderer(load_shot(tiny_shot), 1).render(Tile(0, 0, 8, 8), 100, 3)
+    bid = f"{job}/1/0/1/3"
+    r.set(f"lampyr:result:{bid}:1", to_bytes(other))
+    r.rpush("lampyr:results", json.dumps({"kind": "result", "batch": bid, "ticket": 1,
+                                          "worker": "test", "seconds": 0.0}))
+    wait_for(lambda: r.llen("lampyr:results") == 0 and r.llen("lampyr:results:processing") == 0,
+             what="the head to take the notice")
+    assert not r.exists(f"lampyr:result:{bid}:1")
+    assert_frames_match_engine(tmp_path / "out", tiny_shot)
+
+
+def test_a_message_delivered_twice_counts_once(farm, tiny_shot, tmp_path):
+    farm.start_head()
+    job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
+    r = redis.Redis.from_url(farm.url)
+    wait_for(lambda: r.llen("lampyr") >= 2, what="queued messages")
+    for raw in r.lrange("lampyr", 0, -1):  # every queued Celery message twice
+        r.lpush("lampyr", raw)
+    farm.start_worker("a")
+    st = farm.wait(job)
+    assert st["state"] == "done"
+    assert_frames_match_engine(tmp_path / "out", tiny_shot)
+
+
+def test_poison_batch_fails_after_the_limit_and_retry_requeues_it(farm, tiny_shot, tmp_path):
+    farm.start_head(attempts=2)
+    poisoned = farm.start_worker("p", env={"LAMPYR_TEST_POISON": "1/0"})
+    job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
+    st = farm.wait(job)
+    assert st["state"] == "failed"
+    assert st["frames_done"] == 1  # frame 2 is whole; frame 1 lacks its first tile
+    assert {f["batch"].split("/", 1)[1].rsplit("/", 2)[0] for f in st["failed"]} == {"1/0"}
+    assert all("poisoned batch" in f["error"] and "2 attempt" in f["error"] for f in st["failed"])
+    text = farm.cli("status", job, "--head", farm.url).stdout
+    assert "poisoned batch" in text
+    os.killpg(poisoned.pid, signal.SIGKILL)
+    farm.start_worker("healthy")
+    farm.cli("retry", job, "--head", farm.url)
+    st = farm.wait(job, states=("done",))
+    assert st["frames_done"] == 2 and not st["failed"]
+    assert_frames_match_engine(tmp_path / "out", tiny_shot)
+
+
+def test_head_killed_and_restarted_completes_with_equal_frames(farm, tiny_shot, tmp_path):
+    farm.start_head()
+    farm.start_worker("a", env={"LAMPYR_TEST_CHUNK_DELAY": "0.02"})
+    job = farm.submit(tiny_shot, "--out", tmp_path / "out", "--tile", 4, "--batch", 2)
+    wait_for(lambda: farm.status(job)["pixel_samples_done"] > 0, what="merging to start")
+    os.kill(farm.head_proc.pid, signal.SIGKILL)
+    farm.head_proc.wait()
+    farm.start_head()
+    st = farm.wait(job, timeout=90)
+    assert st["state"] == "done"
+    assert_frames_match_engine(tmp_path / "out", tiny_shot)
+
+
+def test_redis_restart_during_a_job_resumes(embedded_farm, tiny_shot, tmp_path):
+    farm = embedded_farm
+    farm.start_head(embedded=True)
+    farm.start_worker("a", env={"LAMPYR_TEST_CHUNK_DELAY": "0.05"})
+    job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
+    r = redis.Redis.from_url(farm.url)
+    wait_for(lambda: farm.status(job)["pixel_samples_done"] > 0, what="progress")
+    time.sleep(1.1)  # appendfsync everysec
+    os.kill(r.info("server")["process_id"], signal.SIGKILL)
+    st = farm.wait(job, timeout=120)
+    assert st["state"] == "done"
+    assert_frames_match_engine(tmp_path / "out", tiny_shot)
+
+
+def test_refine_adds_samples_equal_to_rendering_them_directly(farm, tiny_shot, tmp_path):
+    farm.start_head()
+    farm.start_worker("a")
+    job = farm.submit(tiny_shot, "--out", tmp_path / "out", "--samples", 4, *LAYOUT)
+    farm.wait(job)
+    farm.cli("refine", job, "--samples", 8, "--head", farm.url)
+    wait_for(lambda: farm.status(job)["samples"] == 8, what="the refine command")
+    st = farm.wait(job)
+    assert st["state"] == "done" and st["frames_done"] == 2
+    assert_frames_match_engine(tmp_path / "out", tiny_shot)
+
+
+def test_a_worker_of_another_protocol_version_is_refused(farm):
+    farm.start_head()
+    redis.Redis.from_url(farm.url).set("lampyr:protocol", 999)
+    res = farm.cli("worker", farm.url, "--cores", 1, check=False)
+    assert res.returncode != 0
+    assert "protocol 999" in res.stderr and "same lampyr version" in res.stderr
