@@ -1,0 +1,66 @@
+"""Tile accumulators: what a file holds is what was merged, each sample range once."""
+
+from __future__ import annotations
+
+import json
+import struct
+
+import numpy as np
+import pytest
+
+from lampyr.engine.render import FrameRenderer, Tile
+from lampyr.engine.shot import load_shot
+from lampyr.scheduler.accumulator import MAGIC, TileAccumulator, overlaps
+
+TILE = Tile(4, 2, 8, 6)
+
+
+@pytest.fixture
+def renderer(tiny_shot):
+    return FrameRenderer(load_shot(tiny_shot), 1)
+
+
+def test_two_ranges_merged_equal_one_range_rendered(renderer, tmp_path):
+    acc = TileAccumulator(tmp_path / "t.acc", TILE.w, TILE.h)
+    assert acc.add(renderer.render(TILE, 0, 3), 0, 3)
+    assert acc.add(renderer.render(TILE, 3, 5), 3, 5)
+    whole = renderer.render(TILE, 0, 8)
+    # invariant 1 (DESIGN): to float32 rounding, 2**-24 relative per addition
+    np.testing.assert_allclose(acc.film.mean(), whole.mean(), rtol=1e-5, atol=1e-7)
+
+
+@pytest.mark.parametrize("first, count", [(0, 3), (2, 1), (1, 4)])
+def test_a_range_overlapping_what_is_held_is_dropped(renderer, tmp_path, first, count):
+    acc = TileAccumulator(tmp_path / "t.acc", TILE.w, TILE.h)
+    acc.add(renderer.render(TILE, 0, 3), 0, 3)
+    before = acc.film.mean().copy()
+    assert not acc.add(renderer.render(TILE, first, count), first, count)
+    assert acc.ranges == [(0, 3)]
+    np.testing.assert_array_equal(acc.film.mean(), before)
+
+
+def test_the_file_names_the_ranges_it_holds(renderer, tmp_path):
+    acc = TileAccumulator(tmp_path / "t.acc", TILE.w, TILE.h)
+    acc.add(renderer.render(TILE, 3, 2), 3, 2)
+    acc.add(renderer.render(TILE, 0, 3), 0, 3)
+    acc.save()
+    raw = (tmp_path / "t.acc").read_bytes()
+    assert raw[:8] == MAGIC
+    (n,) = struct.unpack("<I", raw[8:12])
+    assert json.loads(raw[12:12 + n])["ranges"] == [[0, 3], [3, 2]]
+    back = TileAccumulator.load(tmp_path / "t.acc", TILE.w, TILE.h)
+    assert back.ranges == [(0, 3), (3, 2)] and back.samples == 5
+    np.testing.assert_array_equal(back.film.mean(), acc.film.mean())
+    assert not list(tmp_path.glob("*.tmp"))
+
+
+def test_a_missing_file_is_an_empty_tile(tmp_path):
+    acc = TileAccumulator.load(tmp_path / "none.acc", 8, 8)
+    assert acc.ranges == [] and acc.film is None
+
+
+@pytest.mark.parametrize("ranges, first, count, expected", [
+    ([(0, 4)], 4, 4, False), ([(0, 4)], 3, 1, True), ([(4, 4)], 0, 5, True), ([], 0, 1, False),
+])
+def test_overlap(ranges, first, count, expected):
+    assert overlaps(ranges, first, count) is expected
