@@ -20,11 +20,12 @@ from .planner import plan_batches
 class JobRun:
     """A job as the head runs it: record, shot, tiles, which batches are done, frames written."""
 
-    def __init__(self, state: Path, rec: JobRecord):
+    def __init__(self, state: Path, rec: JobRecord, partial_frames: bool = True):
         from ..engine.render import tiles_for
         from ..engine.shot import load_shot
 
         self.rec = rec
+        self.partial_frames = partial_frames
         self.folder = JobFolder(state, rec.id)
         shot = load_shot(self.folder.bundle / rec.shot)
         self.shot = shot.with_overrides(**_overrides(rec)) if rec.overrides or rec.samples else shot
@@ -76,6 +77,8 @@ class JobRun:
         """Rewrite the frame file when its lowest tile sample count grew (or `force`)."""
         level = self.frame_level(frame)
         if level == 0 or (not force and level <= self.written.get(frame, 0)):
+            return None
+        if not self.partial_frames and level < self.rec.samples:
             return None
         from ..engine.film import Film
         from ..local import write_frame_files

@@ -49,7 +49,7 @@ class Head:
     """
 
     def __init__(self, state: Path, url: str, lease_seconds: float = 120.0, max_attempts: int = 3,
-                 redis_server=None):
+                 redis_server=None, partial_frames: bool = True):
         from .store import connect
 
         self.state = Path(state)
@@ -57,6 +57,7 @@ class Head:
         self.lease_seconds = float(lease_seconds)
         self.max_attempts = int(max_attempts)
         self.redis_server = redis_server
+        self.partial_frames = partial_frames  # False: a frame file appears only when complete
         self.r = connect(url)
         self.sender = make_sender(url)
         self.jobs: dict[str, JobRun] = {}
@@ -64,6 +65,8 @@ class Head:
         self.tickets: dict[str, int] = {}
         self.epoch = None
         self._status_at = 0.0
+        self._reap_at = 0.0
+        self._cores = (0.0, 0)
 
     # -- start-up ---------------------------------------------------------------------------
 
@@ -71,7 +74,8 @@ class Head:
         write_atomic(self.state / "head.json", json.dumps({"address": self.url}).encode())
         for job in list_jobs(self.state):
             try:
-                self.jobs[job] = JobRun(self.state, JobFolder(self.state, job).load())
+                self.jobs[job] = JobRun(self.state, JobFolder(self.state, job).load(),
+                                      self.partial_frames)
             except Exception as err:  # a broken job must not keep the farm down
                 log.error("job %s cannot be resumed: %s", job, err)
         for run in self.jobs.values():
@@ -204,7 +208,7 @@ class Head:
                         batch_samples=int(batch_samples), samples=int(spec.samples),
                         ranges=ranges)
         folder.save(rec)
-        self.jobs[job] = JobRun(self.state, rec)
+        self.jobs[job] = JobRun(self.state, rec, self.partial_frames)
         self.r.zadd(P.K_JOBS, {job: rec.submitted})
         log.info("job %s: %d batches, tiles %d px, %d samples per batch", job,
                  len(self.jobs[job].pending), tile_size, batch_samples)
@@ -254,7 +258,7 @@ class Head:
                                                               run.rec.batch_samples)
         run.rec.samples = int(samples)
         self._save(run)
-        self.jobs[job] = JobRun(self.state, run.rec)
+        self.jobs[job] = JobRun(self.state, run.rec, self.partial_frames)
         self.jobs[job].written = dict(run.written)
         self._drop_inflight_from_pending(self.jobs[job])
 
@@ -317,7 +321,11 @@ class Head:
 
     # -- leases and dispatch ----------------------------------------------------------------
 
-    def reap(self) -> None:
+    def reap(self, every: float = 0.2) -> None:
+        now = time.monotonic()
+        if now - self._reap_at < every:
+            return
+        self._reap_at = now
         for entry in self.leases.expired(self.r):
             run = self.jobs.get(entry.batch.job)
             if run is None or run.is_done(entry.batch):
@@ -338,11 +346,16 @@ class Head:
         self._send(b)
 
     def worker_cores(self) -> int:
+        """Cores of the live workers (from their heartbeats; re-read once a second)."""
+        at, cores = self._cores
+        if time.monotonic() - at < 1.0:
+            return cores
         total = 0
         for k in self.r.scan_iter(match=P.key("host", "*"), count=500):
             raw = self.r.get(k)
             if raw:
                 total += int(json.loads(raw).get("cores", 1))
+        self._cores = (time.monotonic(), total)
         return total
 
     def dispatch(self) -> int:

@@ -1,0 +1,103 @@
+"""The farm in one process tree, for `lampyr render`: an embedded Redis, a head thread and one
+local `lampyr worker` with a pool process per core — the same path a studio farm takes.
+
+State lives in a temporary folder removed at the end; frames are written only once complete
+(as the local render always did), so an interrupted render leaves whole frames only. Redis and
+the worker run in their own sessions: Ctrl-C reaches this process alone, which stops them.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from pathlib import Path
+
+
+def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: int,
+                   overrides: dict, on_progress=None, on_frame=None,
+                   batch_samples: int | None = None) -> list[Path]:
+    """Render every frame of `shot` through a local farm; returns the EXR paths written.
+
+    Same contract as `lampyr.local.render_local`: on_progress(samples_done, samples_total) and
+    on_frame(path) are called from this thread.
+    """
+    from ..local import frame_path
+    from .head import Head, submit_request
+    from .redis_server import EmbeddedRedis
+
+    state = Path(tempfile.mkdtemp(prefix="lampyr-render-"))
+    server = EmbeddedRedis(state / "redis").start()
+    stop = threading.Event()
+    head_error: list[BaseException] = []
+    worker = None
+    thread = None
+    try:
+        head = Head(state, server.url, lease_seconds=60, redis_server=server, partial_frames=False)
+        head.start()
+
+        def run_head():
+            try:
+                head.run(stop=stop.is_set)
+            except BaseException as err:  # surfaced in the waiting loop below
+                head_error.append(err)
+
+        thread = threading.Thread(target=run_head, name="lampyr-head", daemon=True)
+        thread.start()
+        log = open(state / "worker.log", "wb")
+        worker = subprocess.Popen(
+            [sys.executable, "-m", "lampyr.cli", "worker", server.url, "--cores", str(workers),
+             "--name", "local"],
+            stdin=subprocess.DEVNULL, stdout=log, stderr=subprocess.STDOUT,
+            start_new_session=True, cwd=state)
+        batch = batch_samples or max(1, shot.samples)
+        job = submit_request(head.r, Path(shot_path), overrides, str(out), 0, tile_size, batch)
+        written: list[Path] = []
+        seen: set[int] = set()
+        while True:
+            if head_error:
+                raise head_error[0]
+            if worker.poll() is not None:
+                err = (state / "worker.log").read_text(errors="replace").strip().splitlines()
+                raise RuntimeError("the local worker stopped: " + (err[-1] if err else "?"))
+            run = head.jobs.get(job)
+            if run is not None:
+                held, total = run.pixel_samples()
+                if on_progress:
+                    on_progress(held, total)
+                for f in run.frames:
+                    if f not in seen and f in run.written and run.frame_complete(f):
+                        seen.add(f)
+                        path = frame_path(Path(run.rec.out), run.shot.name, f)
+                        written.append(path)
+                        if on_frame:
+                            on_frame(path)
+                state_now = head.job_state(run)
+                if state_now == "failed":
+                    msg = next(iter(run.rec.failed.values()))
+                    raise RuntimeError(f"a batch failed: {msg}")
+                if state_now == "done" and len(seen) == len(run.frames):
+                    break
+            time.sleep(0.05)
+        return written
+    finally:
+        stop.set()
+        if thread is not None:
+            thread.join(10)
+        if worker is not None and worker.poll() is None:
+            try:
+                os.killpg(worker.pid, signal.SIGTERM)  # warm shutdown; then make sure
+                worker.wait(5)
+            except (ProcessLookupError, subprocess.TimeoutExpired):
+                try:
+                    os.killpg(worker.pid, signal.SIGKILL)
+                except ProcessLookupError:
+                    pass
+                worker.wait()
+        server.stop()
+        shutil.rmtree(state, ignore_errors=True)
