@@ -1,0 +1,216 @@
+"""Per-pixel sample sums of a tile or a frame, their merge, and the statistics read from them.
+
+A `Film` holds sums, never means: merging two batches of samples of the same pixels is an exact
+elementwise sum in float64, whatever the order the batches arrive in. The integrator adds into
+the arrays directly (they are C-contiguous float64).
+
+Conventions per pixel (n = samples kept, hits = samples whose camera ray hit geometry):
+  beauty mean = rgb_sum / n; alpha = alpha_sum / n; albedo = albedo_sum / n (a miss adds 0,
+  like the beauty's coverage); normal = normal_sum normalised; depth = depth_sum / hits.
+Samples whose radiance was NaN or infinite are not in any sum; `dropped` counts them.
+"""
+
+from __future__ import annotations
+
+import struct
+import zlib
+from dataclasses import dataclass, fields
+
+import numpy as np
+
+from lampyr.errors import LampyrError
+
+# Rec. 709 / sRGB luminance weights: ITU-R BT.709-6 item 3.2 (E'Y = 0.2126 R + 0.7152 G +
+# 0.0722 B), the same as IEC 61966-2-1's Y row for linear sRGB (from memory).
+LUMA_709 = np.array([0.2126, 0.7152, 0.0722])
+
+FORMAT_VERSION = 1
+_MAGIC = b"LMPFILM\x00"
+_HEAD = struct.Struct("<8sHHII")  # magic, version, field count, h, w
+_CRC = struct.Struct("<I")
+
+
+class FilmDataError(LampyrError):
+    """Film arrays or film bytes that are not a valid accumulation state."""
+
+
+@dataclass(frozen=True, eq=False)
+class Film:
+    """Sums of one image rectangle. Each field is C-contiguous float64, (h, w) or (h, w, 3).
+
+    The dataclass is frozen (fields cannot be rebound) but the arrays are written in place.
+    """
+
+    n: np.ndarray  # (h, w) samples kept
+    rgb_sum: np.ndarray  # (h, w, 3) Σ L
+    rgb_sq: np.ndarray  # (h, w, 3) Σ L² per channel
+    alpha_sum: np.ndarray  # (h, w) Σ coverage (1 per sample whose camera ray hit)
+    albedo_sum: np.ndarray  # (h, w, 3) Σ first-hit albedo
+    normal_sum: np.ndarray  # (h, w, 3) Σ first-hit shading normal, facing the camera
+    depth_sum: np.ndarray  # (h, w) Σ first-hit ray distance
+    hits: np.ndarray  # (h, w) samples whose camera ray hit geometry
+    dropped: np.ndarray  # (h, w) NaN / inf samples thrown away
+
+    def __post_init__(self):
+        if np.ndim(self.n) != 2:
+            raise FilmDataError(f"film.n: expected an (h, w) array, got shape {np.shape(self.n)}")
+        h, w = self.n.shape
+        for name, arr in self._arrays():
+            want = (h, w, 3) if name in RGB_FIELDS else (h, w)
+            if not isinstance(arr, np.ndarray) or arr.dtype != np.float64:
+                raise FilmDataError(f"film.{name}: expected a float64 array, got "
+                                    f"{getattr(arr, 'dtype', type(arr).__name__)}")
+            if arr.shape != want:
+                raise FilmDataError(f"film.{name}: expected shape {want}, got {arr.shape}")
+            if not arr.flags.c_contiguous:
+                raise FilmDataError(f"film.{name}: expected a C-contiguous array")
+
+    def _arrays(self):
+        return ((f, getattr(self, f)) for f in FIELDS)
+
+    @classmethod
+    def zeros(cls, h: int, w: int) -> Film:
+        """An empty film of h rows and w columns."""
+        return cls(**{f: np.zeros((h, w, 3) if f in RGB_FIELDS else (h, w)) for f in FIELDS})
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        """(h, w)."""
+        return self.n.shape
+
+    def copy(self) -> Film:
+        return Film(**{f: a.copy() for f, a in self._arrays()})
+
+    def add_into(self, src: Film, y0: int, x0: int) -> None:
+        """Add `src` into this film's rows [y0, y0 + src.h), columns [x0, x0 + src.w)."""
+        add_into(self, src, y0, x0)
+
+    # -- statistics: (h, w[, 3]) float64 ---------------------------------------------------------
+
+    def mean(self) -> np.ndarray:
+        """(h, w, 3) mean radiance; 0 where n == 0."""
+        return _ratio(self.rgb_sum, self.n[..., None])
+
+    def variance(self) -> np.ndarray:
+        """(h, w, 3) unbiased sample variance of ONE sample, (Σ L² − (Σ L)²/n) / (n − 1).
+
+        Clipped at 0 (rounding can make it slightly negative); 0 where n < 2. The variance of
+        the mean is variance() / n.
+        """
+        n = self.n[..., None]
+        out = np.zeros_like(self.rgb_sq)
+        ok = np.broadcast_to(n >= 2, out.shape)
+        dev = self.rgb_sq - _ratio(self.rgb_sum * self.rgb_sum, n)
+        np.divide(dev, n - 1.0, out=out, where=ok)
+        return np.maximum(out, 0.0)
+
+    def std_error(self) -> np.ndarray:
+        """(h, w, 3) standard error of the mean, sqrt(variance / n); 0 where n < 2."""
+        return np.sqrt(_ratio(self.variance(), self.n[..., None]))
+
+    def rel_noise(self, eps: float = 1e-3) -> np.ndarray:
+        """(h, w) relative standard error of the mean's Rec. 709 luminance, se_Y / max(Y, eps).
+
+        Only per-channel variances are kept, not covariances, so se_Y is bounded from above by
+        Σ_c w_c se_c (Minkowski's inequality; exact when the channels' noise is perfectly
+        correlated, as on grey surfaces). inf where n < 2: the noise is not known yet.
+        eps: radiance floor of the denominator, so black pixels do not divide by zero.
+        """
+        se_y = self.std_error() @ LUMA_709
+        y = self.mean() @ LUMA_709
+        out = se_y / np.maximum(y, eps)
+        out[self.n < 2] = np.inf
+        return out
+
+    def alpha(self) -> np.ndarray:
+        """(h, w) coverage in [0, 1]; 0 where n == 0."""
+        return _ratio(self.alpha_sum, self.n)
+
+    def albedo(self) -> np.ndarray:
+        """(h, w, 3) mean first-hit albedo over all samples (misses count 0); 0 where n == 0."""
+        return _ratio(self.albedo_sum, self.n[..., None])
+
+    def normal(self) -> np.ndarray:
+        """(h, w, 3) unit mean first-hit normal; 0 where no sample hit."""
+        length = np.linalg.norm(self.normal_sum, axis=-1, keepdims=True)
+        return _ratio(self.normal_sum, length)
+
+    def normal_mean(self) -> np.ndarray:
+        """(h, w, 3) mean first-hit normal over hits, NOT normalised (shorter than 1 where the
+        hits disagree, as on silhouettes); 0 where no sample hit."""
+        return _ratio(self.normal_sum, self.hits[..., None])
+
+    def depth(self) -> np.ndarray:
+        """(h, w) mean first-hit distance over hits; 0 where no sample hit."""
+        return _ratio(self.depth_sum, self.hits)
+
+
+FIELDS = tuple(f.name for f in fields(Film))
+RGB_FIELDS = frozenset({"rgb_sum", "rgb_sq", "albedo_sum", "normal_sum"})
+
+
+def _ratio(num: np.ndarray, den: np.ndarray) -> np.ndarray:
+    """num / den broadcast, 0 where den == 0."""
+    out = np.zeros(np.broadcast_shapes(num.shape, den.shape))
+    np.divide(num, den, out=out, where=np.broadcast_to(den != 0, out.shape))
+    return out
+
+
+def merge(a: Film, b: Film) -> Film:
+    """A new film holding the samples of both: the exact elementwise sum (same shapes)."""
+    if a.shape != b.shape:
+        raise FilmDataError(f"cannot merge films of shapes {a.shape} and {b.shape}")
+    return Film(**{f: getattr(a, f) + getattr(b, f) for f in FIELDS})
+
+
+def add_into(dst: Film, src: Film, y0: int, x0: int) -> None:
+    """Add `src` into `dst` at rows [y0, y0 + h), columns [x0, x0 + w) of `dst`, in place."""
+    h, w = src.shape
+    H, W = dst.shape
+    if y0 < 0 or x0 < 0 or y0 + h > H or x0 + w > W:
+        raise FilmDataError(f"a {w}x{h} film at ({x0}, {y0}) does not fit in a {W}x{H} film")
+    for f in FIELDS:
+        getattr(dst, f)[y0:y0 + h, x0:x0 + w] += getattr(src, f)
+
+
+# -- bytes for transport (Redis) and the head's tile accumulators -------------------------------
+#
+# Layout, little-endian: magic "LMPFILM\0", u16 format version, u16 field count, u32 h, u32 w,
+# then every field of FIELDS in order as raw float64 (h, w[, 3]) C-order, then a CRC-32
+# (zlib.crc32) of everything before it.
+
+
+def to_bytes(film: Film) -> bytes:
+    """The film as bytes (136 bytes per pixel plus 24), see the layout above."""
+    h, w = film.shape
+    parts = [_HEAD.pack(_MAGIC, FORMAT_VERSION, len(FIELDS), h, w)]
+    parts += [np.ascontiguousarray(a, dtype="<f8").tobytes() for _, a in film._arrays()]
+    body = b"".join(parts)
+    return body + _CRC.pack(zlib.crc32(body))
+
+
+def from_bytes(data: bytes) -> Film:
+    """Rebuild a film written by `to_bytes`; FilmDataError when the bytes are not one."""
+    data = bytes(data)
+    if len(data) < _HEAD.size + _CRC.size:
+        raise FilmDataError(f"film bytes: {len(data)} bytes is too short for a film header")
+    magic, version, count, h, w = _HEAD.unpack_from(data)
+    if magic != _MAGIC:
+        raise FilmDataError("film bytes: not a lampyr film (bad magic)")
+    if version != FORMAT_VERSION or count != len(FIELDS):
+        raise FilmDataError(f"film bytes: format version {version} with {count} fields; this "
+                            f"lampyr reads version {FORMAT_VERSION} with {len(FIELDS)} fields")
+    sizes = [h * w * (3 if f in RGB_FIELDS else 1) for f in FIELDS]
+    want = _HEAD.size + 8 * sum(sizes) + _CRC.size
+    if len(data) != want:
+        raise FilmDataError(f"film bytes: a {w}x{h} film takes {want} bytes, got {len(data)} "
+                            "(truncated or padded)")
+    (crc,) = _CRC.unpack_from(data, len(data) - _CRC.size)
+    if zlib.crc32(memoryview(data)[:-_CRC.size]) != crc:
+        raise FilmDataError(f"film bytes: checksum mismatch in a {w}x{h} film (corrupted)")
+    arrays, offset = {}, _HEAD.size
+    for f, size in zip(FIELDS, sizes):
+        flat = np.frombuffer(data, dtype="<f8", count=size, offset=offset)
+        arrays[f] = flat.astype(np.float64).reshape((h, w, 3) if f in RGB_FIELDS else (h, w))
+        offset += 8 * size
+    return Film(**arrays)
