@@ -276,11 +276,13 @@ def retry(job, frames, head_addr, state):
 @click.argument("job")
 @click.option("--samples", type=click.IntRange(1, 1_048_576), required=True,
               help="Samples per pixel to reach.")
+@click.option("--noise", type=click.FloatRange(0, None, min_open=True), default=None,
+              help="Only tiles whose relative standard error (luminance, mean over the tile) is above this.")
 @click.option("--head", "head_addr", default=None, help=_HEAD_HELP)
 @click.option("--state", type=click.Path(file_okay=False, path_type=Path), default=None, help=_STATE_HELP)
-def refine(job, samples, head_addr, state):
+def refine(job, samples, noise, head_addr, state):
     """Add samples to JOB's frames up to --samples, keeping what is rendered."""
-    _job_command("refine", job, head_addr, state, samples=samples)
+    _job_command("refine", job, head_addr, state, samples=samples, noise=noise)
     click.echo(f"refining {job} to {samples} samples per pixel")
 
 

@@ -15,6 +15,7 @@ from pathlib import Path
 from .accumulator import TileAccumulator, overlaps, samples_held
 from .jobs import JobFolder, JobRecord
 from .planner import plan_batches
+from .protocol import Batch
 
 
 class JobRun:
@@ -36,7 +37,8 @@ class JobRun:
             for i, t in enumerate(self.tiles):
                 acc = TileAccumulator.load(self.folder.tile(f, i), t.w, t.h)
                 self.held[(f, i)] = acc.ranges
-        self.written: dict[int, int] = {}
+        self.written: dict[int, int] = {}  # frame → its lowest tile sample count when written
+        self.written_sum: dict[int, int] = {}  # frame → samples of all its tiles when written
         self.seconds: dict[int, float] = {f: 0.0 for f in self.frames}
         self.pending: deque = deque()
         self.started = time.time()
@@ -45,11 +47,19 @@ class JobRun:
 
     def replan(self) -> None:
         """Rebuild `pending` from the plan: every batch neither held nor failed."""
+        batches = plan_batches(self.rec.id, self.frames, self.tiles, self.rec.ranges)
+        for key, ranges in self.rec.extra.items():
+            f, i = map(int, key.split("/"))
+            t = self.tiles[i]
+            batches += [Batch(self.rec.id, f, i, a, c, t.x0, t.y0, t.w, t.h) for a, c in ranges]
         self.pending = deque(
-            b for b in plan_batches(self.rec.id, self.frames, self.tiles, self.rec.ranges)
+            b for b in batches
             if not overlaps(self.held[(b.frame, b.tile)], b.first, b.count)
             and b.id not in self.rec.failed
         )
+
+    def tile_target(self, frame: int, tile: int) -> int:
+        return self.rec.samples + samples_held(self.rec.extra.get(f"{frame}/{tile}", ()))
 
     def is_done(self, b) -> bool:
         return overlaps(self.held[(b.frame, b.tile)], b.first, b.count)
@@ -71,14 +81,19 @@ class JobRun:
         return min(samples_held(self.held[(frame, i)]) for i in range(len(self.tiles)))
 
     def frame_complete(self, frame: int) -> bool:
-        return self.frame_level(frame) >= self.rec.samples
+        return all(samples_held(self.held[(frame, i)]) >= self.tile_target(frame, i)
+                   for i in range(len(self.tiles)))
 
     def write_frame_if_grown(self, frame: int, force: bool = False) -> Path | None:
         """Rewrite the frame file when its lowest tile sample count grew (or `force`)."""
         level = self.frame_level(frame)
-        if level == 0 or (not force and level <= self.written.get(frame, 0)):
+        total = sum(samples_held(self.held[(frame, i)]) for i in range(len(self.tiles)))
+        complete = self.frame_complete(frame)
+        grown = level > self.written.get(frame, 0) or (
+            complete and total > self.written_sum.get(frame, 0))
+        if level == 0 or not (force or grown):
             return None
-        if not self.partial_frames and level < self.rec.samples:
+        if not self.partial_frames and not complete:
             return None
         from ..engine.film import Film
         from ..local import write_frame_files
@@ -91,6 +106,7 @@ class JobRun:
         path = write_frame_files(Path(self.rec.out), self.shot, frame, film,
                                  self.seconds.get(frame, 0.0))
         self.written[frame] = level
+        self.written_sum[frame] = total
         return path
 
     def frames_done(self) -> int:
@@ -100,8 +116,21 @@ class JobRun:
         """(pixel-samples held, pixel-samples planned)."""
         held = sum(samples_held(r) * self.tiles[i].w * self.tiles[i].h
                    for (f, i), r in self.held.items())
-        total = len(self.frames) * self.shot.width * self.shot.height * self.rec.samples
+        total = sum(self.tile_target(f, i) * t.w * t.h
+                    for f in self.frames for i, t in enumerate(self.tiles))
         return held, total
+
+    def noisy_tiles(self, goal: float) -> list[tuple[int, int]]:
+        """(frame, tile) whose mean relative standard error (luminance) is above `goal`."""
+        import numpy as np
+
+        out = []
+        for f in self.frames:
+            for i, t in enumerate(self.tiles):
+                acc = TileAccumulator.load(self.folder.tile(f, i), t.w, t.h)
+                if acc.film is None or float(np.mean(acc.film.rel_noise())) > goal:
+                    out.append((f, i))
+        return out
 
 
 def _overrides(rec: JobRecord) -> dict:

@@ -247,19 +247,29 @@ class Head:
         if gone:
             self.r.hdel(P.K_INFLIGHT, *gone)
 
-    def cmd_refine(self, job: str, samples: int) -> None:
-        """Add samples to every tile up to `samples` per pixel, in the job's batch size."""
+    def cmd_refine(self, job: str, samples: int, noise: float | None = None) -> None:
+        """Add samples up to `samples` per pixel, in the job's batch size: to every tile, or
+        with a `noise` goal only to tiles whose relative standard error is above it."""
         from .planner import sample_ranges
 
         run = self.jobs[job]
-        if samples <= run.rec.samples:
-            return
-        run.rec.ranges = list(run.rec.ranges) + sample_ranges(run.rec.samples, samples,
-                                                              run.rec.batch_samples)
-        run.rec.samples = int(samples)
+        if noise is None:
+            if samples <= run.rec.samples:
+                return
+            run.rec.ranges = list(run.rec.ranges) + sample_ranges(run.rec.samples, samples,
+                                                                  run.rec.batch_samples)
+            run.rec.samples = int(samples)
+        else:
+            for f, i in run.noisy_tiles(noise):
+                key = f"{f}/{i}"
+                have = run.tile_target(f, i)
+                if samples > have:
+                    run.rec.extra[key] = list(run.rec.extra.get(key, [])) + sample_ranges(
+                        have, samples, run.rec.batch_samples)
         self._save(run)
         self.jobs[job] = JobRun(self.state, run.rec, self.partial_frames)
         self.jobs[job].written = dict(run.written)
+        self.jobs[job].written_sum = dict(run.written_sum)
         self._drop_inflight_from_pending(self.jobs[job])
 
     def _drop_inflight_from_pending(self, run: JobRun) -> None:

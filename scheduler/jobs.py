@@ -4,7 +4,8 @@
     bundle/       the unpacked scene bundle the head renders frames' metadata from
     tiles/<frame>/<tile>.acc   tile accumulators (see accumulator.py)
 
-`ranges` lists the sample ranges every tile gets, in dispatch order; `refine` appends to it.
+`ranges` lists the sample ranges every tile gets, in dispatch order; `refine` appends to it, or,
+with a noise goal, adds ranges to the noisy tiles only (`extra`).
 """
 
 from __future__ import annotations
@@ -47,6 +48,7 @@ class JobRecord:
     paused: bool = False
     cancelled: bool = False
     failed: dict = field(default_factory=dict)
+    extra: dict = field(default_factory=dict)  # "frame/tile" → more ranges for that tile only
 
     def to_json(self) -> str:
         return json.dumps(asdict(self), indent=1, sort_keys=True)
@@ -55,6 +57,7 @@ class JobRecord:
     def from_json(cls, text: str) -> "JobRecord":
         d = json.loads(text)
         d["ranges"] = [tuple(r) for r in d["ranges"]]
+        d["extra"] = {k: [tuple(r) for r in v] for k, v in d.get("extra", {}).items()}
         return cls(**d)
 
 

@@ -27,6 +27,7 @@ Redis keys (prefix `lampyr:`):
 | `results:processing` | list | head | notices being merged (kept until the merge is on disk) |
 | `host:<name>` | string, TTL | worker | JSON heartbeat: host, cores, engine version, pid |
 | `slot:<name>:<pid>` | string, TTL | worker | JSON: the batch a worker process renders and its speed |
+| `warm:<name>` | set | worker | pids of a worker's pool processes whose kernels are loaded |
 """
 
 from __future__ import annotations

@@ -163,7 +163,8 @@ class Farm:
 
         r = redis.Redis.from_url(self.url)
         deadline = time.monotonic() + timeout
-        while not r.exists(f"lampyr:host:{name}"):
+        # up, and its pool process has loaded the render kernels
+        while not (r.exists(f"lampyr:host:{name}") and r.scard(f"lampyr:warm:{name}") >= 1):
             if self.workers[name].poll() is not None or time.monotonic() > deadline:
                 log = (self.tmp / f"worker-{name}.log").read_text(errors="replace")
                 raise RuntimeError(f"worker {name} did not start:\n{log[-3000:]}")
@@ -213,15 +214,23 @@ class Farm:
                 pass
 
 
+@pytest.fixture(scope="session")
+def compiled_kernels():
+    """Compile (or load) the render kernels once, here, so worker processes find them cached."""
+    from lampyr.engine.render import warm_up
+
+    return warm_up()
+
+
 @pytest.fixture
-def farm(tmp_path, redis_url):
+def farm(tmp_path, redis_url, compiled_kernels):
     f = Farm(tmp_path, redis_url)
     yield f
     f.stop()
 
 
 @pytest.fixture
-def embedded_farm(tmp_path):
+def embedded_farm(tmp_path, compiled_kernels):
     """A farm whose head starts its own embedded Redis."""
     f = Farm(tmp_path, None)
     yield f

@@ -42,6 +42,9 @@ def make_app(url: str, name: str, settings: dict | None = None):
 
     app = Celery("lampyr-worker", set_as_current=False)
     app.conf.update(P.celery_settings(url))
+    # a pool process loads (or, the first time, compiles) the kernels before it reports up:
+    # Celery's default of 4 s would kill it in the middle of that
+    app.conf.worker_proc_alive_timeout = 900
     if settings:
         app.conf.update(settings)
 
@@ -57,10 +60,17 @@ def make_app(url: str, name: str, settings: dict | None = None):
     return app
 
 
-def _warm(**_):
-    from ..engine.render import warm_up
+def _warm_and_report(url: str, name: str):
+    def warm(**_):
+        from ..engine.render import warm_up
+        from ..scheduler.store import connect
 
-    warm_up()
+        warm_up()
+        r = connect(url, check=False)
+        r.sadd(P.key("warm", name), os.getpid())
+        r.expire(P.key("warm", name), 24 * 3600)
+
+    return warm
 
 
 def heartbeat(url: str, info: dict, stop: threading.Event) -> None:
@@ -89,10 +99,11 @@ def run_worker(url: str, cores: int, pool: str | None = None, name: str | None =
     check_protocol(r)
     name = name or f"{socket.gethostname()}-{os.getpid()}"
     app = make_app(url, name)
+    warm = _warm_and_report(url, name)
     if pool == "prefork":
-        worker_process_init.connect(_warm, weak=False)
+        worker_process_init.connect(warm, weak=False)
     else:
-        _warm()
+        warm()
     stop = threading.Event()
     beat = threading.Thread(target=heartbeat, args=(url, host_info(name, cores, pool), stop),
                             daemon=True)

@@ -207,3 +207,35 @@ def test_a_worker_of_another_protocol_version_is_refused(farm):
     res = farm.cli("worker", farm.url, "--cores", 1, check=False)
     assert res.returncode != 0
     assert "protocol 999" in res.stderr and "same lampyr version" in res.stderr
+
+
+def tile_noise(out, frame):
+    """Mean relative standard error of each 8 × 8 tile of a frame file, as the head judges it."""
+    from lampyr.engine.exr import read_frame
+
+    film, _ = read_frame(out / f"tiny.{frame:04d}.exr")
+    noise = film.rel_noise()
+    return {(x0 // 8 + 2 * (y0 // 8)): float(noise[y0:y0 + 8, x0:x0 + 8].mean())
+            for y0 in (0, 8) for x0 in (0, 8)}
+
+
+def test_refine_with_a_noise_goal_adds_only_to_noisy_tiles(farm, tiny_shot, tmp_path):
+    from lampyr.engine.exr import read_frame
+
+    farm.start_head()
+    farm.start_worker("a")
+    job = farm.submit(tiny_shot, "--out", tmp_path / "out", "--frames", 1, *LAYOUT)
+    farm.wait(job)
+    noise = tile_noise(tmp_path / "out", 1)
+    ordered = sorted(noise.values())
+    assert ordered[0] < ordered[-1]
+    goal = (ordered[0] + ordered[-1]) / 2
+    farm.cli("refine", job, "--samples", 16, "--noise", goal, "--head", farm.url)
+    wait_for(lambda: farm.status(job)["pixel_samples_total"] > 16 * 12 * 8, what="the refine")
+    farm.wait(job)
+    film, _ = read_frame(tmp_path / "out" / "tiny.0001.exr")
+    spp = film.n + film.dropped
+    for tile, value in noise.items():
+        y0, x0 = 8 * (tile // 2), 8 * (tile % 2)
+        expected = 16 if value > goal else 8
+        assert (spp[y0:y0 + 8, x0:x0 + 8] == expected).all(), (tile, value, goal)
