@@ -54,6 +54,9 @@ def connect(url: str, check: bool = True):
         try:
             r.ping()
         except redis.exceptions.AuthenticationError:
+            if "@" not in url:
+                raise FarmError(f"the farm at {url} requires a password "
+                                "(use the address the head prints)") from None
             raise FarmError(f"the farm at {redact(url)} refused the password") from None
         except redis.exceptions.ResponseError as err:
             if "NOAUTH" in str(err):

@@ -239,3 +239,49 @@ def test_refine_with_a_noise_goal_adds_only_to_noisy_tiles(farm, tiny_shot, tmp_
         y0, x0 = 8 * (tile // 2), 8 * (tile % 2)
         expected = 16 if value > goal else 8
         assert (spp[y0:y0 + 8, x0:x0 + 8] == expected).all(), (tile, value, goal)
+
+
+def test_pause_holds_a_job_and_resume_finishes_it(farm, tiny_shot):
+    farm.start_head()
+    job = farm.submit(tiny_shot, *LAYOUT)
+    farm.cli("pause", job, "--head", farm.url)
+    wait_for(lambda: farm.status(job)["state"] == "paused", what="paused")
+    farm.start_worker("a")
+    time.sleep(1.0)
+    # at most the batches queued before the pause ran (the head queues cores + 2 ahead)
+    assert farm.status(job)["state"] == "paused"
+    farm.cli("resume", job, "--head", farm.url)
+    assert farm.wait(job)["state"] == "done"
+
+
+def test_cancel_drops_the_remaining_work(farm, tiny_shot):
+    farm.start_head()
+    job = farm.submit(tiny_shot, *LAYOUT)
+    farm.cli("cancel", job, "--head", farm.url)
+    st = farm.wait(job)
+    assert st["state"] == "cancelled" and st["frames_done"] == 0
+
+
+def test_status_lists_workers_with_host_cores_and_version(farm):
+    import lampyr
+
+    farm.start_head()
+    farm.start_worker("a")
+    res = farm.cli("status", "--json", "--head", farm.url)
+    (w,) = json.loads(res.stdout)["workers"]
+    assert (w["name"], w["cores"], w["engine_version"]) == ("a", 1, lampyr.__version__)
+    assert w["host"]
+
+
+def test_a_client_without_the_password_is_refused(embedded_farm, tmp_path):
+    farm = embedded_farm
+    farm.state.mkdir(parents=True)
+    farm.head_proc = farm._spawn(["head", "--state", farm.state, "--listen", "0.0.0.0"], "head.log")
+    url = wait_for(lambda: "Workers join with:" in (tmp_path / "head.log").read_text()
+                   and (tmp_path / "head.log").read_text().split("lampyr worker ", 1)[1].split()[0],
+                   what="the head")
+    assert "@" in url  # the printed address carries the password
+    bare = "redis://" + url.split("@", 1)[1]
+    res = farm.cli("status", "--head", bare, check=False)
+    assert res.returncode != 0 and "requires a password" in res.stderr
+    assert farm.cli("status", "--head", url).returncode == 0
