@@ -273,17 +273,32 @@ def retry(job, frames, head_addr, state):
 
 
 @cli.command()
-@click.argument("job")
+@click.argument("target")
 @click.option("--samples", type=click.IntRange(1, 1_048_576), required=True,
               help="Samples per pixel to reach.")
 @click.option("--noise", type=click.FloatRange(0, None, min_open=True), default=None,
               help="Only tiles whose relative standard error (luminance, mean over the tile) is above this.")
+@click.option("--shot", "shot_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
+              help="With a frame file as TARGET: the shot it was rendered from.")
+@click.option("--tile", "tile_size", type=click.IntRange(1, 4096), default=32, show_default=True,
+              help="With a frame file as TARGET: tile edge to refine by (the render's tiles or a multiple).")
 @click.option("--head", "head_addr", default=None, help=_HEAD_HELP)
 @click.option("--state", type=click.Path(file_okay=False, path_type=Path), default=None, help=_STATE_HELP)
-def refine(job, samples, noise, head_addr, state):
-    """Add samples to JOB's frames up to --samples, keeping what is rendered."""
-    _job_command("refine", job, head_addr, state, samples=samples, noise=noise)
-    click.echo(f"refining {job} to {samples} samples per pixel")
+def refine(target, samples, noise, shot_path, tile_size, head_addr, state):
+    """Add samples up to --samples, keeping what is rendered.
+
+    TARGET is a job on the farm, or a frame file (.exr) refined here from --shot alone.
+    """
+    if target.lower().endswith(".exr"):
+        from .scheduler.refine_file import refine_frame_file
+
+        if shot_path is None:
+            raise UsageError("refine FRAME.exr needs --shot SHOT (the shot the frame was rendered from)")
+        res = refine_frame_file(Path(target), shot_path, samples, noise, tile_size)
+        click.echo(f"refined {res['tiles']} of {res['of']} tile(s) of {target} to {samples} samples per pixel")
+        return
+    _job_command("refine", target, head_addr, state, samples=samples, noise=noise)
+    click.echo(f"refining {target} to {samples} samples per pixel")
 
 
 def _simple_job_command(op, doc):

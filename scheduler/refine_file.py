@@ -1,0 +1,79 @@
+"""More samples for a frame file alone (plus its shot file), with no job and no farm.
+
+A frame EXR holds per pixel the mean, the sample count and the variance (DESIGN invariant 3), so
+samples [held, target) can be rendered here and merged in without re-rendering what is there.
+The sample range already held must be [0, held) for every pixel of a tile — true of every frame
+lampyr writes, whose tiles each hold whole batches from sample 0.
+"""
+
+from __future__ import annotations
+
+import re
+import time
+from pathlib import Path
+
+import numpy as np
+
+from ..errors import FrameFileError
+
+
+def frame_number(path: Path, attrs: dict) -> int:
+    if "frame" in attrs:
+        return int(attrs["frame"])
+    m = re.search(r"\.(\d+)\.exr$", path.name)
+    if not m:
+        raise FrameFileError(f"{path}: no frame number in its attributes or name")
+    return int(m.group(1))
+
+
+def refine_frame_file(path: Path, shot_path: Path, samples: int, noise: float | None = None,
+                      tile_size: int = 32, progress=None) -> dict:
+    """Add samples to the frame file `path` up to `samples` per pixel, tile by tile; with a
+    `noise` goal only to tiles whose mean relative standard error is above it. Rewrites the
+    file (atomically) and returns {"tiles": refined, "of": total}."""
+    from ..engine.exr import read_frame, write_frame
+    from ..engine.film import Film, merge
+    from ..engine.render import FrameRenderer, tiles_for
+    from ..engine.shot import load_shot
+
+    path = Path(path)
+    film, attrs = read_frame(path)
+    shot = load_shot(shot_path)
+    h, w = film.n.shape
+    if (shot.width, shot.height) != (w, h):
+        shot = shot.with_overrides(width=w, height=h)
+    frame = frame_number(path, attrs)
+    held_all = film.n + film.dropped
+    renderer = FrameRenderer(shot, frame)
+    extra = Film.zeros(h, w)
+    refined = 0
+    tiles = tiles_for(w, h, tile_size)
+    start = time.perf_counter()
+    for t in tiles:
+        held = held_all[t.y0:t.y0 + t.h, t.x0:t.x0 + t.w]
+        lo, hi = int(held.min()), int(held.max())
+        if lo != hi:
+            raise FrameFileError(f"{path}: pixels of tile at ({t.x0}, {t.y0}) hold {lo} to {hi} "
+                                 f"samples; refine with --tile matching the tiles it was rendered in")
+        if lo >= samples:
+            continue
+        if noise is not None:
+            part = film.rel_noise()[t.y0:t.y0 + t.h, t.x0:t.x0 + t.w]
+            if float(np.mean(part)) <= noise:
+                continue
+        extra.add_into(renderer.render(t, lo, samples - lo), t.y0, t.x0)
+        refined += 1
+        if progress:
+            progress(refined, len(tiles))
+    if refined:
+        attrs = dict(attrs)
+        attrs.pop("format", None)
+        attrs["samples"] = str(max(samples, int(attrs.get("samples", 0) or 0)))
+        old = float(attrs.get("render_seconds", 0) or 0)
+        attrs["render_seconds"] = f"{old + time.perf_counter() - start:.3f}"
+        merged = merge(film, extra)
+        write_frame(path, merged, attrs)
+        from ..engine.preview import write_preview
+
+        write_preview(path.with_suffix(".png"), merged)
+    return {"tiles": refined, "of": len(tiles)}
