@@ -75,7 +75,7 @@ def render(shot, out, workers, samples, frames, width, height, tile_size, quiet)
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn, TimeRemainingColumn
 
     from .engine.shot import load_shot
-    from .local import render_local
+    from .scheduler.local_farm import render_on_farm
 
     console = Console(stderr=True, quiet=quiet)
     overrides = _overrides(samples, _parse_frames(frames), width, height)
@@ -108,7 +108,8 @@ def render(shot, out, workers, samples, frames, width, height, tile_size, quiet)
             bar.update(task, description=f"frames {frames_done[0]}/{n_frames}")
 
         try:
-            written = render_local(shot, spec, out, workers, tile_size, overrides, on_progress, on_frame)
+            written = render_on_farm(shot, spec, out, workers, tile_size, overrides, on_progress,
+                                       on_frame)
         except KeyboardInterrupt:
             bar.stop()
             console.print(f"Stopped. {frames_done[0]} finished frame(s) are kept in {out}.")
