@@ -15,7 +15,9 @@ throughput by the survival probability. A sample whose radiance is NaN or infini
 it is counted in `dropped` instead.
 
 Sample dimensions: 0-1 pixel position, 2-3 lens, 4 shutter time, then 8 per bounce b starting at
-8 + 8b: BSDF lobe and direction (3), roulette (1), light choice and position (3), spare (1).
+8 + 8b: BSDF direction (2), BSDF lobe (1), roulette (1), light position (2), light choice (1),
+spare (1). The 2D draws sit on dimension pairs (4g, 4g+1) of the padded sampler, whose
+unscrambled Sobol pair is a (0, 2)-net; pair (4g+2, 4g+3) is not.
 """
 
 from __future__ import annotations
@@ -123,9 +125,9 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
 
         # next-event estimation
         if has_nonspecular_lobe(mat):
-            u_sel = sample_dim(seed, frame, pixel, index, base + 4, mode)
-            u1 = sample_dim(seed, frame, pixel, index, base + 5, mode)
-            u2 = sample_dim(seed, frame, pixel, index, base + 6, mode)
+            u1 = sample_dim(seed, frame, pixel, index, base + 4, mode)
+            u2 = sample_dim(seed, frame, pixel, index, base + 5, mode)
+            u_sel = sample_dim(seed, frame, pixel, index, base + 6, mode)
             wx, wy, wz, dist, er, eg, eb, pl = sample_light(S, px, py, pz, time_u, u_sel, u1, u2)
             if pl > 0.0 and (er > 0.0 or eg > 0.0 or eb > 0.0):
                 wix = wx * tx + wy * ty + wz * tz
@@ -137,8 +139,20 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
                     sox = px + nx * side
                     soy = py + ny * side
                     soz = pz + nz * side
-                    tmax = dist * (1.0 - 1e-5) - eps if dist < math.inf else math.inf
-                    if not occluded_scene(S, sox, soy, soz, wx, wy, wz, tmax, time_u, stack_top, stack):
+                    # aim the shadow ray from the lifted origin at the light point itself and
+                    # stop just short of it: reusing the direction from p would move the end
+                    # point, which at a sphere's silhouette moves the hit a long way
+                    sdx, sdy, sdz, tmax = wx, wy, wz, math.inf
+                    if dist < math.inf:
+                        sdx = px + wx * dist - sox
+                        sdy = py + wy * dist - soy
+                        sdz = pz + wz * dist - soz
+                        span = math.sqrt(sdx * sdx + sdy * sdy + sdz * sdz)
+                        sdx /= span
+                        sdy /= span
+                        sdz /= span
+                        tmax = span * (1.0 - 1e-4)
+                    if not occluded_scene(S, sox, soy, soz, sdx, sdy, sdz, tmax, time_u, stack_top, stack):
                         # the BSDF could have sampled this direction too: weigh against it
                         w = pl * pl / (pl * pl + pb * pb)
                         c = abs(wiz) * w / pl
@@ -147,9 +161,9 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
                         lb += bb * fb * eb * c
 
         # continue the path by sampling the BSDF
-        u0 = sample_dim(seed, frame, pixel, index, base + 0, mode)
-        u1 = sample_dim(seed, frame, pixel, index, base + 1, mode)
-        u2 = sample_dim(seed, frame, pixel, index, base + 2, mode)
+        u1 = sample_dim(seed, frame, pixel, index, base + 0, mode)
+        u2 = sample_dim(seed, frame, pixel, index, base + 1, mode)
+        u0 = sample_dim(seed, frame, pixel, index, base + 2, mode)
         wix, wiy, wiz, wr, wg, wb, pdf, is_delta = bsdf_sample(mat, wox, woy, woz, u0, u1, u2)
         if not (wr > 0.0 or wg > 0.0 or wb > 0.0):
             break

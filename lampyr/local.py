@@ -129,8 +129,9 @@ def render_local(shot_path: Path, shot, out: Path, workers: int, tile_size: int,
                     if on_frame:
                         on_frame(path)
     except BaseException:
+        processes = list((getattr(pool, "_processes", None) or {}).values())
         pool.shutdown(wait=False, cancel_futures=True)
-        for proc in list(getattr(pool, "_processes", {}).values()):
+        for proc in processes:
             proc.terminate()
         raise
     pool.shutdown(wait=True)

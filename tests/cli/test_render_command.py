@@ -35,8 +35,9 @@ def test_demo_command_renders_frames_and_previews(tmp_path):
             ch = f.channels()
             rgb = np.stack([np.array(ch[c].pixels) for c in "RGB"], -1)
             spp = np.array(ch["spp"].pixels)
+            dropped = np.array(ch["dropped"].pixels)
         assert rgb.shape == (18, 32, 3)
-        assert np.all(spp + np.array(ch["dropped"].pixels) == 2)
+        assert np.all(spp + dropped == 2)
         assert np.isfinite(rgb).all() and rgb.max() > 0
         with Image.open(out / f"courtyard.{frame:04d}.png") as im:
             assert im.size == (32, 18)
