@@ -1,6 +1,6 @@
 """Farm benchmarks: parallel efficiency, overhead per batch, head capacity. Prints tables.
 
-    python bench/farm.py [--width 96 --height 54 --samples 16 --frames 1-2]
+    python bench/farm.py [--width 192 --height 108 --samples 96 --frames 1 --tile 48 --batch 48]
 
 1. End to end on the demo shot (made small): one worker process vs two (prefork, one numba
    thread each) vs one solo worker with two numba threads — wall time, efficiency
@@ -100,6 +100,24 @@ def end_to_end(args, pool: str, cores: int, tmp: Path) -> dict:
                 os.killpg(p.pid, signal.SIGKILL)
 
 
+def synthetic_worker(url: str, blob: bytes, stop) -> None:
+    """Answer every queued batch at once with the same precomputed film (no rendering)."""
+    from lampyr.scheduler import protocol as P
+
+    w = redis.Redis.from_url(url)
+    while not stop.is_set():
+        item = w.brpop(P.QUEUE, timeout=0.2)
+        if item is None:
+            continue
+        body = json.loads(base64.b64decode(json.loads(item[1])["body"]))
+        task = json.loads(body[0][0])
+        bid, ticket = P.Batch(**task["batch"]).id, task["ticket"]
+        pipe = w.pipeline()
+        pipe.set(P.k_result(bid, ticket), blob)
+        pipe.rpush(P.K_RESULTS, P.result_notice(bid, ticket, "synthetic", 0.0))
+        pipe.execute()
+
+
 def head_capacity(n_tiles_side: int, synthetic: int, tmp: Path) -> dict:
     """Drive a real Head (in this process) with synthetic workers answering from the queue."""
     import numpy as np
@@ -133,33 +151,21 @@ def head_capacity(n_tiles_side: int, synthetic: int, tmp: Path) -> dict:
     head.dispatch()
     queued = r.llen(P.QUEUE)
     mem_per = (r.info("memory")["used_memory"] - mem0) / max(queued, 1)
-    stop = threading.Event()
+    import multiprocessing as mp
 
-    def synthetic_worker():
-        w = redis.Redis.from_url(server.url)
-        while not stop.is_set():
-            item = w.brpop(P.QUEUE, timeout=0.2)
-            if item is None:
-                continue
-            msg = json.loads(item[1])
-            body = json.loads(base64.b64decode(msg["body"]))
-            task = json.loads(body[0][0])
-            bid, ticket = P.Batch(**task["batch"]).id, task["ticket"]
-            pipe = w.pipeline()
-            pipe.set(P.k_result(bid, ticket), blob)
-            pipe.rpush(P.K_RESULTS, P.result_notice(bid, ticket, "synthetic", 0.0))
-            pipe.execute()
-
-    threads = [threading.Thread(target=synthetic_worker, daemon=True) for _ in range(4)]
-    for t in threads:
-        t.start()
+    ctx = mp.get_context("spawn")
+    stop = ctx.Event()
+    procs = [ctx.Process(target=synthetic_worker, args=(server.url, blob, stop), daemon=True)
+             for _ in range(2)]
+    for p in procs:
+        p.start()
     start = time.perf_counter()
     while head.job_state(run) != "done":
         head.step()
     seconds = time.perf_counter() - start
     stop.set()
-    for t in threads:
-        t.join()
+    for p in procs:
+        p.join()
     server.stop()
     return {"batches": total, "seconds": seconds, "rate": total / seconds,
             "mem_per_batch": mem_per, "queued": queued}
@@ -167,12 +173,12 @@ def head_capacity(n_tiles_side: int, synthetic: int, tmp: Path) -> dict:
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--width", type=int, default=96)
-    ap.add_argument("--height", type=int, default=54)
-    ap.add_argument("--samples", type=int, default=16)
-    ap.add_argument("--frames", default="1-2")
-    ap.add_argument("--tile", type=int, default=24)
-    ap.add_argument("--batch", type=int, default=8)
+    ap.add_argument("--width", type=int, default=192)
+    ap.add_argument("--height", type=int, default=108)
+    ap.add_argument("--samples", type=int, default=96)
+    ap.add_argument("--frames", default="1")
+    ap.add_argument("--tile", type=int, default=48)
+    ap.add_argument("--batch", type=int, default=48)
     ap.add_argument("--capacity-tiles", type=int, default=16, help="tiles per image side")
     args = ap.parse_args()
     rows = []

@@ -33,8 +33,22 @@ def samples_held(ranges) -> int:
     return sum(c for _, c in ranges)
 
 
-def write_atomic(path: Path, data: bytes) -> None:
-    """Replace `path` with `data` so readers see the old or the new bytes, never a mix."""
+def fsync_folder(folder: Path) -> None:
+    """Make the renames inside `folder` durable."""
+    try:
+        dfd = os.open(folder, os.O_RDONLY)
+        try:
+            os.fsync(dfd)
+        finally:
+            os.close(dfd)
+    except OSError:
+        pass
+
+
+def write_atomic(path: Path, data: bytes, sync_folder: bool = True) -> None:
+    """Replace `path` with `data` so readers see the old or the new bytes, never a mix.
+
+    sync_folder=False leaves the folder's fsync to the caller (one for many files)."""
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_name(path.name + ".tmp")
     fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o644)
@@ -47,14 +61,8 @@ def write_atomic(path: Path, data: bytes) -> None:
         tmp.unlink(missing_ok=True)
         raise
     os.replace(tmp, path)
-    try:  # make the rename itself durable
-        dfd = os.open(path.parent, os.O_RDONLY)
-        try:
-            os.fsync(dfd)
-        finally:
-            os.close(dfd)
-    except OSError:
-        pass
+    if sync_folder:
+        fsync_folder(path.parent)
 
 
 class TileAccumulator:
@@ -110,5 +118,5 @@ class TileAccumulator:
         self.ranges = sorted(self.ranges + [(int(first), int(count))])
         return True
 
-    def save(self) -> None:
-        write_atomic(self.path, self.to_bytes())
+    def save(self, sync_folder: bool = True) -> None:
+        write_atomic(self.path, self.to_bytes(), sync_folder)

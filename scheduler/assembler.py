@@ -64,14 +64,14 @@ class JobRun:
     def is_done(self, b) -> bool:
         return overlaps(self.held[(b.frame, b.tile)], b.first, b.count)
 
-    def merge(self, b, film, seconds: float) -> bool:
+    def merge(self, b, film, seconds: float, sync_folder: bool = True) -> bool:
         """Fold a batch's film into its tile accumulator on disk; False when already held."""
         t = self.tiles[b.tile]
         acc = TileAccumulator.load(self.folder.tile(b.frame, b.tile), t.w, t.h)
         if not acc.add(film, b.first, b.count):
             self.held[(b.frame, b.tile)] = acc.ranges
             return False
-        acc.save()
+        acc.save(sync_folder)
         self.held[(b.frame, b.tile)] = acc.ranges
         self.seconds[b.frame] = self.seconds.get(b.frame, 0.0) + seconds
         self.samples_merged += t.w * t.h * b.count

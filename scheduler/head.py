@@ -279,38 +279,57 @@ class Head:
 
     # -- results ----------------------------------------------------------------------------
 
-    def take_results(self, limit: int = 500) -> int:
+    def take_results(self, limit: int = 256) -> int:
+        """Merge up to `limit` notices as one group commit: every tile file is written and
+        fsynced, their folders fsynced once, frames rewritten, and only then are the notices
+        removed from `results:processing` (a crash before that replays them; replays drop)."""
         from ..engine.film import from_bytes
+        from .accumulator import fsync_folder
 
         r = self.r
-        n = 0
-        while n < limit:
-            raw = r.lmove(P.K_RESULTS, P.K_PROCESSING, "LEFT", "RIGHT")
-            if raw is None:
-                break
-            n += 1
-            note = json.loads(raw)
+        pipe = r.pipeline(transaction=False)
+        for _ in range(limit):
+            pipe.lmove(P.K_RESULTS, P.K_PROCESSING, "LEFT", "RIGHT")
+        raws = [raw for raw in pipe.execute() if raw is not None]
+        if not raws:
+            return 0
+        notes = [json.loads(raw) for raw in raws]
+        pipe = r.pipeline(transaction=False)
+        for note in notes:
+            pipe.get(P.k_result(note["batch"], int(note["ticket"])))
+        blobs = pipe.execute()
+        folders, frames, finished = set(), set(), []
+        for note, data in zip(notes, blobs):
             bid, ticket = note["batch"], int(note["ticket"])
-            job, frame, tile, first, count = P.parse_batch_id(bid)
+            job, frame = P.parse_batch_id(bid)[:2]
             run = self.jobs.get(job)
-            if run is not None and not run.rec.cancelled:
-                if note["kind"] == "result":
-                    data = r.get(P.k_result(bid, ticket))
-                    entry = self.leases.get(bid)
-                    b = entry.batch if entry else _batch_of(run, bid)
-                    if data is not None and b is not None:
-                        if run.merge(b, from_bytes(data), note.get("seconds", 0.0)):
-                            run.write_frame_if_grown(frame)
-                        self._finish(bid)
-                    elif data is None and entry is not None and entry.ticket == ticket:
-                        self._requeue(entry.batch)  # the result expired or was lost
-                else:
-                    self._on_error(run, bid, ticket, note["error"])
-            pipe = r.pipeline(transaction=False)
+            if run is None or run.rec.cancelled:
+                continue
+            entry = self.leases.get(bid)
+            if note["kind"] != "result":
+                self._on_error(run, bid, ticket, note["error"])
+                continue
+            b = entry.batch if entry else _batch_of(run, bid)
+            if data is not None and b is not None:
+                if run.merge(b, from_bytes(data), note.get("seconds", 0.0), sync_folder=False):
+                    folders.add(run.folder.tile(b.frame, b.tile).parent)
+                    frames.add((job, frame))
+                self.leases.pop(bid)
+                finished.append(bid)
+            elif data is None and entry is not None and entry.ticket == ticket:
+                self._requeue(entry.batch)  # the result expired or was lost
+        for folder in folders:
+            fsync_folder(folder)
+        for job, frame in sorted(frames):
+            self.jobs[job].write_frame_if_grown(frame)
+        pipe = r.pipeline(transaction=False)
+        if finished:
+            pipe.hdel(P.K_INFLIGHT, *finished)
+        for raw, note in zip(raws, notes):
             pipe.lrem(P.K_PROCESSING, 1, raw)
-            pipe.delete(P.k_result(bid, ticket))
-            pipe.execute()
-        return n
+            pipe.delete(P.k_result(note["batch"], int(note["ticket"])))
+        pipe.execute()
+        return len(raws)
 
     def _finish(self, bid: str) -> None:
         self.leases.pop(bid)

@@ -14,7 +14,7 @@ import time
 import pytest
 import redis
 
-from farmtools import assert_same_image, frame_mean, reference_mean
+from .farmtools import assert_same_image, frame_mean, reference_mean
 
 LAYOUT = ("--tile", 8, "--batch", 3)  # 16 × 12 px → 4 tiles; 8 spp → ranges 1, 3, 3, 1
 

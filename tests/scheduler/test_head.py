@@ -1,0 +1,70 @@
+"""The head's own decisions, driven in this process against a real Redis (no workers)."""
+
+from __future__ import annotations
+
+import base64
+import json
+
+import pytest
+import redis
+
+from lampyr.scheduler import protocol as P
+from lampyr.scheduler.head import Head, submit_request
+
+
+def queued_batches(r) -> list[P.Batch]:
+    """The batches of the Celery messages waiting in the queue, oldest first."""
+    out = []
+    for raw in reversed(r.lrange(P.QUEUE, 0, -1)):  # kombu pushes on the left
+        body = json.loads(base64.b64decode(json.loads(raw)["body"]))
+        out.append(P.RenderTask.from_json(body[0][0]).batch)
+    return out
+
+
+@pytest.fixture
+def head(redis_url, tmp_path):
+    h = Head(tmp_path / "state", redis_url, lease_seconds=5)
+    h.start()
+    return h
+
+
+def submit(head, shot, priority=0, **overrides):
+    job = submit_request(head.r, shot, overrides, None, priority, tile_size=8, batch_samples=3)
+    head.take_commands()
+    return job
+
+
+def test_a_higher_priority_job_is_queued_first(head, tiny_shot):
+    low = submit(head, tiny_shot, priority=0)
+    high = submit(head, tiny_shot, priority=5)
+    head.dispatch()  # no workers: two messages ahead
+    assert [b.job for b in queued_batches(head.r)] == [high, high]
+    assert low != high
+
+
+def test_every_frame_gets_its_first_pass_before_more_samples(head, tiny_shot):
+    head.r.set(P.k_host("big"), json.dumps({"name": "big", "cores": 64}))
+    submit(head, tiny_shot)
+    head.dispatch()
+    order = [(b.first, b.count, b.frame) for b in queued_batches(head.r)]
+    first_pass = [o for o in order if o[:2] == (0, 1)]
+    assert len(first_pass) == 2 * 4  # 2 frames × 4 tiles
+    assert order[:len(first_pass)] == first_pass
+
+
+def test_a_restarted_head_queues_only_what_its_disk_lacks(head, tiny_shot, redis_url, tmp_path):
+    from lampyr.engine.render import FrameRenderer, Tile
+    from lampyr.engine.shot import load_shot
+    from lampyr.scheduler.accumulator import TileAccumulator
+    from lampyr.scheduler.jobs import JobFolder
+
+    job = submit(head, tiny_shot)
+    total = len(head.jobs[job].pending)
+    # tile 0 of frame 1 holds its first pass on disk, as if merged before a crash
+    acc = TileAccumulator(JobFolder(tmp_path / "state", job).tile(1, 0), 8, 8)
+    acc.add(FrameRenderer(load_shot(tiny_shot), 1).render(Tile(0, 0, 8, 8), 0, 1), 0, 1)
+    acc.save()
+    again = Head(tmp_path / "state", redis_url, lease_seconds=5)
+    again.start()
+    pending = {b.id for b in again.jobs[job].pending}
+    assert len(pending) == total - 1 and f"{job}/1/0/0/1" not in pending
