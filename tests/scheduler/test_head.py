@@ -68,3 +68,14 @@ def test_a_restarted_head_queues_only_what_its_disk_lacks(head, tiny_shot, redis
     again.start()
     pending = {b.id for b in again.jobs[job].pending}
     assert len(pending) == total - 1 and f"{job}/1/0/0/1" not in pending
+
+
+def test_without_a_layout_the_head_measures_one(head, tiny_shot):
+    from lampyr.scheduler.planner import TILE_SIZES
+
+    job = submit_request(head.r, tiny_shot, {}, None)
+    head.take_commands()
+    rec = head.jobs[job].rec
+    assert rec.tile_size in TILE_SIZES and 1 <= rec.batch_samples <= 8
+    # a 16 × 12 shot renders in well under 10 s per tile: the whole range goes in few batches
+    assert rec.ranges[-1][0] + rec.ranges[-1][1] == 8
