@@ -238,7 +238,8 @@ def status(job, as_json, head_addr, state):
     for st in farm["jobs"]:
         _print_job(st)
     for w in farm["workers"]:
-        busy = ", ".join(s["batch"] for s in w.get("slots", [])) or "idle"
+        busy = ", ".join(f"{s['batch']} ({s['pixel_samples_per_second'] / 1e3:,.0f} k samples/s)"
+                         for s in w.get("slots", [])) or "idle"
         click.echo(f"worker {w['name']}: {w.get('cores', '?')} core(s), "
                    f"lampyr {w.get('engine_version', '?')}: {busy}")
 

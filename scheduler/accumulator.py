@@ -45,13 +45,13 @@ def fsync_folder(folder: Path) -> None:
         pass
 
 
-def write_atomic(path: Path, data: bytes, sync_folder: bool = True) -> None:
+def write_atomic(path: Path, data: bytes, sync_folder: bool = True, mode: int = 0o644) -> None:
     """Replace `path` with `data` so readers see the old or the new bytes, never a mix.
 
     sync_folder=False leaves the folder's fsync to the caller (one for many files)."""
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_name(path.name + ".tmp")
-    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o644)
+    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, mode)
     try:
         with os.fdopen(fd, "wb") as f:
             f.write(data)

@@ -71,7 +71,9 @@ class Head:
     # -- start-up ---------------------------------------------------------------------------
 
     def start(self) -> None:
-        write_atomic(self.state / "head.json", json.dumps({"address": self.url}).encode())
+        # the address may carry the farm's password: readable by the head's user only
+        write_atomic(self.state / "head.json", json.dumps({"address": self.url}).encode(),
+                     mode=0o600)
         for job in list_jobs(self.state):
             try:
                 self.jobs[job] = JobRun(self.state, JobFolder(self.state, job).load(),

@@ -281,6 +281,7 @@ def test_a_client_without_the_password_is_refused(embedded_farm, tmp_path):
                    and (tmp_path / "head.log").read_text().split("lampyr worker ", 1)[1].split()[0],
                    what="the head")
     assert "@" in url  # the printed address carries the password
+    assert (farm.state / "head.json").stat().st_mode & 0o077 == 0  # and so does head.json
     bare = "redis://" + url.split("@", 1)[1]
     res = farm.cli("status", "--head", bare, check=False)
     assert res.returncode != 0 and "requires a password" in res.stderr
