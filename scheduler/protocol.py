@@ -157,9 +157,11 @@ class ProtocolSkew(LampyrError):
             "install the same lampyr version on the head and every worker")
 
 
-def result_notice(batch: str, ticket: int, worker: str, seconds: float) -> str:
+def result_notice(batch: str, ticket: int, worker: str, seconds: float,
+                  prepare: float = 0.0) -> str:
+    """seconds: rendering; prepare: fetching, unpacking and compiling the scene first."""
     return json.dumps({"kind": "result", "batch": batch, "ticket": ticket, "worker": worker,
-                       "seconds": round(seconds, 4)})
+                       "seconds": round(seconds, 4), "prepare": round(prepare, 4)})
 
 
 def error_notice(batch: str, ticket: int, worker: str, error: str) -> str:

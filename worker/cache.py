@@ -66,8 +66,11 @@ class BundleCache:
 
         key, spec = self.shot(sha, member, overrides)
         if (key, frame) != self._renderer_key:
-            if key not in self._geometry:
-                self._geometry = {key: compile_geometry(spec)}  # one scene at a time in memory
-            self._renderer = FrameRenderer(spec, frame, self._geometry[key])
+            # geometry depends on the scene's files and objects, not on image size, samples or
+            # frame range: jobs of one bundle with other overrides share it
+            gkey = (sha, member)
+            if gkey not in self._geometry:
+                self._geometry = {gkey: compile_geometry(spec)}  # one scene at a time in memory
+            self._renderer = FrameRenderer(spec, frame, self._geometry[gkey])
             self._renderer_key = (key, frame)
         return self._renderer

@@ -37,6 +37,7 @@ class Context:
         self.pid = os.getpid()
         self.holder = f"{name}:{self.pid}:{os.urandom(4).hex()}"
         self.cache = BundleCache(self.r)
+        self.prepare_seconds = 0.0  # fetching, unpacking and compiling the scene, last batch
         self._config = (0.0, {})
 
     def config(self) -> dict:
@@ -95,7 +96,8 @@ def run_batch(ctx: Context, payload: str) -> dict:
 
         pipe = r.pipeline(transaction=True)
         pipe.set(P.k_result(b.id, task.ticket), to_bytes(film), ex=P.RESULT_TTL)
-        pipe.rpush(P.K_RESULTS, P.result_notice(b.id, task.ticket, ctx.name, seconds))
+        pipe.rpush(P.K_RESULTS, P.result_notice(b.id, task.ticket, ctx.name, seconds,
+                                                ctx.prepare_seconds))
         pipe.execute()
         return {"batch": b.id, "outcome": "done", "seconds": round(seconds, 4)}
     finally:
@@ -115,7 +117,9 @@ def _render(ctx: Context, task: P.RenderTask, lease: float):
     if poison and poison == f"{b.frame}/{b.tile}":
         raise RuntimeError(f"poisoned batch {b.id} (LAMPYR_TEST_POISON)")
     delay = float(os.environ.get("LAMPYR_TEST_CHUNK_DELAY", "0") or 0)
+    t_prep = time.perf_counter()
     renderer = ctx.cache.renderer(task.bundle, task.shot, task.overrides, b.frame)
+    ctx.prepare_seconds = time.perf_counter() - t_prep
     tile = Tile(b.x0, b.y0, b.w, b.h)
     budget = min(CHUNK_SECONDS, lease / 4)
     film = None
