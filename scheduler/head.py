@@ -66,6 +66,7 @@ class Head:
         self.epoch = None
         self._status_at = 0.0
         self._reap_at = 0.0
+        self._epoch_at = 0.0
         self._cores = (0.0, 0)
 
     # -- start-up ---------------------------------------------------------------------------
@@ -106,7 +107,15 @@ class Head:
         for run in self.jobs.values():
             run.replan()
             r.zadd(P.K_JOBS, {run.rec.id: run.rec.submitted})
-        live = [bid for bid in queued if r.exists(P.k_lease(bid))]
+        pipe = r.pipeline(transaction=False)
+        for bid in queued:
+            pipe.exists(P.k_lease(bid))
+        live = {bid for bid, alive in zip(queued, pipe.execute()) if alive}
+        # a Redis that lost its data lost the bundles too: put back those of unfinished jobs
+        for run in self.jobs.values():
+            packed = run.folder.root / "bundle.tgz"
+            if run.pending and packed.exists() and not r.exists(P.k_bundle(run.rec.bundle)):
+                r.set(P.k_bundle(run.rec.bundle), packed.read_bytes())
         for run in self.jobs.values():
             keep = []
             for b in run.pending:
@@ -148,6 +157,12 @@ class Head:
                 time.sleep(idle)
 
     def step(self) -> bool:
+        now = time.monotonic()
+        if now - self._epoch_at > 1.0:  # Redis came back empty (restarted without its file)
+            self._epoch_at = now
+            if self.r.get(P.K_EPOCH) != self.epoch:
+                log.warning("Redis lost the farm's state; rebuilding it from the head's disk")
+                self.reconcile()
         busy = self.take_commands()
         busy |= self.take_results() > 0
         self.reap()
@@ -192,6 +207,7 @@ class Head:
         if not folder.bundle.exists():
             folder.root.mkdir(parents=True, exist_ok=True)
             unpack(data, folder.bundle, sha=bundle)
+            write_atomic(folder.root / "bundle.tgz", data)  # to restore a Redis that lost it
         spec = load_shot(folder.bundle / shot)
         o = dict(overrides)
         if "frames" in o:

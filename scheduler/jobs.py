@@ -2,6 +2,7 @@
 
     job.json      the record below (rewritten atomically on every change)
     bundle/       the unpacked scene bundle the head renders frames' metadata from
+    bundle.tgz    the bundle as stored in Redis, to put back if Redis loses its data
     tiles/<frame>/<tile>.acc   tile accumulators (see accumulator.py)
 
 `ranges` lists the sample ranges every tile gets, in dispatch order; `refine` appends to it, or,

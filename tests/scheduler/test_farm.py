@@ -286,3 +286,15 @@ def test_a_client_without_the_password_is_refused(embedded_farm, tmp_path):
     res = farm.cli("status", "--head", bare, check=False)
     assert res.returncode != 0 and "requires a password" in res.stderr
     assert farm.cli("status", "--head", url).returncode == 0
+
+
+def test_a_redis_that_lost_its_data_is_rebuilt_from_the_heads_disk(farm, tiny_shot, tmp_path):
+    farm.start_head()
+    farm.start_worker("a", env={"LAMPYR_TEST_CHUNK_DELAY": "0.05"})
+    job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
+    wait_for(lambda: farm.status(job)["pixel_samples_done"] > 0, what="progress")
+    redis.Redis.from_url(farm.url).flushdb()  # queue, bundle, leases, status: all gone
+    time.sleep(1.5)  # the head notices within a second
+    st = farm.wait(job, timeout=90)
+    assert st["state"] == "done"
+    assert_frames_match_engine(tmp_path / "out", tiny_shot)
