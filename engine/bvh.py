@@ -1,0 +1,391 @@
+"""Bounding volume hierarchies: a binned-SAH build over primitive bounds and ray traversal.
+
+One builder serves every level: the triangles of a mesh and the instances of a scene are both
+just (n, 3) boxes. The tree is a `BVH` NamedTuple of flat arrays in depth-first order:
+
+* `lo`, `hi` (m, 3) float32: node bounds, rounded outward so they contain the float64 boxes;
+* `a` (m,) int32: interior node -> index of its right child (the left child is i + 1);
+  leaf -> first position in `order`;
+* `count` (m,) int32: 0 for an interior node, the number of primitives for a leaf;
+* `axis` (m,) int8: the split axis of an interior node (near child first by the ray's sign);
+* `order` (n,) int32: primitive ids in leaf order.
+
+Node indices are local (root = 0), so many BVHs concatenate into one array; a traversal takes
+`node_base` (where this tree's root sits) and `tri_base` (where its packed triangles start).
+
+Build: Wald, "On fast construction of SAH-based bounding volume hierarchies", IEEE Symposium
+on Interactive Ray Tracing 2007: centroids binned into `bins` equal slots per axis, the
+surface area heuristic evaluated at every slot boundary of all three axes.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import NamedTuple
+
+import numpy as np
+from numba import njit, prange
+
+from .intersect import inverse, ray_box_at, ray_setup, sheared_triangle
+
+STACK_SIZE = 64
+# Past this depth the builder splits at the object median, so a tree is never deeper than
+# MEDIAN_DEPTH + log2(n) < STACK_SIZE: a traversal stack of 64 entries always suffices.
+MEDIAN_DEPTH = 32
+
+
+class BVH(NamedTuple):
+    lo: np.ndarray  # (m, 3) float32
+    hi: np.ndarray  # (m, 3) float32
+    a: np.ndarray  # (m,) int32
+    count: np.ndarray  # (m,) int32
+    axis: np.ndarray  # (m,) int8
+    order: np.ndarray  # (n,) int32
+
+
+def empty_stack() -> np.ndarray:
+    """A traversal stack, (STACK_SIZE,) int32: allocate one per thread or row, reuse per ray."""
+    return np.empty(STACK_SIZE, np.int32)
+
+
+# ------------------------------------------------------------------------------------------
+# build
+
+
+@njit(cache=True, inline="always")
+def _area(x0, y0, z0, x1, y1, z1):
+    ex, ey, ez = x1 - x0, y1 - y0, z1 - z0
+    return ex * ey + ey * ez + ez * ex  # half the surface area: only ratios matter
+
+
+@njit(cache=True, inline="always")
+def _down(x):
+    """The largest float32 <= x (float64 x)."""
+    f = np.float32(x)
+    return np.nextafter(f, np.float32(-np.inf)) if f > x else f
+
+
+@njit(cache=True, inline="always")
+def _up(x):
+    f = np.float32(x)
+    return np.nextafter(f, np.float32(np.inf)) if f < x else f
+
+
+@njit(cache=True)
+def _build(lo, hi, leaf_size, max_leaf, trav_cost, bins, median_depth, node_lo, node_hi, node_a, node_count, node_axis, order):
+    n = lo.shape[0]
+    cen = (lo + hi) * 0.5
+    for i in range(n):
+        order[i] = i
+    bin_of = np.empty(n, np.int32)
+    bcount = np.zeros((3, bins), np.int64)
+    bbox = np.empty((3, bins, 6), np.float64)
+    right_area = np.empty(bins, np.float64)
+    # task stack: (start, end, parent to patch with our index or -1, depth)
+    task = np.empty((256, 4), np.int64)
+    task[0, 0], task[0, 1], task[0, 2], task[0, 3] = 0, n, -1, 0
+    ntask = 1
+    m = 0
+    while ntask > 0:
+        ntask -= 1
+        s, e, parent, depth = task[ntask, 0], task[ntask, 1], task[ntask, 2], task[ntask, 3]
+        node = m
+        m += 1
+        if parent >= 0:
+            node_a[parent] = node
+        # bounds of the primitives and of their centroids
+        bx0 = by0 = bz0 = cx0 = cy0 = cz0 = np.inf
+        bx1 = by1 = bz1 = cx1 = cy1 = cz1 = -np.inf
+        for j in range(s, e):
+            p = order[j]
+            bx0, by0, bz0 = min(bx0, lo[p, 0]), min(by0, lo[p, 1]), min(bz0, lo[p, 2])
+            bx1, by1, bz1 = max(bx1, hi[p, 0]), max(by1, hi[p, 1]), max(bz1, hi[p, 2])
+            cx0, cy0, cz0 = min(cx0, cen[p, 0]), min(cy0, cen[p, 1]), min(cz0, cen[p, 2])
+            cx1, cy1, cz1 = max(cx1, cen[p, 0]), max(cy1, cen[p, 1]), max(cz1, cen[p, 2])
+        node_lo[node, 0], node_lo[node, 1], node_lo[node, 2] = _down(bx0), _down(by0), _down(bz0)
+        node_hi[node, 0], node_hi[node, 1], node_hi[node, 2] = _up(bx1), _up(by1), _up(bz1)
+        cnt = e - s
+        if cnt <= leaf_size:
+            node_a[node] = s
+            node_count[node] = cnt
+            continue
+        node_count[node] = 0
+        cmin = (cx0, cy0, cz0)
+        ext = (cx1 - cx0, cy1 - cy0, cz1 - cz0)
+        best_axis = -1
+        best_split = 0
+        best_cost = np.inf
+        scale = (bins * (1.0 - 1e-9) / ext[0] if ext[0] > 0.0 else 0.0,
+                 bins * (1.0 - 1e-9) / ext[1] if ext[1] > 0.0 else 0.0,
+                 bins * (1.0 - 1e-9) / ext[2] if ext[2] > 0.0 else 0.0)
+        if depth < median_depth:
+            for ax in range(3):
+                if ext[ax] <= 0.0:
+                    continue
+                for b in range(bins):
+                    bcount[ax, b] = 0
+                    bbox[ax, b, 0] = bbox[ax, b, 1] = bbox[ax, b, 2] = np.inf
+                    bbox[ax, b, 3] = bbox[ax, b, 4] = bbox[ax, b, 5] = -np.inf
+            for j in range(s, e):
+                p = order[j]
+                for ax in range(3):
+                    if ext[ax] <= 0.0:
+                        continue
+                    b = min(int((cen[p, ax] - cmin[ax]) * scale[ax]), bins - 1)
+                    bcount[ax, b] += 1
+                    bb = bbox[ax, b]
+                    bb[0], bb[1], bb[2] = min(bb[0], lo[p, 0]), min(bb[1], lo[p, 1]), min(bb[2], lo[p, 2])
+                    bb[3], bb[4], bb[5] = max(bb[3], hi[p, 0]), max(bb[4], hi[p, 1]), max(bb[5], hi[p, 2])
+            # sweep from the right for suffix areas, then from the left evaluating the SAH
+            for ax in range(3):
+                if ext[ax] <= 0.0:
+                    continue
+                x0 = y0 = z0 = np.inf
+                x1 = y1 = z1 = -np.inf
+                for b in range(bins - 1, 0, -1):
+                    bb = bbox[ax, b]
+                    x0, y0, z0 = min(x0, bb[0]), min(y0, bb[1]), min(z0, bb[2])
+                    x1, y1, z1 = max(x1, bb[3]), max(y1, bb[4]), max(z1, bb[5])
+                    right_area[b] = _area(x0, y0, z0, x1, y1, z1)
+                x0 = y0 = z0 = np.inf
+                x1 = y1 = z1 = -np.inf
+                nl = 0
+                for b in range(bins - 1):
+                    bb = bbox[ax, b]
+                    x0, y0, z0 = min(x0, bb[0]), min(y0, bb[1]), min(z0, bb[2])
+                    x1, y1, z1 = max(x1, bb[3]), max(y1, bb[4]), max(z1, bb[5])
+                    nl += bcount[ax, b]
+                    nr = cnt - nl
+                    if nl == 0 or nr == 0:
+                        continue
+                    cost = _area(x0, y0, z0, x1, y1, z1) * nl + right_area[b + 1] * nr
+                    if cost < best_cost:
+                        best_cost, best_axis, best_split = cost, ax, b + 1
+        if cnt <= max_leaf and cnt * _area(bx0, by0, bz0, bx1, by1, bz1) <= (
+                trav_cost * _area(bx0, by0, bz0, bx1, by1, bz1) + best_cost):
+            node_a[node] = s  # SAH termination: intersecting all of them is cheaper than a split
+            node_count[node] = cnt
+            continue
+        if best_axis >= 0:
+            # partition [s, e) so primitives of slots < best_split come first
+            sc = scale[best_axis]
+            c0 = cmin[best_axis]
+            i, j = s, e - 1
+            while i <= j:
+                if min(int((cen[order[i], best_axis] - c0) * sc), bins - 1) < best_split:
+                    i += 1
+                else:
+                    order[i], order[j] = order[j], order[i]
+                    j -= 1
+            mid = i
+        else:
+            # too deep, or all centroids coincide: object median along the widest extent
+            best_axis = 0 if ext[0] >= ext[1] and ext[0] >= ext[2] else (1 if ext[1] >= ext[2] else 2)
+            keys = np.empty(cnt, np.float64)
+            for j in range(s, e):
+                keys[j - s] = cen[order[j], best_axis]
+            perm = np.argsort(keys, kind="mergesort")
+            seg = order[s:e].copy()
+            for j in range(cnt):
+                order[s + j] = seg[perm[j]]
+            mid = s + cnt // 2
+        node_axis[node] = best_axis
+        # right child first onto the stack, so the left one is built next and lands at node + 1
+        task[ntask, 0], task[ntask, 1], task[ntask, 2], task[ntask, 3] = mid, e, node, depth + 1
+        task[ntask + 1, 0], task[ntask + 1, 1], task[ntask + 1, 2], task[ntask + 1, 3] = s, mid, -1, depth + 1
+        ntask += 2
+    return m
+
+
+def build_bvh(lo, hi, leaf_size: int = 4, bins: int = 16, max_leaf: int = 0, trav_cost: float = 1.0,
+              median_depth: int = MEDIAN_DEPTH) -> BVH:
+    """Binned-SAH BVH over primitive boxes. lo, hi: (n, 3) float64, n >= 1.
+
+    leaf_size: a node with at most this many primitives becomes a leaf; bins: centroid slots per
+    axis; median_depth: depth from which object-median splits bound the tree's height.
+    """
+    lo = np.ascontiguousarray(lo, np.float64)
+    hi = np.ascontiguousarray(hi, np.float64)
+    n = len(lo)
+    if n == 0 or lo.shape != (n, 3) or hi.shape != (n, 3):
+        raise ValueError(f"build_bvh needs (n >= 1, 3) bounds, got {lo.shape} and {hi.shape}")
+    size = max(2 * n - 1, 1)
+    node_lo = np.empty((size, 3), np.float32)
+    node_hi = np.empty((size, 3), np.float32)
+    node_a = np.empty(size, np.int32)
+    node_count = np.empty(size, np.int32)
+    node_axis = np.zeros(size, np.int8)
+    order = np.empty(n, np.int32)
+    m = _build(lo, hi, int(leaf_size), int(max_leaf), float(trav_cost), int(bins), int(median_depth),
+               node_lo, node_hi, node_a, node_count, node_axis, order)
+    return BVH(node_lo[:m].copy(), node_hi[:m].copy(), node_a[:m].copy(), node_count[:m].copy(),
+               node_axis[:m].copy(), order)
+
+
+def sah_cost(bvh: BVH, c_trav: float = 1.0, c_isect: float = 1.0) -> float:
+    """Expected cost of a random ray through the root (MacDonald and Booth, "Heuristics for ray
+    tracing using space subdivision", The Visual Computer 6(3), 1990): every node weighted by
+    its surface area relative to the root's."""
+    lo, hi = bvh.lo.astype(np.float64), bvh.hi.astype(np.float64)
+    e = hi - lo
+    area = e[:, 0] * e[:, 1] + e[:, 1] * e[:, 2] + e[:, 2] * e[:, 0]
+    weight = np.where(bvh.count > 0, c_isect * bvh.count, c_trav)
+    return float((weight * area).sum() / area[0])
+
+
+def pack_triangles(vertices, faces, order, dtype=np.float32) -> np.ndarray:
+    """Triangle corners in leaf order: (f, 3, 3) `dtype`, row k holding face order[k].
+
+    vertices: (v, 3) float64, faces: (f, 3) int, order: (f,) int32 from `build_bvh`.
+    """
+    v = np.asarray(vertices, np.float64)
+    f = np.asarray(faces, np.int64)
+    return np.ascontiguousarray(v[f[np.asarray(order)]].astype(dtype))
+
+
+# ------------------------------------------------------------------------------------------
+# traversal
+
+
+@njit(cache=True, inline="always")
+def _leaf_triangle(tris, k, kx, ky, kz, okx, oky, okz, sx, sy, sz, tmin, tmax):
+    return sheared_triangle(
+        sx, sy, sz, tmin, tmax,
+        tris[k, 0, kx] - okx, tris[k, 0, ky] - oky, tris[k, 0, kz] - okz,
+        tris[k, 1, kx] - okx, tris[k, 1, ky] - oky, tris[k, 1, kz] - okz,
+        tris[k, 2, kx] - okx, tris[k, 2, ky] - oky, tris[k, 2, kz] - okz,
+    )
+
+
+@njit(cache=True)
+def intersect_mesh(node_lo, node_hi, node_a, node_count, node_axis, tris, node_base, tri_base,
+                   ox, oy, oz, dx, dy, dz, tmin, tmax, stack):
+    """Closest hit in (tmin, tmax) of one mesh BVH: (t, k, u, v).
+
+    k: absolute row of `tris` (tri_base included) or -1 on a miss (then t = tmax); u, v: the
+    barycentrics of the triangle's second and third corners. stack: (>= 64,) int32 scratch.
+    """
+    idx, idy, idz = inverse(dx), inverse(dy), inverse(dz)
+    kx, ky, kz, sx, sy, sz = ray_setup(dx, dy, dz)
+    o = (ox, oy, oz)
+    okx, oky, okz = o[kx], o[ky], o[kz]
+    best_t, best_k, best_u, best_v = tmax, -1, 0.0, 0.0
+    node = node_base
+    hit, tnear = ray_box_at(ox, oy, oz, idx, idy, idz, tmin, best_t, node_lo, node_hi, node)
+    if not hit:
+        return best_t, best_k, best_u, best_v
+    sp = 0
+    while True:
+        cnt = node_count[node]
+        if cnt > 0:
+            first = tri_base + node_a[node]
+            for k in range(first, first + cnt):
+                h, t, u, v = _leaf_triangle(tris, k, kx, ky, kz, okx, oky, okz, sx, sy, sz, tmin, best_t)
+                if h:
+                    best_t, best_k, best_u, best_v = t, k, u, v
+        else:
+            left = node + 1
+            right = node_base + node_a[node]
+            hl, tl = ray_box_at(ox, oy, oz, idx, idy, idz, tmin, best_t, node_lo, node_hi, left)
+            hr, tr = ray_box_at(ox, oy, oz, idx, idy, idz, tmin, best_t, node_lo, node_hi, right)
+            if hl and hr:
+                if tl <= tr:
+                    node = left
+                    stack[sp] = right
+                else:
+                    node = right
+                    stack[sp] = left
+                sp += 1
+                continue
+            if hl:
+                node = left
+                continue
+            if hr:
+                node = right
+                continue
+        # pop the next subtree whose box still lies before the closest hit so far
+        while True:
+            if sp == 0:
+                return best_t, best_k, best_u, best_v
+            sp -= 1
+            node = stack[sp]
+            hit, tnear = ray_box_at(ox, oy, oz, idx, idy, idz, tmin, best_t, node_lo, node_hi, node)
+            if hit:
+                break
+
+
+@njit(cache=True)
+def occluded_mesh(node_lo, node_hi, node_a, node_count, node_axis, tris, node_base, tri_base,
+                  ox, oy, oz, dx, dy, dz, tmin, tmax, stack):
+    """True if any triangle of the mesh is hit in (tmin, tmax): shadow rays, first hit wins."""
+    idx, idy, idz = inverse(dx), inverse(dy), inverse(dz)
+    kx, ky, kz, sx, sy, sz = ray_setup(dx, dy, dz)
+    o = (ox, oy, oz)
+    okx, oky, okz = o[kx], o[ky], o[kz]
+    stack[0] = 0
+    sp = 1
+    while sp > 0:
+        sp -= 1
+        node = node_base + stack[sp]
+        hit, tnear = ray_box_at(ox, oy, oz, idx, idy, idz, tmin, tmax, node_lo, node_hi, node)
+        if not hit:
+            continue
+        cnt = node_count[node]
+        if cnt > 0:
+            first = tri_base + node_a[node]
+            for k in range(first, first + cnt):
+                h, t, u, v = _leaf_triangle(tris, k, kx, ky, kz, okx, oky, okz, sx, sy, sz, tmin, tmax)
+                if h:
+                    return True
+        else:
+            stack[sp + 1] = stack[sp] + 1
+            stack[sp] = node_a[node]
+            sp += 2
+    return False
+
+
+@njit(cache=True, parallel=True)
+def _cast(node_lo, node_hi, node_a, node_count, node_axis, tris, origins, dirs, tmin, tmax,
+          chunk, t_out, k_out):
+    n = origins.shape[0]
+    for c in prange((n + chunk - 1) // chunk):
+        stack = np.empty(STACK_SIZE, np.int32)  # one per chunk of rays, reused for each ray
+        for i in range(c * chunk, min(n, (c + 1) * chunk)):
+            t, k, u, v = intersect_mesh(
+                node_lo, node_hi, node_a, node_count, node_axis, tris, 0, 0,
+                origins[i, 0], origins[i, 1], origins[i, 2], dirs[i, 0], dirs[i, 1], dirs[i, 2],
+                tmin, tmax, stack,
+            )
+            t_out[i] = t
+            k_out[i] = k
+
+
+@njit(cache=True, parallel=True)
+def _cast_occluded(node_lo, node_hi, node_a, node_count, node_axis, tris, origins, dirs, tmin,
+                   tmax, chunk, out):
+    n = origins.shape[0]
+    for c in prange((n + chunk - 1) // chunk):
+        stack = np.empty(STACK_SIZE, np.int32)
+        for i in range(c * chunk, min(n, (c + 1) * chunk)):
+            out[i] = occluded_mesh(
+                node_lo, node_hi, node_a, node_count, node_axis, tris, 0, 0,
+                origins[i, 0], origins[i, 1], origins[i, 2], dirs[i, 0], dirs[i, 1], dirs[i, 2],
+                tmin, tmax[i], stack,
+            )
+
+
+def cast(bvh: BVH, tris, origins, dirs, t_out, k_out, tmin: float = 0.0, tmax: float = math.inf,
+         chunk: int = 256) -> None:
+    """Closest hits of many rays against one mesh (tests, benchmarks), in parallel.
+
+    origins, dirs: (n, 3) float64; writes t_out (n,) float64 (tmax on a miss) and k_out (n,)
+    int64 (row of `tris`, -1 on a miss).
+    """
+    _cast(bvh.lo, bvh.hi, bvh.a, bvh.count, bvh.axis, tris, origins, dirs, float(tmin),
+          float(tmax), int(chunk), t_out, k_out)
+
+
+def cast_occluded(bvh: BVH, tris, origins, dirs, tmax, out, tmin: float = 0.0, chunk: int = 256) -> None:
+    """Shadow-ray batch: out[i] (bool) = anything hit in (tmin, tmax[i]). tmax: (n,) float64."""
+    _cast_occluded(bvh.lo, bvh.hi, bvh.a, bvh.count, bvh.axis, tris, origins, dirs, float(tmin),
+                   tmax, int(chunk), out)
