@@ -48,7 +48,7 @@ def test_demo_command_renders_frames_and_previews(tmp_path):
     (("fov = 50.0", "fov = 0"), "camera.fov: expected degrees between 1 and 179, got 0"),
     (('mesh = "assets/walls.obj"', 'mesh = "assets/nowhere.obj"'), "object[walls].mesh"),
     (('material = "glass"', 'material = "crystal"'), "object[glass_ball].material"),
-    (("width = 320", "width = 100000"), "image.width"),
+    (("width = 256", "width = 100000"), "image.width"),
 ])
 def test_bad_shot_gives_one_line_and_status_2(tmp_path, edit, message):
     text = DEMO.read_text().replace(*edit)
