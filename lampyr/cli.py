@@ -201,7 +201,7 @@ def worker(address, cores, pool, name):
 def submit(shot, out, priority, samples, frames, width, height, tile_size, batch_samples,
            head_addr, state):
     """Queue SHOT on the farm; prints the job id as the last line."""
-    from .scheduler.head import submit_request
+    from .scheduler.submit import submit_request
 
     r = _farm(head_addr, state)
     overrides = _overrides(samples, _parse_frames(frames), width, height)

@@ -26,8 +26,10 @@ from pathlib import Path
 from . import protocol as P
 from .accumulator import write_atomic
 from .assembler import JobRun
-from .jobs import JobFolder, JobRecord, list_jobs, new_job_id
+from .commands import JobCommands
+from .jobs import JobFolder, list_jobs
 from .leases import LeaseKeeper
+from .submit import submit_request  # noqa: F401  (the client side of `cmd_submit`)
 
 log = logging.getLogger("lampyr.head")
 
@@ -41,7 +43,7 @@ def make_sender(url: str):
     return app
 
 
-class Head:
+class Head(JobCommands):
     """Runs a farm whose state lives under `state`; `url` is the Redis to use.
 
     lease_seconds: how long a silent worker keeps its batches; max_attempts: starts of a batch
@@ -190,110 +192,6 @@ class Head:
                                                        "error": json.dumps(str(err))})
                     self.r.zadd(P.K_JOBS, {job: time.time()})
         return n > 0
-
-    def cmd_submit(self, job: str, bundle: str, shot: str, overrides: dict, out: str | None,
-                   priority: int = 0, tile_size: int | None = None,
-                   batch_samples: int | None = None, submitted: float | None = None) -> None:
-        from ..engine.shot import load_shot
-        from .bundle import unpack
-        from .planner import choose_layout, first_pass_samples, probe_cost, sample_ranges
-
-        if job in self.jobs:
-            return
-        folder = JobFolder(self.state, job)
-        data = self.r.get(P.k_bundle(bundle))
-        if data is None:
-            raise ValueError(f"bundle {bundle[:12]} is not in Redis")
-        if not folder.bundle.exists():
-            folder.root.mkdir(parents=True, exist_ok=True)
-            unpack(data, folder.bundle, sha=bundle)
-            write_atomic(folder.root / "bundle.tgz", data)  # to restore a Redis that lost it
-        spec = load_shot(folder.bundle / shot)
-        o = dict(overrides)
-        if "frames" in o:
-            o["frames"] = tuple(o["frames"])
-        if o:
-            spec = spec.with_overrides(**o)
-        if tile_size is None or batch_samples is None:
-            layout = choose_layout(spec.width, spec.height, spec.samples, probe_cost(spec))
-            tile_size = tile_size or layout.tile_size
-            batch_samples = batch_samples or layout.batch_samples
-        ranges = sample_ranges(0, spec.samples, batch_samples,
-                               first_pass_samples(spec.samples, batch_samples))
-        rec = JobRecord(id=job, name=spec.name, bundle=bundle, shot=shot, overrides=overrides,
-                        out=out or str(folder.root / "frames"), priority=int(priority),
-                        submitted=submitted or time.time(), tile_size=int(tile_size),
-                        batch_samples=int(batch_samples), samples=int(spec.samples),
-                        ranges=ranges)
-        folder.save(rec)
-        self.jobs[job] = JobRun(self.state, rec, self.partial_frames)
-        self.r.zadd(P.K_JOBS, {job: rec.submitted})
-        log.info("job %s: %d batches, tiles %d px, %d samples per batch", job,
-                 len(self.jobs[job].pending), tile_size, batch_samples)
-
-    def _save(self, run: JobRun) -> None:
-        run.folder.save(run.rec)
-
-    def cmd_retry(self, job: str, frames: list | None = None) -> None:
-        run = self.jobs[job]
-        lo, hi = frames if frames else (-1, 1 << 30)
-        again = [bid for bid in run.rec.failed if lo <= P.parse_batch_id(bid)[1] <= hi]
-        for bid in again:
-            del run.rec.failed[bid]
-        if again:
-            self.r.hdel(P.K_ATTEMPTS, *again)
-        self._save(run)
-        run.replan()
-        self._drop_inflight_from_pending(run)
-
-    def cmd_pause(self, job: str) -> None:
-        self.jobs[job].rec.paused = True
-        self._save(self.jobs[job])
-
-    def cmd_resume(self, job: str) -> None:
-        self.jobs[job].rec.paused = False
-        self._save(self.jobs[job])
-
-    def cmd_cancel(self, job: str) -> None:
-        run = self.jobs[job]
-        run.rec.cancelled = True
-        self._save(run)
-        run.pending.clear()
-        gone = [bid for bid, e in self.leases.table.items() if e.batch.job == job]
-        for bid in gone:
-            self.leases.pop(bid)
-        if gone:
-            self.r.hdel(P.K_INFLIGHT, *gone)
-
-    def cmd_refine(self, job: str, samples: int, noise: float | None = None) -> None:
-        """Add samples up to `samples` per pixel, in the job's batch size: to every tile, or
-        with a `noise` goal only to tiles whose relative standard error is above it."""
-        from .planner import sample_ranges
-
-        run = self.jobs[job]
-        if noise is None:
-            if samples <= run.rec.samples:
-                return
-            run.rec.ranges = list(run.rec.ranges) + sample_ranges(run.rec.samples, samples,
-                                                                  run.rec.batch_samples)
-            run.rec.samples = int(samples)
-        else:
-            for f, i in run.noisy_tiles(noise):
-                key = f"{f}/{i}"
-                have = run.tile_target(f, i)
-                if samples > have:
-                    run.rec.extra[key] = list(run.rec.extra.get(key, [])) + sample_ranges(
-                        have, samples, run.rec.batch_samples)
-        self._save(run)
-        self.jobs[job] = JobRun(self.state, run.rec, self.partial_frames)
-        self.jobs[job].written = dict(run.written)
-        self.jobs[job].written_sum = dict(run.written_sum)
-        self._drop_inflight_from_pending(self.jobs[job])
-
-    def _drop_inflight_from_pending(self, run: JobRun) -> None:
-        keep = [b for b in run.pending if b.id not in self.leases]
-        run.pending.clear()
-        run.pending.extend(keep)
 
     # -- results ----------------------------------------------------------------------------
 
@@ -476,34 +374,3 @@ def _batch_of(run: JobRun, bid: str) -> P.Batch | None:
         return None
     t = run.tiles[tile]
     return P.Batch(job, frame, tile, first, count, t.x0, t.y0, t.w, t.h)
-
-
-def submit_request(r, shot_path: Path, overrides: dict, out: str | None, priority: int = 0,
-                   tile_size: int | None = None, batch_samples: int | None = None) -> str:
-    """Validate and pack a shot, store its bundle and ask the head to run it; returns the job id."""
-    from ..engine.shot import load_shot
-    from .bundle import pack
-    from .store import send_command, store_bundle
-
-    spec = load_shot(shot_path)
-    if overrides:
-        o = dict(overrides)
-        spec = spec.with_overrides(**o)
-    data, sha, member = pack(spec)
-    store_bundle(r, data, sha)
-    job = new_job_id(spec.name)
-    o = dict(overrides)
-    if "frames" in o:
-        o["frames"] = list(o["frames"])
-    # a status at once, so `status JOB` right after `submit` answers; the head takes over from here
-    first = {"job": job, "name": spec.name, "state": "queued", "frames": len(spec.frames()),
-             "frames_done": 0, "samples": spec.samples, "pixel_samples_done": 0,
-             "pixel_samples_total": len(spec.frames()) * spec.width * spec.height * spec.samples,
-             "samples_per_second": 0.0, "eta_seconds": None, "priority": priority,
-             "out": out, "failed": [], "submitted": time.time()}
-    r.hset(P.k_job(job), mapping={k: json.dumps(v) for k, v in first.items()})
-    r.zadd(P.K_JOBS, {job: first["submitted"]})
-    send_command(r, "submit", job=job, bundle=sha, shot=member, overrides=o,
-                 out=None if out is None else str(Path(out).resolve()), priority=priority,
-                 tile_size=tile_size, batch_samples=batch_samples, submitted=time.time())
-    return job

@@ -28,7 +28,8 @@ def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: in
     on_frame(path) are called from this thread.
     """
     from ..local import frame_path
-    from .head import Head, submit_request
+    from .head import Head
+    from .submit import submit_request
     from .redis_server import EmbeddedRedis
 
     state = Path(tempfile.mkdtemp(prefix="lampyr-render-"))

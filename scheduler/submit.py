@@ -1,0 +1,41 @@
+"""Submitting a shot: validate it with the engine, pack its bundle, queue a `submit` command."""
+
+from __future__ import annotations
+
+import json
+import time
+from pathlib import Path
+
+from . import protocol as P
+from .jobs import new_job_id
+
+
+def submit_request(r, shot_path: Path, overrides: dict, out: str | None, priority: int = 0,
+                   tile_size: int | None = None, batch_samples: int | None = None) -> str:
+    """Validate and pack a shot, store its bundle and ask the head to run it; returns the job id."""
+    from ..engine.shot import load_shot
+    from .bundle import pack
+    from .store import send_command, store_bundle
+
+    spec = load_shot(shot_path)
+    if overrides:
+        o = dict(overrides)
+        spec = spec.with_overrides(**o)
+    data, sha, member = pack(spec)
+    store_bundle(r, data, sha)
+    job = new_job_id(spec.name)
+    o = dict(overrides)
+    if "frames" in o:
+        o["frames"] = list(o["frames"])
+    # a status at once, so `status JOB` right after `submit` answers; the head takes over from here
+    first = {"job": job, "name": spec.name, "state": "queued", "frames": len(spec.frames()),
+             "frames_done": 0, "samples": spec.samples, "pixel_samples_done": 0,
+             "pixel_samples_total": len(spec.frames()) * spec.width * spec.height * spec.samples,
+             "samples_per_second": 0.0, "eta_seconds": None, "priority": priority,
+             "out": out, "failed": [], "submitted": time.time()}
+    r.hset(P.k_job(job), mapping={k: json.dumps(v) for k, v in first.items()})
+    r.zadd(P.K_JOBS, {job: first["submitted"]})
+    send_command(r, "submit", job=job, bundle=sha, shot=member, overrides=o,
+                 out=None if out is None else str(Path(out).resolve()), priority=priority,
+                 tile_size=tile_size, batch_samples=batch_samples, submitted=time.time())
+    return job
