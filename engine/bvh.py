@@ -29,8 +29,8 @@ from numba import njit, prange
 from .intersect import inverse, ray_box_at, ray_setup, sheared_triangle
 
 STACK_SIZE = 64
-# Past this depth the builder splits at the object median, so a tree is never deeper than
-# MEDIAN_DEPTH + log2(n) < STACK_SIZE: a traversal stack of 64 entries always suffices.
+# Past this depth the builder splits at object medians: no tree is deeper than
+# MEDIAN_DEPTH + log2(n) < STACK_SIZE, so a traversal stack of 64 entries always suffices.
 MEDIAN_DEPTH = 32
 
 
@@ -59,8 +59,7 @@ def _area(x0, y0, z0, x1, y1, z1):
 
 
 @njit(cache=True, inline="always")
-def _down(x):
-    """The largest float32 <= x (float64 x)."""
+def _down(x):  # the largest float32 <= x; _up: the smallest >= x
     f = np.float32(x)
     return np.nextafter(f, np.float32(-np.inf)) if f > x else f
 
@@ -72,12 +71,11 @@ def _up(x):
 
 
 @njit(cache=True)
-def _build(lo, hi, leaf_size, max_leaf, trav_cost, bins, median_depth, node_lo, node_hi, node_a, node_count, node_axis, order):
+def _build(lo, hi, cen, leaf_size, max_leaf, trav_cost, bins, median_depth, node_lo, node_hi, node_a,
+           node_count, node_axis, order):
     n = lo.shape[0]
-    cen = (lo + hi) * 0.5
     for i in range(n):
         order[i] = i
-    bin_of = np.empty(n, np.int32)
     bcount = np.zeros((3, bins), np.int64)
     bbox = np.empty((3, bins, 6), np.float64)
     right_area = np.empty(bins, np.float64)
@@ -197,18 +195,27 @@ def _build(lo, hi, leaf_size, max_leaf, trav_cost, bins, median_depth, node_lo, 
     return m
 
 
-def build_bvh(lo, hi, leaf_size: int = 4, bins: int = 16, max_leaf: int = 0, trav_cost: float = 1.0,
+def build_bvh(lo, hi, leaf_size: int = 4, bins: int = 16, max_leaf: int = 0, trav_cost: float = 4.0,
               median_depth: int = MEDIAN_DEPTH) -> BVH:
     """Binned-SAH BVH over primitive boxes. lo, hi: (n, 3) float64, n >= 1.
 
-    leaf_size: a node with at most this many primitives becomes a leaf; bins: centroid slots per
-    axis; median_depth: depth from which object-median splits bound the tree's height.
+    leaf_size: a node with at most this many primitives always becomes a leaf.
+    max_leaf, trav_cost: SAH termination (MacDonald and Booth 1990) — a node of up to max_leaf
+      primitives also becomes a leaf when testing them all costs no more than the best split,
+      trav_cost being the price of a node visit relative to one primitive test. Off while
+      max_leaf <= leaf_size (the default). For triangles max_leaf=16, trav_cost=4 measured
+      faster for incoherent rays (bench/rays.py); never use it for costly primitives such as
+      instances (a top level built with it rendered the courtyard 35% slower).
+    bins: centroid slots per axis; median_depth: depth from which object-median splits bound
+      the tree's height (so a traversal stack of STACK_SIZE entries always suffices).
     """
     lo = np.ascontiguousarray(lo, np.float64)
     hi = np.ascontiguousarray(hi, np.float64)
     n = len(lo)
     if n == 0 or lo.shape != (n, 3) or hi.shape != (n, 3):
         raise ValueError(f"build_bvh needs (n >= 1, 3) bounds, got {lo.shape} and {hi.shape}")
+    if not (np.isfinite(lo).all() and np.isfinite(hi).all()):
+        raise ValueError("build_bvh needs finite bounds (a NaN or inf vertex?)")
     size = max(2 * n - 1, 1)
     node_lo = np.empty((size, 3), np.float32)
     node_hi = np.empty((size, 3), np.float32)
@@ -216,7 +223,8 @@ def build_bvh(lo, hi, leaf_size: int = 4, bins: int = 16, max_leaf: int = 0, tra
     node_count = np.empty(size, np.int32)
     node_axis = np.zeros(size, np.int8)
     order = np.empty(n, np.int32)
-    m = _build(lo, hi, int(leaf_size), int(max_leaf), float(trav_cost), int(bins), int(median_depth),
+    cen = (lo + hi) * 0.5  # allocated here, not in numba, so tracemalloc sees the whole build
+    m = _build(lo, hi, cen, int(leaf_size), int(max_leaf), float(trav_cost), int(bins), int(median_depth),
                node_lo, node_hi, node_a, node_count, node_axis, order)
     return BVH(node_lo[:m].copy(), node_hi[:m].copy(), node_a[:m].copy(), node_count[:m].copy(),
                node_axis[:m].copy(), order)
@@ -238,13 +246,15 @@ def pack_triangles(vertices, faces, order, dtype=np.float32) -> np.ndarray:
 
     vertices: (v, 3) float64, faces: (f, 3) int, order: (f,) int32 from `build_bvh`.
     """
-    v = np.asarray(vertices, np.float64)
+    v = np.asarray(vertices, np.float64).astype(dtype)  # round vertices once, then gather
     f = np.asarray(faces, np.int64)
-    return np.ascontiguousarray(v[f[np.asarray(order)]].astype(dtype))
+    return np.ascontiguousarray(v[f[np.asarray(order)]])
 
 
 # ------------------------------------------------------------------------------------------
-# traversal
+# traversal. Node and triangle indices are uint64 in the loops below: numba wraps negative
+# signed indices (a compare and an add per array access), which unsigned ones skip.
+_U1 = np.uint64(1)
 
 
 @njit(cache=True, inline="always")
@@ -257,6 +267,13 @@ def _leaf_triangle(tris, k, kx, ky, kz, okx, oky, okz, sx, sy, sz, tmin, tmax):
     )
 
 
+@njit(cache=True, inline="always")
+def _ray_frame(ox, oy, oz, dx, dy, dz):
+    kx, ky, kz, sx, sy, sz = ray_setup(dx, dy, dz)
+    o = (ox, oy, oz)
+    return np.uint64(kx), np.uint64(ky), np.uint64(kz), o[kx], o[ky], o[kz], sx, sy, sz
+
+
 @njit(cache=True)
 def intersect_mesh(node_lo, node_hi, node_a, node_count, node_axis, tris, node_base, tri_base,
                    ox, oy, oz, dx, dy, dz, tmin, tmax, stack):
@@ -264,13 +281,16 @@ def intersect_mesh(node_lo, node_hi, node_a, node_count, node_axis, tris, node_b
 
     k: absolute row of `tris` (tri_base included) or -1 on a miss (then t = tmax); u, v: the
     barycentrics of the triangle's second and third corners. stack: (>= 64,) int32 scratch.
+
+    Both children's boxes are tested at their parent; the nearer is entered, the farther pushed
+    and tested again when popped, against the closest hit found by then.
     """
     idx, idy, idz = inverse(dx), inverse(dy), inverse(dz)
-    kx, ky, kz, sx, sy, sz = ray_setup(dx, dy, dz)
-    o = (ox, oy, oz)
-    okx, oky, okz = o[kx], o[ky], o[kz]
+    kx, ky, kz, okx, oky, okz, sx, sy, sz = _ray_frame(ox, oy, oz, dx, dy, dz)
     best_t, best_k, best_u, best_v = tmax, -1, 0.0, 0.0
-    node = node_base
+    base = np.uint64(node_base)
+    tbase = np.uint64(tri_base)
+    node = base
     hit, tnear = ray_box_at(ox, oy, oz, idx, idy, idz, tmin, best_t, node_lo, node_hi, node)
     if not hit:
         return best_t, best_k, best_u, best_v
@@ -278,37 +298,29 @@ def intersect_mesh(node_lo, node_hi, node_a, node_count, node_axis, tris, node_b
     while True:
         cnt = node_count[node]
         if cnt > 0:
-            first = tri_base + node_a[node]
-            for k in range(first, first + cnt):
+            first = tbase + np.uint64(node_a[node])
+            for k in range(first, first + np.uint64(cnt)):
                 h, t, u, v = _leaf_triangle(tris, k, kx, ky, kz, okx, oky, okz, sx, sy, sz, tmin, best_t)
                 if h:
-                    best_t, best_k, best_u, best_v = t, k, u, v
+                    best_t, best_k, best_u, best_v = t, np.int64(k), u, v
         else:
-            left = node + 1
-            right = node_base + node_a[node]
+            left = node + _U1
+            right = base + np.uint64(node_a[node])
             hl, tl = ray_box_at(ox, oy, oz, idx, idy, idz, tmin, best_t, node_lo, node_hi, left)
             hr, tr = ray_box_at(ox, oy, oz, idx, idy, idz, tmin, best_t, node_lo, node_hi, right)
-            if hl and hr:
-                if tl <= tr:
-                    node = left
-                    stack[sp] = right
-                else:
-                    node = right
-                    stack[sp] = left
-                sp += 1
+            if hl or hr:
+                # selects rather than branches: which child is nearer is a coin toss for
+                # incoherent rays, and a mispredicted branch costs more than both moves
+                far = hr and (not hl or tr < tl)
+                node = right if far else left
+                stack[sp] = left if far else right
+                sp += 1 if (hl and hr) else 0
                 continue
-            if hl:
-                node = left
-                continue
-            if hr:
-                node = right
-                continue
-        # pop the next subtree whose box still lies before the closest hit so far
-        while True:
+        while True:  # pop the next subtree whose box still lies before the closest hit
             if sp == 0:
                 return best_t, best_k, best_u, best_v
             sp -= 1
-            node = stack[sp]
+            node = np.uint64(stack[sp])
             hit, tnear = ray_box_at(ox, oy, oz, idx, idy, idz, tmin, best_t, node_lo, node_hi, node)
             if hit:
                 break
@@ -319,27 +331,27 @@ def occluded_mesh(node_lo, node_hi, node_a, node_count, node_axis, tris, node_ba
                   ox, oy, oz, dx, dy, dz, tmin, tmax, stack):
     """True if any triangle of the mesh is hit in (tmin, tmax): shadow rays, first hit wins."""
     idx, idy, idz = inverse(dx), inverse(dy), inverse(dz)
-    kx, ky, kz, sx, sy, sz = ray_setup(dx, dy, dz)
-    o = (ox, oy, oz)
-    okx, oky, okz = o[kx], o[ky], o[kz]
-    stack[0] = 0
+    kx, ky, kz, okx, oky, okz, sx, sy, sz = _ray_frame(ox, oy, oz, dx, dy, dz)
+    base = np.uint64(node_base)
+    tbase = np.uint64(tri_base)
+    stack[0] = node_base
     sp = 1
     while sp > 0:
         sp -= 1
-        node = node_base + stack[sp]
+        node = np.uint64(stack[sp])
         hit, tnear = ray_box_at(ox, oy, oz, idx, idy, idz, tmin, tmax, node_lo, node_hi, node)
         if not hit:
             continue
         cnt = node_count[node]
         if cnt > 0:
-            first = tri_base + node_a[node]
-            for k in range(first, first + cnt):
+            first = tbase + np.uint64(node_a[node])
+            for k in range(first, first + np.uint64(cnt)):
                 h, t, u, v = _leaf_triangle(tris, k, kx, ky, kz, okx, oky, okz, sx, sy, sz, tmin, tmax)
                 if h:
                     return True
         else:
-            stack[sp + 1] = stack[sp] + 1
-            stack[sp] = node_a[node]
+            stack[sp] = base + np.uint64(node_a[node])
+            stack[sp + 1] = node + _U1
             sp += 2
     return False
 

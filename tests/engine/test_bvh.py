@@ -200,12 +200,23 @@ def test_depth_fits_the_traversal_stack_on_adversarial_input():
     assert depth(b) < STACK_SIZE
 
 
-@pytest.mark.parametrize("leaf_size", [1, 3, 8])
-def test_leaves_hold_at_most_leaf_size_primitives(leaf_size):
+@pytest.mark.parametrize("leaf_size,max_leaf", [(1, 0), (3, 0), (8, 0), (2, 16), (4, 16)])
+def test_leaves_hold_at_most_the_allowed_primitives(leaf_size, max_leaf):
     rng = np.random.default_rng(2)
     lo = rng.random((500, 3))
-    b = build_bvh(lo, lo + 0.01, leaf_size=leaf_size)
-    assert b.count.max() <= leaf_size and len(leaves(b)) >= 500 // leaf_size
+    b = build_bvh(lo, lo + 0.01, leaf_size=leaf_size, max_leaf=max_leaf)
+    assert b.count.max() <= max(leaf_size, max_leaf)
+    assert len(leaves(b)) >= 500 // max(leaf_size, max_leaf)
+
+
+def test_sah_termination_lowers_the_cost_it_models(mesh):
+    """Leaves made by SAH termination must pay off under the same cost model (MacDonald and
+    Booth 1990) with the node-visit price the builder was given."""
+    lo, hi = mesh.tri.min(axis=1), mesh.tri.max(axis=1)
+    with_term = build_bvh(lo, hi, max_leaf=16, trav_cost=4.0)
+    without = build_bvh(lo, hi, max_leaf=0)
+    assert sah_cost(with_term, c_trav=4.0) < sah_cost(without, c_trav=4.0)
+    assert with_term.count.max() > 4
 
 
 def test_single_primitive_is_one_leaf():
@@ -229,6 +240,7 @@ def test_closest_hit_matches_embree(mesh):
     te, ue, ve = embree_distance(mesh, o, d)
     hit, hit_e = k >= 0, np.isfinite(te)
     assert 0.2 < hit.mean() < 0.95
+    assert (hit != hit_e).sum() <= len(o) // 1000
     for i in np.flatnonzero(hit != hit_e):
         margin = min(ue[i], ve[i], 1 - ue[i] - ve[i]) if hit_e[i] else \
             barycentric_margin(mesh.tris[k[i]][None].astype(float), o[i][None], d[i][None], t[i][None])[0]
@@ -257,11 +269,11 @@ def test_closest_hit_matches_trimesh(mesh):
     tt = np.full(len(o), np.inf)
     tt[ray_id] = ((loc - o[ray_id]) * d[ray_id]).sum(1) / (d[ray_id] ** 2).sum(1)
     hit, hit_t = k >= 0, np.isfinite(tt)
-    for i in np.flatnonzero(hit != hit_t):
-        j = i if hit[i] else None
+    assert (hit != hit_t).sum() <= 1
+    for i in np.flatnonzero(hit != hit_t):  # the side that hit must have hit near an edge
         tri = mesh.tris[k[i]][None].astype(float) if hit[i] else mesh.tri[tri_id[ray_id == i]]
         ti = t[i] if hit[i] else tt[i]
-        assert barycentric_margin(tri, o[i][None], d[i][None], np.array([ti]))[0] < GRAZING, j
+        assert barycentric_margin(tri, o[i][None], d[i][None], np.array([ti]))[0] < GRAZING, i
     both = hit & hit_t
     np.testing.assert_allclose(t[both], tt[both], rtol=1e-4)
 
