@@ -30,7 +30,7 @@ def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: in
     from ..local import frame_path
     from .head import Head
     from .submit import submit_request
-    from .redis_server import EmbeddedRedis
+    from .redis_server import EmbeddedRedis, die_with_parent
 
     state = Path(tempfile.mkdtemp(prefix="lampyr-render-"))
     server = EmbeddedRedis(state / "redis").start()
@@ -55,7 +55,7 @@ def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: in
             [sys.executable, "-m", "lampyr.cli", "worker", server.url, "--cores", str(workers),
              "--name", "local"],
             stdin=subprocess.DEVNULL, stdout=log, stderr=subprocess.STDOUT,
-            start_new_session=True, cwd=state)
+            start_new_session=True, cwd=state, preexec_fn=die_with_parent())
         batch = batch_samples or max(1, shot.samples)
         job = submit_request(head.r, Path(shot_path), overrides, str(out), 0, tile_size, batch)
         written: list[Path] = []

@@ -13,6 +13,7 @@ import os
 import secrets
 import socket
 import subprocess
+import sys
 import time
 from pathlib import Path
 from urllib.parse import quote
@@ -24,6 +25,24 @@ LOOPBACK = {"127.0.0.1", "localhost", "::1"}
 
 class RedisServerError(LampyrError):
     """The embedded Redis server could not be started."""
+
+
+def die_with_parent():
+    """A `preexec_fn` that has Linux send SIGTERM to the child when its parent dies, so that a
+    head or render killed outright (SIGKILL) leaves no Redis or worker behind; None elsewhere."""
+    if not sys.platform.startswith("linux"):
+        return None
+    import ctypes
+    import signal
+
+    # loaded here, in the parent: the child between fork and exec must not import or allocate
+    prctl = ctypes.CDLL(None, use_errno=True).prctl
+    sigterm = int(signal.SIGTERM)
+
+    def set_pdeathsig():
+        prctl(1, sigterm, 0, 0, 0)  # PR_SET_PDEATHSIG = 1 (prctl(2))
+
+    return set_pdeathsig
 
 
 def server_binary() -> Path:
@@ -104,7 +123,8 @@ class EmbeddedRedis:
 
     def start(self, timeout: float = 10.0) -> "EmbeddedRedis":
         self.proc = subprocess.Popen(self.args(), stdin=subprocess.DEVNULL,
-                                     stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+                                     stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+                                     start_new_session=True, preexec_fn=die_with_parent())
         self.wait_ready(timeout)
         return self
 

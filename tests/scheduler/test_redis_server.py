@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import sys
+
 import pytest
 import redis
 
@@ -60,3 +62,32 @@ def test_an_unauthenticated_client_is_refused(lan_server):
 
 def test_the_printed_address_carries_the_password(lan_server):
     assert redis.Redis.from_url(lan_server.url).ping()
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="PR_SET_PDEATHSIG is Linux's")
+def test_the_embedded_redis_dies_with_a_head_killed_outright(tmp_path):
+    import os
+    import signal
+    import subprocess
+    import time
+
+    # a head stand-in: starts the embedded server, prints its pid, then waits to be killed
+    code = ("import sys, time; from lampyr.scheduler.redis_server import EmbeddedRedis; "
+            f"s = EmbeddedRedis({str(tmp_path / 'redis')!r}).start(); "
+            "print(s.proc.pid, flush=True); time.sleep(60)")
+    head = subprocess.Popen([sys.executable, "-c", code], stdout=subprocess.PIPE, text=True)
+    pid = int(head.stdout.readline())
+    os.kill(head.pid, signal.SIGKILL)
+    head.wait()
+    deadline = time.monotonic() + 10
+    while time.monotonic() < deadline:
+        try:
+            os.kill(pid, 0)
+        except ProcessLookupError:
+            break
+        if open(f"/proc/{pid}/stat").read().split()[2] == "Z":  # exited, not yet reaped
+            break
+        time.sleep(0.05)
+    else:
+        os.kill(pid, signal.SIGKILL)
+        raise AssertionError("redis-server outlived its head")
