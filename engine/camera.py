@@ -15,6 +15,7 @@ import numpy as np
 from numba import njit
 
 from .animation import camera_at
+from .lobes import concentric_disk
 
 
 def compile_camera(camera, frame: int, shutter_open: float, shutter_close: float) -> np.ndarray:
@@ -34,22 +35,6 @@ def compile_camera(camera, frame: int, shutter_open: float, shutter_close: float
 def _normalize(x, y, z):
     n = math.sqrt(x * x + y * y + z * z)
     return x / n, y / n, z / n
-
-
-@njit(cache=True)
-def concentric_disk(u, v):
-    """Map the unit square to the unit disk keeping strata (Shirley & Chiu 1997)."""
-    a = 2.0 * u - 1.0
-    b = 2.0 * v - 1.0
-    if a == 0.0 and b == 0.0:
-        return 0.0, 0.0
-    if abs(a) > abs(b):
-        r = a
-        phi = (math.pi / 4.0) * (b / a)
-    else:
-        r = b
-        phi = math.pi / 2.0 - (math.pi / 4.0) * (a / b)
-    return r * math.cos(phi), r * math.sin(phi)
 
 
 @njit(cache=True)
