@@ -4,7 +4,7 @@
 
 Sections:
   1. kernel start-up: compile cold (empty cache folder) vs load from the cache, in fresh processes
-  2. courtyard: samples/s with one thread and with all cores
+  2. courtyard: samples/s with one thread and with all cores; the same on a 1.3 M-triangle mesh
   3. sampler quality: mean squared error at equal samples, Owen-scrambled Sobol vs independent
   4. ray casting and BVH build against Embree (bench/rays.py)
 """
@@ -78,6 +78,71 @@ def courtyard(small: bool) -> None:
           ["threads", "pixels x spp", "seconds", "k samples/s", "speed-up"], rows)
 
 
+def big_mesh(small: bool) -> None:
+    """Samples/s of the full integrator on a ~1.3 M-triangle mesh (an icosphere on a floor)."""
+    import numba
+    import trimesh
+
+    from lampyr.engine.render import FrameRenderer, Tile
+    from lampyr.engine.shot import load_shot
+
+    subdiv = 6 if small else 8  # 82 k or 1.31 M faces
+    w, h, spp = (64, 36, 4) if small else (320, 180, 16)
+    with tempfile.TemporaryDirectory() as tmp:
+        trimesh.creation.icosphere(subdivisions=subdiv).export(Path(tmp) / "ball.ply")
+        (Path(tmp) / "big.toml").write_text(f"""
+name = "big"
+frames = 1
+[image]
+width = {w}
+height = {h}
+[sampling]
+samples = {spp}
+[camera]
+position = [0, 1.2, 4]
+target = [0, 0.8, 0]
+[environment]
+color = [0.4, 0.45, 0.55]
+[[material]]
+name = "clay"
+type = "diffuse"
+color = [0.7, 0.5, 0.4]
+[[material]]
+name = "brass"
+type = "metal"
+color = [0.9, 0.7, 0.4]
+roughness = 0.3
+[[object]]
+name = "ball"
+material = "brass"
+mesh = "ball.ply"
+translate = [0, 1, 0]
+[[object]]
+name = "floor"
+material = "clay"
+sphere = {{ center = [0, -1000, 0], radius = 1000 }}
+""")
+        shot = load_shot(Path(tmp) / "big.toml")
+        t0 = time.perf_counter()
+        renderer = FrameRenderer(shot, 1)
+        setup = time.perf_counter() - t0
+        renderer.render(Tile(0, 0, 4, 4), 0, 1)
+        rows = []
+        all_threads = numba.config.NUMBA_NUM_THREADS
+        base = None
+        for threads in sorted({1, all_threads}):
+            numba.set_num_threads(threads)
+            t0 = time.perf_counter()
+            film = renderer.render(Tile(0, 0, w, h), 0, spp)
+            dt = time.perf_counter() - t0
+            rate = film.n.sum() / dt
+            base = base or rate
+            rows.append([threads, f"{w}x{h}x{spp}", f"{dt:.2f}", f"{rate / 1e3:,.0f}", f"{rate / base:.2f}"])
+        numba.set_num_threads(all_threads)
+    table(f"2b. icosphere of {renderer.geometry.triangle_count:,} triangles (scene set-up {setup:.1f} s)",
+          ["threads", "pixels x spp", "seconds", "k samples/s", "speed-up"], rows)
+
+
 def sampler_quality(small: bool) -> None:
     from lampyr.engine.compiler import compile_geometry
     from lampyr.engine.render import render_frame
@@ -116,9 +181,10 @@ def rays(small: bool) -> None:
 def main(argv=None) -> None:
     ap = argparse.ArgumentParser(description="lampyr engine benchmark")
     ap.add_argument("--small", action="store_true", help="quick, smaller sizes")
-    ap.add_argument("--only", choices=["startup", "courtyard", "sampler", "rays"], default=None)
+    ap.add_argument("--only", choices=["startup", "courtyard", "bigmesh", "sampler", "rays"], default=None)
     args = ap.parse_args(argv)
     sections = {"startup": lambda: startup(), "courtyard": lambda: courtyard(args.small),
+                "bigmesh": lambda: big_mesh(args.small),
                 "sampler": lambda: sampler_quality(args.small), "rays": lambda: rays(args.small)}
     for name, fn in sections.items():
         if args.only in (None, name):
