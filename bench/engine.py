@@ -34,6 +34,30 @@ def table(title: str, header: list[str], rows: list[list]) -> None:
         print("  ".join(str(x).ljust(w) for x, w in zip(row, widths)))
 
 
+THREAD_HEADER = ["threads", "pixels x spp", "seconds", "k samples/s", "speed-up"]
+
+
+def thread_rows(renderer, w: int, h: int, spp: int) -> list[list]:
+    """Render the whole w × h image at spp with one thread and with all; a table row each."""
+    import numba
+
+    from lampyr.engine.render import Tile
+
+    renderer.render(Tile(0, 0, 4, 4), 0, 1)  # load the kernels first
+    all_threads = numba.config.NUMBA_NUM_THREADS
+    rows, base = [], None
+    for threads in sorted({1, all_threads}):
+        numba.set_num_threads(threads)
+        t0 = time.perf_counter()
+        film = renderer.render(Tile(0, 0, w, h), 0, spp)
+        dt = time.perf_counter() - t0
+        rate = film.n.sum() / dt
+        base = base or rate
+        rows.append([threads, f"{w}x{h}x{spp}", f"{dt:.2f}", f"{rate / 1e3:,.0f}", f"{rate / base:.2f}"])
+    numba.set_num_threads(all_threads)
+    return rows
+
+
 def startup() -> None:
     code = ("import time; t=time.perf_counter(); from lampyr.engine.render import warm_up; "
             "warm_up(); print(time.perf_counter()-t)")
@@ -50,10 +74,8 @@ def startup() -> None:
 
 
 def courtyard(small: bool) -> None:
-    import numba
-
     from lampyr.engine.compiler import compile_geometry
-    from lampyr.engine.render import FrameRenderer, Tile
+    from lampyr.engine.render import FrameRenderer
     from lampyr.engine.shot import load_shot
 
     w, h = (80, 45) if small else (320, 180)
@@ -61,29 +83,15 @@ def courtyard(small: bool) -> None:
     shot = load_shot(DEMO).with_overrides(width=w, height=h, samples=spp)
     geom = compile_geometry(shot)
     renderer = FrameRenderer(shot, 12, geom)
-    renderer.render(Tile(0, 0, 4, 4), 0, 1)  # load kernels
-    rows = []
-    all_threads = numba.config.NUMBA_NUM_THREADS
-    base = None
-    for threads in sorted({1, all_threads}):
-        numba.set_num_threads(threads)
-        t0 = time.perf_counter()
-        film = renderer.render(Tile(0, 0, w, h), 0, spp)
-        dt = time.perf_counter() - t0
-        rate = film.n.sum() / dt
-        base = base or rate
-        rows.append([threads, f"{w}x{h}x{spp}", f"{dt:.2f}", f"{rate / 1e3:,.0f}", f"{rate / base:.2f}"])
-    numba.set_num_threads(all_threads)
-    table("2. courtyard frame 12 (triangles: %d)" % geom.triangle_count,
-          ["threads", "pixels x spp", "seconds", "k samples/s", "speed-up"], rows)
+    table("2. courtyard frame 12 (triangles: %d)" % geom.triangle_count, THREAD_HEADER,
+          thread_rows(renderer, w, h, spp))
 
 
 def big_mesh(small: bool) -> None:
     """Samples/s of the full integrator on a ~1.3 M-triangle mesh (an icosphere on a floor)."""
-    import numba
     import trimesh
 
-    from lampyr.engine.render import FrameRenderer, Tile
+    from lampyr.engine.render import FrameRenderer
     from lampyr.engine.shot import load_shot
 
     subdiv = 6 if small else 8  # 82 k or 1.31 M faces
@@ -126,21 +134,9 @@ sphere = {{ center = [0, -1000, 0], radius = 1000 }}
         t0 = time.perf_counter()
         renderer = FrameRenderer(shot, 1)
         setup = time.perf_counter() - t0
-        renderer.render(Tile(0, 0, 4, 4), 0, 1)
-        rows = []
-        all_threads = numba.config.NUMBA_NUM_THREADS
-        base = None
-        for threads in sorted({1, all_threads}):
-            numba.set_num_threads(threads)
-            t0 = time.perf_counter()
-            film = renderer.render(Tile(0, 0, w, h), 0, spp)
-            dt = time.perf_counter() - t0
-            rate = film.n.sum() / dt
-            base = base or rate
-            rows.append([threads, f"{w}x{h}x{spp}", f"{dt:.2f}", f"{rate / 1e3:,.0f}", f"{rate / base:.2f}"])
-        numba.set_num_threads(all_threads)
+        rows = thread_rows(renderer, w, h, spp)
     table(f"2b. icosphere of {renderer.geometry.triangle_count:,} triangles (scene set-up {setup:.1f} s)",
-          ["threads", "pixels x spp", "seconds", "k samples/s", "speed-up"], rows)
+          THREAD_HEADER, rows)
 
 
 def sampler_quality(small: bool) -> None:

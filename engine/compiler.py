@@ -19,7 +19,7 @@ from .bvh import build_bvh, pack_triangles
 from .camera import compile_camera
 from .lights import build_env_distribution
 from .scene import KIND_MESH, KIND_SPHERE, Scene
-from .transforms import apply_placement, pack_placement
+from .transforms import apply_placement, pack_placement, placement_at
 
 MATERIAL_TYPES = {"diffuse": DIFFUSE, "metal": METAL, "glass": GLASS, "plastic": PLASTIC}
 DEFAULT_GREY = (0.8, 0.8, 0.8)  # rule of thumb: a mid-light grey for meshes without a colour
@@ -255,7 +255,5 @@ def compile_frame(shot, geom: Geometry, frame: int):
 
 
 def _lerp_row(motion: np.ndarray, s: float) -> np.ndarray:
-    """Placement row at shutter fraction s (numpy twin of transforms.placement_at)."""
-    from .transforms import placement_at
-
+    """Placement row (10,) at shutter fraction s of a (2, 10) open/close pair."""
     return np.array(placement_at(motion, s))

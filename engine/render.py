@@ -9,7 +9,6 @@ from __future__ import annotations
 import time
 from dataclasses import dataclass
 
-import numpy as np
 
 from .compiler import Geometry, compile_frame, compile_geometry
 from .film import Film
@@ -100,7 +99,3 @@ def warm_up() -> float:
     render_frame(shot, 1, 0, 1)
     return time.perf_counter() - start
 
-
-def as_array(film: Film) -> np.ndarray:
-    """Mean beauty (h, w, 3) float64 of a film (a convenience for tests and previews)."""
-    return film.mean()

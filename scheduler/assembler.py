@@ -96,7 +96,7 @@ class JobRun:
         if not self.partial_frames and not complete:
             return None
         from ..engine.film import Film
-        from ..local import write_frame_files
+        from ..frames import write_frame_files
 
         film = Film.zeros(self.shot.height, self.shot.width)
         for i, t in enumerate(self.tiles):

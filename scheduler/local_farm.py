@@ -24,10 +24,10 @@ def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: in
                    batch_samples: int | None = None) -> list[Path]:
     """Render every frame of `shot` through a local farm; returns the EXR paths written.
 
-    Same contract as `lampyr.local.render_local`: on_progress(samples_done, samples_total) and
+    on_progress(samples_done, samples_total) and
     on_frame(path) are called from this thread.
     """
-    from ..local import frame_path
+    from ..frames import frame_path
     from .head import Head
     from .submit import submit_request
     from .redis_server import EmbeddedRedis, die_with_parent

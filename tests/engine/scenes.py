@@ -41,3 +41,17 @@ def load(tmp_path: Path, text: str, name: str = "shot.toml"):
     path = tmp_path / name
     path.write_text(text)
     return load_shot(path)
+
+
+def render_through_exr(shot, tmp_path: Path) -> dict:
+    """Render frame 1, write it as a frame file, and read its channels back with the OpenEXR
+    library itself: {name: (h, w) float64}. Tests take their standard errors from `var.*`."""
+    import OpenEXR
+
+    from lampyr.engine.exr import write_frame
+    from lampyr.engine.render import render_frame
+
+    path = tmp_path / "frame.exr"
+    write_frame(path, render_frame(shot, 1), {"shot": "test"})
+    with OpenEXR.File(str(path), separate_channels=True) as f:
+        return {k: np.array(v.pixels, dtype=np.float64) for k, v in f.channels().items()}

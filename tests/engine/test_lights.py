@@ -10,13 +10,10 @@ from __future__ import annotations
 import math
 
 import numpy as np
-import OpenEXR
 import pytest
 from scipy import integrate
 
-from lampyr.engine.render import render_frame
-
-from .scenes import load, shot_text, write_quad
+from .scenes import load, render_through_exr, shot_text, write_quad
 
 
 def _write_square(path, half, y):
@@ -51,12 +48,8 @@ def test_corner_factor_matches_quadrature():
 
 
 def _render_channels(shot, tmp_path):
-    from lampyr.engine.exr import write_frame
-
-    path = tmp_path / "frame.exr"
-    write_frame(path, render_frame(shot, 1), {"shot": "test"})
-    with OpenEXR.File(str(path), separate_channels=True) as f:
-        ch = {k: np.array(v.pixels, dtype=np.float64) for k, v in f.channels().items()}
+    """Green mean and its standard error per pixel, (h, w) each, read from the frame file."""
+    ch = render_through_exr(shot, tmp_path)
     return ch["G"], np.sqrt(ch["var.G"] / ch["spp"])
 
 
@@ -107,7 +100,6 @@ mesh = "light.obj"
 def _sky(h=16, w=32):
     """A sky with a vertical gradient, a warm band and one bright spot: (h, w, 3) float32."""
     v = (np.arange(h) + 0.5) / h
-    u = (np.arange(w) + 0.5) / w
     sky = np.zeros((h, w, 3), np.float32)
     sky[...] = (0.2 + 0.6 * (1 - v))[:, None, None]
     sky[:, : w // 4, 0] += 0.5
