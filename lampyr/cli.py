@@ -154,7 +154,12 @@ def _job_or_fail(r, job):
               show_default=True, help="Seconds a silent worker keeps its batches.")
 @click.option("--attempts", "max_attempts", type=click.IntRange(1, 100), default=3,
               show_default=True, help="Starts of a batch before it is marked failed.")
-def head(state, redis_url, listen, port, lease_seconds, max_attempts):
+@click.option("--metrics-port", type=click.IntRange(0, 65535), default=None,
+              help="Serve Prometheus metrics at http://ADDR:PORT/metrics (0: a free port).")
+@click.option("--metrics-listen", default="127.0.0.1", show_default=True, metavar="ADDR",
+              help="Address the metrics endpoint binds to.")
+def head(state, redis_url, listen, port, lease_seconds, max_attempts, metrics_port,
+         metrics_listen):
     """Run the farm's head: Redis, planner, merger and lease keeper."""
     from .scheduler.service import run_head
     from .scheduler.store import default_state
@@ -166,7 +171,9 @@ def head(state, redis_url, listen, port, lease_seconds, max_attempts):
         click.echo(f"Workers join with:  lampyr worker {address}")
         sys.stdout.flush()
 
-    run_head(state, redis_url, listen, port, lease_seconds, max_attempts, on_ready=ready)
+    metrics = None if metrics_port is None else (metrics_listen, metrics_port)
+    run_head(state, redis_url, listen, port, lease_seconds, max_attempts, on_ready=ready,
+             metrics=metrics)
 
 
 @cli.command()

@@ -29,6 +29,9 @@ from .assembler import JobRun
 from .commands import JobCommands
 from .jobs import JobFolder, list_jobs
 from .leases import LeaseKeeper
+from .metrics import HeadCounters
+from .metrics import publish as publish_metrics
+from .metrics import snapshot as metrics_snapshot
 from .submit import submit_request  # noqa: F401  (the client side of `cmd_submit`)
 
 log = logging.getLogger("lampyr.head")
@@ -70,6 +73,7 @@ class Head(JobCommands):
         self._reap_at = 0.0
         self._epoch_at = 0.0
         self._cores = (0.0, 0)
+        self.metrics = HeadCounters()
 
     # -- start-up ---------------------------------------------------------------------------
 
@@ -228,6 +232,7 @@ class Head(JobCommands):
             b = entry.batch if entry else _batch_of(run, bid)
             if data is not None and b is not None:
                 if run.merge(b, from_bytes(data), note.get("seconds", 0.0), sync_folder=False):
+                    self.metrics.merged(b.w * b.h * b.count)
                     folders.add(run.folder.tile(b.frame, b.tile).parent)
                     frames.add((job, frame))
                 self.leases.pop(bid)
@@ -255,9 +260,11 @@ class Head(JobCommands):
         entry = self.leases.get(bid)
         if entry is None or entry.ticket != ticket or run.is_done(entry.batch):
             return  # a message the head had already replaced
+        self.metrics.batch_errors += 1
         attempts = int(self.r.hget(P.K_ATTEMPTS, bid) or 0)
         if attempts >= self.max_attempts:
             self._finish(bid)
+            self.metrics.batches_failed += 1
             run.rec.failed[bid] = f"{error} (after {attempts} attempt(s))"
             self._save(run)
             log.warning("batch %s failed: %s", bid, error)
@@ -276,9 +283,11 @@ class Head(JobCommands):
             if run is None or run.is_done(entry.batch):
                 self._finish(entry.batch.id)
                 continue
+            self.metrics.lease_expiries += 1
             attempts = int(self.r.hget(P.K_ATTEMPTS, entry.batch.id) or 0)
             if attempts >= self.max_attempts:
                 self._finish(entry.batch.id)
+                self.metrics.batches_failed += 1
                 run.rec.failed[entry.batch.id] = (f"its worker stopped answering {attempts} "
                                                   "time(s) (lease expired)")
                 self._save(run)
@@ -365,6 +374,7 @@ class Head(JobCommands):
             }
             pipe.delete(P.k_job(run.rec.id))
             pipe.hset(P.k_job(run.rec.id), mapping={k: json.dumps(v) for k, v in st.items()})
+        publish_metrics(pipe, metrics_snapshot(self))
         pipe.execute()
 
 

@@ -28,6 +28,7 @@ Redis keys (prefix `lampyr:`):
 | `host:<name>` | string, TTL | worker | JSON heartbeat: host, cores, engine version, pid |
 | `slot:<name>:<pid>` | string, TTL | worker | JSON: the batch a worker process renders and its speed |
 | `warm:<name>` | set | worker | pids of a worker's pool processes whose kernels are loaded |
+| `metrics` | string | head | JSON snapshot of the head's counters and queue (metrics.py) |
 """
 
 from __future__ import annotations
@@ -61,6 +62,7 @@ K_INFLIGHT = key("inflight")
 K_ATTEMPTS = key("attempts")
 K_RESULTS = key("results")
 K_PROCESSING = key("results", "processing")
+K_METRICS = key("metrics")
 
 
 def k_bundle(sha: str) -> str:

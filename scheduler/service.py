@@ -12,12 +12,14 @@ from .redis_server import LOOPBACK, EmbeddedRedis
 
 def run_head(state: Path, redis_url: str | None = None, listen: str = "127.0.0.1",
              port: int = 0, lease_seconds: float = 120.0, max_attempts: int = 3,
-             on_ready=None, stop: threading.Event | None = None) -> None:
+             on_ready=None, stop: threading.Event | None = None,
+             metrics: tuple[str, int] | None = None) -> None:
     """Run a head until SIGTERM/SIGINT (or `stop` is set).
 
     redis_url: an existing Redis to use; otherwise an embedded one is started under
     `<state>/redis`, bound to `listen` (password-protected beyond loopback).
     on_ready(address): called once the head serves, with the address workers need.
+    metrics: (host, port) to serve the Prometheus endpoint on (metrics.py); None: not served.
     """
     from .head import Head
 
@@ -25,6 +27,7 @@ def run_head(state: Path, redis_url: str | None = None, listen: str = "127.0.0.1
     state = Path(state)
     state.mkdir(parents=True, exist_ok=True)
     server = None
+    exporter = None
     if redis_url is None:
         server = EmbeddedRedis(state / "redis", bind=listen, port=port).start()
         redis_url = server.url
@@ -40,10 +43,18 @@ def run_head(state: Path, redis_url: str | None = None, listen: str = "127.0.0.1
         head = Head(state, redis_url, lease_seconds=lease_seconds, max_attempts=max_attempts,
                     redis_server=server)
         head.start()
+        if metrics is not None:
+            from .metrics import MetricsServer
+
+            exporter = MetricsServer(redis_url, *metrics)
+            logging.getLogger("lampyr.head").info(
+                "metrics: http://%s:%d/metrics", metrics[0], exporter.port)
         if on_ready:
             on_ready(redis_url)
         head.run(stop=stop.is_set)
     finally:
+        if exporter is not None:
+            exporter.close()
         if server is not None:
             server.stop()
 

@@ -134,8 +134,10 @@ class Farm:
         self.procs.append(proc)
         return proc
 
-    def start_head(self, lease: float = 3.0, attempts: int = 3, embedded: bool = False) -> str:
-        args = ["head", "--state", self.state, "--lease", lease, "--attempts", attempts]
+    def start_head(self, lease: float = 3.0, attempts: int = 3, embedded: bool = False,
+                   extra=()) -> str:
+        """Start `lampyr head` (extra: more command-line arguments); returns the farm's URL."""
+        args = ["head", "--state", self.state, "--lease", lease, "--attempts", attempts, *extra]
         if not embedded:
             args += ["--redis", self.url]
         self.head_proc = self._spawn(args, "head.log")
