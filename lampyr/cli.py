@@ -203,17 +203,23 @@ def worker(address, cores, pool, name):
               help="Tile edge in pixels (default: chosen from a probe render).")
 @click.option("--batch", "batch_samples", type=click.IntRange(1, 1_048_576), default=None,
               help="Samples per batch (default: chosen from a probe render).")
+@click.option("--until", "until", default=None, metavar="TIME",
+              help="Deadline: a local time (07:00, its next occurrence) or a date-time "
+                   "(2026-12-03T07:00). The head spends the samples the farm can render by then "
+                   "and stops there with every frame written.")
 @click.option("--head", "head_addr", default=None, help=_HEAD_HELP)
 @click.option("--state", type=click.Path(file_okay=False, path_type=Path), default=None, help=_STATE_HELP)
 def submit(shot, out, priority, samples, frames, width, height, tile_size, batch_samples,
-           head_addr, state):
+           until, head_addr, state):
     """Queue SHOT on the farm; prints the job id as the last line."""
+    from .scheduler.deadline import parse_until
     from .scheduler.submit import submit_request
 
+    deadline = None if until is None else parse_until(until)
     r = _farm(head_addr, state)
     overrides = _overrides(samples, _parse_frames(frames), width, height)
     job = submit_request(r, shot, overrides, None if out is None else str(out), priority,
-                         tile_size, batch_samples)
+                         tile_size, batch_samples, deadline=deadline)
     click.echo(job)
 
 
@@ -259,6 +265,10 @@ def _print_job(st):
                f"{100 * done / total:5.1f}% of {st['samples']} spp  "
                f"{st['samples_per_second'] / 1e3:,.1f} k samples/s{eta}  "
                f"failed batches: {len(st['failed'])}")
+    if st.get("deadline") is not None:
+        from .scheduler.deadline import deadline_line
+
+        click.echo(f"  {deadline_line(st)}")
 
 
 def _job_command(op, job, head_addr, state, **args):

@@ -21,7 +21,8 @@ class JobCommands:
 
     def cmd_submit(self, job: str, bundle: str, shot: str, overrides: dict, out: str | None,
                    priority: int = 0, tile_size: int | None = None,
-                   batch_samples: int | None = None, submitted: float | None = None) -> None:
+                   batch_samples: int | None = None, submitted: float | None = None,
+                   deadline: float | None = None) -> None:
         from ..engine.shot import load_shot
         from .bundle import unpack
         from .planner import choose_layout, first_pass_samples, probe_cost, sample_ranges
@@ -52,7 +53,8 @@ class JobCommands:
                         out=out or str(folder.root / "frames"), priority=int(priority),
                         submitted=submitted or time.time(), tile_size=int(tile_size),
                         batch_samples=int(batch_samples), samples=int(spec.samples),
-                        ranges=ranges)
+                        ranges=ranges,
+                        deadline=None if deadline is None else float(deadline))
         folder.save(rec)
         self.jobs[job] = JobRun(self.state, rec, self.partial_frames)
         self.r.zadd(P.K_JOBS, {job: rec.submitted})

@@ -27,6 +27,7 @@ from . import protocol as P
 from .accumulator import write_atomic
 from .assembler import JobRun
 from .commands import JobCommands
+from .deadline_keeper import DeadlineKeeper
 from .jobs import JobFolder, list_jobs
 from .leases import LeaseKeeper
 from .metrics import HeadCounters
@@ -74,6 +75,7 @@ class Head(JobCommands):
         self._epoch_at = 0.0
         self._cores = (0.0, 0)
         self.metrics = HeadCounters()
+        self.deadlines = DeadlineKeeper(self)  # forecasts, holds back, stops at deadlines
 
     # -- start-up ---------------------------------------------------------------------------
 
@@ -172,6 +174,7 @@ class Head(JobCommands):
         busy = self.take_commands()
         busy |= self.take_results() > 0
         self.reap()
+        self.deadlines.tick()
         busy |= self.dispatch() > 0
         self.publish()
         return busy
@@ -324,6 +327,8 @@ class Head(JobCommands):
                 b = run.pending.popleft()
                 if run.is_done(b) or b.id in self.leases:
                     continue
+                if not self.deadlines.admit(run, b):  # beyond what the night affords
+                    continue
                 self._send(b)
                 sent += 1
         return sent
@@ -344,7 +349,7 @@ class Head(JobCommands):
         if run.rec.cancelled:
             return "cancelled"
         queued = [e for e in self.leases.table.values() if e.batch.job == run.rec.id]
-        if not run.pending and not queued:
+        if not run.pending and not queued and not self.deadlines.waiting(run):
             return "failed" if run.rec.failed else "done"
         if run.rec.paused:
             return "paused"
@@ -372,6 +377,7 @@ class Head(JobCommands):
                 "submitted": run.rec.submitted,
                 "tile_size": run.rec.tile_size, "batch_samples": run.rec.batch_samples,
             }
+            st.update(self.deadlines.status(run))  # deadline, deadline_reached, forecast
             pipe.delete(P.k_job(run.rec.id))
             pipe.hset(P.k_job(run.rec.id), mapping={k: json.dumps(v) for k, v in st.items()})
         publish_metrics(pipe, metrics_snapshot(self))

@@ -32,6 +32,7 @@ class JobRecord:
     """A submitted job. overrides: `Shot.with_overrides` arguments (frames as [first, last]).
 
     samples: the samples per pixel the job reaches; failed: batch id → error text.
+    A record written before a field existed loads with that field's default.
     """
 
     id: str
@@ -50,6 +51,8 @@ class JobRecord:
     cancelled: bool = False
     failed: dict = field(default_factory=dict)
     extra: dict = field(default_factory=dict)  # "frame/tile" → more ranges for that tile only
+    deadline: float | None = None  # epoch seconds the frames are wanted by (deadline.py)
+    deadline_reached: bool = False  # stopped at the deadline with the samples it had
 
     def to_json(self) -> str:
         return json.dumps(asdict(self), indent=1, sort_keys=True)

@@ -11,8 +11,11 @@ from .jobs import new_job_id
 
 
 def submit_request(r, shot_path: Path, overrides: dict, out: str | None, priority: int = 0,
-                   tile_size: int | None = None, batch_samples: int | None = None) -> str:
-    """Validate and pack a shot, store its bundle and ask the head to run it; returns the job id."""
+                   tile_size: int | None = None, batch_samples: int | None = None,
+                   deadline: float | None = None) -> str:
+    """Validate and pack a shot, store its bundle and ask the head to run it; returns the job id.
+
+    deadline: epoch seconds the frames are wanted by (`deadline.parse_until`), or None."""
     from ..engine.shot import load_shot
     from .bundle import pack
     from .store import send_command, store_bundle
@@ -32,10 +35,12 @@ def submit_request(r, shot_path: Path, overrides: dict, out: str | None, priorit
              "frames_done": 0, "samples": spec.samples, "pixel_samples_done": 0,
              "pixel_samples_total": len(spec.frames()) * spec.width * spec.height * spec.samples,
              "samples_per_second": 0.0, "eta_seconds": None, "priority": priority,
-             "out": out, "failed": [], "submitted": time.time()}
+             "out": out, "failed": [], "submitted": time.time(), "deadline": deadline,
+             "deadline_reached": False, "forecast": None}
     r.hset(P.k_job(job), mapping={k: json.dumps(v) for k, v in first.items()})
     r.zadd(P.K_JOBS, {job: first["submitted"]})
     send_command(r, "submit", job=job, bundle=sha, shot=member, overrides=o,
                  out=None if out is None else str(Path(out).resolve()), priority=priority,
-                 tile_size=tile_size, batch_samples=batch_samples, submitted=time.time())
+                 tile_size=tile_size, batch_samples=batch_samples, submitted=time.time(),
+                 deadline=deadline)
     return job

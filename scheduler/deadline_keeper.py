@@ -1,0 +1,256 @@
+"""The head's side of deadlines: forecast the farm, hold back what the night cannot afford,
+stop a job at its deadline with every frame written.
+
+`Head` calls three hooks:
+- `tick()` every step: a job whose deadline has come is stopped (queued batches dropped, every
+  frame file written with what its tiles hold, `deadline_reached` set; the job ends "done");
+  every EVERY seconds the forecast and each deadline job's plan are recomputed;
+- `admit(run, b)` in dispatch: False (and the batch is kept aside) when the batch goes beyond
+  its tile's target in the current plan; a later plan that affords it puts it back in order;
+- `waiting(run)`: batches kept aside, so a job with a deadline still to come is not "done"
+  just because the plan is reached early (a better forecast may afford more).
+
+The policy itself is `deadline.plan_night`; the throughput is `forecast.Forecaster`. Jobs share
+the farm in dispatch order: a deadline job gets the capacity left after the remaining work of
+the jobs queued before it. Tile noise is the mean relative standard error of the tile's
+luminance (`Film.rel_noise`, as `refine --noise` judges it), read from the tile accumulator when
+its sample count changed, a bounded number of tiles per recompute.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import time
+
+from . import protocol as P
+from .accumulator import TileAccumulator, samples_held
+from .deadline import TileState, night_forecast, reached
+from .forecast import Forecaster, read_hosts
+from .planner import TARGET_SECONDS
+
+log = logging.getLogger("lampyr.head")
+
+EVERY = 3.0  # seconds between forecasts (workers come and go on a scale of minutes)
+NOISE_READS = 64  # tile accumulators read for their noise per recompute, at most
+HORIZON = 36 * 3600.0  # how far ahead the working windows reach
+
+
+class DeadlineKeeper:
+    def __init__(self, head, every: float = EVERY):
+        self.head = head
+        self.every = every
+        self.forecaster = Forecaster()
+        self.plans: dict = {}  # job → NightPlan
+        self.fields: dict = {}  # job → the `forecast` status object
+        self.deferred: dict = {}  # job → [Batch] beyond the plan's targets
+        self.noise: dict = {}  # (job, frame, tile) → (noise, samples it was measured at)
+        self.stopped: dict = {}  # job → its sample plan when stopped (a refine changes it)
+        self._at = -math.inf
+        self._merged: dict = {}  # job → JobRun.samples_merged at the last recompute
+
+    # -- hooks --------------------------------------------------------------------------------
+
+    def active(self, run) -> bool:
+        rec = run.rec
+        return rec.deadline is not None and not rec.deadline_reached and not rec.cancelled
+
+    def tick(self, now: float | None = None) -> None:
+        now = time.time() if now is None else now
+        for run in list(self.head.jobs.values()):
+            if run.rec.deadline_reached:
+                self._keep_stopped(run)
+            elif self.active(run) and reached(now, run.rec.deadline):
+                self.stop(run)
+        if time.monotonic() - self._at >= self.every:
+            self.recompute(now)
+
+    def admit(self, run, b) -> bool:
+        if not self.active(run):
+            return True
+        plan = self.plans.get(run.rec.id)
+        if plan is None:
+            self.recompute()
+            plan = self.plans.get(run.rec.id)
+        if plan is None or plan.admits((b.frame, b.tile), b.first, b.count):
+            return True
+        self.deferred.setdefault(run.rec.id, []).append(b)
+        return False
+
+    def waiting(self, run) -> bool:
+        return self.active(run) and bool(self.deferred.get(run.rec.id))
+
+    def status(self, run) -> dict:
+        return {"deadline": run.rec.deadline, "deadline_reached": bool(run.rec.deadline_reached),
+                "forecast": self.fields.get(run.rec.id)}
+
+    # -- the forecast -------------------------------------------------------------------------
+
+    def recompute(self, now: float | None = None) -> None:
+        self._at = time.monotonic()
+        now = time.time() if now is None else now
+        jobs = self.head.jobs
+        if not any(self.active(run) for run in jobs.values()):
+            return
+        hosts, speeds = read_hosts(self.head.r, P.key("host", ""), P.key("slot", ""))
+        for job, run in jobs.items():
+            merged = run.samples_merged - self._merged.get(job, 0)
+            if merged > 0:
+                self.forecaster.merged(now, merged)
+            self._merged[job] = run.samples_merged
+        fc = self.forecaster
+        fc.update(now, hosts, speeds, saturated=self.head.leases.waiting() > 0)
+        ahead = 0.0  # pixel-samples the jobs queued before this one still need
+        for run in sorted(jobs.values(), key=lambda r: (-r.rec.priority, r.rec.submitted)):
+            inflight = self._inflight(run)
+            if not self.active(run):
+                if run.pending and not run.rec.paused and not run.rec.cancelled:
+                    ahead += sum(b.w * b.h * b.count for b in run.pending)
+                    ahead += sum(inflight.values())
+                continue
+            fc.prior = _prior_speed(run)
+            spent_before = ahead + sum(inflight.values())
+            t0 = run.tiles[0]
+            plan, f = night_forecast(self.tile_states(run, inflight), fc, now, run.rec.deadline,
+                                     t0.w * t0.h * run.rec.batch_samples, spent_before, HORIZON)
+            self.plans[run.rec.id] = plan
+            if self.fields.get(run.rec.id, {}).get("feasible") != f["feasible"]:
+                log.info("job %s: forecast %s (%.0f of %.0f spp by the deadline)", run.rec.id,
+                         "feasible" if f["feasible"] else "infeasible", plan.spp_expected,
+                         plan.full_spp)
+            self.fields[run.rec.id] = f
+            ahead += plan.work + sum(inflight.values())
+            self._readmit(run, plan)
+
+    def _inflight(self, run) -> dict:
+        """(frame, tile) → pixel-samples queued or rendering now."""
+        out: dict = {}
+        for e in self.head.leases.table.values():
+            b = e.batch
+            if b.job == run.rec.id:
+                out[(b.frame, b.tile)] = out.get((b.frame, b.tile), 0) + b.w * b.h * b.count
+        return out
+
+    def tile_states(self, run, inflight: dict) -> list[TileState]:
+        job = run.rec.id
+        ends = sorted({a + c for a, c in run.rec.ranges})
+        reads = 0
+        kept = getattr(run, "noise", {})  # measured at every merge, where the head keeps it
+        out = []
+        for f in run.frames:
+            for i, t in enumerate(run.tiles):
+                held = samples_held(run.held[(f, i)])
+                noise, at = self.noise.get((job, f, i), (None, 0))
+                if kept.get((f, i)) is not None:
+                    noise, at = kept[(f, i)], held
+                elif held != at and held >= 2 and reads < NOISE_READS:
+                    noise, at = _tile_noise(run, f, i), held
+                    self.noise[(job, f, i)] = (noise, at)
+                    reads += 1
+                px = t.w * t.h
+                extra = run.rec.extra.get(f"{f}/{i}", ())
+                steps = tuple(sorted(set(ends) | {a + c for a, c in extra}))
+                out.append(TileState((f, i), px, held + inflight.get((f, i), 0) // px, steps,
+                                     noise, at))
+        return out
+
+    def _readmit(self, run, plan) -> None:
+        kept = self.deferred.get(run.rec.id)
+        if not kept:
+            return
+        back, still = [], []
+        for b in kept:
+            if run.is_done(b) or b.id in self.head.leases:
+                continue
+            (back if plan.admits((b.frame, b.tile), b.first, b.count) else still).append(b)
+        self.deferred[run.rec.id] = still
+        if back:
+            # the plan's order: sample range first, then frame, then tile (planner.plan_batches)
+            merged = sorted(list(run.pending) + back, key=lambda b: (b.first, b.frame, b.tile))
+            run.pending.clear()
+            run.pending.extend(merged)
+
+    # -- the deadline -------------------------------------------------------------------------
+
+    def stop(self, run) -> None:
+        """Stop queueing `run`, drop its queued batches, write every frame with what is held."""
+        head = self.head
+        job = run.rec.id
+        run.rec.deadline_reached = True
+        head._save(run)
+        run.pending.clear()
+        self.deferred.pop(job, None)
+        gone = [bid for bid, e in head.leases.table.items() if e.batch.job == job]
+        for bid in gone:
+            head.leases.pop(bid)
+        if gone:
+            head.r.hdel(P.K_INFLIGHT, *gone)
+        for f in run.frames:
+            write_held_frame(run, f)
+        self.stopped[job] = _sample_plan(run.rec)
+        if job in self.fields:
+            self.fields[job]["updated"] = round(time.time(), 1)
+        log.info("job %s reached its deadline: %d frame(s) written with the samples held", job,
+                 len(run.frames))
+
+    def _keep_stopped(self, run) -> None:
+        """After a restart the replanned job stays stopped; a refine (a changed sample plan)
+        lifts the deadline and lets it run."""
+        job = run.rec.id
+        plan = _sample_plan(run.rec)
+        seen = self.stopped.setdefault(job, plan)
+        if plan != seen:
+            run.rec.deadline_reached = False
+            run.rec.deadline = None
+            self.head._save(run)
+            self.stopped.pop(job)
+            return
+        if run.pending:
+            run.pending.clear()
+        gone = [bid for bid, e in self.head.leases.table.items() if e.batch.job == job]
+        for bid in gone:
+            self.head.leases.pop(bid)
+        if gone:
+            self.head.r.hdel(P.K_INFLIGHT, *gone)
+
+
+def write_held_frame(run, frame: int) -> None:
+    """The frame file with everything its tiles hold (missing tiles stay empty, spp 0)."""
+    from ..engine.film import Film
+    from ..frames import write_frame_files
+    from pathlib import Path
+
+    total = sum(samples_held(run.held[(frame, i)]) for i in range(len(run.tiles)))
+    if frame in run.written and run.written_sum.get(frame) == total:
+        return  # the file already holds all of it
+    film = Film.zeros(run.shot.height, run.shot.width)
+    for i, t in enumerate(run.tiles):
+        acc = TileAccumulator.load(run.folder.tile(frame, i), t.w, t.h)
+        if acc.film is not None:
+            film.add_into(acc.film, t.y0, t.x0)
+    write_frame_files(Path(run.rec.out), run.shot, frame, film, run.seconds.get(frame, 0.0))
+    run.written[frame] = run.frame_level(frame)
+    run.written_sum[frame] = total
+
+
+def _tile_noise(run, frame: int, tile: int) -> float | None:
+    import numpy as np
+
+    t = run.tiles[tile]
+    acc = TileAccumulator.load(run.folder.tile(frame, tile), t.w, t.h)
+    if acc.film is None:
+        return None
+    e = acc.film.rel_noise()
+    e = e[np.isfinite(e)]
+    return float(e.mean()) if e.size else None
+
+
+def _sample_plan(rec) -> tuple:
+    return (rec.samples, tuple(sorted((k, tuple(map(tuple, v))) for k, v in rec.extra.items())))
+
+
+def _prior_speed(run) -> float:
+    """A slot's speed before anything is measured: the planner sized a batch to take about
+    TARGET_SECONDS on a machine like the head's."""
+    return run.rec.tile_size ** 2 * run.rec.batch_samples / TARGET_SECONDS
+
