@@ -153,7 +153,7 @@ class RateMeter:
         span = self.nominal[-1][0] - self.nominal[0][0]
         if promised <= 0 or span <= 0:
             return 1.0
-        merged = sum(p for s, p in self.merges if s >= self.nominal[0][0])
+        merged = sum(p for s, p in self.merges if s > self.nominal[0][0])  # in (t0, t1]
         return min(1.0, max(EFFICIENCY_FLOOR, merged / promised))
 
 

@@ -1,0 +1,218 @@
+"""Deadlines: the spending policy, `--until`, the farm simulation of a night, and a real farm
+that stops a job at its deadline."""
+
+from __future__ import annotations
+
+import json
+import math
+import random
+import statistics
+import time
+from datetime import datetime
+
+import pytest
+
+from lampyr.errors import UsageError
+from lampyr.scheduler.deadline import (TileState, deadline_line, forecast_fields, parse_until,
+                                       plan_night, predicted_noise, work_to)
+
+from .farmsim import FarmSim, SimJob, make_workers
+
+STEPS = (2, 4, 6, 8, 10, 12, 14, 16)  # a first pass of 2, then batches of 2, to 16 spp
+
+
+def tiles(n=4, pixels=100, noise=0.2, held=0):
+    return [TileState((1, i), pixels, held, STEPS, noise, 2 if noise else 0) for i in range(n)]
+
+
+# -- the policy -------------------------------------------------------------------------------
+
+def test_when_the_work_fits_every_tile_goes_to_its_full_target():
+    plan = plan_night(tiles(), capacity=4 * 100 * 16)
+    assert plan.feasible and set(plan.targets.values()) == {16}
+
+
+def test_when_it_does_not_fit_every_tile_rises_to_the_highest_level_that_fits():
+    plan = plan_night(tiles(), capacity=4 * 100 * 9)  # 9 spp of work: the ladder's 8 fits
+    assert not plan.feasible and plan.level == 8
+    assert set(plan.targets.values()) >= {8} and min(plan.targets.values()) == 8
+    assert plan.work <= plan.capacity
+
+
+def test_the_first_pass_is_kept_when_nothing_fits():
+    plan = plan_night(tiles(), capacity=0.0)
+    assert not plan.feasible and set(plan.targets.values()) == {2}
+
+
+def test_samples_already_held_are_not_counted_again():
+    held = tiles(held=10)
+    assert plan_night(held, capacity=4 * 100 * 6).feasible  # 6 more spp to 16
+
+
+def test_the_leftover_goes_to_the_noisiest_tile():
+    ts = [TileState((1, 0), 100, 0, STEPS, 0.1, 2), TileState((1, 1), 100, 0, STEPS, 0.4, 2)]
+    # the uniform level 8 costs 1600; 200 more pay for one more step of one tile
+    plan = plan_night(ts, capacity=1800)
+    assert plan.targets == {(1, 0): 8, (1, 1): 10}
+
+
+def test_the_leftover_evens_out_the_noise():
+    rng = random.Random(5)
+    ts = [TileState((1, i), 100, 2, STEPS, rng.lognormvariate(math.log(0.2), 0.7), 2)
+          for i in range(40)]
+    uniform = plan_night(ts, capacity=work_to(ts, lambda t: 8))
+    spent = plan_night(ts, capacity=work_to(ts, lambda t: 8) + 40 * 100 * 1.5)
+    spread = [statistics.pstdev(predicted_noise(t, p.targets[t.key]) for t in ts)
+              for p in (uniform, spent)]
+    assert spent.level == uniform.level == 8
+    assert spread[1] < spread[0]
+
+
+@pytest.mark.parametrize("n", [4, 16, 100])
+def test_noise_falls_as_one_over_the_root_of_the_samples(n):
+    # the standard error of a mean of n independent samples is σ/√n (Monte Carlo error law)
+    t = TileState((1, 0), 1, 1, (1,), noise=0.3, noise_at=1)
+    assert predicted_noise(t, n) == pytest.approx(0.3 / math.sqrt(n))
+
+
+# -- --until ----------------------------------------------------------------------------------
+
+def at(text):
+    return datetime.fromisoformat(text).timestamp()
+
+
+@pytest.mark.parametrize("now, text, expected", [
+    ("2026-12-02T22:30", "07:00", "2026-12-03T07:00"),  # after tonight's 07:00: tomorrow's
+    ("2026-12-02T05:10", "07:00", "2026-12-02T07:00"),  # before it: today's
+    ("2026-12-02T22:30", "2026-12-04T06:15", "2026-12-04T06:15"),
+    ("2026-12-02T22:30", "23:00:30", "2026-12-02T23:00:30"),
+])
+def test_until_takes_the_next_local_time_or_a_date_time(now, text, expected):
+    assert parse_until(text, at(now)) == at(expected)
+
+
+@pytest.mark.parametrize("text, problem", [("25:00", "expected a time"),
+                                           ("tomorrow", "expected a time"),
+                                           ("2026-12-01T07:00", "in the past")])
+def test_a_bad_or_past_until_is_a_usage_error_naming_it(text, problem):
+    with pytest.raises(UsageError) as err:
+        parse_until(text, at("2026-12-02T22:30"))
+    assert str(err.value).startswith("--until:") and problem in str(err.value)
+    assert "\n" not in str(err.value) and err.value.exit_code == 2
+
+
+def test_submit_refuses_a_past_until_with_exit_status_2(tiny_shot):
+    import subprocess
+
+    from ..conftest import lampyr_cmd
+
+    res = subprocess.run(lampyr_cmd("submit", tiny_shot, "--until", "2020-01-01T07:00",
+                                    "--head", "redis://127.0.0.1:1/0"),
+                         capture_output=True, text=True, timeout=60)
+    assert res.returncode == 2
+    assert res.stderr.strip().count("\n") == 0 and "--until" in res.stderr
+
+
+def test_a_job_record_written_before_deadlines_still_loads():
+    from lampyr.scheduler.jobs import JobRecord
+
+    old = {"id": "j", "name": "n", "bundle": "b", "shot": "s.toml", "overrides": {}, "out": "o",
+           "priority": 0, "submitted": 1.0, "tile_size": 8, "batch_samples": 3, "samples": 8,
+           "ranges": [[0, 1], [1, 3]], "paused": False, "cancelled": False, "failed": {},
+           "extra": {}}
+    rec = JobRecord.from_json(json.dumps(old))
+    assert rec.deadline is None and rec.deadline_reached is False
+
+
+@pytest.mark.parametrize("feasible, words", [(True, "will finish"),
+                                             (False, "cannot finish: expect 96 of 256 spp")])
+def test_status_line_says_whether_the_job_will_finish(feasible, words):
+    plan = plan_night(tiles(), capacity=4 * 100 * 16)
+    plan.feasible, plan.spp_expected = feasible, (256.0 if feasible else 96.0)
+    st = {"deadline": time.time() + 3600, "samples": 256, "deadline_reached": False,
+          "forecast": forecast_fields(plan, time.time(), time.time() + 1800)}
+    line = deadline_line(st)
+    assert line.startswith("deadline ") and words in line and "noise" in line
+
+
+# -- the simulated night ----------------------------------------------------------------------
+
+NIGHT_SHORT = 1800.0  # the whole job needs about an hour of this farm: cannot finish
+NIGHT_LONG = 3 * 3600.0  # about three times what it needs
+
+
+def night(seconds, seed):
+    workers = make_workers(50, random.Random(seed), 0.0, seconds)
+    sim = FarmSim(SimJob(), workers, 0.0, seconds, seed=seed)
+    return sim, sim.run()
+
+
+def frame_levels(res):
+    out = {}
+    for (f, _), n in res.held.items():
+        out[f] = min(out.get(f, n), n)
+    return out
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_a_feasible_deadline_finishes_every_frame_before_it(seed):
+    _, res = night(NIGHT_LONG, seed)
+    assert res.finished_at is not None and res.finished_at <= res.deadline
+    assert set(res.held.values()) == {res.target}
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_a_feasible_deadline_is_forecast_feasible_after_the_first_tenth(seed):
+    _, res = night(NIGHT_LONG, seed)
+    late = [f["feasible"] for t, f in res.forecasts if t >= 0.1 * NIGHT_LONG]
+    assert late and all(late)
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3, 4])
+def test_an_infeasible_deadline_leaves_every_frame_at_the_same_best_level(seed):
+    _, res = night(NIGHT_SHORT, seed)
+    assert res.finished_at is None
+    assert min(res.held.values()) >= res.first_pass  # every frame exists, whole
+    levels = frame_levels(res).values()
+    level = res.final_forecast()["level"]
+    assert all(level - res.batch <= v <= level + res.batch for v in levels)
+    # best: what the farm rendered would not have raised every tile two batches higher
+    pixels = 64 * 64
+    rendered = sum(res.held.values()) * pixels
+    assert rendered < len(res.held) * pixels * (min(levels) + 2 * res.batch)
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3, 4])
+def test_an_infeasible_deadline_is_forecast_within_the_first_tenth(seed):
+    _, res = night(NIGHT_SHORT, seed)
+    first = res.first_infeasible()
+    assert first is not None and first <= 0.1 * NIGHT_SHORT
+    assert not any(f["feasible"] for t, f in res.forecasts if t >= first)
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_the_night_spends_its_leftover_on_the_noisiest_tiles(seed):
+    sim, res = night(NIGHT_SHORT, seed)
+    level = min(res.held.values())
+    at_level = [sim.sigma[k] / math.sqrt(level) for k in res.held]  # σ/√n, all at the level
+    assert statistics.pstdev(res.noise.values()) < statistics.pstdev(at_level)
+    assert max(res.noise.values()) < max(at_level)
+
+
+# -- a real farm ------------------------------------------------------------------------------
+
+def test_a_real_job_stops_at_its_deadline_done_with_every_frame(farm, tiny_shot, tmp_path):
+    farm.start_head()
+    farm.start_worker("slow", env={"LAMPYR_TEST_CHUNK_DELAY": "0.3"})
+    until = datetime.fromtimestamp(time.time() + 8).isoformat(timespec="seconds")
+    # 8 tiles × 8 samples at ≥ 0.3 s a sample need about 20 s: more than the night
+    job = farm.submit(tiny_shot, "--out", tmp_path / "out", "--tile", 8, "--batch", 3,
+                      "--until", until)
+    st = farm.wait(job, timeout=90)
+    assert st["state"] == "done" and st["deadline_reached"] is True
+    assert st["deadline"] == pytest.approx(datetime.fromisoformat(until).timestamp())
+    assert st["forecast"]["feasible"] is False and st["forecast"]["spp_expected"] < 8
+    for f in (1, 2):
+        assert (tmp_path / "out" / f"tiny.{f:04d}.exr").exists()
+    text = farm.cli("status", job, "--head", farm.url).stdout
+    assert "deadline" in text and "reached" in text
