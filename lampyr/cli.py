@@ -158,8 +158,13 @@ def _job_or_fail(r, job):
               help="Serve Prometheus metrics at http://ADDR:PORT/metrics (0: a free port).")
 @click.option("--metrics-listen", default="127.0.0.1", show_default=True, metavar="ADDR",
               help="Address the metrics endpoint binds to.")
+@click.option("--web-port", type=click.IntRange(0, 65535), default=None,
+              help="Port of the web page (default: 7361, or a free one if that is taken; 0: a free one).")
+@click.option("--web-listen", default=None, metavar="ADDR",
+              help="Address the web page binds to (default: the same as --listen).")
+@click.option("--no-web", is_flag=True, help="Do not serve the web page.")
 def head(state, redis_url, listen, port, lease_seconds, max_attempts, metrics_port,
-         metrics_listen):
+         metrics_listen, web_port, web_listen, no_web):
     """Run the farm's head: Redis, planner, merger and lease keeper."""
     from .scheduler.service import run_head
     from .scheduler.store import default_state
@@ -171,9 +176,14 @@ def head(state, redis_url, listen, port, lease_seconds, max_attempts, metrics_po
         click.echo(f"Workers join with:  lampyr worker {address}")
         sys.stdout.flush()
 
+    def web_ready(url, password_file):
+        click.echo(f"Web page: {url}  (password in {password_file})")
+        sys.stdout.flush()
+
     metrics = None if metrics_port is None else (metrics_listen, metrics_port)
+    web = None if no_web else (web_listen or listen, web_port)
     run_head(state, redis_url, listen, port, lease_seconds, max_attempts, on_ready=ready,
-             metrics=metrics)
+             metrics=metrics, web=web, on_web=web_ready)
 
 
 @cli.command()

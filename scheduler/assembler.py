@@ -15,6 +15,7 @@ from pathlib import Path
 from .accumulator import TileAccumulator, overlaps, samples_held
 from .jobs import JobFolder, JobRecord
 from .planner import plan_batches
+from .progress import tile_noise
 from .protocol import Batch
 
 
@@ -33,10 +34,13 @@ class JobRun:
         self.tiles = tiles_for(self.shot.width, self.shot.height, rec.tile_size)
         self.frames = list(self.shot.frames())
         self.held: dict[tuple[int, int], list] = {}
+        self.noise: dict[tuple[int, int], float | None] = {}  # see progress.py
         for f in self.frames:
             for i, t in enumerate(self.tiles):
                 acc = TileAccumulator.load(self.folder.tile(f, i), t.w, t.h)
                 self.held[(f, i)] = acc.ranges
+                self.noise[(f, i)] = tile_noise(acc.film)
+        self.dirty: set[int] = set(self.frames)  # frames merged into since progress was published
         self.written: dict[int, int] = {}  # frame → its lowest tile sample count when written
         self.written_sum: dict[int, int] = {}  # frame → samples of all its tiles when written
         self.seconds: dict[int, float] = {f: 0.0 for f in self.frames}
@@ -75,6 +79,8 @@ class JobRun:
         self.held[(b.frame, b.tile)] = acc.ranges
         self.seconds[b.frame] = self.seconds.get(b.frame, 0.0) + seconds
         self.samples_merged += t.w * t.h * b.count
+        self.noise[(b.frame, b.tile)] = tile_noise(acc.film)  # the film in memory, no reread
+        self.dirty.add(b.frame)
         return True
 
     def frame_level(self, frame: int) -> int:

@@ -1,4 +1,4 @@
-"""The head's commands (from `control`): submit, retry, pause, resume, cancel, refine.
+"""The head's commands (from `control`): submit, retry, pause, resume, cancel, refine, priority.
 
 A mix-in of `Head`: each `cmd_<op>(**args)` carries out one JSON command a client queued.
 """
@@ -64,10 +64,13 @@ class JobCommands:
     def _save(self, run: JobRun) -> None:
         run.folder.save(run.rec)
 
-    def cmd_retry(self, job: str, frames: list | None = None) -> None:
+    def cmd_retry(self, job: str, frames: list | None = None, tile: int | None = None) -> None:
+        """Queue failed batches again: all of the job, of frames [lo, hi], or (with `tile`)
+        of that tile of those frames only."""
         run = self.jobs[job]
         lo, hi = frames if frames else (-1, 1 << 30)
-        again = [bid for bid in run.rec.failed if lo <= P.parse_batch_id(bid)[1] <= hi]
+        again = [bid for bid in run.rec.failed if lo <= P.parse_batch_id(bid)[1] <= hi
+                 and (tile is None or P.parse_batch_id(bid)[2] == int(tile))]
         for bid in again:
             del run.rec.failed[bid]
         if again:
@@ -84,6 +87,10 @@ class JobCommands:
         self.jobs[job].rec.paused = False
         self._save(self.jobs[job])
 
+    def cmd_priority(self, job: str, priority: int) -> None:
+        self.jobs[job].rec.priority = int(priority)
+        self._save(self.jobs[job])
+
     def cmd_cancel(self, job: str) -> None:
         run = self.jobs[job]
         run.rec.cancelled = True
@@ -95,20 +102,29 @@ class JobCommands:
         if gone:
             self.r.hdel(P.K_INFLIGHT, *gone)
 
-    def cmd_refine(self, job: str, samples: int, noise: float | None = None) -> None:
+    def cmd_refine(self, job: str, samples: int, noise: float | None = None,
+                   frames: list | None = None) -> None:
         """Add samples up to `samples` per pixel, in the job's batch size: to every tile, or
-        with a `noise` goal only to tiles whose relative standard error is above it."""
+        with a `noise` goal only to tiles whose relative standard error is above it; with
+        `frames` (a list of frame numbers) only to the tiles of those frames."""
         from .planner import sample_ranges
 
         run = self.jobs[job]
-        if noise is None:
+        if noise is None and frames is None:
             if samples <= run.rec.samples:
                 return
             run.rec.ranges = list(run.rec.ranges) + sample_ranges(run.rec.samples, samples,
                                                                   run.rec.batch_samples)
             run.rec.samples = int(samples)
         else:
-            for f, i in run.noisy_tiles(noise):
+            if noise is not None:
+                tiles = run.noisy_tiles(noise)
+            else:
+                tiles = [(f, i) for f in run.frames for i in range(len(run.tiles))]
+            if frames is not None:
+                chosen = {int(f) for f in frames}
+                tiles = [(f, i) for f, i in tiles if f in chosen]
+            for f, i in tiles:
                 key = f"{f}/{i}"
                 have = run.tile_target(f, i)
                 if samples > have:

@@ -27,12 +27,14 @@ from . import protocol as P
 from .accumulator import write_atomic
 from .assembler import JobRun
 from .commands import JobCommands
+from .history import HistoryRecorder
 from .deadline_keeper import DeadlineKeeper
 from .jobs import JobFolder, list_jobs
 from .leases import LeaseKeeper
 from .metrics import HeadCounters
 from .metrics import publish as publish_metrics
 from .metrics import snapshot as metrics_snapshot
+from .progress import ProgressPublisher
 from .submit import submit_request  # noqa: F401  (the client side of `cmd_submit`)
 
 log = logging.getLogger("lampyr.head")
@@ -75,6 +77,8 @@ class Head(JobCommands):
         self._epoch_at = 0.0
         self._cores = (0.0, 0)
         self.metrics = HeadCounters()
+        self.progress = ProgressPublisher()  # per-frame / per-tile summary for the web page
+        self.history = HistoryRecorder()  # throughput per minute, workers last seen
         self.deadlines = DeadlineKeeper(self)  # forecasts, holds back, stops at deadlines
 
     # -- start-up ---------------------------------------------------------------------------
@@ -381,6 +385,8 @@ class Head(JobCommands):
             pipe.delete(P.k_job(run.rec.id))
             pipe.hset(P.k_job(run.rec.id), mapping={k: json.dumps(v) for k, v in st.items()})
         publish_metrics(pipe, metrics_snapshot(self))
+        self.progress.publish(self, pipe, force)
+        self.history.record(self, pipe)
         pipe.execute()
 
 

@@ -15,7 +15,7 @@ Redis keys (prefix `lampyr:`):
 | `protocol` | string | head | PROTOCOL_VERSION the head speaks |
 | `epoch` | string | head | random token; a missing epoch means Redis lost its data |
 | `config` | hash | head | lease_seconds, max_attempts |
-| `control` | list | CLI | JSON commands for the head (submit, retry, pause, resume, cancel, refine) |
+| `control` | list | CLI, web page | JSON commands for the head (submit, retry, pause, resume, cancel, refine, priority) |
 | `bundle:<sha256>` | string | CLI | a scene bundle (gzip tar) |
 | `job:<id>` | hash | head | live status of a job (JSON values), read by `status` |
 | `jobs` | zset | head | job ids scored by submission time |
@@ -29,6 +29,10 @@ Redis keys (prefix `lampyr:`):
 | `slot:<name>:<pid>` | string, TTL | worker | JSON: the batch a worker process renders and its speed |
 | `warm:<name>` | set | worker | pids of a worker's pool processes whose kernels are loaded |
 | `metrics` | string | head | JSON snapshot of the head's counters and queue (metrics.py) |
+| `layout:<job>` | string | head | JSON: image size, frame numbers, tile rectangles (progress.py) |
+| `progress:<job>` | hash | head | frame → JSON: state, samples held / target, noise, per-tile rows (progress.py) |
+| `throughput` | hash | head | minute (epoch s) → pixel-samples merged in it, last 24 h (history.py) |
+| `seen` | hash | head | worker name → its last heartbeat JSON and `last_seen`, kept a week (history.py) |
 """
 
 from __future__ import annotations
@@ -63,6 +67,8 @@ K_ATTEMPTS = key("attempts")
 K_RESULTS = key("results")
 K_PROCESSING = key("results", "processing")
 K_METRICS = key("metrics")
+K_THROUGHPUT = key("throughput")
+K_SEEN = key("seen")
 
 
 def k_bundle(sha: str) -> str:
@@ -87,6 +93,14 @@ def k_host(name: str) -> str:
 
 def k_slot(name: str, pid: int) -> str:
     return key("slot", name, pid)
+
+
+def k_layout(job: str) -> str:
+    return key("layout", job)
+
+
+def k_progress(job: str) -> str:
+    return key("progress", job)
 
 
 @dataclass(frozen=True)

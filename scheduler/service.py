@@ -13,13 +13,16 @@ from .redis_server import LOOPBACK, EmbeddedRedis
 def run_head(state: Path, redis_url: str | None = None, listen: str = "127.0.0.1",
              port: int = 0, lease_seconds: float = 120.0, max_attempts: int = 3,
              on_ready=None, stop: threading.Event | None = None,
-             metrics: tuple[str, int] | None = None) -> None:
+             metrics: tuple[str, int] | None = None,
+             web: tuple[str, int | None] | None = None, on_web=None) -> None:
     """Run a head until SIGTERM/SIGINT (or `stop` is set).
 
     redis_url: an existing Redis to use; otherwise an embedded one is started under
     `<state>/redis`, bound to `listen` (password-protected beyond loopback).
     on_ready(address): called once the head serves, with the address workers need.
     metrics: (host, port) to serve the Prometheus endpoint on (metrics.py); None: not served.
+    web: (host, port) of the web page (lampyr.webui; port None: its default); None: not served.
+    on_web(url, password_file): called once the web page serves.
     """
     from .head import Head
 
@@ -28,6 +31,7 @@ def run_head(state: Path, redis_url: str | None = None, listen: str = "127.0.0.1
     state.mkdir(parents=True, exist_ok=True)
     server = None
     exporter = None
+    page = None
     if redis_url is None:
         server = EmbeddedRedis(state / "redis", bind=listen, port=port).start()
         redis_url = server.url
@@ -51,8 +55,16 @@ def run_head(state: Path, redis_url: str | None = None, listen: str = "127.0.0.1
                 "metrics: http://%s:%d/metrics", metrics[0], exporter.port)
         if on_ready:
             on_ready(redis_url)
+        if web is not None:
+            from ..webui.serve import WebServer
+
+            page = WebServer(state, redis_url, *web).start()
+            if on_web:
+                on_web(page.url, page.password_file)
         head.run(stop=stop.is_set)
     finally:
+        if page is not None:
+            page.stop()
         if exporter is not None:
             exporter.close()
         if server is not None:

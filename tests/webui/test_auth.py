@@ -1,0 +1,144 @@
+"""Login, session and anti-forgery checks of every endpoint (Flask test client, real Redis)."""
+
+from __future__ import annotations
+
+import os
+import stat
+
+import pytest
+
+from .conftest import PASSWORD, log_in, token_of
+
+READS = ["/", "/jobs/some-job", "/api/farm", "/api/jobs/some-job",
+         "/api/jobs/some-job/frames/1", "/api/throughput", "/jobs/some-job/frames/1.exr",
+         "/jobs/some-job/frames/1.png", "/jobs/some-job/frames/1/preview.png"]
+ACTIONS = ["/api/jobs/some-job/pause", "/api/jobs/some-job/resume", "/api/jobs/some-job/cancel",
+           "/api/jobs/some-job/priority", "/api/jobs/some-job/retry",
+           "/api/jobs/some-job/refine", "/api/submit", "/logout"]
+
+
+@pytest.mark.parametrize("url", [u for u in READS if u.startswith("/api/")])
+def test_the_json_needs_a_login(client, url):
+    resp = client.get(url)
+    assert resp.status_code == 401 and resp.get_json() == {"error": "log in first"}
+
+
+@pytest.mark.parametrize("url", [u for u in READS if not u.startswith("/api/")])
+def test_pages_and_files_send_a_stranger_to_the_login(client, url):
+    resp = client.get(url)
+    assert resp.status_code == 302 and resp.headers["Location"].startswith("/login?next=")
+
+
+@pytest.mark.parametrize("url", ACTIONS)
+def test_an_action_without_the_token_is_refused_even_when_logged_in(user, url):
+    resp = user.post(url, json={})
+    assert resp.status_code == 403
+    assert "anti-forgery token" in resp.get_data(as_text=True)
+
+
+@pytest.mark.parametrize("url", ACTIONS)
+def test_an_action_with_a_wrong_token_is_refused(user, url):
+    resp = user.post(url, json={}, headers={"X-Lampyr-Token": "x" + user.token})
+    assert resp.status_code == 403
+
+
+@pytest.mark.parametrize("url", ACTIONS)
+def test_an_action_from_another_site_is_refused_even_with_the_token(user, url):
+    resp = user.post(url, json={}, headers={"X-Lampyr-Token": user.token,
+                                            "Origin": "http://elsewhere.example"})
+    assert resp.status_code == 403
+
+
+@pytest.mark.parametrize("url", ACTIONS)
+def test_an_action_without_a_session_is_refused(client, url):
+    resp = client.post(url, json={}, headers={"X-Lampyr-Token": "anything"})
+    assert resp.status_code == 403
+
+
+def test_the_login_form_itself_needs_its_token(client):
+    client.get("/login")
+    resp = client.post("/login", data={"password": PASSWORD})
+    assert resp.status_code == 403
+    assert client.get("/api/farm").status_code == 401
+
+
+def test_a_wrong_password_is_refused_with_a_message(client):
+    client.get("/login")
+    resp = client.post("/login", data={"password": "guess", "token": token_of(client)})
+    assert resp.status_code == 401 and b"not the farm&#39;s password" in resp.data
+    assert client.get("/api/farm").status_code == 401
+
+
+def test_the_right_password_opens_the_json(client):
+    log_in(client)
+    assert client.get("/api/farm").status_code == 200
+
+
+def test_the_session_cookie_is_http_only_and_same_site(client):
+    client.get("/login")
+    resp = client.post("/login", data={"password": PASSWORD, "token": token_of(client)})
+    cookie = resp.headers["Set-Cookie"]
+    assert "HttpOnly" in cookie and "SameSite=Strict" in cookie
+
+
+def test_after_the_login_the_browser_goes_where_it_wanted(client):
+    client.get("/login")
+    resp = client.post("/login", data={"password": PASSWORD, "token": token_of(client),
+                                       "next": "/jobs/abc"})
+    assert resp.headers["Location"] == "/jobs/abc"
+
+
+@pytest.mark.parametrize("target", ["https://elsewhere.example/", "//elsewhere.example/x"])
+def test_the_login_never_sends_the_browser_to_another_site(client, target):
+    client.get("/login")
+    resp = client.post("/login", data={"password": PASSWORD, "token": token_of(client),
+                                       "next": target})
+    assert resp.headers["Location"] == "/"
+
+
+def test_logging_out_ends_the_session(user):
+    assert post_logout(user).status_code == 302
+    assert user.get("/api/farm").status_code == 401
+
+
+def post_logout(c):
+    return c.post("/logout", headers={"X-Lampyr-Token": c.token})
+
+
+def test_a_changed_password_ends_every_session(user, app):
+    app.config["PASSWORD"] = "a new password"
+    assert user.get("/api/farm").status_code == 401
+
+
+def test_guessing_is_slowed_after_a_few_wrong_passwords(client):
+    from lampyr.webui.auth import LOGIN_TRIES
+
+    client.get("/login")
+    for _ in range(LOGIN_TRIES):
+        client.post("/login", data={"password": "guess", "token": token_of(client)})
+    resp = client.post("/login", data={"password": PASSWORD, "token": token_of(client)})
+    assert resp.status_code == 429
+
+
+def test_a_loopback_farm_gets_a_password_file_only_its_user_can_read(tmp_path):
+    from lampyr.webui.auth import farm_password, password_file
+
+    word = farm_password(tmp_path)
+    path = password_file(tmp_path)
+    assert path == tmp_path / "web" / "password"
+    assert stat.S_IMODE(os.stat(path).st_mode) == 0o600
+    assert len(word) >= 20 and farm_password(tmp_path) == word  # made once, then kept
+
+
+def test_a_lan_farm_logs_in_with_its_redis_password(tmp_path):
+    from lampyr.scheduler.redis_server import load_or_make_password
+    from lampyr.webui.auth import farm_password
+
+    redis_word = load_or_make_password(tmp_path / "redis")
+    assert farm_password(tmp_path) == redis_word
+
+
+def test_pages_forbid_framing_and_foreign_scripts(user):
+    resp = user.get("/")
+    csp = resp.headers["Content-Security-Policy"]
+    assert "frame-ancestors 'none'" in csp and "script-src 'self'" in csp

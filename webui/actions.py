@@ -1,0 +1,176 @@
+"""What the page can ask of the farm: each action becomes one head command (store.send_command).
+
+    POST /api/jobs/<job>/pause | resume | cancel
+    POST /api/jobs/<job>/priority   {"priority": int}
+    POST /api/jobs/<job>/retry      {} | {"frame": f} | {"frame": f, "tile": i}
+    POST /api/jobs/<job>/refine     {"samples": n, "frames": [f, ...]?, "noise": e?}
+    POST /api/submit                multipart: shot (file), assets (archive, optional),
+                                    priority, samples, frames ("A-B" or "A"), width, height
+
+Every one answers JSON: 202 {"ok": true, "message"} once queued, 400 {"error"} naming the field,
+404 for an unknown job, frame or tile. The login and the anti-forgery token are checked before
+any of them runs (auth.check_request).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from flask import Blueprint, abort, current_app, jsonify, request
+
+from ..errors import UsageError
+from ..scheduler import store
+from .api import frame_or_404, job_or_404, layout_or_404, redis
+
+bp = Blueprint("actions", __name__)
+MAX_SAMPLES = 1_048_576
+
+
+def _body() -> dict:
+    if request.is_json:
+        data = request.get_json(silent=True)
+        if not isinstance(data, dict):
+            raise UsageError("body: expected a JSON object")
+        return data
+    return request.form.to_dict()
+
+
+def _int(data: dict, key: str, lo: int, hi: int, required: bool = True):
+    raw = data.get(key)
+    if raw is None or raw == "":
+        if required:
+            raise UsageError(f"{key}: expected a whole number between {lo} and {hi}, got nothing")
+        return None
+    try:
+        value = int(raw)
+        if isinstance(raw, float) and raw != value or isinstance(raw, bool):
+            raise ValueError
+    except (TypeError, ValueError):
+        raise UsageError(f"{key}: expected a whole number between {lo} and {hi}, got {raw!r}") from None
+    if not lo <= value <= hi:
+        raise UsageError(f"{key}: expected a whole number between {lo} and {hi}, got {value}")
+    return value
+
+
+def _queued(message: str):
+    return jsonify(ok=True, message=message), 202
+
+
+def _simple(op: str, words: str):
+    def view(job):
+        job_or_404(job)
+        store.send_command(redis(), op, job=job)
+        return _queued(f"{job}: {words}")
+
+    view.__name__ = f"job_{op}"
+    return view
+
+
+bp.add_url_rule("/api/jobs/<job>/pause", view_func=_simple("pause", "no new work is queued"),
+                methods=["POST"])
+bp.add_url_rule("/api/jobs/<job>/resume", view_func=_simple("resume", "work is queued again"),
+                methods=["POST"])
+bp.add_url_rule("/api/jobs/<job>/cancel", view_func=_simple("cancel", "the remaining work is "
+                                                                      "dropped; written frames stay"),
+                methods=["POST"])
+
+
+@bp.route("/api/jobs/<job>/priority", methods=["POST"])
+def priority(job):
+    job_or_404(job)
+    p = _int(_body(), "priority", -1000, 1000)
+    store.send_command(redis(), "priority", job=job, priority=p)
+    return _queued(f"{job}: priority {p}")
+
+
+@bp.route("/api/jobs/<job>/retry", methods=["POST"])
+def retry(job):
+    job_or_404(job)
+    data = _body()
+    frame = _int(data, "frame", 0, 10**7, required=False)
+    tile = _int(data, "tile", 0, 10**7, required=False)
+    if tile is not None and frame is None:
+        raise UsageError("tile: retrying one tile needs its frame too")
+    if frame is not None:
+        lay = frame_or_404(job, frame)
+        if tile is not None and tile >= len(lay["tiles"]):
+            abort(404, description=f"job {job!r} has no tile {tile} "
+                                   f"(tiles 0–{len(lay['tiles']) - 1})")
+    store.send_command(redis(), "retry", job=job, frames=None if frame is None else [frame, frame],
+                       tile=tile)
+    what = "job" if frame is None else f"frame {frame}" + ("" if tile is None else f", tile {tile}")
+    return _queued(f"{job}: failed work of the {what} is queued again")
+
+
+@bp.route("/api/jobs/<job>/refine", methods=["POST"])
+def refine(job):
+    st = job_or_404(job)
+    data = _body()
+    samples = _int(data, "samples", 1, MAX_SAMPLES)
+    frames = data.get("frames")
+    if frames is not None:
+        if isinstance(frames, str):
+            frames = [f for f in frames.replace(",", " ").split() if f]
+        if not isinstance(frames, list) or not frames:
+            raise UsageError("frames: expected a list of frame numbers")
+        frames = [_int({"frames": f}, "frames", 0, 10**7) for f in frames]
+        for f in frames:
+            frame_or_404(job, f)
+    else:
+        layout_or_404(job)
+    noise = data.get("noise")
+    if noise not in (None, ""):
+        try:
+            noise = float(noise)
+            if not 0 < noise < 100:
+                raise ValueError
+        except (TypeError, ValueError):
+            raise UsageError(f"noise: expected a relative noise goal above 0 (e.g. 0.05), "
+                             f"got {data.get('noise')!r}") from None
+    else:
+        noise = None
+    if frames is None and noise is None and samples <= st.get("samples", 0):
+        raise UsageError(f"samples: the job already reaches {st['samples']} samples per pixel; "
+                         "ask for more")
+    store.send_command(redis(), "refine", job=job, samples=samples, noise=noise, frames=frames)
+    where = f"frames {', '.join(map(str, frames))}" if frames else "every frame"
+    goal = f", tiles noisier than {noise:g}" if noise is not None else ""
+    return _queued(f"{job}: adding samples up to {samples} per pixel to {where}{goal}")
+
+
+def _frames_field(text: str):
+    text = (text or "").strip()
+    if not text:
+        return None
+    try:
+        if "-" in text:
+            a, b = text.split("-", 1)
+            return (int(a), int(b))
+        return (int(text), int(text))
+    except ValueError:
+        raise UsageError(f"frames: expected a frame or a range like 1-48, got {text!r}") from None
+
+
+@bp.route("/api/submit", methods=["POST"])
+def submit():
+    from ..scheduler.uploads import submit_upload
+
+    shot = request.files.get("shot")
+    if shot is None or not shot.filename:
+        raise UsageError("shot: choose the shot file (.toml) to upload")
+    assets = request.files.get("assets")
+    archive = assets.read() if assets is not None and assets.filename else None
+    form = request.form
+    overrides = {}
+    for key, hi in (("samples", MAX_SAMPLES), ("width", 16384), ("height", 16384)):
+        v = _int(form, key, 1, hi, required=False)
+        if v is not None:
+            overrides[key] = v
+    frames = _frames_field(form.get("frames"))
+    if frames is not None:
+        overrides["frames"] = frames
+    prio = _int(form, "priority", -1000, 1000, required=False) or 0
+    uploads = Path(current_app.config["STATE"]) / "web" / "uploads"
+    job = submit_upload(redis(), uploads, shot.filename, shot.read(),
+                        assets.filename if archive else None, archive, overrides, prio)
+    return jsonify(ok=True, job=job, message=f"{job} is queued"), 202

@@ -1,0 +1,175 @@
+"""Login with the farm's password, the session, and the anti-forgery token of every action.
+
+The password is the farm's: the embedded Redis's (`<state>/redis/password`, made when the head
+listens beyond loopback), or else the page's own, generated at first start into
+`<state>/web/password` (mode 0600). The session is Flask's signed cookie (HttpOnly,
+SameSite=Strict) keyed by `<state>/web/secret`, so logins survive a head restart; it holds a
+fingerprint of the password, so changing the password file logs everybody out.
+
+Every POST / PUT / PATCH / DELETE must carry the session's token (header `X-Lampyr-Token` or
+form field `token`) and, when the browser sends an Origin, come from this page's own origin. The
+login form has a token too (given with the form), so another site cannot log a browser in.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import hmac
+import os
+import secrets
+import time
+from pathlib import Path
+
+from flask import (Blueprint, current_app, g, jsonify, redirect, render_template, request,
+                   session, url_for)
+
+MUTATING = {"POST", "PUT", "PATCH", "DELETE"}
+OPEN_ENDPOINTS = {"auth.login", "static", "auth.health"}
+TOKEN_HEADER = "X-Lampyr-Token"
+LOGIN_TRIES = 8  # failed logins from one address per LOGIN_WINDOW before it must wait
+LOGIN_WINDOW = 60.0
+
+bp = Blueprint("auth", __name__)
+
+
+def _private_file(path: Path, make) -> str:
+    """The first line of `path`; made with `make()` (mode 0600) when it does not exist."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    try:
+        fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+    except FileExistsError:
+        return path.read_text().strip()
+    word = make()
+    with os.fdopen(fd, "w") as f:
+        f.write(word + "\n")
+    return word
+
+
+def password_file(state: Path) -> Path:
+    """Where the page's password is: the farm's Redis password when it has one."""
+    redis_pw = Path(state) / "redis" / "password"
+    return redis_pw if redis_pw.exists() else Path(state) / "web" / "password"
+
+
+def farm_password(state: Path) -> str:
+    return _private_file(password_file(state), lambda: secrets.token_urlsafe(18))
+
+
+def session_secret(state: Path) -> str:
+    return _private_file(Path(state) / "web" / "secret", lambda: secrets.token_hex(32))
+
+
+def _fingerprint(password: str) -> str:
+    return hashlib.sha256(b"lampyr-web:" + password.encode()).hexdigest()[:24]
+
+
+def csrf_token() -> str:
+    """This session's anti-forgery token (made on first use)."""
+    if "csrf" not in session:
+        session["csrf"] = secrets.token_urlsafe(32)
+    return session["csrf"]
+
+
+def logged_in() -> bool:
+    pw = current_app.config["PASSWORD"]
+    return session.get("who") == "farm" and hmac.compare_digest(
+        session.get("pw", ""), _fingerprint(pw))
+
+
+def _wants_json() -> bool:
+    return request.path.startswith("/api/") or request.accept_mimetypes.best == "application/json"
+
+
+def _same_origin() -> bool:
+    origin = request.headers.get("Origin")
+    if origin is None:  # not every browser sends one on same-origin requests; the token decides
+        return True
+    return origin == request.host_url.rstrip("/")
+
+
+def check_request():
+    """before_request: login required outside OPEN_ENDPOINTS; token and origin on every
+    mutating request (the login form's POST included)."""
+    if request.method in MUTATING:
+        sent = request.headers.get(TOKEN_HEADER) or request.form.get("token", "")
+        known = session.get("csrf", "")
+        if not known or not hmac.compare_digest(sent, known) or not _same_origin():
+            return _refuse(403, "this request lacks the page's anti-forgery token or comes from "
+                                "another site; reload the page and try again")
+    if request.endpoint in OPEN_ENDPOINTS or request.endpoint is None:
+        return None
+    if not logged_in():
+        if _wants_json():
+            return _refuse(401, "log in first")
+        return redirect(url_for("auth.login", next=request.full_path.rstrip("?")))
+    g.token = csrf_token()
+    return None
+
+
+def _refuse(code: int, message: str):
+    if _wants_json():
+        return jsonify(error=message), code
+    return render_template("message.html", title="Refused", message=message), code
+
+
+class LoginThrottle:
+    """Failed logins per client address within a sliding window."""
+
+    def __init__(self):
+        self.fails: dict[str, list[float]] = {}
+
+    def blocked(self, who: str) -> bool:
+        now = time.monotonic()
+        recent = [t for t in self.fails.get(who, []) if now - t < LOGIN_WINDOW]
+        self.fails[who] = recent
+        return len(recent) >= LOGIN_TRIES
+
+    def failed(self, who: str) -> None:
+        self.fails.setdefault(who, []).append(time.monotonic())
+
+
+@bp.route("/login", methods=["GET", "POST"])
+def login():
+    nxt = request.values.get("next", "")
+    if not nxt.startswith("/") or nxt.startswith("//"):
+        nxt = url_for("pages.overview")  # only a path of this page: no open redirect
+    error = None
+    if request.method == "POST":
+        throttle = current_app.extensions["lampyr.throttle"]
+        who = request.remote_addr or "?"
+        if throttle.blocked(who):
+            return render_template("login.html", token=csrf_token(), next=nxt,
+                                   error="Too many wrong passwords; wait a minute."), 429
+        given = request.form.get("password", "")
+        if hmac.compare_digest(given.encode(), current_app.config["PASSWORD"].encode()):
+            session.clear()
+            session.permanent = True
+            session["who"] = "farm"
+            session["pw"] = _fingerprint(current_app.config["PASSWORD"])
+            csrf_token()
+            return redirect(nxt)
+        throttle.failed(who)
+        error = "That is not the farm's password."
+    code = 401 if error else 200
+    return render_template("login.html", token=csrf_token(), next=nxt, error=error), code
+
+
+@bp.route("/logout", methods=["POST"])
+def logout():
+    session.clear()
+    return redirect(url_for("auth.login"))
+
+
+@bp.route("/api/health")
+def health():
+    return jsonify(ok=True)
+
+
+def install(app) -> None:
+    app.extensions["lampyr.throttle"] = LoginThrottle()
+    app.before_request(check_request)
+    app.register_blueprint(bp)
+
+    @app.context_processor
+    def _token():
+        return {"token": session.get("csrf", "")}

@@ -1,0 +1,332 @@
+/* A job: its frames strip, the chosen frame's preview with a tile map, and the actions. */
+"use strict";
+(() => {
+  const L = Lampyr, el = L.el;
+  const root = document.getElementById("job");
+  const JOB = root.dataset.job;
+  const base = "/api/jobs/" + encodeURIComponent(JOB);
+  const files = "/jobs/" + encodeURIComponent(JOB) + "/frames/";
+  const S = {job: null, layout: null, frames: [], sel: null, picked: new Set(), detail: null,
+             exposure: 0, overlay: "state", tile: null, imgKey: ""};
+
+  /* ---------------- job header ---------------- */
+  function fact(dt, dd, cls) { return el("div", {class: cls || null}, el("dt", {text: dt}), el("dd", {text: dd})); }
+
+  function renderHead() {
+    const j = S.job, now = Date.now() / 1000;
+    document.getElementById("job-state").replaceChildren(L.badge(j.state));
+    const total = j.pixel_samples_total || 0;
+    const p = total ? j.pixel_samples_done / total : 0;
+    const fill = document.getElementById("job-fill");
+    fill.style.width = (100 * p).toFixed(1) + "%";
+    fill.className = "fill st-" + j.state;
+    const ready = j.state === "running" && j.eta_seconds !== null
+      ? L.clock(now + j.eta_seconds) + " (in " + L.span(j.eta_seconds) + ")" : (j.state === "done" ? "finished" : "–");
+    document.getElementById("job-facts").replaceChildren(
+      fact("done", L.pct(p, 1)),
+      fact("frames", j.frames_done + " / " + j.frames),
+      fact("samples per pixel", String(j.samples)),
+      fact("speed", L.count(j.samples_per_second) + " samples/s"),
+      fact("ready", ready, "wide"),
+      fact("submitted", L.clock(j.submitted)),
+      fact("tiles", (j.tile_size || "?") + " px, " + (j.batch_samples || "?") + " samples a batch"),
+      fact("frames folder", j.out || "–", "wide path"));
+    const running = ["running", "queued"].includes(j.state);
+    document.getElementById("act-pause").hidden = !running;
+    document.getElementById("act-resume").hidden = j.state !== "paused";
+    const prio = document.getElementById("prio");
+    if (document.activeElement !== prio) prio.value = j.priority;
+    const nf = (j.failed || []).length;
+    const retry = document.getElementById("act-retry");
+    retry.disabled = nf === 0;
+    retry.textContent = nf ? "Retry failed work (" + nf + ")" : "Nothing failed";
+    document.getElementById("act-cancel").hidden = ["done", "cancelled"].includes(j.state);
+    renderDeadline(j);
+  }
+
+  function renderDeadline(j) {
+    const box = document.getElementById("deadline");
+    if (j.deadline === undefined || j.deadline === null) { box.hidden = true; return; }
+    box.hidden = false;
+    const parts = [el("strong", {text: "Deadline " + L.clock(j.deadline)})];
+    const f = j.forecast;
+    if (f && typeof f === "object") {
+      const ok = f.feasible;
+      if (ok !== undefined) parts.push(el("span", {class: ok ? "good" : "bad"}, L.icon(ok ? "done" : "failed"),
+                                          ok ? " on course" : " not reachable as planned"));
+      for (const [k, v] of Object.entries(f)) {
+        if (k === "feasible") continue;
+        const shown = typeof v === "number" ? (k.includes("noise") ? L.pct(v, 2) : L.count(v)) : String(v);
+        parts.push(el("span", {class: "fc", text: k.replaceAll("_", " ") + ": " + shown}));
+      }
+    }
+    box.replaceChildren(...parts);
+  }
+
+  /* ---------------- frame strip ---------------- */
+  function noiseText(n) { return n === null || n === undefined ? "noise ?" : L.pct(n, n < 0.1 ? 1 : 0); }
+
+  function renderStrip() {
+    const strip = document.getElementById("strip");
+    const cells = S.frames.map(f => {
+      const chip = el("span", {class: "chip"});
+      if (f.noise !== null && f.noise !== undefined) chip.style.background = L.noiseColour(f.noise);
+      else chip.classList.add("unknown");
+      const tick = el("input", {type: "checkbox", "aria-label": "tick frame " + f.frame,
+                                checked: S.picked.has(f.frame) ? true : null});
+      tick.addEventListener("click", (ev) => {
+        ev.stopPropagation();
+        if (tick.checked) S.picked.add(f.frame); else S.picked.delete(f.frame);
+        document.getElementById("picked-count").textContent = S.picked.size;
+      });
+      const cell = el("div", {class: "cell st-" + f.state + (f.frame === S.sel ? " sel" : ""),
+                             role: "option", tabindex: "0", "aria-selected": String(f.frame === S.sel),
+                             title: "frame " + f.frame + ": " + L.WORDS[f.state] + ", " + f.held + " of " + f.target + " samples, " + noiseText(f.noise)},
+        el("div", {class: "c-top"}, tick, el("span", {class: "c-num", text: f.frame})),
+        el("div", {class: "c-state"}, L.icon(f.state), el("span", {class: "c-word", text: L.WORDS[f.state]})),
+        el("div", {class: "c-noise"}, chip, el("span", {text: noiseText(f.noise)})),
+        el("div", {class: "c-spp", text: f.held + "/" + f.target}));
+      const choose = () => select(f.frame);
+      cell.addEventListener("click", choose);
+      cell.addEventListener("keydown", (ev) => { if (ev.key === "Enter" || ev.key === " ") { ev.preventDefault(); choose(); } });
+      return cell;
+    });
+    strip.replaceChildren(...cells);
+    const cur = strip.querySelector(".sel");
+    if (cur && !S.stripScrolled) { cur.scrollIntoView({block: "nearest", inline: "center"}); S.stripScrolled = true; }
+  }
+
+  function select(frame) {
+    S.sel = frame; S.tile = null; S.stripScrolled = false;
+    history.replaceState(null, "", "#frame=" + frame);
+    document.getElementById("sel-frame").textContent = frame;
+    renderStrip();
+    loadDetail();
+  }
+
+  /* ---------------- the chosen frame ---------------- */
+  async function loadDetail() {
+    if (S.sel === null) return;
+    const want = S.sel;
+    const d = await L.get(base + "/frames/" + want);
+    if (want !== S.sel) return;
+    S.detail = d;
+    renderFrame();
+  }
+
+  function renderFrame() {
+    const d = S.detail;
+    const img = document.getElementById("preview");
+    const none = document.getElementById("no-preview");
+    const exr = d.files && d.files.exr;
+    none.hidden = !!exr;
+    img.hidden = !exr;
+    if (exr) {
+      const key = S.sel + ":" + exr.mtime + ":" + S.exposure;
+      if (key !== S.imgKey) {
+        S.imgKey = key;
+        img.src = files + S.sel + "/preview.png?exposure=" + S.exposure + "&v=" + exr.mtime;
+      }
+    }
+    drawTiles();
+    const noisy = d.tiles.filter(t => t.state !== "done").length;
+    document.getElementById("frame-facts").replaceChildren(
+      fact("state", L.WORDS[d.state]),
+      fact("samples per pixel", d.held + " of " + d.target + (d.held < d.target ? " (lowest tile)" : "")),
+      fact("noise", d.noise === null ? "not known yet" : L.pct(d.noise, 2), "noise-fact"),
+      fact("tiles", d.tiles.length + " · " + noisy + " not done"));
+    for (const [id, ext] of [["dl-exr", "exr"], ["dl-png", "png"]]) {
+      const a = document.getElementById(id);
+      const f = d.files && d.files[ext];
+      a.classList.toggle("disabled", !f);
+      if (f) { a.href = files + S.sel + "." + ext; a.removeAttribute("aria-disabled"); }
+      else { a.removeAttribute("href"); a.setAttribute("aria-disabled", "true"); }
+    }
+    const spp = document.querySelector("#refine input[name=samples]");
+    if (!spp.value || spp.dataset.frame !== String(S.sel)) { spp.value = d.target * 2; spp.dataset.frame = S.sel; }
+    renderFailures(d);
+    renderTileInfo();
+  }
+
+  function renderFailures(d) {
+    const box = document.getElementById("failures");
+    if (!d.failed.length) { box.replaceChildren(); return; }
+    box.replaceChildren(
+      el("h3", {}, L.icon("failed"), " Failed batches of this frame"),
+      ...d.failed.map(f => {
+        const [, , tile, first, count] = f.batch.split("/").slice(-5);
+        return el("div", {class: "failure"},
+          el("div", {class: "f-head"}, el("strong", {text: "tile " + tile}), " samples " + first + "–" + (Number(first) + Number(count) - 1),
+             el("button", {type: "button", class: "warn small", onclick: () => act("retry", {frame: S.sel, tile: Number(tile)}, "Tile " + tile + " is queued again.")}, "Retry tile")),
+          el("pre", {text: f.error}));
+      }),
+      el("button", {type: "button", class: "warn", onclick: () => act("retry", {frame: S.sel}, "Frame " + S.sel + "'s failed work is queued again.")}, "Retry this frame's failed work"));
+  }
+
+  /* tile map over the preview */
+  const COL = {done: "#009E73", rendering: "#56B4E9", failed: "#D55E00", waiting: "#BBBBBB"};
+  function drawTiles() {
+    const img = document.getElementById("preview");
+    const cv = document.getElementById("tiles");
+    const d = S.detail, lay = S.layout;
+    if (!d || !lay) return;
+    const stage = document.getElementById("stage");
+    const w = stage.clientWidth, h = Math.round(w * lay.height / lay.width);
+    stage.style.height = h + "px";
+    const dpr = window.devicePixelRatio || 1;
+    cv.width = Math.round(w * dpr); cv.height = Math.round(h * dpr);
+    cv.style.width = w + "px"; cv.style.height = h + "px";
+    const g = cv.getContext("2d");
+    g.setTransform(dpr, 0, 0, dpr, 0, 0);
+    g.clearRect(0, 0, w, h);
+    const sx = w / lay.width, sy = h / lay.height;
+    renderLegend();
+    if (S.overlay === "none" && img.hidden === false) return;
+    for (const t of d.tiles) {
+      const x = t.x * sx, y = t.y * sy, tw = t.w * sx, th = t.h * sy;
+      if (S.overlay === "noise") {
+        if (t.noise === null) { hatch(g, x, y, tw, th); }
+        else { g.globalAlpha = 0.62; g.fillStyle = L.noiseColour(t.noise); g.fillRect(x, y, tw, th); g.globalAlpha = 1; }
+        g.strokeStyle = "rgba(0,0,0,.35)"; g.lineWidth = 1; g.strokeRect(x + .5, y + .5, tw - 1, th - 1);
+      } else {
+        mark(g, t.state, x, y, tw, th, t);
+      }
+      if (S.tile === t.tile) { g.strokeStyle = "#F0E442"; g.lineWidth = 3; g.strokeRect(x + 1.5, y + 1.5, tw - 3, th - 3); }
+    }
+  }
+  function hatch(g, x, y, w, h) {
+    g.save(); g.beginPath(); g.rect(x, y, w, h); g.clip();
+    g.fillStyle = "rgba(40,40,40,.45)"; g.fillRect(x, y, w, h);
+    g.strokeStyle = "rgba(255,255,255,.5)"; g.lineWidth = 1;
+    for (let k = -h; k < w; k += 6) { g.beginPath(); g.moveTo(x + k, y + h); g.lineTo(x + k + h, y); g.stroke(); }
+    g.restore();
+  }
+  /* states differ in shape as well as colour: veil + dotted edge (waiting), bold edge with a
+     half disc (rendering), thin edge with a tick (done), edge with a cross (failed) */
+  function mark(g, state, x, y, w, h, t) {
+    const c = COL[state];
+    const r = Math.max(3, Math.min(7, Math.min(w, h) / 6));
+    g.save();
+    if (state === "waiting") {
+      g.fillStyle = "rgba(20,24,30,.5)"; g.fillRect(x, y, w, h);
+      if (t.held > 0) { g.fillStyle = "rgba(20,24,30,.5)"; }
+      g.setLineDash([3, 3]); g.strokeStyle = c; g.lineWidth = 1; g.strokeRect(x + .5, y + .5, w - 1, h - 1);
+    } else if (state === "rendering") {
+      g.strokeStyle = c; g.lineWidth = 2.5; g.strokeRect(x + 1.25, y + 1.25, w - 2.5, h - 2.5);
+      g.fillStyle = c; g.beginPath(); g.arc(x + r + 4, y + r + 4, r, -Math.PI / 2, Math.PI / 2); g.fill();
+      g.beginPath(); g.lineWidth = 1.5; g.arc(x + r + 4, y + r + 4, r, 0, 2 * Math.PI); g.stroke();
+    } else if (state === "failed") {
+      g.fillStyle = "rgba(213,94,0,.25)"; g.fillRect(x, y, w, h);
+      g.strokeStyle = c; g.lineWidth = 2.5; g.strokeRect(x + 1.25, y + 1.25, w - 2.5, h - 2.5);
+      g.beginPath(); g.moveTo(x + 3, y + 3); g.lineTo(x + w - 3, y + h - 3); g.moveTo(x + w - 3, y + 3); g.lineTo(x + 3, y + h - 3); g.stroke();
+    } else {
+      g.strokeStyle = "rgba(0,158,115,.55)"; g.lineWidth = 1; g.strokeRect(x + .5, y + .5, w - 1, h - 1);
+      g.strokeStyle = c; g.lineWidth = 2; g.beginPath();
+      g.moveTo(x + 4, y + 4 + r); g.lineTo(x + 4 + r * .7, y + 4 + r * 1.6); g.lineTo(x + 4 + r * 1.8, y + 4); g.stroke();
+    }
+    g.restore();
+  }
+
+  function renderLegend() {
+    const box = document.getElementById("legend");
+    if (S.overlay === "noise") {
+      const bar = el("span", {class: "ramp", role: "img", "aria-label": "noise scale from 0.5 % to 50 %"});
+      const stops = [];
+      for (let i = 0; i <= 10; i++) stops.push(L.viridis(i / 10) + " " + (i * 10) + "%");
+      bar.style.background = "linear-gradient(to right, " + stops.join(", ") + ")";
+      const ticks = el("span", {class: "ticks"}, ...[0.005, 0.016, 0.05, 0.16, 0.5].map(v => el("span", {text: L.pct(v, v < 0.01 ? 1 : 0)})));
+      box.replaceChildren(el("span", {class: "lg-title", text: "relative noise of each tile (log scale)"}),
+                          el("span", {class: "ramp-wrap"}, bar, ticks),
+                          el("span", {class: "lg-item"}, el("span", {class: "sw hatch"}), "not known yet (under 2 samples)"));
+    } else if (S.overlay === "state") {
+      box.replaceChildren(...["waiting", "rendering", "done", "failed"].map(s =>
+        el("span", {class: "lg-item st-" + s}, L.icon(s), L.WORDS[s])));
+    } else box.replaceChildren();
+  }
+
+  function tileAt(ev) {
+    const cv = document.getElementById("tiles"), r = cv.getBoundingClientRect();
+    const px = (ev.clientX - r.left) / r.width * S.layout.width, py = (ev.clientY - r.top) / r.height * S.layout.height;
+    return S.detail.tiles.find(t => px >= t.x && px < t.x + t.w && py >= t.y && py < t.y + t.h);
+  }
+  function renderTileInfo() {
+    const box = document.getElementById("tile-info");
+    const t = S.detail && S.tile !== null ? S.detail.tiles[S.tile] : null;
+    if (!t) { box.textContent = "Tap a tile for its numbers."; return; }
+    box.replaceChildren(L.badge(t.state), " tile " + t.tile + " · " + t.held + " of " + t.target +
+      " samples · noise " + (t.noise === null ? "not known yet" : L.pct(t.noise, 2)));
+  }
+
+  /* ---------------- actions ---------------- */
+  async function act(op, body, done) {
+    try {
+      const res = await L.post(base + "/" + op, body);
+      L.say(done || res.message, "good");
+      setTimeout(refresh, 600);
+    } catch (e) { L.say(e.message, "bad", 6000); }
+  }
+
+  function wire() {
+    document.getElementById("act-pause").addEventListener("click", () => act("pause"));
+    document.getElementById("act-resume").addEventListener("click", () => act("resume"));
+    document.getElementById("act-prio").addEventListener("click", () =>
+      act("priority", {priority: Number(document.getElementById("prio").value)}));
+    document.getElementById("act-retry").addEventListener("click", () => act("retry", {}));
+    document.getElementById("act-cancel").addEventListener("click", () => {
+      if (confirm("Cancel " + S.job.name + "? Frames already written stay on disk.")) act("cancel");
+    });
+    const ex = document.getElementById("exposure");
+    const setExposure = (v) => {
+      S.exposure = Number(v); ex.value = v;
+      document.getElementById("exposure-out").textContent = (S.exposure >= 0 ? "+" : "") + S.exposure.toFixed(1);
+      if (S.detail) renderFrame();
+    };
+    ex.addEventListener("input", () => setExposure(ex.value));
+    document.getElementById("exposure-reset").addEventListener("click", () => setExposure(0));
+    for (const r of document.querySelectorAll("input[name=overlay]"))
+      r.addEventListener("change", () => { S.overlay = r.value; drawTiles(); });
+    const cv = document.getElementById("tiles");
+    cv.addEventListener("click", (ev) => {
+      const t = S.detail && tileAt(ev);
+      S.tile = t ? t.tile : null; drawTiles(); renderTileInfo();
+    });
+    document.getElementById("preview").addEventListener("load", drawTiles);
+    window.addEventListener("resize", drawTiles);
+    const form = document.getElementById("refine");
+    form.addEventListener("submit", async (ev) => {
+      ev.preventDefault();
+      const fd = new FormData(form);
+      const body = {samples: Number(fd.get("samples"))};
+      const where = fd.get("where");
+      if (where === "frame") body.frames = [S.sel];
+      else if (where === "picked") {
+        if (!S.picked.size) { L.say("Tick one or more frames in the strip first.", "bad"); return; }
+        body.frames = [...S.picked].sort((a, b) => a - b);
+      } else body.noise = Number(fd.get("noise")) / 100;
+      const msg = document.getElementById("refine-msg");
+      try {
+        const res = await L.post(base + "/refine", body);
+        msg.textContent = res.message; msg.className = "form-msg good";
+        setTimeout(refresh, 600);
+      } catch (e) { msg.textContent = e.message; msg.className = "form-msg bad"; }
+    });
+  }
+
+  async function refresh() {
+    const data = await L.get(base);
+    S.job = data.job; S.layout = data.layout; S.frames = data.frames;
+    renderHead();
+    if (S.sel === null && S.frames.length) {
+      const m = /frame=(\d+)/.exec(location.hash);
+      const want = m ? Number(m[1]) : null;
+      const f = S.frames.find(x => x.frame === want) || S.frames.find(x => x.state === "rendering") || S.frames[0];
+      select(f.frame);
+      return;
+    }
+    renderStrip();
+    await loadDetail();
+  }
+
+  wire();
+  L.poll(refresh, 2000);
+})();

@@ -1,0 +1,144 @@
+/* The overview: shots, machines, the last hours; refreshed every two seconds. */
+"use strict";
+(() => {
+  const L = Lampyr, el = L.el;
+  const ACTIVE = new Set(["running", "queued", "paused"]);
+
+  function figures(data) {
+    const jobs = data.jobs;
+    const active = jobs.filter(j => ACTIVE.has(j.state));
+    const running = jobs.filter(j => j.state === "running").length;
+    document.getElementById("fig-shots").textContent = active.length;
+    document.getElementById("fig-shots-sub").textContent =
+      running + " rendering · " + (active.length - running) + " waiting or paused · " +
+      jobs.filter(j => j.state === "failed").length + " with failures";
+    const done = active.reduce((a, j) => a + j.frames_done, 0);
+    const all = active.reduce((a, j) => a + j.frames, 0);
+    document.getElementById("fig-frames").textContent = all ? done + " / " + all : "–";
+    const last = active.map(j => j.eta_seconds).filter(x => x !== null && x !== undefined);
+    document.getElementById("fig-frames-sub").textContent = last.length
+      ? "all ready about " + L.clock(data.now + Math.max(...last)) : "of the shots on the farm";
+    const speed = data.workers.reduce((a, w) => a + (w.pixel_samples_per_second || 0), 0);
+    document.getElementById("fig-speed").textContent = L.count(speed);
+    const busy = data.workers.filter(w => w.slots.length).length;
+    document.getElementById("fig-machines").textContent = data.workers.length;
+    document.getElementById("fig-machines-sub").textContent =
+      busy + " rendering · " + (data.workers.length - busy) + " idle · " + data.offline.length + " not heard from";
+  }
+
+  function shotRow(j, now) {
+    const bar = el("div", {class: "progress"}, el("div", {class: "fill st-" + j.state}));
+    bar.firstChild.style.width = (100 * j.progress).toFixed(1) + "%";
+    const eta = j.state === "running" && j.eta_seconds !== null
+      ? "ready about " + L.clock(now + j.eta_seconds) + " (in " + L.span(j.eta_seconds) + ")"
+      : j.state === "done" ? "finished" : "–";
+    return el("a", {class: "shot", href: "/jobs/" + encodeURIComponent(j.job)},
+      el("div", {class: "shot-name"}, L.badge(j.state), el("strong", {text: j.name}), el("span", {class: "jobid", text: j.job})),
+      el("div", {class: "shot-bar"}, bar, el("span", {class: "pc", text: L.pct(j.progress, 0)})),
+      el("dl", {class: "shot-facts"},
+        el("div", {}, el("dt", {text: "frames"}), el("dd", {text: j.frames_done + " / " + j.frames})),
+        el("div", {}, el("dt", {text: "samples/px"}), el("dd", {text: j.samples})),
+        el("div", {}, el("dt", {text: "speed"}), el("dd", {text: L.count(j.samples_per_second) + "/s"})),
+        el("div", {class: "wide"}, el("dt", {text: "when"}), el("dd", {text: eta})),
+        el("div", {}, el("dt", {text: "priority"}), el("dd", {text: j.priority})),
+        j.failed_batches ? el("div", {class: "bad"}, el("dt", {text: "failed"}), el("dd", {text: j.failed_batches + " batch" + (j.failed_batches > 1 ? "es" : "")})) : null));
+  }
+
+  function machine(w, now) {
+    const doing = w.slots.length
+      ? w.slots.map(s => el("div", {class: "doing"}, L.icon("rendering"),
+          el("a", {href: "/jobs/" + encodeURIComponent(s.job || ""), text: (s.job || "?")}),
+          " frame " + s.frame + ", tile " + s.tile))
+      : [el("div", {class: "doing idle"}, L.icon("waiting"), w.state ? String(w.state) : "idle")];
+    return el("div", {class: "machine"},
+      el("div", {class: "m-name"}, el("strong", {text: w.name}), el("span", {class: "sub", text: (w.host || "") + " · " + (w.cores || "?") + " cores"})),
+      el("div", {class: "m-doing"}, doing),
+      el("div", {class: "m-speed"}, el("span", {class: "num", text: L.count(w.pixel_samples_per_second)}), el("span", {class: "sub", text: "samples/s"})),
+      el("div", {class: "m-seen sub", text: (w.hours ? "hours " + (typeof w.hours === "string" ? w.hours : JSON.stringify(w.hours)) + " · " : "") + "heard " + L.ago(w.last_seen, now)}));
+  }
+
+  function offline(w, now) {
+    return el("div", {class: "machine gone"},
+      el("div", {class: "m-name"}, el("strong", {text: w.name}), el("span", {class: "sub", text: (w.host || "") + " · " + (w.cores || "?") + " cores"})),
+      el("div", {class: "m-doing"}, el("div", {class: "doing"}, L.icon("cancelled"), "no heartbeat")),
+      el("div", {class: "m-seen sub", text: "last heard " + L.ago(w.last_seen, now) + " (" + L.clock(w.last_seen) + ")"}));
+  }
+
+  function plot(th) {
+    const box = document.getElementById("plot");
+    const W = 600, H = 150, pad = 24;
+    const per = th.values.map(v => v / th.step);
+    const top = Math.max(1, ...per);
+    const svgns = "http://www.w3.org/2000/svg";
+    const svg = document.createElementNS(svgns, "svg");
+    svg.setAttribute("viewBox", "0 0 " + W + " " + (H + pad));
+    svg.setAttribute("preserveAspectRatio", "none");
+    const bw = W / per.length;
+    per.forEach((v, i) => {
+      if (!v) return;
+      const r = document.createElementNS(svgns, "rect");
+      const h = Math.max(1, (H - 8) * v / top);
+      r.setAttribute("x", (i * bw).toFixed(2)); r.setAttribute("width", Math.max(bw, 1).toFixed(2));
+      r.setAttribute("y", (H - h).toFixed(2)); r.setAttribute("height", h.toFixed(2));
+      r.setAttribute("class", "bar");
+      svg.append(r);
+    });
+    const base = document.createElementNS(svgns, "line");
+    base.setAttribute("x1", 0); base.setAttribute("x2", W); base.setAttribute("y1", H); base.setAttribute("y2", H);
+    base.setAttribute("class", "axis"); svg.append(base);
+    const hours = per.length * th.step / 3600;
+    for (let h = 0; h <= hours; h++) {
+      const x = W - h * 3600 / th.step * bw;
+      const t = document.createElementNS(svgns, "text");
+      t.setAttribute("x", Math.max(12, Math.min(W - 12, x)).toFixed(1)); t.setAttribute("y", H + 18);
+      t.setAttribute("class", "tick"); t.setAttribute("text-anchor", "middle");
+      t.textContent = h === 0 ? "now" : "−" + h + " h";
+      svg.append(t);
+    }
+    box.replaceChildren(svg);
+    const total = th.values.reduce((a, b) => a + b, 0);
+    const recent = per.slice(-10).reduce((a, b) => a + b, 0) / 10;
+    document.getElementById("plot-sub").textContent =
+      L.count(total) + " samples in all · peak " + L.count(top) + "/s · last 10 min " + L.count(recent) + "/s";
+  }
+
+  async function refresh() {
+    const data = await L.get("/api/farm");
+    figures(data);
+    const shots = document.getElementById("shots");
+    shots.replaceChildren(...(data.jobs.length ? data.jobs.map(j => shotRow(j, data.now))
+                                               : [el("p", {class: "empty", text: "Nothing on the farm yet."})]));
+    const m = document.getElementById("machines");
+    m.replaceChildren(...(data.workers.length ? data.workers.map(w => machine(w, data.now))
+                                               : [el("p", {class: "empty", text: "No machine has joined yet."})]));
+    const o = document.getElementById("offline");
+    o.replaceChildren(...(data.offline.length ? data.offline.map(w => offline(w, data.now))
+                                               : [el("p", {class: "empty", text: "None."})]));
+    plot(data.throughput);
+  }
+  const kick = L.poll(refresh, 2000);
+
+  const panel = document.getElementById("submit-panel");
+  const opener = document.getElementById("open-submit");
+  opener.addEventListener("click", () => {
+    panel.hidden = !panel.hidden;
+    opener.setAttribute("aria-expanded", String(!panel.hidden));
+  });
+  panel.addEventListener("submit", async (ev) => {
+    ev.preventDefault();
+    const msg = document.getElementById("submit-msg");
+    const btn = panel.querySelector("button[type=submit]");
+    btn.disabled = true;
+    msg.className = "form-msg"; msg.textContent = "Uploading…";
+    try {
+      const res = await L.post("/api/submit", new FormData(panel));
+      msg.textContent = res.message;
+      msg.classList.add("good");
+      panel.reset();
+      kick();
+    } catch (e) {
+      msg.textContent = e.message;
+      msg.classList.add("bad");
+    } finally { btn.disabled = false; }
+  });
+})();
