@@ -141,6 +141,8 @@ def submit_upload(r, uploads: Path, shot_name: str, shot_bytes: bytes, archive_n
         # a missing asset in one place is expected; a mistake in the shot itself says more
         err = next((e for e in errors if not isinstance(e, AssetError)), errors[0])
         err.file = name  # not the upload folder's path on the head
+        for place in reversed(places):
+            err.problem = err.problem.replace(str(place), "the uploaded archive")
         raise err
     finally:
         shutil.rmtree(work, ignore_errors=True)

@@ -1,0 +1,145 @@
+"""Submitting a shot by upload: a shot file plus an archive of its assets, checked like bundles."""
+
+from __future__ import annotations
+
+import io
+import tarfile
+import zipfile
+
+import pytest
+
+from tests.conftest import TINY_SHOT
+
+from .conftest import token_of
+
+# the tiny shot with its floor as a mesh from the archive instead of a sphere
+MESH_SHOT = TINY_SHOT.replace(
+    'sphere = { center = [0.0, -100.0, 0.0], radius = 100.0 }', 'mesh = "assets/floor.obj"')
+FLOOR_OBJ = b"v -5 0 -5\nv 5 0 -5\nv 5 0 5\nv -5 0 5\nf 1 3 2\nf 1 4 3\n"
+
+
+def zip_of(files: dict) -> bytes:
+    buf = io.BytesIO()
+    with zipfile.ZipFile(buf, "w") as z:
+        for name, body in files.items():
+            z.writestr(name, body)
+    return buf.getvalue()
+
+
+def tgz_of(files: dict, links: dict | None = None) -> bytes:
+    buf = io.BytesIO()
+    with tarfile.open(fileobj=buf, mode="w:gz") as tar:
+        for name, body in files.items():
+            info = tarfile.TarInfo(name)
+            info.size = len(body)
+            tar.addfile(info, io.BytesIO(body))
+        for name, target in (links or {}).items():
+            info = tarfile.TarInfo(name)
+            info.type = tarfile.SYMTYPE
+            info.linkname = target
+            tar.addfile(info)
+    return buf.getvalue()
+
+
+def upload(user, shot=MESH_SHOT.encode(), shot_name="tiny.toml", archive=None,
+           archive_name="assets.zip", **fields):
+    data = {"shot": (io.BytesIO(shot), shot_name), "token": user.token, **fields}
+    if archive is not None:
+        data["assets"] = (io.BytesIO(archive), archive_name)
+    return user.post("/api/submit", data=data, content_type="multipart/form-data")
+
+
+@pytest.mark.parametrize("archive,name", [
+    (zip_of({"assets/floor.obj": FLOOR_OBJ}), "assets.zip"),
+    (tgz_of({"assets/floor.obj": FLOOR_OBJ}), "assets.tar.gz"),
+    (zip_of({"courtyard/assets/floor.obj": FLOOR_OBJ}), "folder.zip"),  # the shot's own folder
+])
+def test_an_uploaded_shot_with_its_assets_becomes_a_job(user, head, archive, name):
+    resp = upload(user, archive=archive, archive_name=name)
+    assert resp.status_code == 202, resp.get_json()
+    job = resp.get_json()["job"]
+    head.take_commands()
+    assert job in head.jobs and head.jobs[job].rec.name == "tiny"
+
+
+def test_the_upload_s_overrides_reach_the_job(user, head):
+    resp = upload(user, archive=zip_of({"assets/floor.obj": FLOOR_OBJ}), frames="2-2",
+                  width="8", height="6", samples="3", priority="4")
+    job = resp.get_json()["job"]
+    head.take_commands()
+    run = head.jobs[job]
+    assert (run.frames, run.shot.width, run.shot.height, run.rec.samples, run.rec.priority) == (
+        [2], 8, 6, 3, 4)
+
+
+def test_nothing_of_the_upload_is_left_behind(user, head, state):
+    upload(user, archive=zip_of({"assets/floor.obj": FLOOR_OBJ}))
+    assert list((state / "web" / "uploads").iterdir()) == []
+
+
+@pytest.mark.parametrize("archive,name,words", [
+    (zip_of({"../escape.obj": FLOOR_OBJ}), "a.zip", "paths leaving the bundle are refused"),
+    (zip_of({"/etc/x.obj": FLOOR_OBJ}), "a.zip", "absolute paths are refused"),
+    (tgz_of({"assets/../../x.obj": FLOOR_OBJ}), "a.tar.gz", "paths leaving the bundle"),
+    (tgz_of({}, links={"assets/floor.obj": "/etc/passwd"}), "a.tar.gz", "only regular files"),
+    (b"this is not an archive", "a.zip", "not a readable .zip archive"),
+    (b"\x1f\x8b broken gzip", "a.tgz", "not a readable .tgz archive"),
+    (zip_of({"assets/floor.obj": FLOOR_OBJ}), "a.rar", "expected a .zip, .tar.gz"),
+])
+def test_a_bad_archive_is_refused_with_a_clear_message(user, head, archive, name, words):
+    resp = upload(user, archive=archive, archive_name=name)
+    assert resp.status_code == 400
+    err = resp.get_json()["error"]
+    assert err.startswith("assets:") and words in err
+    head.take_commands()
+    assert head.jobs == {}
+
+
+def test_a_shot_whose_assets_are_missing_is_refused_naming_the_key(user):
+    resp = upload(user)
+    assert resp.status_code == 400
+    err = resp.get_json()["error"]
+    assert err.startswith("tiny.toml: object[floor].mesh:") and "/state/" not in err
+
+
+def test_a_shot_with_a_mistake_is_refused_naming_the_key(user):
+    resp = upload(user, shot=TINY_SHOT.replace("fov = 40.0", "fov = 0").encode())
+    assert resp.status_code == 400
+    assert resp.get_json()["error"].startswith("tiny.toml: camera.fov: expected degrees")
+
+
+@pytest.mark.parametrize("name", ["shot.txt", "..toml", "", "evil\x00.toml"])
+def test_a_shot_file_that_is_not_a_toml_file_is_refused(user, name):
+    resp = upload(user, shot_name=name)
+    assert resp.status_code == 400 and resp.get_json()["error"].startswith("shot:")
+
+
+def test_a_shot_file_name_with_folders_is_taken_by_its_last_part(user, head):
+    resp = upload(user, shot_name="../../etc/tiny.toml",
+                  archive=zip_of({"assets/floor.obj": FLOOR_OBJ}))
+    assert resp.status_code == 202
+
+
+def test_a_binary_shot_file_is_refused(user):
+    resp = upload(user, shot=b"\xff\xfe\x00binary")
+    assert resp.status_code == 400 and "TOML text file" in resp.get_json()["error"]
+
+
+def test_an_upload_over_the_limit_is_refused_with_the_limit(user):
+    resp = upload(user, archive=b"\0" * (3 * 1024 * 1024), archive_name="big.zip")
+    assert resp.status_code == 413
+    assert resp.get_json()["error"] == ("upload: larger than this farm's limit of 2 MiB "
+                                        "(shot file and assets archive together)")
+
+
+def test_an_upload_without_a_shot_is_refused(user):
+    resp = user.post("/api/submit", data={"token": token_of(user)},
+                     content_type="multipart/form-data")
+    assert resp.status_code == 400 and resp.get_json()["error"].startswith("shot:")
+
+
+@pytest.mark.parametrize("field,value", [("frames", "one-two"), ("width", "0"),
+                                         ("samples", "lots"), ("priority", "9999")])
+def test_a_bad_override_is_refused_naming_the_field(user, field, value):
+    resp = upload(user, archive=zip_of({"assets/floor.obj": FLOOR_OBJ}), **{field: value})
+    assert resp.status_code == 400 and resp.get_json()["error"].startswith(field + ":")
