@@ -123,17 +123,18 @@ def plan_night(tiles, capacity: float) -> NightPlan:
 
 def _spend_on_noise(tiles, targets: dict, left: float) -> dict:
     """Greedy: give the next step to the tile with the highest predicted noise while its cost
-    fits in `left`; tiles whose noise is unknown count as noisy as the mean known one.
-    Changes `targets` in place; returns key → samples added."""
-    known = [predicted_noise(t, targets[t.key]) for t in tiles]
-    known = [e for e in known if e is not None]
-    fallback = sum(known) / len(known) if known else 1.0
-    heap = []
+    fits in `left`. A tile whose noise is unknown gets the mean known noise of one sample,
+    σ₁ = e·√m, scaled to its own count. Changes `targets` in place; returns key → samples added."""
+    ones = [t.noise * math.sqrt(t.noise_at) for t in tiles
+            if predicted_noise(t, t.noise_at) is not None]
+    sigma1 = sum(ones) / len(ones) if ones else 1.0
+
+    def noise(t, n):
+        e = predicted_noise(t, n)
+        return e if e is not None else sigma1 / math.sqrt(max(n, 1))
+
+    heap = [(-noise(t, targets[t.key]), t.key) for t in tiles]
     by_key = {t.key: t for t in tiles}
-    for t in tiles:
-        e = predicted_noise(t, targets[t.key])
-        heap.append((-(e if e is not None else fallback / math.sqrt(max(targets[t.key], 1))),
-                     t.key))
     heapq.heapify(heap)
     added: dict = {}
     while heap and left > 0:
@@ -149,8 +150,7 @@ def _spend_on_noise(tiles, targets: dict, left: float) -> dict:
         left -= cost
         targets[key] = nxt
         added[key] = added.get(key, 0) + nxt - now
-        e = predicted_noise(t, nxt)
-        heapq.heappush(heap, (-(e if e is not None else fallback / math.sqrt(nxt)), key))
+        heapq.heappush(heap, (-noise(t, nxt), key))
     return added
 
 

@@ -32,6 +32,7 @@ from .planner import TARGET_SECONDS
 log = logging.getLogger("lampyr.head")
 
 EVERY = 3.0  # seconds between forecasts (workers come and go on a scale of minutes)
+LOOK_EVERY = 0.5  # seconds between looks at the slots' speeds (a slot record lives one batch)
 NOISE_READS = 64  # tile accumulators read for their noise per recompute, at most
 HORIZON = 36 * 3600.0  # how far ahead the working windows reach
 
@@ -47,6 +48,9 @@ class DeadlineKeeper:
         self.noise: dict = {}  # (job, frame, tile) → (noise, samples it was measured at)
         self.stopped: dict = {}  # job → its sample plan when stopped (a refine changes it)
         self._at = -math.inf
+        self._looked = -math.inf
+        self._hosts: list = []  # (name, cores, windows) of the live hosts, last look
+        self._speeds: list = []  # (host, speed) seen since the last forecast
         self._merged: dict = {}  # job → JobRun.samples_merged at the last recompute
 
     # -- hooks --------------------------------------------------------------------------------
@@ -62,6 +66,8 @@ class DeadlineKeeper:
                 self._keep_stopped(run)
             elif self.active(run) and reached(now, run.rec.deadline):
                 self.stop(run)
+        if time.monotonic() - self._looked >= LOOK_EVERY:
+            self.look()
         if time.monotonic() - self._at >= self.every:
             self.recompute(now)
 
@@ -86,13 +92,21 @@ class DeadlineKeeper:
 
     # -- the forecast -------------------------------------------------------------------------
 
+    def look(self) -> None:
+        """Read the heartbeats and the slots' speeds (only while a deadline job runs)."""
+        self._looked = time.monotonic()
+        if any(self.active(run) for run in self.head.jobs.values()):
+            self._hosts, speeds = read_hosts(self.head.r, P.key("host", ""), P.key("slot", ""))
+            self._speeds.extend(speeds)
+
     def recompute(self, now: float | None = None) -> None:
         self._at = time.monotonic()
         now = time.time() if now is None else now
         jobs = self.head.jobs
         if not any(self.active(run) for run in jobs.values()):
             return
-        hosts, speeds = read_hosts(self.head.r, P.key("host", ""), P.key("slot", ""))
+        self.look()
+        hosts, speeds, self._speeds = self._hosts, self._speeds, []
         for job, run in jobs.items():
             merged = run.samples_merged - self._merged.get(job, 0)
             if merged > 0:
