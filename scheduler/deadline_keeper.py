@@ -87,8 +87,9 @@ class DeadlineKeeper:
         return self.active(run) and bool(self.deferred.get(run.rec.id))
 
     def status(self, run) -> dict:
+        fc = self.fields.get(run.rec.id) if run.rec.deadline is not None else None
         return {"deadline": run.rec.deadline, "deadline_reached": bool(run.rec.deadline_reached),
-                "forecast": self.fields.get(run.rec.id)}
+                "forecast": fc}
 
     # -- the forecast -------------------------------------------------------------------------
 

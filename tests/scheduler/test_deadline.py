@@ -216,3 +216,91 @@ def test_a_real_job_stops_at_its_deadline_done_with_every_frame(farm, tiny_shot,
         assert (tmp_path / "out" / f"tiny.{f:04d}.exr").exists()
     text = farm.cli("status", job, "--head", farm.url).stdout
     assert "deadline" in text and "reached" in text
+
+
+def test_a_real_job_with_time_to_spare_finishes_before_its_deadline(farm, tiny_shot, tmp_path):
+    farm.start_head()
+    farm.start_worker("a")
+    until = datetime.fromtimestamp(time.time() + 600).isoformat(timespec="seconds")
+    job = farm.submit(tiny_shot, "--out", tmp_path / "out", "--tile", 8, "--batch", 3,
+                      "--until", until)
+    st = farm.wait(job, timeout=90)
+    assert (st["state"], st["frames_done"], st["deadline_reached"]) == ("done", 2, False)
+    assert st["forecast"]["feasible"] is True
+
+
+# -- the head's own decisions, in this process against a real Redis (no workers) --------------
+
+@pytest.fixture
+def head(redis_url, tmp_path):
+    from lampyr.scheduler import protocol as P
+    from lampyr.scheduler.head import Head
+
+    h = Head(tmp_path / "state", redis_url, lease_seconds=5)
+    h.start()
+    # a big idle host: the head would queue far ahead if the plan let it
+    h.r.set(P.k_host("big"), json.dumps({"name": "big", "cores": 64}))
+    return h
+
+
+def submit_with_deadline(head, shot, seconds):
+    from lampyr.scheduler.submit import submit_request
+
+    job = submit_request(head.r, shot, {}, None, 0, tile_size=8, batch_samples=3,
+                         deadline=time.time() + seconds)
+    head.take_commands()
+    return job
+
+
+def queued(head):
+    from .test_head import queued_batches
+
+    return queued_batches(head.r)
+
+
+def test_what_the_night_cannot_afford_is_not_queued(head, tiny_shot):
+    job = submit_with_deadline(head, tiny_shot, 3.0)  # far less than one batch of any host
+    head.deadlines.tick()
+    head.dispatch()
+    assert {(b.first, b.count) for b in queued(head)} == {(0, 1)}  # the first pass only
+    assert len(queued(head)) == 2 * 4
+    assert head.job_state(head.jobs[job]) != "done"  # the rest waits for a better forecast
+
+
+def test_at_the_deadline_every_frame_is_written_and_the_job_is_done(head, tiny_shot, tmp_path):
+    from lampyr.scheduler.store import job_status
+
+    job = submit_with_deadline(head, tiny_shot, 0.5)
+    head.deadlines.tick()
+    head.dispatch()
+    time.sleep(0.6)
+    head.step()
+    st = job_status(head.r, job)
+    assert (st["state"], st["deadline_reached"]) == ("done", True)
+    out = head.state / "jobs" / job / "frames"
+    assert sorted(p.name for p in out.glob("*.exr")) == ["tiny.0001.exr", "tiny.0002.exr"]
+    assert not head.r.hlen("lampyr:inflight")  # its queued batches were dropped
+
+
+def test_a_restarted_head_keeps_a_job_stopped_at_its_deadline(head, tiny_shot, redis_url, tmp_path):
+    from lampyr.scheduler.head import Head
+
+    job = submit_with_deadline(head, tiny_shot, 0.2)
+    time.sleep(0.3)
+    head.step()
+    again = Head(tmp_path / "state", redis_url, lease_seconds=5)
+    again.start()
+    again.step()
+    assert again.job_state(again.jobs[job]) == "done" and not again.jobs[job].pending
+    assert again.jobs[job].rec.deadline_reached
+
+
+def test_refine_after_the_deadline_lifts_it(head, tiny_shot):
+    job = submit_with_deadline(head, tiny_shot, 0.2)
+    time.sleep(0.3)
+    head.step()
+    head.cmd_refine(job, samples=12)
+    head.step()
+    run = head.jobs[job]
+    assert run.rec.deadline is None and not run.rec.deadline_reached
+    assert run.pending or head.leases.table  # the refine's batches go out
