@@ -5,7 +5,8 @@
     POST /api/jobs/<job>/retry      {} | {"frame": f} | {"frame": f, "tile": i}
     POST /api/jobs/<job>/refine     {"samples": n, "frames": [f, ...]?, "noise": e?}
     POST /api/submit                multipart: shot (file), assets (archive, optional),
-                                    priority, samples, frames ("A-B" or "A"), width, height
+                                    priority, samples, frames ("A-B" or "A"), width, height,
+                                    tile (tile edge in px; default: the head's choice)
 
 Every one answers JSON: 202 {"ok": true, "message"} once queued, 400 {"error"} naming the field,
 404 for an unknown job, frame or tile. The login and the anti-forgery token are checked before
@@ -133,7 +134,8 @@ def refine(job):
         raise UsageError(f"samples: the job already reaches {st['samples']} samples per pixel; "
                          "ask for more")
     store.send_command(redis(), "refine", job=job, samples=samples, noise=noise, frames=frames)
-    where = f"frames {', '.join(map(str, frames))}" if frames else "every frame"
+    where = ("every frame" if not frames else f"frame {frames[0]}" if len(frames) == 1
+             else f"frames {', '.join(map(str, frames))}")
     goal = f", tiles noisier than {noise:g}" if noise is not None else ""
     return _queued(f"{job}: adding samples up to {samples} per pixel to {where}{goal}")
 
@@ -170,7 +172,8 @@ def submit():
     if frames is not None:
         overrides["frames"] = frames
     prio = _int(form, "priority", -1000, 1000, required=False) or 0
+    tile = _int(form, "tile", 8, 1024, required=False)
     uploads = Path(current_app.config["STATE"]) / "web" / "uploads"
     job = submit_upload(redis(), uploads, shot.filename, shot.read(),
-                        assets.filename if archive else None, archive, overrides, prio)
+                        assets.filename if archive else None, archive, overrides, prio, tile)
     return jsonify(ok=True, job=job, message=f"{job} is queued"), 202

@@ -64,12 +64,12 @@ def test_an_uploaded_shot_with_its_assets_becomes_a_job(user, head, archive, nam
 
 def test_the_upload_s_overrides_reach_the_job(user, head):
     resp = upload(user, archive=zip_of({"assets/floor.obj": FLOOR_OBJ}), frames="2-2",
-                  width="8", height="6", samples="3", priority="4")
+                  width="8", height="6", samples="3", priority="4", tile="8")
     job = resp.get_json()["job"]
     head.take_commands()
     run = head.jobs[job]
-    assert (run.frames, run.shot.width, run.shot.height, run.rec.samples, run.rec.priority) == (
-        [2], 8, 6, 3, 4)
+    assert (run.frames, run.shot.width, run.shot.height, run.rec.samples, run.rec.priority,
+            run.rec.tile_size) == ([2], 8, 6, 3, 4, 8)
 
 
 def test_nothing_of_the_upload_is_left_behind(user, head, state):
@@ -139,7 +139,8 @@ def test_an_upload_without_a_shot_is_refused(user):
 
 
 @pytest.mark.parametrize("field,value", [("frames", "one-two"), ("width", "0"),
-                                         ("samples", "lots"), ("priority", "9999")])
+                                         ("samples", "lots"), ("priority", "9999"),
+                                         ("tile", "4")])
 def test_a_bad_override_is_refused_naming_the_field(user, field, value):
     resp = upload(user, archive=zip_of({"assets/floor.obj": FLOOR_OBJ}), **{field: value})
     assert resp.status_code == 400 and resp.get_json()["error"].startswith(field + ":")

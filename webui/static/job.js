@@ -134,7 +134,11 @@
       fact("state", L.WORDS[d.state]),
       fact("samples per pixel", d.held + " of " + d.target + (d.held < d.target ? " (lowest tile)" : "")),
       fact("noise", d.noise === null ? "not known yet" : L.pct(d.noise, 2), "noise-fact"),
-      fact("tiles", d.tiles.length + " · " + noisy + " not done"));
+      fact("tiles", d.tiles.length + (noisy ? " · " + noisy + " to go" : " · all done")));
+    const facts = document.getElementById("frame-facts");
+    facts.dataset.frame = d.frame;
+    facts.dataset.noise = d.noise === null ? "" : d.noise;
+    facts.dataset.held = d.held;
     for (const [id, ext] of [["dl-exr", "exr"], ["dl-png", "png"]]) {
       const a = document.getElementById(id);
       const f = d.files && d.files[ext];
@@ -171,8 +175,14 @@
     const d = S.detail, lay = S.layout;
     if (!d || !lay) return;
     const stage = document.getElementById("stage");
-    const w = stage.clientWidth, h = Math.round(w * lay.height / lay.width);
+    // as wide as the card allows, but no taller than about 60 % of the window
+    const box = getComputedStyle(stage.parentElement);
+    const room = stage.parentElement.clientWidth - parseFloat(box.paddingLeft) - parseFloat(box.paddingRight);
+    const w = Math.round(Math.min(room, 0.6 * window.innerHeight * lay.width / lay.height));
+    const h = Math.round(w * lay.height / lay.width);
+    stage.style.width = w + "px";
     stage.style.height = h + "px";
+    img.classList.toggle("coarse", w >= 2 * lay.width);
     const dpr = window.devicePixelRatio || 1;
     cv.width = Math.round(w * dpr); cv.height = Math.round(h * dpr);
     cv.style.width = w + "px"; cv.style.height = h + "px";

@@ -8,16 +8,20 @@
     const jobs = data.jobs;
     const active = jobs.filter(j => ACTIVE.has(j.state));
     const running = jobs.filter(j => j.state === "running").length;
+    const n = (k, what) => k + " " + what;
     document.getElementById("fig-shots").textContent = active.length;
-    document.getElementById("fig-shots-sub").textContent =
-      running + " rendering · " + (active.length - running) + " waiting or paused · " +
-      jobs.filter(j => j.state === "failed").length + " with failures";
-    const done = active.reduce((a, j) => a + j.frames_done, 0);
-    const all = active.reduce((a, j) => a + j.frames, 0);
+    document.getElementById("fig-shots-sub").textContent = [
+      n(running, "rendering"), n(active.length - running, "waiting or paused"),
+      n(jobs.filter(j => j.state === "done").length, "finished"),
+      n(jobs.filter(j => j.failed_batches).length, "with failures")].join(" · ");
+    const counted = jobs.filter(j => j.state !== "cancelled");
+    const done = counted.reduce((a, j) => a + j.frames_done, 0);
+    const all = counted.reduce((a, j) => a + j.frames, 0);
     document.getElementById("fig-frames").textContent = all ? done + " / " + all : "–";
     const last = active.map(j => j.eta_seconds).filter(x => x !== null && x !== undefined);
     document.getElementById("fig-frames-sub").textContent = last.length
-      ? "all ready about " + L.clock(data.now + Math.max(...last)) : "of the shots on the farm";
+      ? "all ready about " + L.clock(data.now + Math.max(...last))
+      : (all && done === all ? "everything is rendered" : "of every shot on the farm");
     const speed = data.workers.reduce((a, w) => a + (w.pixel_samples_per_second || 0), 0);
     document.getElementById("fig-speed").textContent = L.count(speed);
     const busy = data.workers.filter(w => w.slots.length).length;
@@ -51,28 +55,30 @@
           " frame " + s.frame + ", tile " + s.tile))
       : [el("div", {class: "doing idle"}, L.icon("waiting"), w.state ? String(w.state) : "idle")];
     return el("div", {class: "machine"},
-      el("div", {class: "m-name"}, el("strong", {text: w.name}), el("span", {class: "sub", text: (w.host || "") + " · " + (w.cores || "?") + " cores"})),
+      el("div", {class: "m-name"}, el("strong", {text: w.name}), el("span", {class: "sub", text: (w.host || "") + " · " + cores(w.cores)})),
       el("div", {class: "m-doing"}, doing),
       el("div", {class: "m-speed"}, el("span", {class: "num", text: L.count(w.pixel_samples_per_second)}), el("span", {class: "sub", text: "samples/s"})),
       el("div", {class: "m-seen sub", text: (w.hours ? "hours " + (typeof w.hours === "string" ? w.hours : JSON.stringify(w.hours)) + " · " : "") + "heard " + L.ago(w.last_seen, now)}));
   }
 
+  function cores(k) { return k === 1 ? "1 core" : (k || "?") + " cores"; }
+
   function offline(w, now) {
     return el("div", {class: "machine gone"},
-      el("div", {class: "m-name"}, el("strong", {text: w.name}), el("span", {class: "sub", text: (w.host || "") + " · " + (w.cores || "?") + " cores"})),
+      el("div", {class: "m-name"}, el("strong", {text: w.name}), el("span", {class: "sub", text: (w.host || "") + " · " + cores(w.cores)})),
       el("div", {class: "m-doing"}, el("div", {class: "doing"}, L.icon("cancelled"), "no heartbeat")),
       el("div", {class: "m-seen sub", text: "last heard " + L.ago(w.last_seen, now) + " (" + L.clock(w.last_seen) + ")"}));
   }
 
   function plot(th) {
     const box = document.getElementById("plot");
-    const W = 600, H = 150, pad = 24;
+    const W = Math.max(200, box.clientWidth), H = 150, pad = 24;
     const per = th.values.map(v => v / th.step);
     const top = Math.max(1, ...per);
     const svgns = "http://www.w3.org/2000/svg";
     const svg = document.createElementNS(svgns, "svg");
     svg.setAttribute("viewBox", "0 0 " + W + " " + (H + pad));
-    svg.setAttribute("preserveAspectRatio", "none");
+    svg.setAttribute("width", W); svg.setAttribute("height", H + pad);
     const bw = W / per.length;
     per.forEach((v, i) => {
       if (!v) return;
@@ -115,7 +121,10 @@
     o.replaceChildren(...(data.offline.length ? data.offline.map(w => offline(w, data.now))
                                                : [el("p", {class: "empty", text: "None."})]));
     plot(data.throughput);
+    lastPlot = data.throughput;
   }
+  let lastPlot = null;
+  window.addEventListener("resize", () => { if (lastPlot) plot(lastPlot); });
   const kick = L.poll(refresh, 2000);
 
   const panel = document.getElementById("submit-panel");

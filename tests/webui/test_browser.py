@@ -1,0 +1,143 @@
+"""The page in a real browser (Debian's Chromium driven by Playwright) against a real farm:
+`lampyr head` serving the page, one `lampyr worker`. Log in, upload a small courtyard shot with
+its assets, watch it finish, add samples to one frame and see its noise fall. Screenshots go to
+the test's tmp folder and to tests/webui/screenshots-out/."""
+
+from __future__ import annotations
+
+import re
+import shutil
+import time
+import zipfile
+from pathlib import Path
+
+import pytest
+
+CHROMIUM = Path("/usr/bin/chromium")
+ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+        "--disable-background-networking", "--disable-component-update", "--disable-sync"]
+OUT = Path(__file__).resolve().parent / "screenshots-out"
+LAPTOP = {"width": 1366, "height": 768}
+PHONE = {"width": 390, "height": 844}
+# the chosen frame's noise is shown once known (the page's CSP forbids evaluated scripts, so
+# waits are selectors)
+KNOWN_NOISE = "#frame-facts[data-noise]:not([data-noise=''])"
+
+
+@pytest.fixture
+def browser():
+    if not CHROMIUM.exists():
+        pytest.fail(f"no Chromium at {CHROMIUM}: run tests/install-browser.sh (it apt-installs "
+                    "Debian's chromium)", pytrace=False)
+    from playwright.sync_api import sync_playwright
+
+    with sync_playwright() as pw:
+        b = pw.chromium.launch(executable_path=str(CHROMIUM), args=ARGS)
+        yield b
+        b.close()
+
+
+@pytest.fixture
+def web_farm(farm):
+    """A real head with its page on a free port, and one real worker: (farm, page URL)."""
+    farm.head_proc = farm._spawn(["head", "--state", farm.state, "--redis", farm.url, "--lease",
+                                  10, "--web-port", 0], "head.log")
+    deadline = time.monotonic() + 60
+    while True:
+        log = (farm.tmp / "head.log").read_text(errors="replace")
+        m = re.search(r"Web page: (http://\S+)", log)
+        if m and "Workers join with:" in log:
+            break
+        assert farm.head_proc.poll() is None and time.monotonic() < deadline, log
+        time.sleep(0.1)
+    farm.start_worker("w1")
+    return farm, m.group(1)
+
+
+@pytest.fixture
+def small_courtyard(tmp_path, repo_root):
+    """The demo shot at 64 × 36, 3 frames, 4 spp, beside a zip of its assets."""
+    src = repo_root / "examples" / "courtyard"
+    text = (src / "courtyard.toml").read_text()
+    text = re.sub(r"(?m)^frames = \[1, 48\]", "frames = [1, 3]", text, count=1)
+    text = re.sub(r"(?m)^width = \d+", "width = 64", text, count=1)
+    text = re.sub(r"(?m)^height = \d+", "height = 36", text, count=1)
+    text = re.sub(r"(?m)^samples = \d+", "samples = 4", text, count=1)
+    folder = tmp_path / "upload"
+    folder.mkdir()
+    shot = folder / "courtyard.toml"
+    shot.write_text(text)
+    archive = folder / "assets.zip"
+    with zipfile.ZipFile(archive, "w") as z:
+        for f in sorted((src / "assets").iterdir()):
+            z.write(f, f"assets/{f.name}")
+    return shot, archive
+
+
+class Shots:
+    def __init__(self, folder: Path):
+        self.folder = folder
+        folder.mkdir(parents=True, exist_ok=True)
+        OUT.mkdir(exist_ok=True)
+
+    def take(self, page, name: str) -> None:
+        path = self.folder / f"{name}.png"
+        page.screenshot(path=str(path), full_page=True)
+        shutil.copy(path, OUT / path.name)
+
+
+def test_log_in_submit_watch_it_finish_and_refine_one_frame(web_farm, small_courtyard, browser,
+                                                           tmp_path):
+    farm, url = web_farm
+    shot, archive = small_courtyard
+    shots = Shots(tmp_path / "screenshots")
+    password = (farm.state / "web" / "password").read_text().strip()
+    page = browser.new_page(viewport=LAPTOP)
+
+    page.goto(url)
+    assert "/login" in page.url
+    shots.take(page, "01-login")
+    page.fill("#password", password)
+    page.click("button[type=submit]")
+    page.wait_for_selector("#fig-shots")
+
+    page.click("#open-submit")
+    page.set_input_files("input[name=shot]", str(shot))
+    page.set_input_files("input[name=assets]", str(archive))
+    page.fill("input[name=tile]", "16")  # 4 × 3 tiles of 16 px
+    page.click("#submit-panel button[type=submit]")
+    page.wait_for_selector("#submit-msg.good", timeout=60_000)
+    page.wait_for_selector("a.shot", timeout=30_000)
+    page.wait_for_selector("#machines .machine")
+    shots.take(page, "02-overview-laptop")
+
+    page.click("a.shot")
+    page.wait_for_selector("#job-state .st-done", timeout=240_000)
+    page.locator("#strip .cell.st-done").nth(2).wait_for()  # all 3 frames
+    page.wait_for_selector(KNOWN_NOISE)
+    shots.take(page, "03-job-done-laptop")
+    page.check("input[name=overlay][value=noise]")
+    page.click("#tiles", position={"x": 5, "y": 5})
+    assert "tile 0 · 4 of 4 samples · noise " in page.inner_text("#tile-info")
+    shots.take(page, "04-job-noise-map-laptop")
+
+    frame = int(page.get_attribute("#frame-facts", "data-frame"))
+    before = float(page.get_attribute("#frame-facts", "data-noise"))
+    page.fill("#refine input[name=samples]", "32")
+    page.check("#refine input[name=where][value=frame]")
+    page.click("#refine button[type=submit]")
+    page.wait_for_selector("#refine-msg.good")
+    page.wait_for_selector("#frame-facts[data-held='32']" + KNOWN_NOISE[12:], timeout=240_000)
+    after = float(page.get_attribute("#frame-facts", "data-noise"))
+    shots.take(page, "05-job-refined-laptop")
+    # the standard error of a mean falls as 1/sqrt(n) (rule of thumb for a path tracer's pixel
+    # estimates): 8× the samples gives about a third of it; a wide margin for the sampler
+    assert after < 0.75 * before, (frame, before, after)
+
+    page.set_viewport_size(PHONE)
+    page.reload()
+    page.wait_for_selector(KNOWN_NOISE)
+    shots.take(page, "06-job-phone")
+    page.goto(url)
+    page.wait_for_selector("a.shot")
+    shots.take(page, "07-overview-phone")
