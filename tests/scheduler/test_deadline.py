@@ -304,3 +304,36 @@ def test_refine_after_the_deadline_lifts_it(head, tiny_shot):
     run = head.jobs[job]
     assert run.rec.deadline is None and not run.rec.deadline_reached
     assert run.pending or head.leases.table  # the refine's batches go out
+
+
+def capacity_now(head, job, now=None):
+    head.deadlines.recompute(now)
+    fc = head.deadlines.fields[job]
+    return fc["capacity_pixel_samples"], fc["hosts"]
+
+
+def test_the_forecast_counts_a_joining_worker_only_inside_its_windows(head, tiny_shot):
+    from lampyr.scheduler import protocol as P
+
+    job = submit_with_deadline(head, tiny_shot, 600.0)
+    alone, n = capacity_now(head, job)
+    assert n == 1 and alone > 0
+    now = time.time()
+    late = {"name": "late", "cores": 64, "windows": [[now + 900, now + 4000]]}  # after it
+    head.r.set(P.k_host("late"), json.dumps(late))
+    assert capacity_now(head, job) == (pytest.approx(alone, rel=0.01), 2)
+    head.r.set(P.k_host("pc"), json.dumps({"name": "pc", "cores": 64}))  # always available
+    assert capacity_now(head, job) == (pytest.approx(2 * alone, rel=0.01), 3)
+
+
+def test_a_job_queued_before_takes_its_work_out_of_the_capacity(head, tiny_shot):
+    from lampyr.scheduler.submit import submit_request
+
+    job = submit_with_deadline(head, tiny_shot, 600.0)
+    now = time.time()
+    alone, _ = capacity_now(head, job, now)
+    first = submit_request(head.r, tiny_shot, {}, None, 5, tile_size=8, batch_samples=3)
+    head.take_commands()
+    ahead = 2 * 16 * 12 * 8  # its every pixel-sample: 2 frames of 16 × 12 at 8 spp
+    assert capacity_now(head, job, now)[0] == pytest.approx(alone - ahead, abs=2)
+    assert first != job
