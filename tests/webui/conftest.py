@@ -83,7 +83,7 @@ def work_off(head, job: str, timeout: float = 120.0) -> dict:
             continue
         st = job_status(head.r, job)
         if st["state"] in ("done", "failed", "cancelled") and not head.leases.table:
-            head.publish(force=True)
+            head.publish(every=0)
             return job_status(head.r, job)
         assert time.monotonic() < deadline, f"job {job} still {st['state']}"
 
