@@ -50,7 +50,8 @@ def web_farm(farm):
             break
         assert farm.head_proc.poll() is None and time.monotonic() < deadline, log
         time.sleep(0.1)
-    farm.start_worker("w1")
+    # a short sleep after every sample (the worker's test hook), so the page sees it rendering
+    farm.start_worker("w1", env={"LAMPYR_TEST_CHUNK_DELAY": "0.05"})
     return farm, m.group(1)
 
 
@@ -112,14 +113,17 @@ def test_log_in_submit_watch_it_finish_and_refine_one_frame(web_farm, small_cour
     shots.take(page, "02-overview-laptop")
 
     page.click("a.shot")
+    page.wait_for_selector("#job-state .st-running", timeout=60_000)
+    page.wait_for_selector("#strip .cell")
+    shots.take(page, "03-job-rendering-laptop")
     page.wait_for_selector("#job-state .st-done", timeout=240_000)
     page.locator("#strip .cell.st-done").nth(2).wait_for()  # all 3 frames
     page.wait_for_selector(KNOWN_NOISE)
-    shots.take(page, "03-job-done-laptop")
+    shots.take(page, "04-job-done-laptop")
     page.check("input[name=overlay][value=noise]")
     page.click("#tiles", position={"x": 5, "y": 5})
     assert "tile 0 · 4 of 4 samples · noise " in page.inner_text("#tile-info")
-    shots.take(page, "04-job-noise-map-laptop")
+    shots.take(page, "05-job-noise-map-laptop")
 
     frame = int(page.get_attribute("#frame-facts", "data-frame"))
     before = float(page.get_attribute("#frame-facts", "data-noise"))
@@ -129,7 +133,7 @@ def test_log_in_submit_watch_it_finish_and_refine_one_frame(web_farm, small_cour
     page.wait_for_selector("#refine-msg.good")
     page.wait_for_selector("#frame-facts[data-held='32']" + KNOWN_NOISE[12:], timeout=240_000)
     after = float(page.get_attribute("#frame-facts", "data-noise"))
-    shots.take(page, "05-job-refined-laptop")
+    shots.take(page, "06-job-refined-laptop")
     # the standard error of a mean falls as 1/sqrt(n) (rule of thumb for a path tracer's pixel
     # estimates): 8× the samples gives about a third of it; a wide margin for the sampler
     assert after < 0.75 * before, (frame, before, after)
@@ -137,7 +141,7 @@ def test_log_in_submit_watch_it_finish_and_refine_one_frame(web_farm, small_cour
     page.set_viewport_size(PHONE)
     page.reload()
     page.wait_for_selector(KNOWN_NOISE)
-    shots.take(page, "06-job-phone")
+    shots.take(page, "07-job-phone")
     page.goto(url)
     page.wait_for_selector("a.shot")
-    shots.take(page, "07-overview-phone")
+    shots.take(page, "08-overview-phone")

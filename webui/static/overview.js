@@ -53,12 +53,22 @@
       ? w.slots.map(s => el("div", {class: "doing"}, L.icon("rendering"),
           el("a", {href: "/jobs/" + encodeURIComponent(s.job || ""), text: (s.job || "?")}),
           " frame " + s.frame + ", tile " + s.tile))
-      : [el("div", {class: "doing idle"}, L.icon("waiting"), w.state ? String(w.state) : "idle")];
+      : [el("div", {class: "doing idle"}, L.icon(/paus|outside/.test(w.state || "") ? "paused" : "waiting"),
+             w.state ? String(w.state) : "idle")];
     return el("div", {class: "machine"},
       el("div", {class: "m-name"}, el("strong", {text: w.name}), el("span", {class: "sub", text: (w.host || "") + " · " + cores(w.cores)})),
       el("div", {class: "m-doing"}, doing),
       el("div", {class: "m-speed"}, el("span", {class: "num", text: L.count(w.pixel_samples_per_second)}), el("span", {class: "sub", text: "samples/s"})),
-      el("div", {class: "m-seen sub", text: (w.hours ? "hours " + (typeof w.hours === "string" ? w.hours : JSON.stringify(w.hours)) + " · " : "") + "heard " + L.ago(w.last_seen, now)}));
+      el("div", {class: "m-seen sub", text: hours(w, now) + "heard " + L.ago(w.last_seen, now)}));
+  }
+
+  /* working hours from the heartbeat's `windows` ([[start, end], ...] epoch seconds), if any */
+  function hours(w, now) {
+    if (!Array.isArray(w.windows) || !w.windows.length) return "";
+    const cur = w.windows.find(([a, b]) => b > now);
+    if (!cur) return "no working hours ahead · ";
+    const [a, b] = cur;
+    return (a <= now ? "renders until " + L.clock(b) : "renders from " + L.clock(a) + " to " + L.clock(b)) + " · ";
   }
 
   function cores(k) { return k === 1 ? "1 core" : (k || "?") + " cores"; }
