@@ -3,6 +3,7 @@
     GET /api/farm                       overview: jobs, workers online and offline, throughput
     GET /api/jobs/<job>                 one job: status, layout, every frame's summary
     GET /api/jobs/<job>/frames/<frame>  one frame: summary, its tiles, failed batches, files
+    GET /api/jobs/<job>/frames/<frame>/tiles/<tile>   one tile and its failed batches
 
 `/api/farm` is what every open overview polls: it is built at most once a second and shared by
 all clients (the farm's state changes at the head's publish rate, 4 per second, anyway).
@@ -138,6 +139,21 @@ def frame(job, frame):
     d["failed"] = [f for f in st.get("failed") or []
                    if P.parse_batch_id(f["batch"])[1] == frame]
     return jsonify(d)
+
+
+@bp.route("/api/jobs/<job>/frames/<int:frame>/tiles/<int:tile>")
+def tile(job, frame, tile):
+    st = job_or_404(job)
+    lay = frame_or_404(job, frame)
+    d = progress.frame_tiles(redis(), job, frame)
+    if d is None or not 0 <= tile < len(lay["tiles"]):
+        abort(404, description=f"job {job!r} has no tile {tile} in frame {frame} "
+                               f"(tiles 0–{len(lay['tiles']) - 1})")
+    out = dict(d["tiles"][tile])
+    out["frame"] = frame
+    out["failed"] = [f for f in st.get("failed") or []
+                     if P.parse_batch_id(f["batch"])[1:3] == (frame, tile)]
+    return jsonify(out)
 
 
 @bp.route("/api/throughput")

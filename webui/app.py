@@ -50,6 +50,7 @@ def create_app(config: dict) -> Flask:
         SESSION_COOKIE_SAMESITE="Strict",
         SESSION_COOKIE_NAME="lampyr_session",
         PERMANENT_SESSION_LIFETIME=14 * 24 * 3600,
+        SESSION_REFRESH_EACH_REQUEST=False,  # polled answers carry no cookie
         MAX_CONTENT_LENGTH=int(config.get("MAX_UPLOAD_BYTES", DEFAULT_UPLOAD_BYTES)),
         JSON_SORT_KEYS=False,
     )

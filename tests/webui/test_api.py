@@ -80,6 +80,18 @@ def test_the_404_json_names_the_job(user):
         "error": "no job 'nope-123456' on this farm"}
 
 
+def test_one_tile_s_json_is_its_row_of_the_frame(user, finished_job):
+    d = user.get(f"/api/jobs/{finished_job}/frames/2/tiles/3").get_json()
+    assert d == {**user.get(f"/api/jobs/{finished_job}/frames/2").get_json()["tiles"][3],
+                 "frame": 2, "failed": []}
+
+
+@pytest.mark.parametrize("tile", ["4", "-1", "x", "99999999"])
+def test_a_tile_the_frame_does_not_have_is_a_404(user, finished_job, tile):
+    resp = user.get(f"/api/jobs/{finished_job}/frames/1/tiles/{tile}")
+    assert resp.status_code == 404 and b"Traceback" not in resp.data
+
+
 @pytest.mark.parametrize("frame", ["0", "3", "99999", "-1", "one"])
 def test_a_frame_the_job_does_not_have_is_a_404(user, finished_job, frame):
     resp = user.get(f"/api/jobs/{finished_job}/frames/{frame}")

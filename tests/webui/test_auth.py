@@ -10,7 +10,7 @@ import pytest
 from .conftest import PASSWORD, log_in, token_of
 
 READS = ["/", "/jobs/some-job", "/api/farm", "/api/jobs/some-job",
-         "/api/jobs/some-job/frames/1", "/api/throughput", "/jobs/some-job/frames/1.exr",
+         "/api/jobs/some-job/frames/1", "/api/jobs/some-job/frames/1/tiles/0", "/api/throughput", "/jobs/some-job/frames/1.exr",
          "/jobs/some-job/frames/1.png", "/jobs/some-job/frames/1/preview.png"]
 ACTIONS = ["/api/jobs/some-job/pause", "/api/jobs/some-job/resume", "/api/jobs/some-job/cancel",
            "/api/jobs/some-job/priority", "/api/jobs/some-job/retry",
