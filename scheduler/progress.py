@@ -6,8 +6,8 @@ start-up, when the accumulators are read anyway), never by rereading accumulator
 `ProgressPublisher.publish` writes only the frames that changed since its last turn:
 
     layout:<job>    string  {"width", "height", "frames": [f, ...], "tiles": [[x0, y0, w, h], ...]}
-    progress:<job>  hash    frame → {"frame", "state", "held", "target", "noise",
-                                     "tiles": [[held, target, noise, state], ...]}
+    progress:<job>  hash    frame → {"frame", "state", "held", "target", "noise"}
+    tiles:<job>     hash    frame → [[held, target, noise, state], ...] (one row per tile)
 
 A tile's `state` is one of TILE_STATES: `failed` when one of its batches failed, `done` when it
 holds its target, `rendering` while a worker holds a lease on one of its batches, else `waiting`.
@@ -102,13 +102,16 @@ class ProgressPublisher:
             self._seen[run] = (now_leased, now_failed)
             if not dirty:
                 continue
-            mapping = {}
+            frames, rows = {}, {}
             for f in sorted(dirty):
                 rendering = {i for g, i in now_leased if g == f}
                 failed = {i for g, i in now_failed if g == f}
-                mapping[str(f)] = json.dumps(frame_summary(run, f, rendering, failed),
-                                             separators=(",", ":"))
-            pipe.hset(P.k_progress(run.rec.id), mapping=mapping)
+                d = frame_summary(run, f, rendering, failed)
+                rows[str(f)] = json.dumps(d.pop("tiles"), separators=(",", ":"))
+                frames[str(f)] = json.dumps(d, separators=(",", ":"))
+            # the strip reads every frame's summary often; tile rows only for the frame shown
+            pipe.hset(P.k_progress(run.rec.id), mapping=frames)
+            pipe.hset(P.k_tiles(run.rec.id), mapping=rows)
 
 
 def layout(run) -> dict:
@@ -125,26 +128,25 @@ def job_layout(r, job: str) -> dict | None:
 
 def job_frames(r, job: str) -> list[dict]:
     """Every published frame summary of a job, by frame number, without the tile lists."""
-    out = []
-    for raw in r.hvals(P.k_progress(job)):
-        d = json.loads(raw)
-        d.pop("tiles", None)
-        out.append(d)
-    return sorted(out, key=lambda d: d["frame"])
+    return sorted((json.loads(raw) for raw in r.hvals(P.k_progress(job))),
+                  key=lambda d: d["frame"])
 
 
 def frame_tiles(r, job: str, frame: int) -> dict | None:
     """One frame's summary with its tiles as dicts {"tile", "x", "y", "w", "h", "held",
     "target", "noise", "state"}; None when the job or frame has none published."""
-    raw = r.hget(P.k_progress(job), str(int(frame)))
-    lay = job_layout(r, job)
-    if raw is None or lay is None:
+    pipe = r.pipeline(transaction=False)
+    pipe.hget(P.k_progress(job), str(int(frame)))
+    pipe.hget(P.k_tiles(job), str(int(frame)))
+    pipe.get(P.k_layout(job))
+    raw, rows, lay = pipe.execute()
+    if raw is None or rows is None or lay is None:
         return None
-    d = json.loads(raw)
+    d, lay = json.loads(raw), json.loads(lay)
     d["tiles"] = [{"tile": i, "x": x, "y": y, "w": w, "h": h, "held": held, "target": target,
                    "noise": noise, "state": state}
                   for i, ((x, y, w, h), (held, target, noise, state))
-                  in enumerate(zip(lay["tiles"], d["tiles"]))]
+                  in enumerate(zip(lay["tiles"], json.loads(rows)))]
     return d
 
 

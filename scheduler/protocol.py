@@ -30,7 +30,8 @@ Redis keys (prefix `lampyr:`):
 | `warm:<name>` | set | worker | pids of a worker's pool processes whose kernels are loaded |
 | `metrics` | string | head | JSON snapshot of the head's counters and queue (metrics.py) |
 | `layout:<job>` | string | head | JSON: image size, frame numbers, tile rectangles (progress.py) |
-| `progress:<job>` | hash | head | frame → JSON: state, samples held / target, noise, per-tile rows (progress.py) |
+| `progress:<job>` | hash | head | frame → JSON: state, samples held / target, noise (progress.py) |
+| `tiles:<job>` | hash | head | frame → JSON rows per tile: samples held, target, noise, state (progress.py) |
 | `throughput` | hash | head | minute (epoch s) → pixel-samples merged in it, last 24 h (history.py) |
 | `seen` | hash | head | worker name → its last heartbeat JSON and `last_seen`, kept a week (history.py) |
 """
@@ -101,6 +102,10 @@ def k_layout(job: str) -> str:
 
 def k_progress(job: str) -> str:
     return key("progress", job)
+
+
+def k_tiles(job: str) -> str:
+    return key("tiles", job)
 
 
 @dataclass(frozen=True)

@@ -44,9 +44,9 @@ def test_a_tile_whose_batch_a_worker_leased_is_rendering(head, tiny_shot):
 def test_an_unchanged_frame_is_not_written_again(head, tiny_shot, compiled_kernels):
     job = submitted(head, tiny_shot)
     work_off(head, job)
-    head.r.delete(P.k_progress(job))
+    head.r.delete(P.k_progress(job), P.k_tiles(job))
     head.publish(every=0)
-    assert head.r.hlen(P.k_progress(job)) == 0
+    assert head.r.hlen(P.k_progress(job)) == 0 and head.r.hlen(P.k_tiles(job)) == 0
 
 
 def test_a_merge_republishes_only_its_frame(head, tiny_shot, compiled_kernels):
@@ -55,9 +55,9 @@ def test_a_merge_republishes_only_its_frame(head, tiny_shot, compiled_kernels):
     head.r.delete(P.k_progress(job))
     head.cmd_refine(job, 12, frames=[2])
     head.publish(every=0)  # the refined job's runs are new: every frame once
-    head.r.delete(P.k_progress(job))
+    head.r.delete(P.k_progress(job), P.k_tiles(job))
     work_off(head, job)
-    assert head.r.hkeys(P.k_progress(job)) == [b"2"]
+    assert head.r.hkeys(P.k_progress(job)) == [b"2"] and head.r.hkeys(P.k_tiles(job)) == [b"2"]
 
 
 def test_redis_losing_its_data_gets_the_progress_back(head, tiny_shot, compiled_kernels):
