@@ -4,6 +4,7 @@ config keys:
     STATE            the head's state folder (password files, upload scratch space)
     REDIS_URL        the farm's Redis, as the head prints it
     PASSWORD         the login password (default: auth.farm_password(STATE))
+    VIEWER_PASSWORD  a read-only login's password (default: auth.viewer_password(STATE), or none)
     SECRET_KEY       signs the session cookie (default: auth.session_secret(STATE))
     MAX_UPLOAD_BYTES largest upload accepted, shot plus archive (default 512 MiB)
     any other Flask setting (TESTING, …) is passed through.
@@ -59,6 +60,8 @@ def create_app(config: dict) -> Flask:
     app.config.setdefault("PASSWORD", None)
     if not app.config["PASSWORD"]:
         app.config["PASSWORD"] = auth.farm_password(state)
+    if "VIEWER_PASSWORD" not in config:
+        app.config["VIEWER_PASSWORD"] = auth.viewer_password(state)
     if not app.config.get("SECRET_KEY"):
         app.config["SECRET_KEY"] = auth.session_secret(state)
     app.extensions["lampyr.redis"] = connect(config["REDIS_URL"], check=False)

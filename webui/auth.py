@@ -6,6 +6,9 @@ listens beyond loopback), or else the page's own, generated at first start into
 SameSite=Strict) keyed by `<state>/web/secret`, so logins survive a head restart; it holds a
 fingerprint of the password, so changing the password file logs everybody out.
 
+A read-only viewer login is optional: when `<state>/web/viewer-password` exists (the farm's
+keeper writes it), that password opens the page for looking only; every action answers 403.
+
 Every POST / PUT / PATCH / DELETE must carry the session's token (header `X-Lampyr-Token` or
 form field `token`) and, when the browser sends an Origin, come from this page's own origin. The
 login form has a token too (given with the form), so another site cannot log a browser in.
@@ -55,6 +58,13 @@ def farm_password(state: Path) -> str:
     return _private_file(password_file(state), lambda: secrets.token_urlsafe(18))
 
 
+def viewer_password(state: Path) -> str | None:
+    path = Path(state) / "web" / "viewer-password"
+    if not path.exists():
+        return None
+    return path.read_text().strip() or None
+
+
 def session_secret(state: Path) -> str:
     return _private_file(Path(state) / "web" / "secret", lambda: secrets.token_hex(32))
 
@@ -70,10 +80,24 @@ def csrf_token() -> str:
     return session["csrf"]
 
 
+def _passwords() -> dict:
+    """Role → its password, for the roles this page has."""
+    out = {"farm": current_app.config["PASSWORD"]}
+    if current_app.config.get("VIEWER_PASSWORD"):
+        out["viewer"] = current_app.config["VIEWER_PASSWORD"]
+    return out
+
+
+def role() -> str | None:
+    """"farm" (may act), "viewer" (may look) or None (not logged in, or the password changed)."""
+    pw = _passwords().get(session.get("who", ""))
+    if pw and hmac.compare_digest(session.get("pw", ""), _fingerprint(pw)):
+        return session["who"]
+    return None
+
+
 def logged_in() -> bool:
-    pw = current_app.config["PASSWORD"]
-    return session.get("who") == "farm" and hmac.compare_digest(
-        session.get("pw", ""), _fingerprint(pw))
+    return role() is not None
 
 
 def _wants_json() -> bool:
@@ -103,6 +127,8 @@ def check_request():
             return _refuse(401, "log in first")
         return redirect(url_for("auth.login", next=request.full_path.rstrip("?")))
     g.token = csrf_token()
+    if request.method in MUTATING and role() != "farm" and request.endpoint != "auth.logout":
+        return _refuse(403, "this login can look but not change anything (a viewer login)")
     return None
 
 
@@ -141,13 +167,14 @@ def login():
             return render_template("login.html", token=csrf_token(), next=nxt,
                                    error="Too many wrong passwords; wait a minute."), 429
         given = request.form.get("password", "")
-        if hmac.compare_digest(given.encode(), current_app.config["PASSWORD"].encode()):
-            session.clear()
-            session.permanent = True
-            session["who"] = "farm"
-            session["pw"] = _fingerprint(current_app.config["PASSWORD"])
-            csrf_token()
-            return redirect(nxt)
+        for who_is, pw in _passwords().items():
+            if hmac.compare_digest(given.encode(), pw.encode()):
+                session.clear()
+                session.permanent = True
+                session["who"] = who_is
+                session["pw"] = _fingerprint(pw)
+                csrf_token()
+                return redirect(nxt)
         throttle.failed(who)
         error = "That is not the farm's password."
     code = 401 if error else 200
@@ -172,4 +199,4 @@ def install(app) -> None:
 
     @app.context_processor
     def _token():
-        return {"token": session.get("csrf", "")}
+        return {"token": session.get("csrf", ""), "role": role()}

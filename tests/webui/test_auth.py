@@ -142,3 +142,43 @@ def test_pages_forbid_framing_and_foreign_scripts(user):
     resp = user.get("/")
     csp = resp.headers["Content-Security-Policy"]
     assert "frame-ancestors 'none'" in csp and "script-src 'self'" in csp
+
+
+@pytest.fixture
+def viewer(app):
+    """A test client logged in with the read-only viewer password."""
+    app.config["VIEWER_PASSWORD"] = "just looking"
+    c = app.test_client()
+    c.get("/login")
+    c.post("/login", data={"password": "just looking", "token": token_of(c)})
+    c.token = token_of(c)
+    return c
+
+
+def test_a_viewer_login_reads_the_json(viewer):
+    assert viewer.get("/api/farm").status_code == 200
+
+
+@pytest.mark.parametrize("url", [u for u in ACTIONS if u != "/logout"])
+def test_a_viewer_login_cannot_act(viewer, url):
+    resp = viewer.post(url, json={}, headers={"X-Lampyr-Token": viewer.token})
+    assert resp.status_code == 403 and "look but not change" in resp.get_json()["error"]
+
+
+def test_a_viewer_can_log_out(viewer):
+    assert viewer.post("/logout", headers={"X-Lampyr-Token": viewer.token}).status_code == 302
+    assert viewer.get("/api/farm").status_code == 401
+
+
+def test_without_a_viewer_password_file_there_is_no_viewer_login(tmp_path):
+    from lampyr.webui.auth import viewer_password
+
+    assert viewer_password(tmp_path) is None
+    (tmp_path / "web").mkdir()
+    (tmp_path / "web" / "viewer-password").write_text("just looking\n")
+    assert viewer_password(tmp_path) == "just looking"
+
+
+def test_a_viewer_s_page_says_it_only_looks(viewer):
+    resp = viewer.get("/")
+    assert resp.status_code == 200 and b"looking only" in resp.data and b'class=" viewer"' in resp.data
