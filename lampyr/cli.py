@@ -193,11 +193,40 @@ def head(state, redis_url, listen, port, lease_seconds, max_attempts, metrics_po
 @click.option("--pool", type=click.Choice(["prefork", "solo"]), default=None,
               help="Celery pool (default: prefork; solo on Windows).")
 @click.option("--name", default=None, help="Name shown in status (default: host-pid).")
-def worker(address, cores, pool, name):
-    """Join the farm at ADDRESS and render batches until stopped."""
-    from .worker.app import run_worker
+@click.option("--hours", default=None, metavar="HH:MM-HH:MM",
+              help="Working hours in local time, e.g. 19:00-07:30 (several: comma-separated). "
+                   "Outside them no batch is taken; at their end batches in progress hand back "
+                   "what they have finished. Default: always.")
+@click.option("--weekend", type=click.Choice(["all-day", "same-hours", "off"]), default="all-day",
+              show_default=True, help="On weekend days: render all day, keep --hours, or not at all.")
+@click.option("--weekend-days", default="sat,sun", show_default=True, metavar="DAYS",
+              help="Which days are the weekend (day names, comma-separated).")
+@click.option("--time-zone", "time_zone", default=None, metavar="ZONE",
+              help="Read --hours in this time zone (e.g. Europe/Paris) instead of the machine's.")
+@click.option("--pause-when-busy", "busy_percent", type=click.FloatRange(1, 100), default=None,
+              metavar="PERCENT",
+              help="Pause rendering while other programs use more than PERCENT of this machine's "
+                   "CPU (averaged over --busy-seconds); resume when they use less. Default: never.")
+@click.option("--busy-seconds", type=click.FloatRange(1, 3600), default=10.0, show_default=True,
+              help="Seconds the load is averaged over before pausing or resuming.")
+@click.option("--hand-back-after", type=click.FloatRange(1, 86400), default=300.0,
+              show_default=True,
+              help="Paused longer than this many seconds: hand back the batches in progress and "
+                   "take no more until the machine is quiet.")
+@click.option("--normal-priority", is_flag=True,
+              help="Render at normal CPU priority (default: the lowest, nice 19 / idle class).")
+def worker(address, cores, pool, name, hours, weekend, weekend_days, time_zone, busy_percent,
+           busy_seconds, hand_back_after, normal_priority):
+    """Join the farm at ADDRESS and render batches until stopped (Ctrl-C / SIGTERM hand back
+    the samples finished so far)."""
+    from .worker.hours import Schedule, parse_days, parse_hours, parse_zone
+    from .worker.supervisor import WorkerOptions, run_worker
 
-    run_worker(address, cores or os.cpu_count() or 1, pool, name)
+    schedule = Schedule(parse_hours(hours) if hours else (), weekend, parse_days(weekend_days),
+                        parse_zone(time_zone))
+    opts = WorkerOptions(address, cores or os.cpu_count() or 1, pool, name, schedule,
+                         busy_percent, busy_seconds, hand_back_after, normal_priority)
+    sys.exit(run_worker(opts))
 
 
 @cli.command()

@@ -12,7 +12,7 @@ import time
 from collections import deque
 from pathlib import Path
 
-from .accumulator import TileAccumulator, overlaps, samples_held
+from .accumulator import TileAccumulator, samples_held
 from .jobs import JobFolder, JobRecord
 from .planner import plan_batches
 from .progress import tile_noise
@@ -50,23 +50,25 @@ class JobRun:
         self.replan()
 
     def replan(self) -> None:
-        """Rebuild `pending` from the plan: every batch neither held nor failed."""
+        """Rebuild `pending` from the plan: every batch neither held nor failed. A batch
+        held in part (handed back part-way) is queued as the sub-ranges its tile lacks."""
         batches = plan_batches(self.rec.id, self.frames, self.tiles, self.rec.ranges)
         for key, ranges in self.rec.extra.items():
             f, i = map(int, key.split("/"))
             t = self.tiles[i]
             batches += [Batch(self.rec.id, f, i, a, c, t.x0, t.y0, t.w, t.h) for a, c in ranges]
         self.pending = deque(
-            b for b in batches
-            if not overlaps(self.held[(b.frame, b.tile)], b.first, b.count)
-            and b.id not in self.rec.failed
+            part for b in batches if b.id not in self.rec.failed
+            for part in _remainders(b, self.held[(b.frame, b.tile)])
+            if part.id not in self.rec.failed
         )
 
     def tile_target(self, frame: int, tile: int) -> int:
         return self.rec.samples + samples_held(self.rec.extra.get(f"{frame}/{tile}", ()))
 
     def is_done(self, b) -> bool:
-        return overlaps(self.held[(b.frame, b.tile)], b.first, b.count)
+        """Every sample of the batch is held (a part handed back leaves it not done)."""
+        return not _remainders(b, self.held[(b.frame, b.tile)])
 
     def merge(self, b, film, seconds: float, sync_folder: bool = True) -> bool:
         """Fold a batch's film into its tile accumulator on disk; False when already held."""
@@ -137,6 +139,25 @@ class JobRun:
                 if acc.film is None or float(np.mean(acc.film.rel_noise())) > goal:
                     out.append((f, i))
         return out
+
+
+def _remainders(b: Batch, ranges) -> list[Batch]:
+    """The sub-batches of `b` covering the samples of [first, first + count) that no held
+    range (first, count) covers, in order; [] when all are held, [b] when none are."""
+    from dataclasses import replace
+
+    out, s, end = [], b.first, b.first + b.count
+    for f, c in sorted(ranges):
+        if f + c <= s or f >= end:
+            continue
+        if f > s:
+            out.append((s, f - s))
+        s = max(s, f + c)
+    if s < end:
+        out.append((s, end - s))
+    if out == [(b.first, b.count)]:
+        return [b]
+    return [replace(b, first=a, count=c) for a, c in out]
 
 
 def _overrides(rec: JobRecord) -> dict:

@@ -233,6 +233,14 @@ class Head(JobCommands):
             if run is None or run.rec.cancelled:
                 continue
             entry = self.leases.get(bid)
+            if note["kind"] == "partial":
+                taken, merged = self._take_back(run, entry, ticket, note, data)
+                if merged:
+                    folders.add(run.folder.tile(entry.batch.frame, entry.batch.tile).parent)
+                    frames.add((job, frame))
+                if taken:
+                    finished.append(bid)
+                continue
             if note["kind"] != "result":
                 self._on_error(run, bid, ticket, note["error"])
                 continue
@@ -258,6 +266,33 @@ class Head(JobCommands):
             pipe.delete(P.k_result(note["batch"], int(note["ticket"])))
         pipe.execute()
         return len(raws)
+
+    def _take_back(self, run: JobRun, entry, ticket: int, note: dict, data) -> tuple[bool, bool]:
+        """A batch handed back part-way: merge the samples [first, first + done) it holds and
+        queue the rest first. Returns (taken, merged). The notice of a dispatch the head has
+        replaced is skipped whole: the newer dispatch renders the whole batch."""
+        from dataclasses import replace
+
+        from ..engine.film import from_bytes
+
+        if entry is None or entry.ticket != ticket:
+            return False, False
+        b = entry.batch
+        done = max(0, min(int(note.get("done", 0)), b.count))
+        if done and data is None:  # the part expired or was lost: the whole batch again
+            self._requeue(b)
+            return False, False
+        part = replace(b, count=done)
+        merged = bool(done) and run.merge(part, from_bytes(data), note.get("seconds", 0.0),
+                                          sync_folder=False)
+        if merged:
+            self.metrics.merged(b.w * b.h * done)
+        self.leases.pop(b.id)
+        if done < b.count:
+            run.pending.appendleft(replace(b, first=b.first + done, count=b.count - done))
+        log.info("batch %s handed back by %s with %d of %d samples", b.id,
+                 note.get("worker", "?"), done, b.count)
+        return True, merged
 
     def _finish(self, bid: str) -> None:
         self.leases.pop(bid)

@@ -23,9 +23,9 @@ Redis keys (prefix `lampyr:`):
 | `attempts` | hash | worker | batch id → starts so far (lampyr's own attempt counter) |
 | `lease:<batch>` | string, TTL | worker | `<worker>:<ticket>` while a worker renders the batch |
 | `result:<batch>:<ticket>` | string, TTL | worker | the batch's film as bytes |
-| `results` | list | worker | JSON notices: a result is ready or a batch raised |
+| `results` | list | worker | JSON notices: a result is ready, a batch was handed back part-way (`partial`, with `done`), or it raised |
 | `results:processing` | list | head | notices being merged (kept until the merge is on disk) |
-| `host:<name>` | string, TTL | worker | JSON heartbeat: host, cores, engine version, pid |
+| `host:<name>` | string, TTL | worker | JSON heartbeat: host, cores, engine version, pid, `state`, `windows` (worker/supervisor.py) |
 | `slot:<name>:<pid>` | string, TTL | worker | JSON: the batch a worker process renders and its speed |
 | `warm:<name>` | set | worker | pids of a worker's pool processes whose kernels are loaded |
 | `metrics` | string | head | JSON snapshot of the head's counters and queue (metrics.py) |
@@ -43,7 +43,7 @@ from dataclasses import asdict, dataclass
 
 from ..errors import LampyrError
 
-PROTOCOL_VERSION = 1
+PROTOCOL_VERSION = 2  # 2: `partial` result notices (a version-1 head would misread them)
 TASK_RENDER = "lampyr.render_batch"
 QUEUE = "lampyr"
 PREFIX = "lampyr:"
@@ -183,6 +183,17 @@ def result_notice(batch: str, ticket: int, worker: str, seconds: float,
     """seconds: rendering; prepare: fetching, unpacking and compiling the scene first."""
     return json.dumps({"kind": "result", "batch": batch, "ticket": ticket, "worker": worker,
                        "seconds": round(seconds, 4), "prepare": round(prepare, 4)})
+
+
+def partial_notice(batch: str, ticket: int, worker: str, seconds: float, prepare: float,
+                   done: int) -> str:
+    """A batch handed back part-way (working hours over, the worker stopping, its user busy):
+    the film under `result:<batch>:<ticket>` holds samples [first, first + done) — none when
+    done is 0 — and the head queues the rest again. Samples are deterministic, so the part is a
+    valid result on its own."""
+    return json.dumps({"kind": "partial", "batch": batch, "ticket": ticket, "worker": worker,
+                       "seconds": round(seconds, 4), "prepare": round(prepare, 4),
+                       "done": int(done)})
 
 
 def error_notice(batch: str, ticket: int, worker: str, error: str) -> str:

@@ -6,16 +6,21 @@ runtime is forked (LIBRARY-NOTES: forking after OpenMP ran kills the child), and
 one Python thread calling kernels (workqueue aborts when two do). On Windows, where nothing
 forks, the pool is `solo`: one process, one batch at a time, with `cores` numba threads.
 
-A heartbeat thread in the parent keeps `host:<name>` alive: host, cores, engine version, pid.
+This module is the Celery worker process that `lampyr worker` (worker/supervisor.py) starts
+inside working hours and stops at their end: `python -m lampyr.worker.app CONFIG-JSON`. It
+takes the lowest CPU priority before the pool starts (the pool processes inherit it), and a
+warm shutdown (SIGTERM, Ctrl-C) raises the gate's `stop` flag so that batches in progress hand
+back what they have finished instead of running to their end. The supervisor keeps the host
+heartbeat.
 """
 
 from __future__ import annotations
 
 import json
+import logging
 import os
 import socket
 import sys
-import threading
 
 from ..scheduler import protocol as P
 
@@ -33,10 +38,11 @@ def prepare_environment(pool: str, cores: int) -> None:
     os.environ.setdefault("NUMBA_THREADING_LAYER", "workqueue")
 
 
-def make_app(url: str, name: str, settings: dict | None = None):
+def make_app(url: str, name: str, settings: dict | None = None, gate_folder: str | None = None):
     """A Celery app bound to the farm at `url` with TASK_RENDER registered.
 
-    settings: extra Celery settings over `protocol.celery_settings(url)`.
+    settings: extra Celery settings over `protocol.celery_settings(url)`; gate_folder: the
+    supervisor's gate (worker/gate.py), consulted by every batch between chunks.
     """
     from celery import Celery
 
@@ -50,11 +56,13 @@ def make_app(url: str, name: str, settings: dict | None = None):
 
     @app.task(name=P.TASK_RENDER, acks_late=True, reject_on_worker_lost=True, ignore_result=True)
     def render_batch(payload: str) -> dict:
+        from .gate import Gate
         from .tasks import Context, run_batch
 
         ctx = _CTX.get(os.getpid())
         if ctx is None:
-            ctx = _CTX[os.getpid()] = Context(url, name)
+            gate = Gate(gate_folder) if gate_folder else None
+            ctx = _CTX[os.getpid()] = Context(url, name, gate)
         return run_batch(ctx, payload)
 
     return app
@@ -73,49 +81,44 @@ def _warm_and_report(url: str, name: str):
     return warm
 
 
-def heartbeat(url: str, info: dict, stop: threading.Event) -> None:
-    from ..scheduler.store import connect
-
-    r = connect(url, check=False)
-    while not stop.is_set():
-        try:
-            r.set(P.k_host(info["name"]), json.dumps(info), ex=P.HEARTBEAT_TTL)
-        except Exception:  # Redis restarting: the next beat will do
-            pass
-        stop.wait(P.HEARTBEAT_EVERY)
+def quiet_connection_logs() -> None:
+    """Celery logs a lost broker connection with a stack trace, and every retry on several
+    lines; the supervisor says it in one line instead (worker/connect.py)."""
+    for logger in ("celery.worker.consumer.consumer", "celery.worker.consumer.connection",
+                   "celery.worker.consumer.gossip", "celery.worker.consumer.mingle",
+                   "kombu.connection", "celery.bootsteps"):
+        logging.getLogger(logger).setLevel(logging.CRITICAL)
 
 
-def run_worker(url: str, cores: int, pool: str | None = None, name: str | None = None,
-               loglevel: str = "WARNING") -> None:
-    """Join the farm at `url` and render until stopped (Ctrl-C / SIGTERM: warm shutdown)."""
-    from celery.signals import worker_process_init
+def run_celery(url: str, cores: int, pool: str, name: str, gate_folder: str | None = None,
+               normal_priority: bool = False, loglevel: str = "WARNING") -> None:
+    """Render batches from the farm at `url` until a warm shutdown (SIGTERM / Ctrl-C)."""
+    from celery.signals import worker_process_init, worker_shutting_down
 
-    from ..scheduler.store import check_protocol, connect
-    from .tasks import host_info
+    from .gate import Gate
+    from .politeness import lower_priority
 
-    pool = pool or default_pool()
     prepare_environment(pool, cores)
-    r = connect(url)
-    check_protocol(r)
-    name = name or f"{socket.gethostname()}-{os.getpid()}"
-    app = make_app(url, name)
+    if not normal_priority:
+        lower_priority()  # before the pool starts: its processes inherit it
+    quiet_connection_logs()
+    app = make_app(url, name, gate_folder=gate_folder)
     warm = _warm_and_report(url, name)
     if pool == "prefork":
         worker_process_init.connect(warm, weak=False)
     else:
         warm()
-    stop = threading.Event()
-    beat = threading.Thread(target=heartbeat, args=(url, host_info(name, cores, pool), stop),
-                            daemon=True)
-    beat.start()
+
+    def hand_back(**_):
+        if gate_folder:
+            Gate(gate_folder).set_stop(True)
+
+    worker_shutting_down.connect(hand_back, weak=False)
     argv = ["worker", "-P", pool, "-c", str(cores if pool == "prefork" else 1), "-Q", P.QUEUE,
             "-n", f"{name}@{socket.gethostname()}", "--without-gossip", "--without-mingle",
             "--without-heartbeat", "-l", loglevel]
-    try:
-        app.worker_main(argv)
-    finally:
-        stop.set()
-        try:
-            r.delete(P.k_host(name))
-        except Exception:
-            pass
+    app.worker_main(argv)
+
+
+if __name__ == "__main__":
+    run_celery(**json.loads(sys.argv[1]))
