@@ -27,8 +27,8 @@ from . import protocol as P
 from .accumulator import write_atomic
 from .assembler import JobRun
 from .commands import JobCommands
-from .history import HistoryRecorder
 from .deadline_keeper import DeadlineKeeper
+from .history import HistoryRecorder
 from .jobs import JobFolder, list_jobs
 from .leases import LeaseKeeper
 from .metrics import HeadCounters
@@ -77,9 +77,9 @@ class Head(JobCommands):
         self._epoch_at = 0.0
         self._cores = (0.0, 0)
         self.metrics = HeadCounters()
+        self.deadlines = DeadlineKeeper(self)  # forecasts, holds back, stops at deadlines
         self.progress = ProgressPublisher()  # per-frame / per-tile summary for the web page
         self.history = HistoryRecorder()  # throughput per minute, workers last seen
-        self.deadlines = DeadlineKeeper(self)  # forecasts, holds back, stops at deadlines
 
     # -- start-up ---------------------------------------------------------------------------
 

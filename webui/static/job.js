@@ -285,6 +285,17 @@
     document.getElementById("act-cancel").addEventListener("click", () => {
       if (confirm("Cancel " + S.job.name + "? Frames already written stay on disk.")) act("cancel");
     });
+    const setPicked = (frames) => {
+      S.picked = new Set(frames);
+      document.getElementById("picked-count").textContent = S.picked.size;
+      renderStrip();
+    };
+    document.getElementById("tick-none").addEventListener("click", () => setPicked([]));
+    document.getElementById("tick-noisy").addEventListener("click", () => {
+      const known = S.frames.filter(f => f.noise !== null).sort((a, b) => b.noise - a.noise);
+      setPicked(known.slice(0, Math.max(1, Math.ceil(known.length / 4))).map(f => f.frame));
+      document.querySelector("#refine input[name=where][value=picked]").checked = true;
+    });
     const ex = document.getElementById("exposure");
     const setExposure = (v) => {
       S.exposure = Number(v); ex.value = v;
