@@ -147,7 +147,10 @@ class LoginThrottle:
     def blocked(self, who: str) -> bool:
         now = time.monotonic()
         recent = [t for t in self.fails.get(who, []) if now - t < LOGIN_WINDOW]
-        self.fails[who] = recent
+        if recent:
+            self.fails[who] = recent
+        else:
+            self.fails.pop(who, None)  # the table holds only addresses failing now
         return len(recent) >= LOGIN_TRIES
 
     def failed(self, who: str) -> None:

@@ -42,6 +42,9 @@
     retry.textContent = nf ? "Retry failed work (" + nf + ")" : "Nothing failed";
     document.getElementById("act-cancel").hidden = ["done", "cancelled"].includes(j.state);
     renderDeadline(j);
+    const err = document.getElementById("job-error");
+    err.hidden = !j.error;
+    if (j.error) err.replaceChildren(L.icon("failed"), " The head could not run this shot: " + j.error);
   }
 
   function renderDeadline(j) {
