@@ -13,8 +13,8 @@ stop a job at its deadline with every frame written.
 The policy itself is `deadline.plan_night`; the throughput is `forecast.Forecaster`. Jobs share
 the farm in dispatch order: a deadline job gets the capacity left after the remaining work of
 the jobs queued before it. Tile noise is the mean relative standard error of the tile's
-luminance (`Film.rel_noise`, as `refine --noise` judges it), read from the tile accumulator when
-its sample count changed, a bounded number of tiles per recompute.
+luminance (`Film.rel_noise`, as `refine --noise` judges it), which the head keeps per tile as
+it merges (`JobRun.noise`, see progress.py); no accumulator is read for it.
 """
 
 from __future__ import annotations
@@ -33,7 +33,6 @@ log = logging.getLogger("lampyr.head")
 
 EVERY = 3.0  # seconds between forecasts (workers come and go on a scale of minutes)
 LOOK_EVERY = 0.5  # seconds between looks at the slots' speeds (a slot record lives one batch)
-NOISE_READS = 64  # tile accumulators read for their noise per recompute, at most
 HORIZON = 36 * 3600.0  # how far ahead the working windows reach
 
 
@@ -45,7 +44,6 @@ class DeadlineKeeper:
         self.plans: dict = {}  # job → NightPlan
         self.fields: dict = {}  # job → the `forecast` status object
         self.deferred: dict = {}  # job → [Batch] beyond the plan's targets
-        self.noise: dict = {}  # (job, frame, tile) → (noise, samples it was measured at)
         self.stopped: dict = {}  # job → its sample plan when stopped (a refine changes it)
         self._at = -math.inf
         self._looked = -math.inf
@@ -147,21 +145,13 @@ class DeadlineKeeper:
         return out
 
     def tile_states(self, run, inflight: dict) -> list[TileState]:
-        job = run.rec.id
         ends = sorted({a + c for a, c in run.rec.ranges})
-        reads = 0
-        kept = getattr(run, "noise", {})  # measured at every merge, where the head keeps it
         out = []
         for f in run.frames:
             for i, t in enumerate(run.tiles):
                 held = samples_held(run.held[(f, i)])
-                noise, at = self.noise.get((job, f, i), (None, 0))
-                if kept.get((f, i)) is not None:
-                    noise, at = kept[(f, i)], held
-                elif held != at and held >= 2 and reads < NOISE_READS:
-                    noise, at = _tile_noise(run, f, i), held
-                    self.noise[(job, f, i)] = (noise, at)
-                    reads += 1
+                noise = run.noise.get((f, i))  # measured at the last merge, at `held` samples
+                at = held if noise is not None else 0
                 px = t.w * t.h
                 extra = run.rec.extra.get(f"{f}/{i}", ())
                 steps = tuple(sorted(set(ends) | {a + c for a, c in extra}))
@@ -246,18 +236,6 @@ def write_held_frame(run, frame: int) -> None:
     write_frame_files(Path(run.rec.out), run.shot, frame, film, run.seconds.get(frame, 0.0))
     run.written[frame] = run.frame_level(frame)
     run.written_sum[frame] = total
-
-
-def _tile_noise(run, frame: int, tile: int) -> float | None:
-    import numpy as np
-
-    t = run.tiles[tile]
-    acc = TileAccumulator.load(run.folder.tile(frame, tile), t.w, t.h)
-    if acc.film is None:
-        return None
-    e = acc.film.rel_noise()
-    e = e[np.isfinite(e)]
-    return float(e.mean()) if e.size else None
 
 
 def _sample_plan(rec) -> tuple:

@@ -208,6 +208,10 @@ def test_a_real_job_stops_at_its_deadline_done_with_every_frame(farm, tiny_shot,
     # 8 tiles × 8 samples at ≥ 0.3 s a sample need about 20 s: more than the night
     job = farm.submit(tiny_shot, "--out", tmp_path / "out", "--tile", 8, "--batch", 3,
                       "--until", until)
+    running = ""
+    while "cannot finish" not in running and farm.status(job)["state"] != "done":
+        running = farm.cli("status", job, "--head", farm.url).stdout
+    assert "cannot finish: expect" in running and "of 8 spp" in running  # said before the end
     st = farm.wait(job, timeout=90)
     assert st["state"] == "done" and st["deadline_reached"] is True
     assert st["deadline"] == pytest.approx(datetime.fromisoformat(until).timestamp())
