@@ -3,6 +3,7 @@ that stops a job at its deadline."""
 
 from __future__ import annotations
 
+import functools
 import json
 import math
 import random
@@ -141,6 +142,7 @@ NIGHT_SHORT = 1800.0  # the whole job needs about an hour of this farm: cannot f
 NIGHT_LONG = 3 * 3600.0  # about three times what it needs
 
 
+@functools.lru_cache(maxsize=None)  # a night is deterministic for its seed: simulate it once
 def night(seconds, seed):
     workers = make_workers(50, random.Random(seed), 0.0, seconds)
     sim = FarmSim(SimJob(), workers, 0.0, seconds, seed=seed)
