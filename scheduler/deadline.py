@@ -246,6 +246,8 @@ def deadline_line(st: dict, now: float | None = None) -> str:
     if st.get("deadline_reached"):
         tail = f"reached: stopped at {fc['spp_expected']:.0f} of {full} spp" if fc else "reached"
         return f"{head} {tail}"
+    if st.get("state") == "done":
+        return f"{head} — finished before it"
     if not fc:
         return f"{head} — no forecast yet"
     noise = ("" if fc.get("noise_expected") is None

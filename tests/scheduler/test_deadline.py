@@ -233,6 +233,7 @@ def test_a_real_job_with_time_to_spare_finishes_before_its_deadline(farm, tiny_s
     st = farm.wait(job, timeout=90)
     assert (st["state"], st["frames_done"], st["deadline_reached"]) == ("done", 2, False)
     assert st["forecast"]["feasible"] is True
+    assert "finished before it" in farm.cli("status", job, "--head", farm.url).stdout
 
 
 # -- the head's own decisions, in this process against a real Redis (no workers) --------------
