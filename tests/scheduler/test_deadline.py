@@ -344,3 +344,11 @@ def test_a_job_queued_before_takes_its_work_out_of_the_capacity(head, tiny_shot)
     ahead = 2 * 16 * 12 * 8  # its every pixel-sample: 2 frames of 16 × 12 at 8 spp
     assert capacity_now(head, job, now)[0] == pytest.approx(alone - ahead, abs=2)
     assert first != job
+
+
+def test_the_simulated_forecast_follows_workers_coming_and_going():
+    sim, res = night(NIGHT_SHORT, 1)
+    present = [sum(1 for w in sim.workers if w.online[0] <= t < w.online[1])
+               for t, _ in res.forecasts]
+    assert [f["hosts"] for _, f in res.forecasts] == present
+    assert len(set(present)) > 1  # some joined or left during the night
