@@ -152,8 +152,9 @@ class Farm:
                 raise RuntimeError(f"head did not start:\n{log}")
             time.sleep(0.05)
 
-    def start_worker(self, name: str, env=None, wait: bool = True) -> subprocess.Popen:
-        proc = self._spawn(["worker", self.url, "--cores", 1, "--name", name],
+    def start_worker(self, name: str, env=None, wait: bool = True, args=()) -> subprocess.Popen:
+        """args: more `lampyr worker` options (--hours …)."""
+        proc = self._spawn(["worker", self.url, "--cores", 1, "--name", name, *args],
                            f"worker-{name}.log", env)
         self.workers[name] = proc
         if wait:

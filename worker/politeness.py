@@ -118,15 +118,19 @@ class BusyWatch:
         self.samples: deque = deque()
         self.busy = False
         self.busy_since: float | None = None
+        self.started: float | None = None
 
     def mean(self) -> float:
         return sum(v for _, v in self.samples) / len(self.samples) if self.samples else 0.0
 
     def update(self, t: float, load: float) -> bool:
+        if self.started is None:
+            self.started = t
         self.samples.append((t, load))
-        while self.samples and self.samples[0][0] < t - self.seconds:
+        while self.samples and self.samples[0][0] <= t - self.seconds:
             self.samples.popleft()
-        covered = self.samples[-1][0] - self.samples[0][0] >= 0.8 * self.seconds
+        # no verdict before the load has been watched for `seconds`
+        covered = t - self.started >= self.seconds
         if not self.busy and covered and self.mean() > self.threshold:
             self.busy, self.busy_since = True, t
         elif self.busy and covered and self.mean() <= self.threshold:

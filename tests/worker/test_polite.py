@@ -1,0 +1,185 @@
+"""The polite worker with real parts: a real redis-server, a real `lampyr head`, real `lampyr
+worker` processes, a real CPU hog playing the machine's user, real signals.
+
+The worker's clock is moved with its test hook (`LAMPYR_TEST_CLOCK_FILE`: seconds added to the
+real clock), so the end of working hours comes when the test wants it.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from datetime import datetime, timedelta, timezone
+
+import psutil
+import pytest
+import redis
+
+from ..scheduler.farmtools import assert_same_image, frame_mean, reference_mean
+
+LAYOUT = ("--tile", 8, "--batch", 3)  # 16 × 12 px → 4 tiles; 8 spp → ranges 1, 3, 3, 1
+
+
+def wait_for(cond, timeout=60, what="condition"):
+    deadline = time.monotonic() + timeout
+    while not (value := cond()):
+        if time.monotonic() > deadline:
+            raise AssertionError(f"timed out waiting for {what}")
+        time.sleep(0.05)
+    return value
+
+
+def heartbeat(url, name):
+    raw = redis.Redis.from_url(url).get(f"lampyr:host:{name}")
+    return json.loads(raw) if raw else None
+
+
+def slots(url, name):
+    r = redis.Redis.from_url(url)
+    return [json.loads(raw) for k in r.scan_iter(match=f"lampyr:slot:{name}:*")
+            if (raw := r.get(k))]
+
+
+def rendering_a_full_batch(url, name):
+    """A slot of `name` rendering a 3-sample batch past its first chunk."""
+    return next((s for s in slots(url, name) if s["batch"].endswith("/3")
+                 and s["pixel_samples_per_second"] > 0), None)
+
+
+def set_clock(path, wall_utc: datetime) -> None:
+    """Move the worker's clock so that it reads `wall_utc` now."""
+    path.write_text(str(wall_utc.timestamp() - time.time()))
+
+
+def assert_frames_match_engine(out, shot, frames=(1, 2)):
+    for f in frames:
+        assert_same_image(frame_mean(out, "tiny", f), reference_mean(shot, f))
+
+
+def test_at_the_end_of_its_hours_a_worker_hands_back_and_the_frames_equal_an_uninterrupted_render(
+        farm, tiny_shot, tmp_path):
+    clock = tmp_path / "clock"
+    today = datetime.now(timezone.utc).replace(hour=12, minute=0, second=0, microsecond=0)
+    set_clock(clock, today)  # inside 11:00-13:00
+    farm.start_head()
+    farm.start_worker("night", env={"LAMPYR_TEST_CHUNK_DELAY": "0.3",
+                                    "LAMPYR_TEST_CLOCK_FILE": str(clock)},
+                      args=["--hours", "11:00-13:00", "--weekend", "same-hours",
+                            "--time-zone", "UTC"])
+    assert heartbeat(farm.url, "night")["windows"][0][1] == today.replace(hour=13).timestamp()
+    job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
+    wait_for(lambda: rendering_a_full_batch(farm.url, "night"), what="a batch under way")
+    set_clock(clock, today.replace(hour=13, minute=0, second=1))  # the window is over
+    wait_for(lambda: heartbeat(farm.url, "night")["state"] == "outside working hours"
+             and not slots(farm.url, "night"), what="the worker to stand down")
+    log = (tmp_path / "head.log").read_text()
+    handed = [line for line in log.splitlines() if "handed back by night" in line]
+    assert handed and any(f"with {k} of 3 samples" in line for line in handed for k in (1, 2))
+    before = farm.status(job)["pixel_samples_done"]
+    time.sleep(2.0)
+    assert farm.status(job)["pixel_samples_done"] == before  # it takes nothing more
+    assert farm.workers["night"].poll() is None  # and waits for its next window
+    wlog = (tmp_path / "worker-night.log").read_text()
+    assert "outside working hours (11:00-13:00); next window opens" in wlog
+    farm.start_worker("day")
+    st = farm.wait(job, timeout=120)
+    assert st["state"] == "done" and not st["failed"]
+    assert_frames_match_engine(tmp_path / "out", tiny_shot)
+
+
+def test_outside_its_hours_a_worker_takes_nothing_and_says_when_it_opens(farm, tiny_shot, tmp_path):
+    clock = tmp_path / "clock"
+    today = datetime.now(timezone.utc).replace(hour=9, minute=0, second=0, microsecond=0)
+    set_clock(clock, today)
+    farm.start_head()
+    proc = farm.start_worker("late", env={"LAMPYR_TEST_CLOCK_FILE": str(clock)}, wait=False,
+                             args=["--hours", "19:00-07:30", "--weekend", "same-hours",
+                                   "--time-zone", "UTC"])
+    hb = wait_for(lambda: heartbeat(farm.url, "late"), what="the heartbeat")
+    assert hb["state"] == "outside working hours"
+    assert hb["windows"][0] == [today.replace(hour=19).timestamp(),
+                                (today.replace(hour=7, minute=30) + timedelta(days=1)).timestamp()]
+    job = farm.submit(tiny_shot, *LAYOUT)
+    time.sleep(3.0)
+    assert farm.status(job)["pixel_samples_done"] == 0 and proc.poll() is None
+    line = wait_for(lambda: [ln for ln in (tmp_path / "worker-late.log").read_text().splitlines()
+                             if "outside working hours" in ln], what="the waiting line")
+    assert line[0].endswith(f"next window opens {today.strftime('%a')} 19:00")
+    set_clock(clock, today.replace(hour=19, minute=0, second=1))
+    assert farm.wait(job, timeout=120)["state"] == "done"
+
+
+@pytest.mark.parametrize("args, nice", [((), 19), (("--normal-priority",), os.nice(0))])
+def test_render_processes_run_at_the_lowest_cpu_priority(farm, args, nice):
+    # nice 19 is the lowest priority of the POSIX nice range 0..19 (setpriority(2), from memory)
+    farm.start_head()
+    farm.start_worker("w", args=list(args))
+    pids = [int(p) for p in redis.Redis.from_url(farm.url).smembers("lampyr:warm:w")]
+    assert pids and all(psutil.Process(p).nice() == nice for p in pids)
+
+
+def test_a_busy_user_pauses_rendering_and_a_quiet_one_resumes_it(farm, tiny_shot, tmp_path):
+    hog = subprocess.Popen([sys.executable, "-c", "while True: pass"])
+    try:
+        os.kill(hog.pid, signal.SIGSTOP)  # the user is away
+        farm.start_head(lease=3)
+        farm.start_worker("desk", env={"LAMPYR_TEST_CHUNK_DELAY": "0.3",
+                                       "LAMPYR_TEST_USER_PIDS": str(hog.pid)},
+                          args=["--pause-when-busy", "5", "--busy-seconds", "2"])
+        job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
+        wait_for(lambda: rendering_a_full_batch(farm.url, "desk"), what="a batch under way")
+        os.kill(hog.pid, signal.SIGCONT)  # the user comes back and works
+        wait_for(lambda: heartbeat(farm.url, "desk")["state"] == "paused: user busy",
+                 timeout=30, what="the pause")
+        wait_for(lambda: all(s["paused"] for s in slots(farm.url, "desk")), what="paused slots")
+        time.sleep(1.0)
+        held = farm.status(job)["pixel_samples_done"]
+        time.sleep(4.0)  # longer than the 3 s lease: the paused batch keeps it
+        assert farm.status(job)["pixel_samples_done"] == held
+        assert slots(farm.url, "desk"), "the paused batch let go of its slot"
+        os.kill(hog.pid, signal.SIGSTOP)  # quiet again
+        wait_for(lambda: heartbeat(farm.url, "desk")["state"] in ("rendering", "idle"),
+                 timeout=30, what="the resume")
+        st = farm.wait(job, timeout=120)
+        assert st["state"] == "done" and not st["failed"]
+        assert_frames_match_engine(tmp_path / "out", tiny_shot)
+        log = (tmp_path / "worker-desk.log").read_text()
+        assert "rendering paused" in log and "rendering resumes" in log
+    finally:
+        hog.kill()
+        hog.wait()
+
+
+def test_a_worker_started_before_its_head_waits_in_one_line_and_joins(farm, tiny_shot, tmp_path):
+    from lampyr.scheduler.redis_server import EmbeddedRedis, free_port
+
+    port = free_port("127.0.0.1")
+    farm.url = f"redis://127.0.0.1:{port}/0"
+    farm.start_worker("early", wait=False)
+    log = tmp_path / "worker-early.log"
+    wait_for(lambda: "retrying in 2 s" in log.read_text(), timeout=30, what="two tries")
+    lines = log.read_text().splitlines()
+    assert lines[:2] == [
+        f"lampyr worker: waiting for the head at {farm.url} (connection refused); retrying in 1 s",
+        f"lampyr worker: waiting for the head at {farm.url} (connection refused); retrying in 2 s"]
+    server = EmbeddedRedis(tmp_path / "redis", port=port).start()
+    try:
+        farm.start_head()
+        farm.wait_worker("early")
+        job = farm.submit(tiny_shot, *LAYOUT)
+        assert farm.wait(job, timeout=120)["state"] == "done"
+        # the head is lost for a while: one line per try, then back to work
+        server.proc.kill()
+        server.proc.wait()
+        wait_for(lambda: "lost the head at" in log.read_text(), timeout=30, what="the loss")
+        server.start()
+        wait_for(lambda: "reached the head at" in log.read_text(), timeout=90, what="the return")
+        job = farm.submit(tiny_shot, *LAYOUT)
+        assert farm.wait(job, timeout=120)["state"] == "done"
+        assert "Traceback" not in log.read_text()
+    finally:
+        server.stop()
