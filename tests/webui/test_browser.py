@@ -81,9 +81,10 @@ class Shots:
         folder.mkdir(parents=True, exist_ok=True)
         OUT.mkdir(exist_ok=True)
 
-    def take(self, page, name: str) -> None:
+    def take(self, page, name: str, full: bool = True) -> None:
+        """full: the whole page; else what the window shows without scrolling."""
         path = self.folder / f"{name}.png"
-        page.screenshot(path=str(path), full_page=True)
+        page.screenshot(path=str(path), full_page=full)
         shutil.copy(path, OUT / path.name)
 
 
@@ -120,6 +121,7 @@ def test_log_in_submit_watch_it_finish_and_refine_one_frame(web_farm, small_cour
     page.locator("#strip .cell.st-done").nth(2).wait_for()  # all 3 frames
     page.wait_for_selector(KNOWN_NOISE)
     shots.take(page, "04-job-done-laptop")
+    shots.take(page, "04-job-done-laptop-first-screen", full=False)
     page.check("input[name=overlay][value=noise]")
     page.click("#tiles", position={"x": 5, "y": 5})
     assert "tile 0 · 4 of 4 samples · noise " in page.inner_text("#tile-info")

@@ -29,8 +29,8 @@
       fact("speed", L.count(j.samples_per_second) + " samples/s"),
       fact("ready", ready, "wide"),
       fact("submitted", L.clock(j.submitted)),
-      fact("tiles", (j.tile_size || "?") + " px, " + (j.batch_samples || "?") + " samples a batch"),
-      fact("frames folder", j.out || "–", "wide path"));
+      fact("tiles", (j.tile_size || "?") + " px, " + (j.batch_samples || "?") + " samples a batch"));
+    document.getElementById("saved-in").textContent = j.out || "–";
     const running = ["running", "queued"].includes(j.state);
     document.getElementById("act-pause").hidden = !running;
     document.getElementById("act-resume").hidden = j.state !== "paused";
