@@ -182,3 +182,9 @@ def test_without_a_viewer_password_file_there_is_no_viewer_login(tmp_path):
 def test_a_viewer_s_page_says_it_only_looks(viewer):
     resp = viewer.get("/")
     assert resp.status_code == 200 and b"looking only" in resp.data and b'class=" viewer"' in resp.data
+
+
+@pytest.mark.parametrize("url", ["/api/health", "/static/lampyr.css", "/static/common.js",
+                                 "/login"])
+def test_what_the_login_page_needs_is_open_to_everyone(client, url):
+    assert client.get(url).status_code == 200
