@@ -230,6 +230,22 @@ def worker(address, cores, pool, name, hours, weekend, weekend_days, time_zone, 
 
 
 @cli.command()
+@click.argument("address")
+@click.option("--no-render", is_flag=True, help="Skip the tiny test render.")
+def doctor(address, no_render):
+    """Check that this machine can render for the farm at ADDRESS: network, password, protocol
+    version, compiled kernels and a tiny render; says in plain words what is wrong. Exit status
+    1 when anything is."""
+    from .worker.doctor import PROBLEM, run_checks, summary
+
+    checks = run_checks(address, render=not no_render)
+    for c in checks:
+        click.echo(c.line())
+    click.echo(summary(checks))
+    sys.exit(1 if any(c.verdict == PROBLEM for c in checks) else 0)
+
+
+@cli.command()
 @click.argument("shot", type=click.Path(dir_okay=False, path_type=Path))
 @click.option("--out", type=click.Path(file_okay=False, path_type=Path), default=None,
               help="Folder the head writes the frames to (default: a folder per job under the state folder).")
