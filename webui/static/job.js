@@ -95,6 +95,15 @@
       return cell;
     });
     strip.replaceChildren(...cells);
+    // every frame at once as a thin band (a pointer into the strip; the cells carry the words)
+    const ribbon = document.getElementById("ribbon");
+    ribbon.hidden = S.frames.length < 16;
+    ribbon.replaceChildren(...S.frames.map(f => {
+      const seg = el("span", {class: "seg st-" + f.state + (f.frame === S.sel ? " sel" : ""),
+                              title: "frame " + f.frame + ": " + L.WORDS[f.state]});
+      seg.addEventListener("click", () => select(f.frame));
+      return seg;
+    }));
     const cur = strip.querySelector(".sel");
     if (cur && !S.stripScrolled) { cur.scrollIntoView({block: "nearest", inline: "center"}); S.stripScrolled = true; }
   }

@@ -22,7 +22,11 @@
     document.getElementById("fig-frames-sub").textContent = last.length
       ? "all ready about " + L.clock(data.now + Math.max(...last))
       : (all && done === all ? "everything is rendered" : "of every shot on the farm");
-    const speed = data.workers.reduce((a, w) => a + (w.pixel_samples_per_second || 0), 0);
+    // merged over the last three minutes (the current one so far and the two before): steadier
+    // than the workers' own readings
+    const th = data.throughput, v = th.values;
+    const into = Math.max(1, data.now - (th.start + (v.length - 1) * th.step));
+    const speed = v.slice(-3).reduce((a, b) => a + b, 0) / (2 * th.step + into);
     document.getElementById("fig-speed").textContent = L.count(speed);
     const busy = data.workers.filter(w => w.slots.length).length;
     document.getElementById("fig-machines").textContent = data.workers.length;
