@@ -102,7 +102,7 @@ def shot_file_name(filename: str) -> str:
 
 def submit_upload(r, uploads: Path, shot_name: str, shot_bytes: bytes, archive_name: str | None,
                   archive_bytes: bytes | None, overrides: dict, priority: int = 0,
-                  tile_size: int | None = None) -> str:
+                  tile_size: int | None = None, deadline: float | None = None) -> str:
     """Unpack, validate and submit an uploaded shot; returns the job id.
 
     uploads: a folder the upload is unpacked under (a fresh subfolder, removed at the end).
@@ -138,7 +138,8 @@ def submit_upload(r, uploads: Path, shot_name: str, shot_bytes: bytes, archive_n
                 errors.append(err)
                 path.unlink()
                 continue
-            return submit_request(r, path, overrides, None, priority, tile_size)
+            return submit_request(r, path, overrides, None, priority, tile_size,
+                                  deadline=deadline)
         # a missing asset in one place is expected; a mistake in the shot itself says more
         err = next((e for e in errors if not isinstance(e, AssetError)), errors[0])
         err.file = name  # not the upload folder's path on the head

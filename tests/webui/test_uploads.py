@@ -144,3 +144,19 @@ def test_an_upload_without_a_shot_is_refused(user):
 def test_a_bad_override_is_refused_naming_the_field(user, field, value):
     resp = upload(user, archive=zip_of({"assets/floor.obj": FLOOR_OBJ}), **{field: value})
     assert resp.status_code == 400 and resp.get_json()["error"].startswith(field + ":")
+
+
+def test_an_upload_with_a_ready_by_time_gets_that_deadline(user, head):
+    import time
+
+    until = time.strftime("%Y-%m-%dT%H:%M", time.localtime(time.time() + 3 * 3600))
+    resp = upload(user, archive=zip_of({"assets/floor.obj": FLOOR_OBJ}), until=until)
+    job = resp.get_json()["job"]
+    head.take_commands()
+    want = time.mktime(time.strptime(until, "%Y-%m-%dT%H:%M"))  # local time, like --until
+    assert head.jobs[job].rec.deadline == pytest.approx(want)
+
+
+def test_a_ready_by_time_in_the_past_is_refused_naming_the_field(user):
+    resp = upload(user, archive=zip_of({"assets/floor.obj": FLOOR_OBJ}), until="2001-01-01T07:00")
+    assert resp.status_code == 400 and resp.get_json()["error"].startswith("until:")

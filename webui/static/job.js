@@ -51,17 +51,23 @@
     const box = document.getElementById("deadline");
     if (j.deadline === undefined || j.deadline === null) { box.hidden = true; return; }
     box.hidden = false;
-    const parts = [el("strong", {text: "Deadline " + L.clock(j.deadline)})];
-    const f = j.forecast;
-    if (f && typeof f === "object") {
-      const ok = f.feasible;
-      if (ok !== undefined) parts.push(el("span", {class: ok ? "good" : "bad"}, L.icon(ok ? "done" : "failed"),
-                                          ok ? " on course" : " not reachable as planned"));
-      for (const [k, v] of Object.entries(f)) {
-        if (k === "feasible") continue;
-        const shown = typeof v === "number" ? (k.includes("noise") ? L.pct(v, 2) : L.count(v)) : String(v);
-        parts.push(el("span", {class: "fc", text: k.replaceAll("_", " ") + ": " + shown}));
-      }
+    const parts = [el("strong", {text: "Ready by " + L.clock(j.deadline)})];
+    const f = j.forecast;  // fields of scheduler/deadline.py forecast_fields
+    if (j.deadline_reached) {
+      parts.push(el("span", {}, L.icon("paused"), " deadline reached: the head stopped" +
+                    (f ? " at " + Math.round(f.spp_expected) + " of " + j.samples + " samples per pixel" : "")));
+    } else if (j.state === "done") {
+      parts.push(el("span", {class: "good"}, L.icon("done"), " finished before it"));
+    } else if (!f) {
+      parts.push(el("span", {class: "sub", text: "no forecast yet"}));
+    } else {
+      parts.push(el("span", {class: f.feasible ? "good" : "bad"}, L.icon(f.feasible ? "done" : "failed"),
+                    f.feasible ? " on course" : " cannot reach every sample by then"));
+      parts.push(el("span", {text: "expect " + Math.round(f.spp_expected) + " of " + j.samples + " samples per pixel"}));
+      if (f.noise_expected !== null && f.noise_expected !== undefined)
+        parts.push(el("span", {text: "noise about " + L.pct(f.noise_expected, 1)}));
+      if (f.feasible && f.finish_expected) parts.push(el("span", {text: "done about " + L.clock(f.finish_expected)}));
+      if (!f.feasible && f.level) parts.push(el("span", {text: "every frame gets at least " + f.level}));
     }
     box.replaceChildren(...parts);
   }
