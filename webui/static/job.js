@@ -314,6 +314,15 @@
       setPicked(known.slice(0, Math.max(1, Math.ceil(known.length / 4))).map(f => f.frame));
       document.querySelector("#refine input[name=where][value=picked]").checked = true;
     });
+    document.getElementById("strip").addEventListener("keydown", (ev) => {
+      const step = {ArrowLeft: -1, ArrowRight: 1}[ev.key];
+      const i = S.frames.findIndex(f => f.frame === S.sel);
+      if (!step || i < 0 || !S.frames[i + step]) return;
+      ev.preventDefault();
+      select(S.frames[i + step].frame);
+      const cur = document.querySelector("#strip .sel");
+      if (cur) cur.focus();
+    });
     const ex = document.getElementById("exposure");
     const setExposure = (v) => {
       S.exposure = Number(v); ex.value = v;
