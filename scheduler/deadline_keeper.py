@@ -50,6 +50,7 @@ class DeadlineKeeper:
         self._hosts: list = []  # (name, cores, windows) of the live hosts, last look
         self._speeds: list = []  # (host, speed) seen since the last forecast
         self._merged: dict = {}  # job → JobRun.samples_merged at the last recompute
+        self._stamps: dict = {}  # job → (JobRun, LeaseKeeper) ids a stopped job was checked with
 
     # -- hooks --------------------------------------------------------------------------------
 
@@ -200,8 +201,13 @@ class DeadlineKeeper:
 
     def _keep_stopped(self, run) -> None:
         """After a restart the replanned job stays stopped; a refine (a changed sample plan)
-        lifts the deadline and lets it run."""
+        lifts the deadline and lets it run. Looked at again only when the job's runtime view or
+        the head's lease table was rebuilt (refine, restart, reconcile) or work was queued."""
         job = run.rec.id
+        stamp = (id(run), id(self.head.leases))
+        if self._stamps.get(job) == stamp and not run.pending:
+            return
+        self._stamps[job] = stamp
         plan = _sample_plan(run.rec)
         seen = self.stopped.setdefault(job, plan)
         if plan != seen:
