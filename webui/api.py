@@ -79,9 +79,15 @@ def _job_row(st: dict) -> dict:
     return row
 
 
+STATE_LETTERS = {"waiting": "w", "rendering": "r", "done": "d", "failed": "f"}
+
+
 def farm_overview(r) -> dict:
-    """The overview's JSON (see the README's web page section for the fields)."""
+    """The overview's JSON (fields in docs/farm.md, "The web page")."""
     jobs = [_job_row(st) for st in store.list_jobs(r)]
+    for row in jobs:  # one letter per frame, in frame order: w(aiting) r(endering) d(one) f(ailed)
+        row["frame_states"] = "".join(STATE_LETTERS.get(f["state"], "w")
+                                      for f in progress.job_frames(r, row["job"]))
     jobs.sort(key=lambda j: (j["state"] in ("done", "cancelled"), -j.get("submitted", 0)))
     crew = history.roster(r)
     return {

@@ -23,6 +23,11 @@ def test_the_overview_lists_the_job_with_its_progress(user, finished_job):
     assert set(data) == {"now", "jobs", "workers", "offline", "throughput"}
 
 
+def test_the_overview_has_a_letter_for_each_frame_s_state(user, finished_job):
+    (row,) = user.get("/api/farm").get_json()["jobs"]
+    assert row["frame_states"] == "dd"
+
+
 def test_the_throughput_history_holds_every_merged_pixel_sample(user, finished_job):
     th = user.get("/api/farm").get_json()["throughput"]
     assert th["step"] == 60 and len(th["values"]) == 6 * 60

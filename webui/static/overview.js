@@ -40,6 +40,10 @@
     const eta = j.state === "running" && j.eta_seconds !== null
       ? "ready about " + L.clock(now + j.eta_seconds) + " (in " + L.span(j.eta_seconds) + ")"
       : j.state === "done" ? "finished" : "–";
+    const LET = {w: "waiting", r: "rendering", d: "done", f: "failed"};
+    const band = j.frame_states && j.frame_states.length > 1
+      ? el("div", {class: "ribbon small", "aria-hidden": "true"},
+           ...[...j.frame_states].map(c => el("span", {class: "seg st-" + LET[c]}))) : null;
     return el("a", {class: "shot", href: "/jobs/" + encodeURIComponent(j.job)},
       el("div", {class: "shot-name"}, L.badge(j.state), el("strong", {text: j.name}), el("span", {class: "jobid", text: j.job})),
       el("div", {class: "shot-bar"}, bar, el("span", {class: "pc", text: L.pct(j.progress, 0)})),
@@ -49,7 +53,8 @@
         el("div", {}, el("dt", {text: "speed"}), el("dd", {text: L.count(j.samples_per_second) + "/s"})),
         el("div", {class: "wide"}, el("dt", {text: "when"}), el("dd", {text: eta})),
         el("div", {}, el("dt", {text: "priority"}), el("dd", {text: j.priority})),
-        j.failed_batches ? el("div", {class: "bad"}, el("dt", {text: "failed"}), el("dd", {text: j.failed_batches + " batch" + (j.failed_batches > 1 ? "es" : "")})) : null));
+        j.failed_batches ? el("div", {class: "bad"}, el("dt", {text: "failed"}), el("dd", {text: j.failed_batches + " batch" + (j.failed_batches > 1 ? "es" : "")})) : null),
+      band);
   }
 
   function machine(w, now) {
@@ -101,6 +106,9 @@
       r.setAttribute("x", (i * bw).toFixed(2)); r.setAttribute("width", Math.max(bw, 1).toFixed(2));
       r.setAttribute("y", (H - h).toFixed(2)); r.setAttribute("height", h.toFixed(2));
       r.setAttribute("class", "bar");
+      const tip = document.createElementNS(svgns, "title");
+      tip.textContent = L.clock(th.start + i * th.step) + ": " + L.count(v) + " samples/s";
+      r.append(tip);
       svg.append(r);
     });
     const base = document.createElementNS(svgns, "line");
