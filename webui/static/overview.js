@@ -89,7 +89,17 @@
       el("div", {class: "m-seen sub", text: "last heard " + L.ago(w.last_seen, now) + " (" + L.clock(w.last_seen) + ")"}));
   }
 
-  function plot(th) {
+  function plot(full) {
+    // the window opens at the first hour with work in it (1 to 6 hours), so a farm that
+    // started an hour ago is not a flat line with a spike at its end
+    const perHour = 3600 / full.step;
+    const first = full.values.findIndex(v => v > 0);
+    const hoursShown = first < 0 ? 1 : Math.min(full.values.length / perHour,
+                                                Math.max(1, Math.ceil((full.values.length - first) / perHour)));
+    const th = {...full, values: full.values.slice(-hoursShown * perHour)};
+    th.start = full.start + (full.values.length - th.values.length) * full.step;
+    document.getElementById("plot-title").textContent =
+      "Samples rendered, last " + (hoursShown === 1 ? "hour" : hoursShown + " hours");
     const box = document.getElementById("plot");
     const W = Math.max(200, box.clientWidth), H = 150, pad = 24;
     const per = th.values.map(v => v / th.step);
@@ -115,12 +125,14 @@
     base.setAttribute("x1", 0); base.setAttribute("x2", W); base.setAttribute("y1", H); base.setAttribute("y2", H);
     base.setAttribute("class", "axis"); svg.append(base);
     const hours = per.length * th.step / 3600;
-    for (let h = 0; h <= hours; h++) {
+    const every = hours <= 2 ? 0.25 : 1;  // hours between two ticks
+    for (let k = 0; k * every <= hours + 1e-9; k++) {
+      const h = k * every;
       const x = W - h * 3600 / th.step * bw;
       const t = document.createElementNS(svgns, "text");
-      t.setAttribute("x", Math.max(12, Math.min(W - 12, x)).toFixed(1)); t.setAttribute("y", H + 18);
+      t.setAttribute("x", Math.max(14, Math.min(W - 14, x)).toFixed(1)); t.setAttribute("y", H + 18);
       t.setAttribute("class", "tick"); t.setAttribute("text-anchor", "middle");
-      t.textContent = h === 0 ? "now" : "−" + h + " h";
+      t.textContent = h === 0 ? "now" : Number.isInteger(h) ? "−" + h + " h" : "−" + Math.round(h * 60) + " min";
       svg.append(t);
     }
     box.replaceChildren(svg);
