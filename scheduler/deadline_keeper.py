@@ -51,6 +51,7 @@ class DeadlineKeeper:
         self._speeds: list = []  # (host, speed) seen since the last forecast
         self._merged: dict = {}  # job → JobRun.samples_merged at the last recompute
         self._stamps: dict = {}  # job → (JobRun, LeaseKeeper) ids a stopped job was checked with
+        self._late: dict = {}  # job → (JobRun id, samples merged) when its frames were written
 
     # -- hooks --------------------------------------------------------------------------------
 
@@ -67,6 +68,7 @@ class DeadlineKeeper:
                 self.stop(run)
         if time.monotonic() - self._looked >= LOOK_EVERY:
             self.look()
+            self._write_late()
         if time.monotonic() - self._at >= self.every:
             self.recompute(now)
 
@@ -194,10 +196,23 @@ class DeadlineKeeper:
         for f in run.frames:
             write_held_frame(run, f)
         self.stopped[job] = _sample_plan(run.rec)
+        self._late[job] = (id(run), run.samples_merged)
         if job in self.fields:
             self.fields[job]["updated"] = round(time.time(), 1)
         log.info("job %s reached its deadline: %d frame(s) written with the samples held", job,
                  len(run.frames))
+
+    def _write_late(self) -> None:
+        """A batch that was rendering at the deadline may still deliver: it is merged (work is
+        never thrown away) and the frame file rewritten to hold it, as at the stop."""
+        for job, run in self.head.jobs.items():
+            if not run.rec.deadline_reached:
+                continue
+            seen = self._late.setdefault(job, (id(run), run.samples_merged))
+            if seen != (id(run), run.samples_merged):
+                self._late[job] = (id(run), run.samples_merged)
+                for f in run.frames:
+                    write_held_frame(run, f)
 
     def _keep_stopped(self, run) -> None:
         """After a restart the replanned job stays stopped; a refine (a changed sample plan)

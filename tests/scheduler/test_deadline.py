@@ -224,6 +224,26 @@ def test_a_real_job_stops_at_its_deadline_done_with_every_frame(farm, tiny_shot,
     assert "deadline" in text and "reached" in text
 
 
+def held_matches_frames(state, job, out):
+    """True when every frame file holds, tile by tile, the samples its accumulators hold."""
+    from lampyr.engine.exr import read_frame
+    from lampyr.engine.render import tiles_for
+    from lampyr.scheduler.accumulator import TileAccumulator
+    from lampyr.scheduler.jobs import JobFolder
+
+    folder = JobFolder(state, job)
+    for f in (1, 2):
+        film, _ = read_frame(out / f"tiny.{f:04d}.exr")
+        spp = film.n + film.dropped
+        for i, t in enumerate(tiles_for(16, 12, 8)):
+            held = TileAccumulator.load(folder.tile(f, i), t.w, t.h).samples
+            if not (spp[t.y0:t.y0 + t.h, t.x0:t.x0 + t.w] == held).all():
+                return False
+    return True
+
+
+
+
 def test_a_real_job_with_time_to_spare_finishes_before_its_deadline(farm, tiny_shot, tmp_path):
     farm.start_head()
     farm.start_worker("a")
@@ -352,3 +372,27 @@ def test_the_simulated_forecast_follows_workers_coming_and_going():
                for t, _ in res.forecasts]
     assert [f["hosts"] for _, f in res.forecasts] == present
     assert len(set(present)) > 1  # some joined or left during the night
+
+
+def test_a_batch_delivered_after_the_deadline_is_kept_in_the_frame(head, tiny_shot,
+                                                                    compiled_kernels):
+    from lampyr.engine.film import to_bytes
+    from lampyr.engine.render import FrameRenderer, Tile
+    from lampyr.engine.shot import load_shot
+
+    job = submit_with_deadline(head, tiny_shot, 0.3)
+    head.dispatch()
+    late = queued(head)[0]  # a worker had taken it and renders on past the deadline
+    time.sleep(0.4)
+    head.step()
+    assert head.jobs[job].rec.deadline_reached
+    film = FrameRenderer(load_shot(tiny_shot), late.frame).render(
+        Tile(late.x0, late.y0, late.w, late.h), late.first, late.count)
+    head.r.set(f"lampyr:result:{late.id}:1", to_bytes(film))
+    head.r.rpush("lampyr:results", json.dumps({"kind": "result", "batch": late.id, "ticket": 1,
+                                               "worker": "w", "seconds": 0.1}))
+    head.step()
+    time.sleep(0.6)  # the head looks for late merges every half second
+    head.step()
+    out = head.state / "jobs" / job / "frames"
+    assert held_matches_frames(head.state, job, out)
