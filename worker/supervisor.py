@@ -87,6 +87,7 @@ class Supervisor:
         self.say = say
         self.gate = Gate()
         self.stopping = threading.Event()
+        self.wake = threading.Event()  # beat now: the state changed
         self.child: subprocess.Popen | None = None
         self.child_since = 0.0
         self.user_busy = False  # pause raised
@@ -129,7 +130,8 @@ class Supervisor:
             except Exception as err:  # Redis restarting, network gone: say it, wait longer
                 wait = backoff.next()
                 self.say(waiting_line(self.opts.url, reason(err), wait, "lost the head"))
-            self.stopping.wait(wait)
+            self.wake.wait(wait)
+            self.wake.clear()
 
     # -- the user's load --------------------------------------------------------------------
 
@@ -143,11 +145,15 @@ class Supervisor:
             if busy != self.user_busy:
                 self.user_busy = busy
                 self.gate.set_pause(busy)
+                self.wake.set()
                 self.say(f"the machine's user is busy (other programs use {100 * watch.mean():.0f} % "
                          f"of the CPU); rendering paused" if busy else
                          "the machine is quiet again; rendering resumes")
-            self.busy_too_long = bool(busy and watch.busy_since is not None and
-                                      time.monotonic() - watch.busy_since > self.opts.hand_back_after)
+            too_long = bool(busy and watch.busy_since is not None and
+                            time.monotonic() - watch.busy_since > self.opts.hand_back_after)
+            if too_long != self.busy_too_long:
+                self.busy_too_long = too_long
+                self.wake.set()
 
     # -- the Celery worker ------------------------------------------------------------------
 
@@ -161,6 +167,7 @@ class Supervisor:
         self.child_since = time.monotonic()
         self.child = subprocess.Popen([sys.executable, "-m", "lampyr.worker.app", json.dumps(config)],
                                       stdin=subprocess.DEVNULL, preexec_fn=die_with_parent())
+        self.wake.set()
 
     def stop_child(self, why: str) -> None:
         """Hand back what is done and stop the Celery worker (warm shutdown)."""
@@ -183,6 +190,7 @@ class Supervisor:
         except subprocess.TimeoutExpired:
             child.kill()
             child.wait()
+        self.wake.set()
 
     def run(self) -> int:
         """Until SIGTERM / SIGINT; returns the exit status."""
@@ -204,6 +212,7 @@ class Supervisor:
         finally:
             self.stop_child("stopping")
             self.stopping.set()
+            self.wake.set()
             try:
                 _client(self.opts.url).delete(P.k_host(self.opts.name))
             except Exception:
@@ -217,6 +226,8 @@ class Supervisor:
             open_ = schedule.is_open(now)
             if not open_ and not outside_said:
                 self.say(schedule.waiting_line(now))
+            if outside_said == open_:  # the window opened or closed
+                self.wake.set()
             outside_said = not open_
             if self.child is not None and time.monotonic() - self.child_since > 60:
                 restarts.reset()  # it ran a while: the next failure starts the waits afresh

@@ -66,7 +66,9 @@ def test_at_the_end_of_its_hours_a_worker_hands_back_and_the_frames_equal_an_uni
     today = datetime.now(timezone.utc).replace(hour=12, minute=0, second=0, microsecond=0)
     set_clock(clock, today)  # inside 11:00-13:00
     farm.start_head()
-    farm.start_worker("night", env={"LAMPYR_TEST_CHUNK_DELAY": "0.3",
+    # 1 s between one-sample chunks: the batch is still under way when the supervisor (which
+    # looks at its clock every 0.5 s) raises the stop
+    farm.start_worker("night", env={"LAMPYR_TEST_CHUNK_DELAY": "1.0",
                                     "LAMPYR_TEST_CLOCK_FILE": str(clock)},
                       args=["--hours", "11:00-13:00", "--weekend", "same-hours",
                             "--time-zone", "UTC"])
@@ -76,9 +78,9 @@ def test_at_the_end_of_its_hours_a_worker_hands_back_and_the_frames_equal_an_uni
     set_clock(clock, today.replace(hour=13, minute=0, second=1))  # the window is over
     wait_for(lambda: heartbeat(farm.url, "night")["state"] == "outside working hours"
              and not slots(farm.url, "night"), what="the worker to stand down")
-    log = (tmp_path / "head.log").read_text()
-    handed = [line for line in log.splitlines() if "handed back by night" in line]
-    assert handed and any(f"with {k} of 3 samples" in line for line in handed for k in (1, 2))
+    handed = wait_for(lambda: [line for line in (tmp_path / "head.log").read_text().splitlines()
+                               if "handed back by night" in line], what="the head to merge the part")
+    assert any(f"with {k} of 3 samples" in line for line in handed for k in (1, 2))
     before = farm.status(job)["pixel_samples_done"]
     time.sleep(2.0)
     assert farm.status(job)["pixel_samples_done"] == before  # it takes nothing more
@@ -183,3 +185,30 @@ def test_a_worker_started_before_its_head_waits_in_one_line_and_joins(farm, tiny
         assert "Traceback" not in log.read_text()
     finally:
         server.stop()
+
+
+def test_a_user_busy_for_long_gets_the_batches_handed_back(farm, tiny_shot, tmp_path):
+    hog = subprocess.Popen([sys.executable, "-c", "while True: pass"])
+    try:
+        os.kill(hog.pid, signal.SIGSTOP)
+        farm.start_head(lease=3)
+        farm.start_worker("desk", env={"LAMPYR_TEST_CHUNK_DELAY": "0.3",
+                                       "LAMPYR_TEST_USER_PIDS": str(hog.pid)},
+                          args=["--pause-when-busy", "5", "--busy-seconds", "1",
+                                "--hand-back-after", "2"])
+        job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
+        wait_for(lambda: rendering_a_full_batch(farm.url, "desk"), what="a batch under way")
+        os.kill(hog.pid, signal.SIGCONT)
+        wait_for(lambda: "handed back by desk" in (tmp_path / "head.log").read_text(),
+                 timeout=60, what="the hand-back")
+        wait_for(lambda: not slots(farm.url, "desk"), what="the desk worker to let go")
+        assert heartbeat(farm.url, "desk")["state"] == "paused: user busy"
+        farm.start_worker("spare")
+        st = farm.wait(job, timeout=120)
+        assert st["state"] == "done" and not st["failed"]
+        assert_frames_match_engine(tmp_path / "out", tiny_shot)
+        assert "the user has been busy for over 2 s: handing back" in \
+            (tmp_path / "worker-desk.log").read_text()
+    finally:
+        hog.kill()
+        hog.wait()
