@@ -9,8 +9,9 @@ world: workers of different speeds that come online, work inside their windows, 
 pixels × samples / speed seconds, and a tile's relative noise, modelled by the Monte Carlo error
 law σ/√n (standard error of a mean of n independent samples) with a per-tile σ.
 
-Time runs in seconds from `start`; every event is an entry in a heap. A worker that leaves
-loses the batch it was rendering; the head queues it again once its lease lapses.
+Time runs in seconds from `start`; every event is an entry in a heap. A worker switched off
+loses the batch it was rendering (the head queues it again once its lease lapses); one whose
+working hours end hands back the samples it finished, and the rest is queued first.
 """
 
 from __future__ import annotations
@@ -20,7 +21,7 @@ import itertools
 import math
 import random
 from collections import deque
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import NamedTuple
 
 from lampyr.scheduler.deadline import TileState, night_forecast, reached
@@ -102,12 +103,12 @@ def make_workers(n: int, rng: random.Random, start: float, night: float,
             slots = rng.choice((2, 4, 4, 8))
             a = start + rng.uniform(0.0, 0.3) * night
             b = start + rng.uniform(0.8, 1.2) * night
-            windows, online = ((a, b),), (start, b)
+            windows, online = ((a, b),), (start, b + 0.5 * night)  # left on after its hours
         else:  # a laptop left on for a while
             slots = rng.choice((1, 2, 4))
             a = start + rng.uniform(0.0, 0.5) * night
             b = a + rng.uniform(0.1, 0.4) * night
-            windows, online = ((a, b),), (start, b)
+            windows, online = ((a, b),), (start, b + 0.5 * night)
         if rng.random() < surprises:
             if rng.random() < 0.5:  # switched off without notice half way through its night
                 on, off = online
@@ -257,7 +258,16 @@ class FarmSim:
     def leave_if_gone(self, w: SimWorker, now: float) -> None:
         if w.present(now) and in_window(w.windows, now):
             return
-        for s, (b, _a, _e) in list(w.busy.items()):
+        for s, (b, began, _e) in list(w.busy.items()):
             del w.busy[s]
             self.flying.pop(b.id, None)
-            self.push(now + self.lease, "requeue", b)
+            if not w.present(now):  # switched off: the batch is lost until its lease lapses
+                self.push(now + self.lease, "requeue", b)
+                continue
+            # its working hours ended: a polite worker hands back the samples it finished and
+            # the head queues the rest first
+            done = min(b.count - 1, int((now - began) * w.speed / (b.w * b.h)))
+            if done > 0:
+                self.held[(b.frame, b.tile)] += done
+                self.fc.merged(now, b.w * b.h * done)
+            self.pending.appendleft(replace(b, first=b.first + done, count=b.count - done))
