@@ -212,3 +212,23 @@ def test_a_user_busy_for_long_gets_the_batches_handed_back(farm, tiny_shot, tmp_
     finally:
         hog.kill()
         hog.wait()
+
+
+@pytest.mark.parametrize("how", ["SIGTERM to the worker", "Ctrl-C in its terminal"])
+def test_a_stopped_worker_hands_back_its_batch_and_exits(farm, tiny_shot, tmp_path, how):
+    farm.start_head()
+    proc = farm.start_worker("leaving", env={"LAMPYR_TEST_CHUNK_DELAY": "1.0"})
+    job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
+    wait_for(lambda: rendering_a_full_batch(farm.url, "leaving"), what="a batch under way")
+    if how == "SIGTERM to the worker":
+        os.kill(proc.pid, signal.SIGTERM)
+    else:
+        os.killpg(proc.pid, signal.SIGINT)  # the terminal signals the whole process group
+    assert proc.wait(60) == 0
+    handed = wait_for(lambda: [line for line in (tmp_path / "head.log").read_text().splitlines()
+                               if "handed back by leaving" in line], what="the hand-back")
+    assert any(f"with {k} of 3 samples" in line for line in handed for k in (1, 2))
+    assert heartbeat(farm.url, "leaving") is None  # gone from the farm at once
+    farm.start_worker("next")
+    assert farm.wait(job, timeout=120)["state"] == "done"
+    assert_frames_match_engine(tmp_path / "out", tiny_shot)
