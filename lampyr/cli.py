@@ -308,6 +308,8 @@ def status(job, as_json, head_addr, state):
     for w in farm["workers"]:
         busy = ", ".join(f"{s['batch']} ({s['pixel_samples_per_second'] / 1e3:,.0f} k samples/s)"
                          for s in w.get("slots", [])) or "idle"
+        if w.get("state") in ("paused: user busy", "outside working hours"):  # the polite worker
+            busy = w["state"] + ("" if busy == "idle" else f" ({busy})")
         click.echo(f"worker {w['name']}: {w.get('cores', '?')} core(s), "
                    f"lampyr {w.get('engine_version', '?')}: {busy}")
 

@@ -108,6 +108,8 @@ def test_outside_its_hours_a_worker_takes_nothing_and_says_when_it_opens(farm, t
     job = farm.submit(tiny_shot, *LAYOUT)
     time.sleep(3.0)
     assert farm.status(job)["pixel_samples_done"] == 0 and proc.poll() is None
+    assert "worker late: 1 core(s)" in (text := farm.cli("status", "--head", farm.url).stdout)
+    assert text.rstrip().endswith(": outside working hours")
     line = wait_for(lambda: [ln for ln in (tmp_path / "worker-late.log").read_text().splitlines()
                              if "outside working hours" in ln], what="the waiting line")
     assert line[0].endswith(f"next window opens {today.strftime('%a')} 19:00")
