@@ -5,8 +5,10 @@ the test's tmp folder and to tests/webui/screenshots-out/."""
 
 from __future__ import annotations
 
+import os
 import re
 import shutil
+import signal
 import time
 import zipfile
 from pathlib import Path
@@ -38,10 +40,10 @@ def browser():
 
 
 @pytest.fixture
-def web_farm(farm):
-    """A real head with its page on a free port, and one real worker: (farm, page URL)."""
+def web_head(farm):
+    """A real head with its page on a free port: (farm, page URL); no worker yet."""
     farm.head_proc = farm._spawn(["head", "--state", farm.state, "--redis", farm.url, "--lease",
-                                  10, "--web-port", 0], "head.log")
+                                  10, "--attempts", 1, "--web-port", 0], "head.log")
     deadline = time.monotonic() + 60
     while True:
         log = (farm.tmp / "head.log").read_text(errors="replace")
@@ -50,9 +52,34 @@ def web_farm(farm):
             break
         assert farm.head_proc.poll() is None and time.monotonic() < deadline, log
         time.sleep(0.1)
+    return farm, m.group(1)
+
+
+@pytest.fixture
+def web_farm(web_head):
+    """The head and one real worker: (farm, page URL)."""
+    farm, url = web_head
     # a short sleep after every sample (the worker's test hook), so the page sees it rendering
     farm.start_worker("w1", env={"LAMPYR_TEST_CHUNK_DELAY": "0.05"})
-    return farm, m.group(1)
+    return farm, url
+
+
+def log_in(browser, farm, url, viewport=LAPTOP):
+    page = browser.new_page(viewport=viewport)
+    page.goto(url)
+    page.fill("#password", (farm.state / "web" / "password").read_text().strip())
+    page.click("button[type=submit]")
+    page.wait_for_selector("#fig-shots")
+    return page
+
+
+def upload(page, shot, archive, tile="16"):
+    page.click("#open-submit")
+    page.set_input_files("input[name=shot]", str(shot))
+    page.set_input_files("input[name=assets]", str(archive))
+    page.fill("input[name=tile]", tile)
+    page.click("#submit-panel button[type=submit]")
+    page.wait_for_selector("#submit-msg.good", timeout=60_000)
 
 
 @pytest.fixture
@@ -103,12 +130,7 @@ def test_log_in_submit_watch_it_finish_and_refine_one_frame(web_farm, small_cour
     page.click("button[type=submit]")
     page.wait_for_selector("#fig-shots")
 
-    page.click("#open-submit")
-    page.set_input_files("input[name=shot]", str(shot))
-    page.set_input_files("input[name=assets]", str(archive))
-    page.fill("input[name=tile]", "16")  # 4 × 3 tiles of 16 px
-    page.click("#submit-panel button[type=submit]")
-    page.wait_for_selector("#submit-msg.good", timeout=60_000)
+    upload(page, shot, archive, tile="16")  # 4 × 3 tiles of 16 px
     page.wait_for_selector("a.shot", timeout=30_000)
     page.wait_for_selector("#machines .machine")
     shots.take(page, "02-overview-laptop")
@@ -147,3 +169,66 @@ def test_log_in_submit_watch_it_finish_and_refine_one_frame(web_farm, small_cour
     page.goto(url)
     page.wait_for_selector("a.shot")
     shots.take(page, "08-overview-phone")
+
+
+def test_a_failed_tile_shows_its_error_and_renders_when_retried(web_head, small_courtyard,
+                                                               browser, tmp_path):
+    farm, url = web_head
+    shot, archive = small_courtyard
+    shots = Shots(tmp_path / "screenshots")
+    # tile 1 of frame 2 raises on this worker (its test hook); one attempt (--attempts 1)
+    farm.start_worker("poisoned", env={"LAMPYR_TEST_POISON": "2/1"})
+    page = log_in(browser, farm, url)
+    upload(page, shot, archive)
+    page.wait_for_selector("a.shot")
+    page.click("a.shot")
+    page.wait_for_selector("#job-state .st-failed", timeout=240_000)
+    page.click("#strip .cell.st-failed")
+    page.wait_for_selector(".failure pre")
+    assert "poisoned batch" in page.inner_text(".failure pre")
+    page.check("input[name=overlay][value=state]")
+    shots.take(page, "10-job-failed-tile-laptop")
+
+    os.killpg(farm.workers["poisoned"].pid, signal.SIGKILL)
+    farm.start_worker("clean")
+    page.click(".failure button")  # "Retry tile"
+    page.wait_for_selector("#job-state .st-done", timeout=240_000)
+    page.wait_for_selector("#strip .cell.sel.st-done")
+    assert page.locator(".failure").count() == 0
+
+
+def test_the_exposure_control_brightens_the_preview(web_farm, small_courtyard, browser):
+    farm, url = web_farm
+    shot, archive = small_courtyard
+    page = log_in(browser, farm, url)
+    upload(page, shot, archive)
+    page.click("a.shot")
+    page.wait_for_selector("#job-state .st-done", timeout=240_000)
+    page.wait_for_selector("#preview[src*='exposure=0']")
+    page.fill("#exposure", "2")  # two stops: 4× the radiance before the sRGB curve
+    page.wait_for_selector("#preview[src*='exposure=2']")
+    assert page.inner_text("#exposure-out") == "+2.0"
+
+
+def test_a_viewer_login_sees_the_farm_without_its_controls(web_head, browser, tmp_path):
+    farm, url = web_head
+    shots = Shots(tmp_path / "screenshots")
+    (farm.state / "web" / "viewer-password").write_text("just looking\n")
+    # the page reads the viewer password at the head's start: start the head again
+    farm.head_proc.terminate()
+    farm.head_proc.wait(30)
+    (farm.tmp / "head.log").write_text("")
+    farm.head_proc = farm._spawn(["head", "--state", farm.state, "--redis", farm.url,
+                                  "--web-port", 0], "head.log")
+    deadline = time.monotonic() + 60
+    while not (m := re.search(r"Web page: (http://\S+)", (farm.tmp / "head.log").read_text())):
+        assert time.monotonic() < deadline
+        time.sleep(0.1)
+    page = browser.new_page(viewport=LAPTOP)
+    page.goto(m.group(1))
+    page.fill("#password", "just looking")
+    page.click("button[type=submit]")
+    page.wait_for_selector(".role")
+    assert page.inner_text(".role") == "looking only"
+    assert not page.is_visible("#open-submit")
+    shots.take(page, "11-overview-viewer-laptop")

@@ -175,11 +175,13 @@
     if (!d.failed.length) { box.replaceChildren(); return; }
     box.replaceChildren(
       el("h3", {}, L.icon("failed"), " Failed batches of this frame"),
-      ...d.failed.map(f => {
+      ...d.failed.map((f, k) => {
         const [, , tile, first, count] = f.batch.split("/").slice(-5);
+        // one button per tile: retrying a tile queues all of its failed batches
+        const firstOfTile = d.failed.findIndex(g => g.batch.split("/").slice(-3)[0] === tile) === k;
         return el("div", {class: "failure"},
           el("div", {class: "f-head"}, el("strong", {text: "tile " + tile}), " samples " + first + "–" + (Number(first) + Number(count) - 1),
-             el("button", {type: "button", class: "warn small", onclick: () => act("retry", {frame: S.sel, tile: Number(tile)}, "Tile " + tile + " is queued again.")}, "Retry tile")),
+             firstOfTile ? el("button", {type: "button", class: "warn small", onclick: () => act("retry", {frame: S.sel, tile: Number(tile)}, "Tile " + tile + " is queued again.")}, "Retry tile") : null),
           el("pre", {text: f.error}));
       }),
       el("button", {type: "button", class: "warn", onclick: () => act("retry", {frame: S.sel}, "Frame " + S.sel + "'s failed work is queued again.")}, "Retry this frame's failed work"));
