@@ -139,7 +139,7 @@
     const total = th.values.reduce((a, b) => a + b, 0);
     const recent = per.slice(-10).reduce((a, b) => a + b, 0) / 10;
     document.getElementById("plot-sub").textContent =
-      L.count(total) + " samples in all · peak " + L.count(top) + "/s · last 10 min " + L.count(recent) + "/s";
+      L.count(total) + " samples in all · peak " + L.count(Math.max(0, ...per)) + "/s · last 10 min " + L.count(recent) + "/s";
   }
 
   async function refresh() {
