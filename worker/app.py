@@ -114,7 +114,8 @@ def run_celery(url: str, cores: int, pool: str, name: str, gate_folder: str | No
             Gate(gate_folder).set_stop(True)
 
     worker_shutting_down.connect(hand_back, weak=False)
-    argv = ["worker", "-P", pool, "-c", str(cores if pool == "prefork" else 1), "-Q", P.QUEUE,
+    # --quiet: no start-up banner; the supervisor says what matters in its own lines
+    argv = ["--quiet", "worker", "-P", pool, "-c", str(cores if pool == "prefork" else 1), "-Q", P.QUEUE,
             "-n", f"{name}@{socket.gethostname()}", "--without-gossip", "--without-mingle",
             "--without-heartbeat", "-l", loglevel]
     app.worker_main(argv)

@@ -75,7 +75,7 @@ def _password_problem(url: str) -> str:
 
 
 def waiting_line(url: str, why: str, wait: float, what: str = "waiting for the head") -> str:
-    return f"{what} at {redact(url)} ({why}); retrying in {wait:.0f} s"
+    return f"{what} at {redact(url)} ({why}); retrying in {wait:g} s"
 
 
 def wait_for_head(url: str, say, stop: threading.Event | None = None,
