@@ -162,3 +162,16 @@ def test_worker_env_template_is_the_format_systemd_reads():
     env = env_file(DEPLOY / "worker.env")
     assert set(env) == {"LAMPYR_HEAD", "LAMPYR_WORKER_ARGS"}
     assert env["LAMPYR_HEAD"].startswith("redis://")
+
+
+def test_compose_head_runs_a_command_lampyr_has():
+    import click
+    import yaml  # PyYAML reads the compose file as Docker Compose would read its YAML
+
+    spec = yaml.safe_load((DEPLOY / "compose.yaml").read_text())
+    words = spec["services"]["head"]["command"]
+    assert words[:2] == ["lampyr", "head"]
+    try:
+        cli.commands["head"].make_context("head", list(words[2:]))
+    except click.UsageError as err:
+        pytest.fail(f"compose.yaml: {err.format_message()}")
