@@ -86,6 +86,14 @@ def throughput(r, hours: float = 6.0, now: float | None = None) -> dict:
     return {"start": start, "step": MINUTE, "values": values}
 
 
+def forget(r, name: str) -> bool:
+    """Drop an offline worker from `seen` (a PC taken out of the farm); False when it is not
+    there or is online (a live heartbeat would put it back at once)."""
+    if r.exists(P.k_host(name)):
+        return False
+    return bool(r.hdel(P.K_SEEN, name))
+
+
 def roster(r, now: float | None = None) -> dict:
     """{"online": [...], "offline": [...]}: live worker hosts (`store.workers`, each with
     "last_seen"), and workers seen before whose heartbeat is gone (their last heartbeat, newest

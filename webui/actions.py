@@ -4,6 +4,7 @@
     POST /api/jobs/<job>/priority   {"priority": int}
     POST /api/jobs/<job>/retry      {} | {"frame": f} | {"frame": f, "tile": i}
     POST /api/jobs/<job>/refine     {"samples": n, "frames": [f, ...]?, "noise": e?}
+    POST /api/workers/<name>/forget drop a worker not heard from from the list
     POST /api/submit                multipart: shot (file), assets (archive, optional),
                                     priority, samples, frames ("A-B" or "A"), width, height,
                                     tile (tile edge in px; default: the head's choice),
@@ -140,6 +141,15 @@ def refine(job):
              else f"frames {', '.join(map(str, frames))}")
     goal = f", tiles noisier than {noise:g}" if noise is not None else ""
     return _queued(f"{job}: adding samples up to {samples} per pixel to {where}{goal}")
+
+
+@bp.route("/api/workers/<name>/forget", methods=["POST"])
+def forget_worker(name):
+    from ..scheduler.history import forget
+
+    if not forget(redis(), name):
+        abort(404, description=f"no worker {name!r} among those not heard from")
+    return jsonify(ok=True, message=f"{name} is no longer listed"), 200
 
 
 def _frames_field(text: str):

@@ -122,6 +122,23 @@ def test_a_worker_whose_heartbeat_expired_is_listed_as_not_heard_from(user, head
     assert data["offline"][0]["cores"] == 4 and data["offline"][0]["last_seen"] > 0
 
 
+def test_an_offline_worker_can_be_forgotten(user, head):
+    from .conftest import post
+
+    head.r.hset(P.K_SEEN, "old-pc", json.dumps({"name": "old-pc", "last_seen": time.time() - 99}))
+    assert post(user, "/api/workers/old-pc/forget").status_code == 200
+    assert head.r.hexists(P.K_SEEN, "old-pc") == 0
+
+
+def test_a_live_worker_cannot_be_forgotten(user, head):
+    from .conftest import post
+
+    head.r.set(P.k_host("desk-7"), json.dumps({"name": "desk-7"}), ex=60)
+    head.r.hset(P.K_SEEN, "desk-7", json.dumps({"name": "desk-7", "last_seen": time.time()}))
+    assert post(user, "/api/workers/desk-7/forget").status_code == 404
+    assert head.r.hexists(P.K_SEEN, "desk-7") == 1
+
+
 @pytest.mark.parametrize("hours", ["0", "25", "lots"])
 def test_a_throughput_window_out_of_range_is_refused(user, hours):
     resp = user.get(f"/api/throughput?hours={hours}")

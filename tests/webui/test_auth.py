@@ -14,7 +14,7 @@ READS = ["/", "/jobs/some-job", "/api/farm", "/api/jobs/some-job",
          "/jobs/some-job/frames/1.png", "/jobs/some-job/frames/1/preview.png"]
 ACTIONS = ["/api/jobs/some-job/pause", "/api/jobs/some-job/resume", "/api/jobs/some-job/cancel",
            "/api/jobs/some-job/priority", "/api/jobs/some-job/retry",
-           "/api/jobs/some-job/refine", "/api/submit", "/logout"]
+           "/api/jobs/some-job/refine", "/api/submit", "/api/workers/some-pc/forget", "/logout"]
 
 
 @pytest.mark.parametrize("url", [u for u in READS if u.startswith("/api/")])

@@ -86,6 +86,13 @@
     return el("div", {class: "machine gone"},
       el("div", {class: "m-name"}, el("strong", {text: w.name}), el("span", {class: "sub", text: (w.host || "") + " · " + cores(w.cores)})),
       el("div", {class: "m-doing"}, el("div", {class: "doing"}, L.icon("cancelled"), "no heartbeat")),
+      el("div", {class: "m-speed"}, el("button", {type: "button", class: "quiet small forget",
+        title: "take " + w.name + " off this list (it comes back if it joins again)",
+        onclick: async (ev) => {
+          ev.preventDefault();
+          try { L.say((await L.post("/api/workers/" + encodeURIComponent(w.name) + "/forget")).message, "good"); kick(); }
+          catch (e) { L.say(e.message, "bad"); }
+        }}, "Forget")),
       el("div", {class: "m-seen sub", text: "last heard " + L.ago(w.last_seen, now) + " (" + L.clock(w.last_seen) + ")"}));
   }
 
@@ -146,8 +153,15 @@
     const data = await L.get("/api/farm");
     figures(data);
     const shots = document.getElementById("shots");
-    shots.replaceChildren(...(data.jobs.length ? data.jobs.map(j => shotRow(j, data.now))
-                                               : [el("p", {class: "empty", text: "Nothing on the farm yet."})]));
+    const old = (j) => !ACTIVE.has(j.state) && j.state !== "failed" && data.now - j.submitted > 86400;
+    const shown = showAll ? data.jobs : data.jobs.filter(j => !old(j));
+    const hidden = data.jobs.length - shown.length;
+    const more = hidden || showAll && data.jobs.some(old)
+      ? el("button", {type: "button", class: "quiet small", onclick: () => { showAll = !showAll; kick(); }},
+           showAll ? "Fold away finished shots older than a day" : "Show " + hidden + " finished shot" + (hidden > 1 ? "s" : "") + " older than a day")
+      : null;
+    shots.replaceChildren(...(shown.length ? shown.map(j => shotRow(j, data.now))
+                                           : [el("p", {class: "empty", text: "Nothing on the farm yet."})]), ...(more ? [more] : []));
     const m = document.getElementById("machines");
     m.replaceChildren(...(data.workers.length ? data.workers.map(w => machine(w, data.now))
                                                : [el("p", {class: "empty", text: "No machine has joined yet."})]));
@@ -158,6 +172,7 @@
     lastPlot = data.throughput;
   }
   let lastPlot = null;
+  let showAll = false;
   window.addEventListener("resize", () => { if (lastPlot) plot(lastPlot); });
   const kick = L.poll(refresh, 2000);
 
