@@ -114,6 +114,13 @@ def _errors(app: Flask) -> None:
     def _http(err):
         return _answer(err.code or 500, err.description or err.name, err.name)
 
+    import redis
+
+    @app.errorhandler(redis.exceptions.ConnectionError)
+    @app.errorhandler(redis.exceptions.TimeoutError)
+    def _farm_away(err):
+        return _answer(503, "the farm's Redis does not answer; is the head running?", "Farm away")
+
     @app.errorhandler(Exception)
     def _crash(err):
         app.logger.exception("web request failed: %s %s", request.method, request.path)

@@ -143,3 +143,17 @@ def test_a_live_worker_cannot_be_forgotten(user, head):
 def test_a_throughput_window_out_of_range_is_refused(user, hours):
     resp = user.get(f"/api/throughput?hours={hours}")
     assert resp.status_code == 400 and "hours" in resp.get_json()["error"]
+
+
+def test_a_farm_whose_redis_is_gone_answers_503_with_a_message(state, tmp_path):
+    from lampyr.scheduler.redis_server import free_port
+    from lampyr.webui.app import create_app
+
+    from .conftest import PASSWORD, log_in
+
+    app = create_app({"STATE": state, "REDIS_URL": f"redis://127.0.0.1:{free_port()}/0",
+                      "PASSWORD": PASSWORD, "SECRET_KEY": "s", "TESTING": True})
+    c = app.test_client()
+    log_in(c)
+    resp = c.get("/api/farm")
+    assert resp.status_code == 503 and "does not answer" in resp.get_json()["error"]
