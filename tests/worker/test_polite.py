@@ -216,10 +216,13 @@ def test_a_user_busy_for_long_gets_the_batches_handed_back(farm, tiny_shot, tmp_
         hog.wait()
 
 
-@pytest.mark.parametrize("how", ["SIGTERM to the worker", "Ctrl-C in its terminal"])
-def test_a_stopped_worker_hands_back_its_batch_and_exits(farm, tiny_shot, tmp_path, how):
+@pytest.mark.parametrize("how, pool", [("SIGTERM to the worker", "prefork"),
+                                       ("Ctrl-C in its terminal", "prefork"),
+                                       ("SIGTERM to the worker", "solo")])
+def test_a_stopped_worker_hands_back_its_batch_and_exits(farm, tiny_shot, tmp_path, how, pool):
     farm.start_head()
-    proc = farm.start_worker("leaving", env={"LAMPYR_TEST_CHUNK_DELAY": "1.0"})
+    proc = farm.start_worker("leaving", env={"LAMPYR_TEST_CHUNK_DELAY": "1.0"},
+                             args=["--pool", pool])
     job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
     wait_for(lambda: rendering_a_full_batch(farm.url, "leaving"), what="a batch under way")
     if how == "SIGTERM to the worker":
