@@ -47,3 +47,29 @@ def test_lowest_priority_is_nice_19_and_children_inherit_it():
             "capture_output=True, text=True).stdout.strip())")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60)
     assert out.stdout.split() == ["19", "19"], out.stderr
+
+
+def test_the_load_meter_does_not_count_the_workers_own_processes():
+    import os
+    import time
+
+    import psutil
+
+    from lampyr.worker.politeness import LoadMeter, _machine_busy_seconds
+
+    hog = subprocess.Popen([sys.executable, "-c", "while True: pass"])  # in this process's tree
+    try:
+        meter = LoadMeter(os.getpid())
+        busy0, total0 = _machine_busy_seconds()
+        time.sleep(1.5)
+        others = meter.sample()
+        busy1, total1 = _machine_busy_seconds()
+        machine = (busy1 - busy0) / (total1 - total0)
+        hog_share = sum(psutil.Process(hog.pid).cpu_times()[:2]) / (total1 - total0)
+    finally:
+        hog.kill()
+        hog.wait()
+    # what the hog used (the very psutil counters, read independently) is taken off the
+    # machine's load; sampled a moment apart, so within a few hundredths
+    assert hog_share > 0.1  # enough that counting it would show
+    assert others == pytest.approx(max(0.0, machine - hog_share), abs=0.05)
