@@ -44,6 +44,7 @@ def make_app(url: str, name: str, settings: dict | None = None, gate_folder: str
     settings: extra Celery settings over `protocol.celery_settings(url)`; gate_folder: the
     supervisor's gate (worker/gate.py), consulted by every batch between chunks.
     """
+    import redis
     from celery import Celery
 
     app = Celery("lampyr-worker", set_as_current=False)
@@ -63,7 +64,14 @@ def make_app(url: str, name: str, settings: dict | None = None, gate_folder: str
         if ctx is None:
             gate = Gate(gate_folder) if gate_folder else None
             ctx = _CTX[os.getpid()] = Context(url, name, gate)
-        return run_batch(ctx, payload)
+        try:
+            return run_batch(ctx, payload)
+        except (redis.exceptions.ConnectionError, redis.exceptions.TimeoutError) as err:
+            # the head went away mid-batch: the supervisor says so in one line; this start's
+            # lease lapses and the head queues the batch again — no stack trace in the log
+            from .connect import reason
+
+            return {"outcome": "head lost", "error": reason(err)}
 
     return app
 

@@ -63,7 +63,8 @@ def say(line: str) -> None:
     print(f"lampyr worker: {line}", file=sys.stderr, flush=True)
 
 
-def test_clock():
+def hooked_clock():
+    """time.time, or with LAMPYR_TEST_CLOCK_FILE the real clock moved by the file's seconds."""
     path = os.environ.get("LAMPYR_TEST_CLOCK_FILE")
     if not path:
         return time.time
@@ -83,7 +84,7 @@ class Supervisor:
 
     def __init__(self, opts: WorkerOptions, clock=None, say=say):
         self.opts = opts
-        self.clock = clock or test_clock()
+        self.clock = clock or hooked_clock()
         self.say = say
         self.gate = Gate()
         self.stopping = threading.Event()

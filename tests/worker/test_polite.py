@@ -163,7 +163,7 @@ def test_a_worker_started_before_its_head_waits_in_one_line_and_joins(farm, tiny
 
     port = free_port("127.0.0.1")
     farm.url = f"redis://127.0.0.1:{port}/0"
-    farm.start_worker("early", wait=False)
+    farm.start_worker("early", wait=False, env={"LAMPYR_TEST_CHUNK_DELAY": "0.2"})
     log = tmp_path / "worker-early.log"
     wait_for(lambda: "retrying in 2 s" in log.read_text(), timeout=30, what="two tries")
     lines = log.read_text().splitlines()
@@ -175,14 +175,13 @@ def test_a_worker_started_before_its_head_waits_in_one_line_and_joins(farm, tiny
         farm.start_head()
         farm.wait_worker("early")
         job = farm.submit(tiny_shot, *LAYOUT)
-        assert farm.wait(job, timeout=120)["state"] == "done"
-        # the head is lost for a while: one line per try, then back to work
+        wait_for(lambda: rendering_a_full_batch(farm.url, "early"), what="a batch under way")
+        # the head is lost in the middle of a batch: one line per try, then back to work
         server.proc.kill()
         server.proc.wait()
         wait_for(lambda: "lost the head at" in log.read_text(), timeout=30, what="the loss")
         server.start()
         wait_for(lambda: "reached the head at" in log.read_text(), timeout=90, what="the return")
-        job = farm.submit(tiny_shot, *LAYOUT)
         assert farm.wait(job, timeout=120)["state"] == "done"
         assert "Traceback" not in log.read_text()
     finally:
