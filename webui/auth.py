@@ -91,7 +91,7 @@ def _passwords() -> dict:
 def role() -> str | None:
     """"farm" (may act), "viewer" (may look) or None (not logged in, or the password changed)."""
     pw = _passwords().get(session.get("who", ""))
-    if pw and hmac.compare_digest(session.get("pw", ""), _fingerprint(pw)):
+    if pw and hmac.compare_digest(str(session.get("pw", "")).encode(), _fingerprint(pw).encode()):
         return session["who"]
     return None
 
@@ -117,7 +117,8 @@ def check_request():
     if request.method in MUTATING:
         sent = request.headers.get(TOKEN_HEADER) or request.form.get("token", "")
         known = session.get("csrf", "")
-        if not known or not hmac.compare_digest(sent, known) or not _same_origin():
+        if (not known or not hmac.compare_digest(sent.encode(), known.encode())
+                or not _same_origin()):
             return _refuse(403, "this request lacks the page's anti-forgery token or comes from "
                                 "another site; reload the page and try again")
     if request.endpoint in OPEN_ENDPOINTS or request.endpoint is None:

@@ -188,3 +188,8 @@ def test_a_viewer_s_page_says_it_only_looks(viewer):
                                  "/login"])
 def test_what_the_login_page_needs_is_open_to_everyone(client, url):
     assert client.get(url).status_code == 200
+
+
+def test_a_token_that_is_not_ascii_is_refused_not_a_crash(user):
+    resp = user.post("/api/jobs/x/pause", data={"token": "jeton-\u00e9t\u00e9"})
+    assert resp.status_code == 403
