@@ -156,3 +156,19 @@ def test_a_whole_day_span_is_allowed():
 def test_bad_days_and_zones_are_refused_naming_the_option(parse, text, option):
     with pytest.raises(UsageError, match=f"^{option}: "):
         parse(text)
+
+
+@pytest.mark.parametrize("option, value", [
+    ("--hours", "25:00-07:00"),
+    ("--weekend-days", "sat,funday"),
+    ("--time-zone", "Mars/Olympus"),
+])
+def test_the_worker_command_refuses_bad_hours_in_one_line_with_status_2(option, value):
+    import subprocess
+    import sys
+
+    res = subprocess.run([sys.executable, "-m", "lampyr.cli", "worker", "redis://127.0.0.1:1/0",
+                          option, value], capture_output=True, text=True, timeout=60)
+    assert res.returncode == 2
+    (line,) = res.stderr.strip().splitlines()
+    assert line.startswith(f"lampyr: {option}: ") and value.split(",")[-1].split("-")[0] in line
