@@ -342,7 +342,9 @@ class Head(JobCommands):
         self._send(b)
 
     def worker_cores(self) -> int:
-        """Cores of the live workers (from their heartbeats; re-read once a second)."""
+        """Cores of the live workers that can take work now (from their heartbeats; re-read
+        once a second): a worker outside its working hours or paused for its user takes none,
+        and batches queued for it would only wait, in an order frozen at queueing."""
         at, cores = self._cores
         if time.monotonic() - at < 1.0:
             return cores
@@ -350,7 +352,9 @@ class Head(JobCommands):
         for k in self.r.scan_iter(match=P.key("host", "*"), count=500):
             raw = self.r.get(k)
             if raw:
-                total += int(json.loads(raw).get("cores", 1))
+                info = json.loads(raw)
+                if info.get("state") not in ("outside working hours", "paused: user busy"):
+                    total += int(info.get("cores", 1))
         self._cores = (time.monotonic(), total)
         return total
 

@@ -236,3 +236,16 @@ def test_a_stopped_worker_hands_back_its_batch_and_exits(farm, tiny_shot, tmp_pa
     farm.start_worker("next")
     assert farm.wait(job, timeout=120)["state"] == "done"
     assert_frames_match_engine(tmp_path / "out", tiny_shot)
+
+
+@pytest.mark.parametrize("state, counted", [
+    ("rendering", True), ("idle", True), (None, True),  # None: a heartbeat without a state
+    ("outside working hours", False), ("paused: user busy", False),
+])
+def test_the_head_queues_only_for_workers_that_can_take_work(redis_url, tmp_path, state, counted):
+    from lampyr.scheduler.head import Head
+
+    head = Head(tmp_path / "state", redis_url)
+    info = {"name": "pc", "cores": 8, **({"state": state} if state else {})}
+    redis.Redis.from_url(redis_url).set("lampyr:host:pc", json.dumps(info))
+    assert head.worker_cores() == (8 if counted else 0)
