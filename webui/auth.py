@@ -19,6 +19,7 @@ from __future__ import annotations
 import hashlib
 import hmac
 import os
+import re
 import secrets
 import time
 from pathlib import Path
@@ -31,6 +32,10 @@ OPEN_ENDPOINTS = {"auth.login", "static", "auth.health"}
 TOKEN_HEADER = "X-Lampyr-Token"
 LOGIN_TRIES = 8  # failed logins from one address per LOGIN_WINDOW before it must wait
 LOGIN_WINDOW = 60.0
+THROTTLE_ADDRESSES = 10_000  # failing addresses remembered at once (memory bound)
+# a path of this page only: printable ASCII, one leading slash (browsers drop tabs and newlines
+# and read a backslash as a slash, so "/\t/x" or "/\\x" would leave for host x)
+LOCAL_PATH = re.compile(r"/(?![/\\])[!-~]*")
 
 bp = Blueprint("auth", __name__)
 
@@ -113,7 +118,13 @@ def _same_origin() -> bool:
 
 def check_request():
     """before_request: login required outside OPEN_ENDPOINTS; token and origin on every
-    mutating request (the login form's POST included)."""
+    mutating request (the login form's POST included). The login is checked before the token
+    so that a stranger's request body (an upload) is never parsed."""
+    open_endpoint = request.endpoint in OPEN_ENDPOINTS or request.endpoint is None
+    if not open_endpoint and not logged_in():
+        if _wants_json() or request.method in MUTATING:
+            return _refuse(401 if _wants_json() else 403, "log in first")
+        return redirect(url_for("auth.login", next=request.full_path.rstrip("?")))
     if request.method in MUTATING:
         sent = request.headers.get(TOKEN_HEADER) or request.form.get("token", "")
         known = session.get("csrf", "")
@@ -121,12 +132,8 @@ def check_request():
                 or not _same_origin()):
             return _refuse(403, "this request lacks the page's anti-forgery token or comes from "
                                 "another site; reload the page and try again")
-    if request.endpoint in OPEN_ENDPOINTS or request.endpoint is None:
+    if open_endpoint:
         return None
-    if not logged_in():
-        if _wants_json():
-            return _refuse(401, "log in first")
-        return redirect(url_for("auth.login", next=request.full_path.rstrip("?")))
     g.token = csrf_token()
     if request.method in MUTATING and role() != "farm" and request.endpoint != "auth.logout":
         return _refuse(403, "this login can look but not change anything (a viewer login)")
@@ -155,14 +162,21 @@ class LoginThrottle:
         return len(recent) >= LOGIN_TRIES
 
     def failed(self, who: str) -> None:
-        self.fails.setdefault(who, []).append(time.monotonic())
+        now = time.monotonic()
+        if who not in self.fails and len(self.fails) >= THROTTLE_ADDRESSES:
+            # forget addresses that stopped failing; if all fail now, the oldest
+            for k in [k for k, ts in self.fails.items() if now - ts[-1] >= LOGIN_WINDOW]:
+                del self.fails[k]
+            while len(self.fails) >= THROTTLE_ADDRESSES:
+                del self.fails[next(iter(self.fails))]
+        self.fails.setdefault(who, []).append(now)
 
 
 @bp.route("/login", methods=["GET", "POST"])
 def login():
     nxt = request.values.get("next", "")
-    if not nxt.startswith("/") or nxt.startswith("//"):
-        nxt = url_for("pages.overview")  # only a path of this page: no open redirect
+    if not LOCAL_PATH.fullmatch(nxt):
+        nxt = url_for("pages.overview")  # no open redirect
     error = None
     if request.method == "POST":
         throttle = current_app.extensions["lampyr.throttle"]

@@ -52,7 +52,25 @@ def test_an_action_from_another_site_is_refused_even_with_the_token(user, url):
 @pytest.mark.parametrize("url", ACTIONS)
 def test_an_action_without_a_session_is_refused(client, url):
     resp = client.post(url, json={}, headers={"X-Lampyr-Token": "anything"})
-    assert resp.status_code == 403
+    assert resp.status_code == (401 if url.startswith("/api/") else 403)
+
+
+def test_a_stranger_s_upload_is_refused_before_its_body_is_read(client):
+    import io
+
+    class Body(io.BytesIO):
+        touched = False
+
+        def read(self, *a):
+            Body.touched = True
+            return super().read(*a)
+
+    raw = (b"--B\r\nContent-Disposition: form-data; name=\"token\"\r\n\r\nanything\r\n"
+           b"--B--\r\n")
+    client.get("/login")  # a session with a token, but no login
+    resp = client.post("/api/submit", input_stream=Body(raw), content_length=len(raw),
+                       content_type="multipart/form-data; boundary=B")
+    assert resp.status_code == 401 and not Body.touched
 
 
 def test_the_login_form_itself_needs_its_token(client):
@@ -88,7 +106,9 @@ def test_after_the_login_the_browser_goes_where_it_wanted(client):
     assert resp.headers["Location"] == "/jobs/abc"
 
 
-@pytest.mark.parametrize("target", ["https://elsewhere.example/", "//elsewhere.example/x"])
+@pytest.mark.parametrize("target", ["https://elsewhere.example/", "//elsewhere.example/x",
+                                    "/\\elsewhere.example/x", "/\t/elsewhere.example/x",
+                                    "/\n/elsewhere.example/x", "/\\/elsewhere.example/x"])
 def test_the_login_never_sends_the_browser_to_another_site(client, target):
     client.get("/login")
     resp = client.post("/login", data={"password": PASSWORD, "token": token_of(client),
@@ -118,6 +138,17 @@ def test_guessing_is_slowed_after_a_few_wrong_passwords(client):
         client.post("/login", data={"password": "guess", "token": token_of(client)})
     resp = client.post("/login", data={"password": PASSWORD, "token": token_of(client)})
     assert resp.status_code == 429
+
+
+def test_the_throttle_remembers_a_bounded_number_of_addresses(monkeypatch):
+    from lampyr.webui import auth
+
+    monkeypatch.setattr(auth, "THROTTLE_ADDRESSES", 50)
+    throttle = auth.LoginThrottle()
+    for i in range(500):  # one wrong guess from each of many addresses
+        throttle.failed(f"10.0.{i // 256}.{i % 256}")
+    assert len(throttle.fails) <= 50
+    assert "10.0.1.243" in throttle.fails  # the latest address is still counted
 
 
 def test_a_loopback_farm_gets_a_password_file_only_its_user_can_read(tmp_path):
