@@ -49,7 +49,7 @@ def _int(data: dict, key: str, lo: int, hi: int, required: bool = True):
         value = int(raw)
         if isinstance(raw, float) and raw != value or isinstance(raw, bool):
             raise ValueError
-    except (TypeError, ValueError):
+    except (TypeError, ValueError, OverflowError):  # OverflowError: JSON's 1e999 is infinity
         raise UsageError(f"{key}: expected a whole number between {lo} and {hi}, got {raw!r}") from None
     if not lo <= value <= hi:
         raise UsageError(f"{key}: expected a whole number between {lo} and {hi}, got {value}")
@@ -118,8 +118,11 @@ def refine(job):
         if not isinstance(frames, list) or not frames:
             raise UsageError("frames: expected a list of frame numbers")
         frames = [_int({"frames": f}, "frames", 0, 10**7) for f in frames]
+        lay = layout_or_404(job)
+        known = set(lay["frames"])
         for f in frames:
-            frame_or_404(job, f)
+            if f not in known:
+                frame_or_404(job, f)  # the 404 naming the job's frames
     else:
         layout_or_404(job)
     noise = data.get("noise")

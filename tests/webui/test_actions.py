@@ -50,6 +50,16 @@ def test_a_bad_priority_is_refused_naming_the_field(user, queued_job, value):
     assert resp.get_json()["error"].startswith("priority: expected a whole number between")
 
 
+@pytest.mark.parametrize("raw", ['{"priority": 1e999}', '{"priority": -Infinity}',
+                                 '{"priority": NaN}'])
+def test_a_priority_beyond_any_number_is_refused_not_a_crash(user, queued_job, raw):
+    # Python's json reads these as float infinities and NaN (json module documentation)
+    resp = user.post(f"/api/jobs/{queued_job}/priority", data=raw,
+                     content_type="application/json", headers={"X-Lampyr-Token": user.token})
+    assert resp.status_code == 400
+    assert resp.get_json()["error"].startswith("priority: expected a whole number between")
+
+
 @pytest.mark.parametrize("op", ["pause", "resume", "cancel", "retry"])
 def test_an_action_on_an_unknown_job_is_a_404(user, op):
     assert post(user, f"/api/jobs/nope-123456/{op}").status_code == 404
