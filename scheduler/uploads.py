@@ -10,17 +10,20 @@ the bundle). The upload folder is removed afterwards: the bundle in Redis is wha
 
 from __future__ import annotations
 
+import errno
 import io
 import re
 import secrets
 import shutil
 import tarfile
 import zipfile
+import zlib
 from pathlib import Path, PurePosixPath
 
 from .bundle import MAX_BYTES, MAX_MEMBERS, BundleError, _safe_name
 
 ARCHIVES = (".zip", ".tar.gz", ".tgz", ".tar")
+MAX_SHOT_BYTES = 16 * 1024**2  # a shot file is text (rule of thumb: far above a long animation)
 _SHOT_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9 _.-]{0,80}\.toml")
 
 
@@ -36,59 +39,96 @@ def archive_kind(filename: str) -> str:
     raise UploadError(f"assets: expected a .zip, .tar.gz, .tgz or .tar archive, got {filename!r}")
 
 
-def read_archive(data: bytes, filename: str, max_bytes: int = MAX_BYTES,
-                 max_members: int = MAX_MEMBERS) -> dict[PurePosixPath, bytes]:
-    """Every regular file of an archive by its checked name; folders are skipped, anything else
-    (links, devices) or a name leaving the archive is refused."""
-    kind = archive_kind(filename)
-    files: dict[PurePosixPath, bytes] = {}
-    total = 0
+CHUNK = 1024 * 1024
 
-    def take(name: str, size: int, read) -> None:
-        nonlocal total
-        if len(files) >= max_members:
+
+def _member_name(name: str, folder: bool = False) -> PurePosixPath | None:
+    """The checked name of a member; None for the archive's own top ("./" of `tar -C dir .`)."""
+    bare = name.rstrip("/") if folder or name.endswith("/") else name
+    if bare in ("", ".") or PurePosixPath(bare).parts == ():
+        if folder:
+            return None
+        raise UploadError(f"assets: member {name!r}: expected a file name")
+    return _safe_name(bare)
+
+
+def _members(arc, kind: str, max_bytes: int, max_members: int) -> list:
+    """Check every member before anything is written: [(path, size, member)] of the regular
+    files. Refused: links and devices, names leaving the archive, a name used twice or both as
+    a file and as a folder, more than `max_members` files or `max_bytes` unpacked."""
+    files, folders, out, total = set(), set(), [], 0
+    for info in (arc.infolist() if kind == ".zip" else arc.getmembers()):
+        name = info.filename if kind == ".zip" else info.name
+        if info.is_dir() if kind == ".zip" else info.isdir():
+            path = _member_name(name, folder=True)
+            if path is not None:
+                folders.add(path)
+            continue
+        if kind == ".zip":
+            mode = info.external_attr >> 16
+            regular = not mode or (mode & 0o170000) in (0, 0o100000)
+            size = info.file_size
+        else:
+            regular, size = info.isreg(), info.size
+        if not regular:
+            raise UploadError(f"assets: member {name!r}: only regular files are accepted "
+                              "(no links or devices)")
+        if len(out) >= max_members:
             raise UploadError(f"assets: the archive has more than {max_members} files")
-        path = _safe_name(name.rstrip("/") if name.endswith("/") else name)
+        path = _member_name(name)
         total += size
         if total > max_bytes:
             raise UploadError(f"assets: the archive unpacks to more than {max_bytes} bytes")
-        body = read()
-        if len(body) != size:
-            raise UploadError(f"assets: member {name!r}: size does not match")
         if path in files:
             raise UploadError(f"assets: member {name!r} appears twice")
-        files[path] = body
+        files.add(path)
+        folders.update(path.parents)
+        out.append((path, size, info))
+    clash = files & folders
+    if clash:
+        raise UploadError(f"assets: member {str(min(clash))!r} is both a file and a folder")
+    return out
 
+
+def unpack_archive(source, filename: str, dest: Path, max_bytes: int = MAX_BYTES,
+                   max_members: int = MAX_MEMBERS) -> list[PurePosixPath]:
+    """Check an archive (bytes, or a seekable binary file) and unpack its regular files under
+    `dest`, streaming (never a whole member in memory); returns their names. Nothing is written
+    before every member passed `_members`; a member whose contents disagree with its declared
+    size is refused (what was written stays under `dest` for the caller to remove)."""
+    kind = archive_kind(filename)
+    fileobj = io.BytesIO(source) if isinstance(source, (bytes, bytearray)) else source
     try:
         if kind == ".zip":
-            with zipfile.ZipFile(io.BytesIO(data)) as z:
-                for info in z.infolist():
-                    if info.is_dir():
-                        _safe_name(info.filename.rstrip("/"))
-                        continue
-                    mode = info.external_attr >> 16
-                    if mode and (mode & 0o170000) not in (0, 0o100000):
-                        raise UploadError(f"assets: member {info.filename!r}: only regular files "
-                                          "are accepted (no links or devices)")
-                    take(info.filename, info.file_size, lambda: z.read(info))
+            arc = zipfile.ZipFile(fileobj)
+            opener = arc.open
         else:
-            mode = "r:gz" if kind in (".tar.gz", ".tgz") else "r:"
-            with tarfile.open(fileobj=io.BytesIO(data), mode=mode) as tar:
-                for info in tar:
-                    if info.isdir():
-                        _safe_name(info.name.rstrip("/"))
-                        continue
-                    if not info.isreg():
-                        raise UploadError(f"assets: member {info.name!r}: only regular files "
-                                          "are accepted (no links or devices)")
-                    take(info.name, info.size, lambda: tar.extractfile(info).read(info.size + 1))
+            arc = tarfile.open(fileobj=fileobj, mode="r:gz" if kind in (".tar.gz", ".tgz") else "r:")
+            opener = arc.extractfile
+        with arc:
+            members = _members(arc, kind, max_bytes, max_members)
+            for path, size, info in members:
+                target = Path(dest).joinpath(*path.parts)
+                target.parent.mkdir(parents=True, exist_ok=True)
+                with opener(info) as src, open(target, "wb") as out:
+                    left = size + 1
+                    while left > 0 and (chunk := src.read(min(CHUNK, left))):
+                        out.write(chunk)
+                        left -= len(chunk)
+                if left != 1:
+                    raise UploadError(f"assets: member {path.as_posix()!r}: size does not match")
     except UploadError:
         raise
     except BundleError as err:
         raise UploadError(f"assets: {err}") from None
-    except (tarfile.TarError, zipfile.BadZipFile, OSError, EOFError, ValueError) as err:
+    except (tarfile.TarError, zipfile.BadZipFile, EOFError, ValueError, zlib.error,
+            RuntimeError, NotImplementedError) as err:  # zipfile: encrypted, unknown method
         raise UploadError(f"assets: not a readable {kind} archive ({err})") from None
-    return files
+    except OSError as err:
+        if err.errno in (errno.ENOSPC, errno.EDQUOT, errno.EACCES, errno.EROFS):
+            raise  # the head's disk, not the upload: a 500 and the head's log say so
+        raise UploadError(f"assets: not a readable {kind} archive ({err})") from None
+    return [path for path, _, _ in members]
 
 
 def shot_file_name(filename: str) -> str:
@@ -101,11 +141,12 @@ def shot_file_name(filename: str) -> str:
 
 
 def submit_upload(r, uploads: Path, shot_name: str, shot_bytes: bytes, archive_name: str | None,
-                  archive_bytes: bytes | None, overrides: dict, priority: int = 0,
+                  archive, overrides: dict, priority: int = 0,
                   tile_size: int | None = None, deadline: float | None = None) -> str:
     """Unpack, validate and submit an uploaded shot; returns the job id.
 
-    uploads: a folder the upload is unpacked under (a fresh subfolder, removed at the end).
+    uploads: a folder the upload is unpacked under (a fresh subfolder, removed at the end);
+    archive: the assets archive as bytes or a seekable binary file, or None.
     ShotError / AssetError (bad shot), UploadError (bad file or archive) on refusal."""
     from ..engine.shot import load_shot
     from ..errors import AssetError, ShotError
@@ -116,14 +157,10 @@ def submit_upload(r, uploads: Path, shot_name: str, shot_bytes: bytes, archive_n
         shot_bytes.decode("utf-8")
     except UnicodeDecodeError:
         raise UploadError("shot: expected a TOML text file (UTF-8), got binary data") from None
-    files = read_archive(archive_bytes, archive_name) if archive_bytes else {}
     work = Path(uploads) / secrets.token_hex(8)
     try:
-        for rel, body in files.items():
-            target = work.joinpath(*rel.parts)
-            target.parent.mkdir(parents=True, exist_ok=True)
-            target.write_bytes(body)
         work.mkdir(parents=True, exist_ok=True)
+        files = unpack_archive(archive, archive_name, work) if archive is not None else []
         tops = {rel.parts[0] for rel in files}
         places = [work]
         if len(tops) == 1 and (work / next(iter(tops))).is_dir():
@@ -131,6 +168,8 @@ def submit_upload(r, uploads: Path, shot_name: str, shot_bytes: bytes, archive_n
         errors = []
         for place in places:
             path = place / name
+            if path.is_dir():
+                raise UploadError(f"shot: the archive has a folder named {name!r}")
             path.write_bytes(shot_bytes)
             try:
                 load_shot(path)

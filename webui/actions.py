@@ -175,8 +175,14 @@ def submit():
     shot = request.files.get("shot")
     if shot is None or not shot.filename:
         raise UsageError("shot: choose the shot file (.toml) to upload")
+    from ..scheduler.uploads import MAX_SHOT_BYTES
+
+    shot_bytes = shot.read(MAX_SHOT_BYTES + 1)
+    if len(shot_bytes) > MAX_SHOT_BYTES:
+        raise UsageError(f"shot: larger than {MAX_SHOT_BYTES / 1024**2:g} MiB; expected a TOML "
+                         "shot file (its assets go in the archive)")
     assets = request.files.get("assets")
-    archive = assets.read() if assets is not None and assets.filename else None
+    archive = assets.stream if assets is not None and assets.filename else None
     form = request.form
     overrides = {}
     for key, hi in (("samples", MAX_SAMPLES), ("width", 16384), ("height", 16384)):
@@ -197,7 +203,7 @@ def submit():
         except UsageError as err:  # its message names the command-line option
             raise UsageError(str(err).replace("--until:", "until:", 1)) from None
     uploads = Path(current_app.config["STATE"]) / "web" / "uploads"
-    job = submit_upload(redis(), uploads, shot.filename, shot.read(),
-                        assets.filename if archive else None, archive, overrides, prio, tile,
-                        deadline)
+    job = submit_upload(redis(), uploads, shot.filename, shot_bytes,
+                        assets.filename if archive is not None else None, archive, overrides,
+                        prio, tile, deadline)
     return jsonify(ok=True, job=job, message=f"{job} is queued"), 202

@@ -26,9 +26,22 @@ def zip_of(files: dict) -> bytes:
     return buf.getvalue()
 
 
-def tgz_of(files: dict, links: dict | None = None) -> bytes:
+def encrypted_zip_of(files: dict) -> bytes:
+    """A zip whose members are marked encrypted (general purpose flag bit 0, PKWARE APPNOTE
+    4.4.4, from memory): zipfile cannot write one, so the flag is set in the bytes."""
+    raw = bytearray(zip_of(files))
+    raw[raw.index(b"PK\x01\x02") + 8] |= 1  # central directory header
+    raw[raw.index(b"PK\x03\x04") + 6] |= 1  # local file header
+    return bytes(raw)
+
+
+def tgz_of(files: dict, links: dict | None = None, folders: tuple = ()) -> bytes:
     buf = io.BytesIO()
     with tarfile.open(fileobj=buf, mode="w:gz") as tar:
+        for name in folders:
+            info = tarfile.TarInfo(name)
+            info.type = tarfile.DIRTYPE
+            tar.addfile(info)
         for name, body in files.items():
             info = tarfile.TarInfo(name)
             info.size = len(body)
@@ -53,6 +66,8 @@ def upload(user, shot=MESH_SHOT.encode(), shot_name="tiny.toml", archive=None,
     (zip_of({"assets/floor.obj": FLOOR_OBJ}), "assets.zip"),
     (tgz_of({"assets/floor.obj": FLOOR_OBJ}), "assets.tar.gz"),
     (zip_of({"courtyard/assets/floor.obj": FLOOR_OBJ}), "folder.zip"),  # the shot's own folder
+    # what `tar -C folder -czf a.tgz .` makes: a "./" entry first, then "./assets/…"
+    (tgz_of({"./assets/floor.obj": FLOOR_OBJ}, folders=("./", "./assets")), "dot.tgz"),
 ])
 def test_an_uploaded_shot_with_its_assets_becomes_a_job(user, head, archive, name):
     resp = upload(user, archive=archive, archive_name=name)
@@ -85,6 +100,10 @@ def test_nothing_of_the_upload_is_left_behind(user, head, state):
     (b"this is not an archive", "a.zip", "not a readable .zip archive"),
     (b"\x1f\x8b broken gzip", "a.tgz", "not a readable .tgz archive"),
     (zip_of({"assets/floor.obj": FLOOR_OBJ}), "a.rar", "expected a .zip, .tar.gz"),
+    (zip_of({"assets/floor.obj": FLOOR_OBJ, "assets/floor.obj/x": b"x"}), "a.zip",
+     "is both a file and a folder"),
+    (tgz_of({"assets/x/y": b"y", "assets/x": b"x"}), "a.tgz", "is both a file and a folder"),
+    (encrypted_zip_of({"assets/floor.obj": FLOOR_OBJ}), "a.zip", "not a readable .zip archive"),
 ])
 def test_a_bad_archive_is_refused_with_a_clear_message(user, head, archive, name, words):
     resp = upload(user, archive=archive, archive_name=name)
@@ -93,6 +112,24 @@ def test_a_bad_archive_is_refused_with_a_clear_message(user, head, archive, name
     assert err.startswith("assets:") and words in err
     head.take_commands()
     assert head.jobs == {}
+
+
+def test_an_archive_is_checked_whole_before_anything_is_written(tmp_path):
+    from lampyr.scheduler.uploads import UploadError, unpack_archive
+
+    archive = zip_of({"assets/floor.obj": FLOOR_OBJ, "assets/../../x.obj": FLOOR_OBJ})
+    with pytest.raises(UploadError):
+        unpack_archive(archive, "a.zip", tmp_path)
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_a_shot_file_larger_than_a_shot_is_refused_naming_the_field(user, monkeypatch):
+    from lampyr.scheduler import uploads
+
+    monkeypatch.setattr(uploads, "MAX_SHOT_BYTES", 1024)
+    resp = upload(user, shot=MESH_SHOT.encode() + b"#" * 2048,
+                  archive=zip_of({"assets/floor.obj": FLOOR_OBJ}))
+    assert resp.status_code == 400 and resp.get_json()["error"].startswith("shot: larger than")
 
 
 def test_a_shot_whose_assets_are_missing_is_refused_naming_the_key(user):
