@@ -126,10 +126,27 @@ def job_layout(r, job: str) -> dict | None:
     return None if raw is None else json.loads(raw)
 
 
+def _by_frame(raws) -> list[dict]:
+    return sorted((json.loads(raw) for raw in raws), key=lambda d: d["frame"])
+
+
 def job_frames(r, job: str) -> list[dict]:
     """Every published frame summary of a job, by frame number, without the tile lists."""
-    return sorted((json.loads(raw) for raw in r.hvals(P.k_progress(job))),
-                  key=lambda d: d["frame"])
+    return _by_frame(r.hvals(P.k_progress(job)))
+
+
+STATE_LETTERS = {"waiting": "w", "rendering": "r", "done": "d", "failed": "f"}
+
+
+def frame_states(r, jobs) -> dict[str, str]:
+    """job → one letter per published frame, in frame order (w, r, d, f: the first letter of
+    its TILE_STATES word), for several jobs in one round trip."""
+    jobs = list(jobs)
+    pipe = r.pipeline(transaction=False)
+    for job in jobs:
+        pipe.hvals(P.k_progress(job))
+    return {job: "".join(STATE_LETTERS.get(d["state"], "w") for d in _by_frame(raws))
+            for job, raws in zip(jobs, pipe.execute())}
 
 
 def frame_tiles(r, job: str, frame: int) -> dict | None:
@@ -150,10 +167,11 @@ def frame_tiles(r, job: str, frame: int) -> dict | None:
     return d
 
 
-def frame_file(r, job: str, frame: int, ext: str = "exr"):
+def frame_file(r, job: str, frame: int, ext: str = "exr", st: dict | None = None,
+               lay: dict | None = None):
     """The path of a job's frame file (`exr` or `png`) when it exists inside the job's frames
     folder; None otherwise (unknown job or frame, not written yet, or a name that would leave
-    the folder)."""
+    the folder). st, lay: the job's status and layout when the caller has read them."""
     from pathlib import Path
 
     from ..frames import frame_path
@@ -161,8 +179,8 @@ def frame_file(r, job: str, frame: int, ext: str = "exr"):
 
     if ext not in ("exr", "png"):
         return None
-    st = job_status(r, job)
-    lay = job_layout(r, job)
+    st = job_status(r, job) if st is None else st
+    lay = job_layout(r, job) if lay is None else lay
     if st is None or lay is None or not st.get("out") or int(frame) not in lay["frames"]:
         return None
     folder = Path(st["out"]).resolve()

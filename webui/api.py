@@ -11,6 +11,7 @@ all clients (the farm's state changes at the head's publish rate, 4 per second, 
 
 from __future__ import annotations
 
+import json
 import re
 import threading
 import time
@@ -79,68 +80,106 @@ def _job_row(st: dict) -> dict:
     return row
 
 
-STATE_LETTERS = {"waiting": "w", "rendering": "r", "done": "d", "failed": "f"}
+FOLD_AFTER = 24 * 3600.0  # a finished shot submitted longer ago is folded away
 
 
-def farm_overview(r) -> dict:
-    """The overview's JSON (fields in docs/farm.md, "The web page")."""
-    jobs = [_job_row(st) for st in store.list_jobs(r)]
-    for row in jobs:  # one letter per frame, in frame order: w(aiting) r(endering) d(one) f(ailed)
-        row["frame_states"] = "".join(STATE_LETTERS.get(f["state"], "w")
-                                      for f in progress.job_frames(r, row["job"]))
+def _folds(st: dict, now: float) -> bool:
+    return st.get("state") in ("done", "cancelled") and now - st.get("submitted", now) > FOLD_AFTER
+
+
+def farm_overview(r, everything: bool = False) -> dict:
+    """The overview's JSON (fields in docs/farm.md, "The web page"). Finished shots older than
+    FOLD_AFTER are only counted in `folded` unless `everything`: the overview every page polls
+    stays the size of the farm's current work, not of its whole past."""
+    now = time.time()
+    jobs, folded = [], {"shots": 0, "done": 0, "frames": 0}
+    for st in store.list_jobs(r):
+        if not everything and _folds(st, now):
+            folded["shots"] += 1
+            if st.get("state") == "done":
+                folded["done"] += 1
+                folded["frames"] += st.get("frames", 0)
+            continue
+        jobs.append(_job_row(st))
+    letters = progress.frame_states(r, [row["job"] for row in jobs])
+    for row in jobs:
+        row["frame_states"] = letters[row["job"]]
     jobs.sort(key=lambda j: (j["state"] in ("done", "cancelled"), -j.get("submitted", 0)))
     crew = history.roster(r)
     return {
-        "now": time.time(),
+        "now": now,
         "jobs": jobs,
+        "folded": folded,
         "workers": [_worker_view(w) for w in crew["online"]],
         "offline": crew["offline"],
-        "throughput": history.throughput(r, OVERVIEW_HOURS),
+        "throughput": history.throughput(r, OVERVIEW_HOURS, now),
     }
 
 
 class SharedSnapshot:
-    """One overview built at most every `seconds`, shared by every request in that time."""
+    """One answer built at most every `seconds`, shared by every request in that time. While
+    one request rebuilds it, the others are given the previous one instead of waiting."""
 
     def __init__(self, seconds: float):
         self.seconds = seconds
         self.lock = threading.Lock()
+        self.building = False
         self.at = -1e9
         self.value = None
 
     def get(self, build):
         with self.lock:
-            if time.monotonic() - self.at > self.seconds:
-                self.value = build()
-                self.at = time.monotonic()
-            return self.value
+            fresh = time.monotonic() - self.at <= self.seconds
+            if fresh or (self.building and self.value is not None):
+                return self.value
+            self.building = True
+        try:
+            value = build()
+        finally:
+            with self.lock:
+                self.building = False
+        with self.lock:
+            self.value, self.at = value, time.monotonic()
+        return value
+
+
+def _json_bytes(data) -> bytes:
+    return json.dumps(data, separators=(",", ":")).encode()
 
 
 @bp.route("/api/farm")
 def farm():
-    snap = current_app.extensions["lampyr.overview"]
-    return jsonify(snap.get(lambda: farm_overview(redis())))
+    everything = request.args.get("all") == "1"
+    snap = current_app.extensions["lampyr.overview.all" if everything else "lampyr.overview"]
+    r = redis()
+    body = snap.get(lambda: _json_bytes(farm_overview(r, everything)))
+    return current_app.response_class(body, mimetype="application/json")
 
 
 @bp.route("/api/jobs/<job>")
 def job(job):
+    """Polled by every open job page: the failed batches are counted here (`failed_batches`);
+    their errors come with the frame they belong to."""
     st = job_or_404(job)
     lay = progress.job_layout(redis(), job)
-    return jsonify(job=st, layout=lay, frames=progress.job_frames(redis(), job))
+    return jsonify(job=_job_row(st), layout=lay, frames=progress.job_frames(redis(), job))
 
 
 @bp.route("/api/jobs/<job>/frames/<int:frame>")
 def frame(job, frame):
     st = job_or_404(job)
-    frame_or_404(job, frame)
+    lay = frame_or_404(job, frame)
     d = progress.frame_tiles(redis(), job, frame)
     if d is None:
         abort(404, description=f"frame {frame} of {job!r} has no progress yet")
     files = {}
     for ext in ("exr", "png"):
-        path = progress.frame_file(redis(), job, frame, ext)
-        files[ext] = None if path is None else {"bytes": path.stat().st_size,
-                                                "mtime": path.stat().st_mtime}
+        path = progress.frame_file(redis(), job, frame, ext, st, lay)
+        try:
+            info = None if path is None else path.stat()
+        except FileNotFoundError:  # removed since it was found
+            info = None
+        files[ext] = None if info is None else {"bytes": info.st_size, "mtime": info.st_mtime}
     d["files"] = files
     d["failed"] = [f for f in st.get("failed") or []
                    if P.parse_batch_id(f["batch"])[1] == frame]

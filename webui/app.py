@@ -66,6 +66,7 @@ def create_app(config: dict) -> Flask:
         app.config["SECRET_KEY"] = auth.session_secret(state)
     app.extensions["lampyr.redis"] = connect(config["REDIS_URL"], check=False)
     app.extensions["lampyr.overview"] = api.SharedSnapshot(api.FARM_CACHE_SECONDS)
+    app.extensions["lampyr.overview.all"] = api.SharedSnapshot(api.FARM_CACHE_SECONDS)
     app.extensions["lampyr.previews"] = files.PreviewCache()
 
     auth.install(app)

@@ -20,7 +20,30 @@ def test_the_overview_lists_the_job_with_its_progress(user, finished_job):
     (row,) = data["jobs"]
     assert JOB_FIELDS <= set(row)
     assert row["job"] == finished_job and row["state"] == "done" and row["progress"] == 1.0
-    assert set(data) == {"now", "jobs", "workers", "offline", "throughput"}
+    assert set(data) == {"now", "jobs", "folded", "workers", "offline", "throughput"}
+
+
+def _submitted_days_ago(head, job, days):
+    head.r.hset(P.k_job(job), "submitted", json.dumps(time.time() - days * 86400))
+
+
+def test_the_overview_leaves_out_shots_finished_more_than_a_day_ago(user, head, finished_job):
+    _submitted_days_ago(head, finished_job, 2)
+    data = user.get("/api/farm").get_json()
+    assert data["jobs"] == [] and data["folded"] == {"shots": 1, "done": 1, "frames": 2}
+
+
+def test_the_overview_lists_old_finished_shots_when_asked_for_all(user, head, finished_job):
+    _submitted_days_ago(head, finished_job, 2)
+    data = user.get("/api/farm?all=1").get_json()
+    assert [j["job"] for j in data["jobs"]] == [finished_job]
+    assert data["folded"] == {"shots": 0, "done": 0, "frames": 0}
+
+
+def test_the_overview_keeps_a_failed_shot_however_old(user, head, finished_job):
+    _submitted_days_ago(head, finished_job, 30)
+    head.r.hset(P.k_job(finished_job), "state", json.dumps("failed"))
+    assert [j["job"] for j in user.get("/api/farm").get_json()["jobs"]] == [finished_job]
 
 
 def test_the_overview_has_a_letter_for_each_frame_s_state(user, finished_job):
@@ -41,6 +64,52 @@ def test_the_job_json_has_its_layout_and_every_frame(user, finished_job):
     assert [(f["frame"], f["state"], f["held"], f["target"]) for f in data["frames"]] == [
         (1, "done", 8, 8), (2, "done", 8, 8)]
     assert "tiles" not in data["frames"][0]
+
+
+def test_the_polled_job_json_counts_failed_batches_without_their_errors(user, head,
+                                                                        finished_job):
+    failed = [{"batch": f"{finished_job}/1/{t}/0/4", "error": "x" * 500}
+              for t in range(4)]
+    head.r.hset(P.k_job(finished_job), "failed", json.dumps(failed))
+    job = user.get(f"/api/jobs/{finished_job}").get_json()["job"]
+    assert job["failed_batches"] == 4 and "failed" not in job
+    frame = user.get(f"/api/jobs/{finished_job}/frames/1").get_json()
+    assert frame["failed"] == failed  # the errors come with their frame
+
+
+def test_a_frame_file_is_found_from_a_status_and_layout_already_read(user, finished_job,
+                                                                     state):
+    from lampyr.scheduler import progress
+
+    r = user.application.extensions["lampyr.redis"]
+    st, lay = user.get(f"/api/jobs/{finished_job}").get_json()["job"], progress.job_layout(
+        r, finished_job)
+    path = progress.frame_file(None, finished_job, 1, "exr", st, lay)  # no Redis to ask
+    assert path == next((state / "jobs" / finished_job / "frames").glob("*.0001.exr")).resolve()
+
+
+def test_the_shared_overview_is_not_waited_for_while_it_is_rebuilt():
+    import threading
+
+    from lampyr.webui.api import SharedSnapshot
+
+    snap = SharedSnapshot(0.0)
+    assert snap.get(lambda: "old") == "old"
+    time.sleep(0.01)
+    started, release = threading.Event(), threading.Event()
+
+    def slow():
+        started.set()
+        release.wait(10)
+        return "new"
+
+    t = threading.Thread(target=snap.get, args=(slow,))
+    t.start()
+    started.wait(10)
+    assert snap.get(lambda: "other") == "old"  # the previous answer, at once
+    release.set()
+    t.join(10)
+    assert snap.value == "new"
 
 
 def test_a_tile_s_published_noise_is_the_mean_relative_noise_of_its_pixels(user, finished_job,

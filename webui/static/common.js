@@ -34,7 +34,8 @@ const Lampyr = (() => {
       if (!document.hidden && timer === null) turn();
     });
     turn();
-    return () => { if (timer === null) turn(); };
+    // poll now (a turn in progress, timer === null, is left to finish)
+    return () => { if (timer !== null) { clearTimeout(timer); turn(); } };
   }
 
   function setStale(on, why) {

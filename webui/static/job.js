@@ -36,7 +36,7 @@
     document.getElementById("act-resume").hidden = j.state !== "paused";
     const prio = document.getElementById("prio");
     if (document.activeElement !== prio) prio.value = j.priority;
-    const nf = (j.failed || []).length;
+    const nf = j.failed_batches || 0;
     const retry = document.getElementById("act-retry");
     retry.disabled = nf === 0;
     retry.textContent = nf ? "Retry failed work (" + nf + ")" : "Nothing failed";

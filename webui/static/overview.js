@@ -5,18 +5,19 @@
   const ACTIVE = new Set(["running", "queued", "paused"]);
 
   function figures(data) {
-    const jobs = data.jobs;
+    const jobs = data.jobs, folded = data.folded || {shots: 0, done: 0, frames: 0};
     const active = jobs.filter(j => ACTIVE.has(j.state));
     const running = jobs.filter(j => j.state === "running").length;
     const n = (k, what) => k + " " + what;
     document.getElementById("fig-shots").textContent = active.length;
     document.getElementById("fig-shots-sub").textContent = [
       n(running, "rendering"), n(active.length - running, "waiting or paused"),
-      n(jobs.filter(j => j.state === "done").length, "finished"),
+      n(jobs.filter(j => j.state === "done").length + folded.done, "finished"),
       n(jobs.filter(j => j.failed_batches).length, "with failures")].join(" · ");
+    // folded shots (finished, older than a day) are counted by the head, not listed
     const counted = jobs.filter(j => j.state !== "cancelled");
-    const done = counted.reduce((a, j) => a + j.frames_done, 0);
-    const all = counted.reduce((a, j) => a + j.frames, 0);
+    const done = counted.reduce((a, j) => a + j.frames_done, 0) + folded.frames;
+    const all = counted.reduce((a, j) => a + j.frames, 0) + folded.frames;
     document.getElementById("fig-frames").textContent = all ? done + " / " + all : "–";
     const last = active.map(j => j.eta_seconds).filter(x => x !== null && x !== undefined);
     document.getElementById("fig-frames-sub").textContent = last.length
@@ -150,12 +151,13 @@
   }
 
   async function refresh() {
-    const data = await L.get("/api/farm");
+    // the head folds finished shots older than a day away unless asked for all of them
+    const data = await L.get(showAll ? "/api/farm?all=1" : "/api/farm");
     figures(data);
     const shots = document.getElementById("shots");
     const old = (j) => !ACTIVE.has(j.state) && j.state !== "failed" && data.now - j.submitted > 86400;
-    const shown = showAll ? data.jobs : data.jobs.filter(j => !old(j));
-    const hidden = data.jobs.length - shown.length;
+    const shown = data.jobs;
+    const hidden = data.folded ? data.folded.shots : 0;
     const more = hidden || showAll && data.jobs.some(old)
       ? el("button", {type: "button", class: "quiet small", onclick: () => { showAll = !showAll; kick(); }},
            showAll ? "Fold away finished shots older than a day" : "Show " + hidden + " finished shot" + (hidden > 1 ? "s" : "") + " older than a day")
