@@ -118,6 +118,7 @@ class RateMeter:
     merges: deque = field(default_factory=deque)  # (t, pixel-samples)
     nominal: deque = field(default_factory=deque)  # (t, promised pixel-samples/s, saturated)
     since: float | None = None
+    last: float = 1.0  # the latest efficiency measured over a full window
 
     def merged(self, t: float, pixel_samples: float) -> None:
         self.merges.append((t, float(pixel_samples)))
@@ -141,20 +142,23 @@ class RateMeter:
         return sum(p for _, p in self.merges) / span if span > 0 else 0.0
 
     def efficiency(self, t: float) -> float:
-        """merged / promised over a full window in which the queue never ran dry; else 1."""
+        """merged / promised over a full window in which the queue never ran dry; while the
+        window cannot judge (the queue ran dry, as it does when a plan holds work back), the
+        last such measurement; 1 before there is any."""
         self._trim(t)
         if self.since is None or t - self.since < RATE_WINDOW or len(self.nominal) < 2:
-            return 1.0
+            return self.last
         if not all(s for _, _, s in self.nominal):
-            return 1.0
+            return self.last
         promised = 0.0
         for (t0, rate, _), (t1, _, _) in zip(self.nominal, list(self.nominal)[1:]):
             promised += rate * (t1 - t0)
         span = self.nominal[-1][0] - self.nominal[0][0]
         if promised <= 0 or span <= 0:
-            return 1.0
+            return self.last
         merged = sum(p for s, p in self.merges if s > self.nominal[0][0])  # in (t0, t1]
-        return min(1.0, max(EFFICIENCY_FLOOR, merged / promised))
+        self.last = min(1.0, max(EFFICIENCY_FLOOR, merged / promised))
+        return self.last
 
 
 class Forecaster:
@@ -202,14 +206,15 @@ class Forecaster:
 def read_hosts(r, prefix_host: str, prefix_slot: str):
     """([(name, cores, windows)], [(host, speed)]) from the live heartbeats and slot records."""
     hosts, speeds = [], []
-    for k in r.scan_iter(match=prefix_host + "*", count=500):
-        raw = r.get(k)
+    host_keys = list(r.scan_iter(match=prefix_host + "*", count=500))
+    slot_keys = list(r.scan_iter(match=prefix_slot + "*", count=500))
+    # one MGET each: the head looks twice a second, and a farm has hundreds of slots
+    for k, raw in zip(host_keys, r.mget(host_keys) if host_keys else []):
         if raw:
             info = json.loads(raw)
             hosts.append((info.get("name", k.decode()[len(prefix_host):]),
-                          int(info.get("cores", 1)), info.get("windows") or ()))
-    for k in r.scan_iter(match=prefix_slot + "*", count=500):
-        raw = r.get(k)
+                          int(info.get("cores") or 1), info.get("windows") or ()))
+    for raw in r.mget(slot_keys) if slot_keys else []:
         if raw:
             slot = json.loads(raw)
             speed = float(slot.get("pixel_samples_per_second") or 0.0)

@@ -92,6 +92,25 @@ def test_efficiency_is_not_judged_when_the_queue_ran_dry():
     assert meter.efficiency(195.0) == 1.0
 
 
+def test_efficiency_measured_before_the_queue_ran_dry_is_kept():
+    meter = RateMeter()
+    for t in range(0, 200, 5):
+        meter.promise(float(t), rate=100.0, saturated=True)
+        meter.merged(float(t), 60.0 * 5)  # 60 of the promised 100 per second arrive
+        meter.efficiency(float(t))  # the head asks at every forecast
+    for t in range(200, 400, 5):  # the plan holds work back: nothing waits in the queue
+        meter.promise(float(t), rate=100.0, saturated=False)
+        meter.merged(float(t), 10.0)
+    assert meter.efficiency(395.0) == pytest.approx(0.6, abs=0.03)
+
+
+def test_a_heartbeat_without_cores_counts_one_slot(redis_url):
+    r = redis.Redis.from_url(redis_url)
+    r.set(P.k_host("odd"), json.dumps({"name": "odd", "cores": None}))
+    hosts, _ = read_hosts(r, P.key("host", ""), P.key("slot", ""))
+    assert hosts == [("odd", 1, ())]
+
+
 def test_without_any_slot_speed_the_merged_rate_is_shared_among_the_slots():
     fc = Forecaster()
     for t in range(0, 130, 10):
