@@ -17,7 +17,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from flask import Blueprint, Flask, jsonify, render_template, request
+from flask import Blueprint, Flask, render_template, request
 from werkzeug.exceptions import HTTPException
 
 from ..errors import LampyrError
@@ -90,17 +90,9 @@ def create_app(config: dict) -> Flask:
     return app
 
 
-def _wants_json() -> bool:
-    return request.path.startswith("/api/") or request.accept_mimetypes.best == "application/json"
-
-
-def _answer(code: int, message: str, title: str):
-    if _wants_json():
-        return jsonify(error=message), code
-    return render_template("message.html", title=title, message=message), code
-
-
 def _errors(app: Flask) -> None:
+    from .auth import answer as _answer
+
     @app.errorhandler(LampyrError)
     def _lampyr(err):
         return _answer(400, str(err), "Refused")

@@ -123,27 +123,28 @@ def check_request():
     open_endpoint = request.endpoint in OPEN_ENDPOINTS or request.endpoint is None
     if not open_endpoint and not logged_in():
         if _wants_json() or request.method in MUTATING:
-            return _refuse(401 if _wants_json() else 403, "log in first")
+            return answer(401 if _wants_json() else 403, "log in first")
         return redirect(url_for("auth.login", next=request.full_path.rstrip("?")))
     if request.method in MUTATING:
         sent = request.headers.get(TOKEN_HEADER) or request.form.get("token", "")
         known = session.get("csrf", "")
         if (not known or not hmac.compare_digest(sent.encode(), known.encode())
                 or not _same_origin()):
-            return _refuse(403, "this request lacks the page's anti-forgery token or comes from "
-                                "another site; reload the page and try again")
+            return answer(403, "this request lacks the page's anti-forgery token or comes from "
+                               "another site; reload the page and try again")
     if open_endpoint:
         return None
     g.token = csrf_token()
     if request.method in MUTATING and role() != "farm" and request.endpoint != "auth.logout":
-        return _refuse(403, "this login can look but not change anything (a viewer login)")
+        return answer(403, "this login can look but not change anything (a viewer login)")
     return None
 
 
-def _refuse(code: int, message: str):
+def answer(code: int, message: str, title: str = "Refused"):
+    """A one-line answer: JSON {"error"} for the API and JSON clients, else a small page."""
     if _wants_json():
         return jsonify(error=message), code
-    return render_template("message.html", title="Refused", message=message), code
+    return render_template("message.html", title=title, message=message), code
 
 
 class LoginThrottle:
