@@ -32,7 +32,13 @@ class PreviewCache:
         self.lock = threading.Lock()
 
     def get(self, path, exposure: float) -> bytes:
-        st = path.stat()
+        """FrameFileError when the file is unreadable or gone (removed since it was found)."""
+        from ..errors import FrameFileError
+
+        try:
+            st = path.stat()
+        except FileNotFoundError:
+            raise FrameFileError(f"{path}: no such frame file") from None
         key = (str(path), st.st_mtime_ns, st.st_size, exposure)
         with self.lock:
             if key in self.data:
@@ -64,18 +70,23 @@ def _file_or_404(job: str, frame: int, ext: str):
     return path
 
 
+def _download(job: str, frame: int, ext: str, mimetype: str):
+    path = _file_or_404(job, frame, ext)
+    try:
+        return send_file(path, mimetype=mimetype, as_attachment=True, download_name=path.name,
+                         max_age=0)
+    except FileNotFoundError:  # removed since it was found
+        abort(404, description=f"frame {frame} of {job!r} has no {ext.upper()} file now")
+
+
 @bp.route("/jobs/<job>/frames/<int:frame>.exr")
 def exr(job, frame):
-    path = _file_or_404(job, frame, "exr")
-    return send_file(path, mimetype="image/x-exr", as_attachment=True, download_name=path.name,
-                     max_age=0)
+    return _download(job, frame, "exr", "image/x-exr")
 
 
 @bp.route("/jobs/<job>/frames/<int:frame>.png")
 def png(job, frame):
-    path = _file_or_404(job, frame, "png")
-    return send_file(path, mimetype="image/png", as_attachment=True, download_name=path.name,
-                     max_age=0)
+    return _download(job, frame, "png", "image/png")
 
 
 @bp.route("/jobs/<job>/frames/<int:frame>/preview.png")

@@ -78,3 +78,11 @@ def test_a_frame_not_written_yet_is_a_404(user, head, tiny_shot):
     head.publish(force=True)
     resp = user.get(f"/jobs/{job}/frames/1/preview.png")
     assert resp.status_code == 404 and b"no EXR file yet" in resp.data
+
+
+def test_a_preview_of_a_file_removed_since_it_was_found_is_a_frame_file_error(tmp_path):
+    from lampyr.errors import FrameFileError
+    from lampyr.webui.files import PreviewCache
+
+    with pytest.raises(FrameFileError):  # the preview route answers it with a 404
+        PreviewCache().get(tmp_path / "courtyard.0001.exr", 0.0)
