@@ -122,7 +122,7 @@ class DeadlineKeeper:
             if not self.active(run):
                 if run.pending and not run.rec.paused and not run.rec.cancelled:
                     ahead += sum(b.w * b.h * b.count for b in run.pending)
-                    ahead += sum(inflight.values())
+                ahead += sum(inflight.values())  # queued or rendering, even with none pending
                 continue
             fc.prior = _prior_speed(run)
             spent_before = ahead + sum(inflight.values())

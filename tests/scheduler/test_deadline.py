@@ -242,8 +242,6 @@ def held_matches_frames(state, job, out):
     return True
 
 
-
-
 def test_a_real_job_with_time_to_spare_finishes_before_its_deadline(farm, tiny_shot, tmp_path):
     farm.start_head()
     farm.start_worker("a")
@@ -364,6 +362,23 @@ def test_a_job_queued_before_takes_its_work_out_of_the_capacity(head, tiny_shot)
     ahead = 2 * 16 * 12 * 8  # its every pixel-sample: 2 frames of 16 × 12 at 8 spp
     assert capacity_now(head, job, now)[0] == pytest.approx(alone - ahead, abs=2)
     assert first != job
+
+
+def test_a_job_ahead_with_all_its_work_in_flight_still_takes_it_out_of_the_capacity(
+        head, tiny_shot):
+    from lampyr.scheduler.submit import submit_request
+
+    job = submit_with_deadline(head, tiny_shot, 600.0)
+    now = time.time()
+    alone, _ = capacity_now(head, job, now)
+    first = submit_request(head.r, tiny_shot, {}, None, 5, tile_size=8, batch_samples=3)
+    head.take_commands()
+    head.dispatch()  # the big host's room takes every batch of the job ahead
+    assert not head.jobs[first].pending
+    own = sum(e.batch.w * e.batch.h * e.batch.count for e in head.leases.table.values()
+              if e.batch.job == job)
+    ahead = 2 * 16 * 12 * 8  # its every pixel-sample, all queued now
+    assert capacity_now(head, job, now)[0] == pytest.approx(alone - ahead - own, abs=2)
 
 
 def test_the_simulated_forecast_follows_workers_coming_and_going():
