@@ -185,7 +185,6 @@ class DeadlineKeeper:
         head = self.head
         job = run.rec.id
         run.rec.deadline_reached = True
-        head._save(run)
         run.pending.clear()
         self.deferred.pop(job, None)
         gone = [bid for bid, e in head.leases.table.items() if e.batch.job == job]
@@ -195,6 +194,9 @@ class DeadlineKeeper:
             head.r.hdel(P.K_INFLIGHT, *gone)
         for f in run.frames:
             write_held_frame(run, f)
+        # saved only now: a head killed while writing stops the job again after its restart,
+        # which writes the frames (a restarted head keeps a saved stop as it is)
+        head._save(run)
         self.stopped[job] = _sample_plan(run.rec)
         self._late[job] = (id(run), run.samples_merged)
         if job in self.fields:

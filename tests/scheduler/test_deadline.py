@@ -320,6 +320,29 @@ def test_a_restarted_head_keeps_a_job_stopped_at_its_deadline(head, tiny_shot, r
     assert again.jobs[job].rec.deadline_reached
 
 
+def test_a_head_killed_while_writing_the_deadline_s_frames_writes_them_after_restart(
+        head, tiny_shot, redis_url, tmp_path, monkeypatch):
+    from lampyr.scheduler import deadline_keeper
+    from lampyr.scheduler.head import Head
+
+    job = submit_with_deadline(head, tiny_shot, 0.2)
+    time.sleep(0.3)
+
+    def killed(run, frame):
+        raise SystemExit("the head dies here")
+
+    monkeypatch.setattr(deadline_keeper, "write_held_frame", killed)
+    with pytest.raises(SystemExit):
+        head.step()
+    monkeypatch.undo()
+    again = Head(tmp_path / "state", redis_url, lease_seconds=5)
+    again.start()
+    again.step()
+    out = tmp_path / "state" / "jobs" / job / "frames"
+    assert sorted(p.name for p in out.glob("*.exr")) == ["tiny.0001.exr", "tiny.0002.exr"]
+    assert again.jobs[job].rec.deadline_reached
+
+
 def test_refine_after_the_deadline_lifts_it(head, tiny_shot):
     job = submit_with_deadline(head, tiny_shot, 0.2)
     time.sleep(0.3)
