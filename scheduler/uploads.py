@@ -57,7 +57,11 @@ def _members(arc, kind: str, max_bytes: int, max_members: int) -> list:
     files. Refused: links and devices, names leaving the archive, a name used twice or both as
     a file and as a folder, more than `max_members` files or `max_bytes` unpacked."""
     files, folders, out, total = set(), set(), [], 0
-    for info in (arc.infolist() if kind == ".zip" else arc.getmembers()):
+    entries = 0
+    for info in (arc.infolist() if kind == ".zip" else arc):  # a tar is read as it goes
+        entries += 1
+        if entries > 2 * max_members:  # folders count here: a tar's headers cost memory too
+            raise UploadError(f"assets: the archive has more than {2 * max_members} entries")
         name = info.filename if kind == ".zip" else info.name
         if info.is_dir() if kind == ".zip" else info.isdir():
             path = _member_name(name, folder=True)
@@ -90,6 +94,20 @@ def _members(arc, kind: str, max_bytes: int, max_members: int) -> list:
     return out
 
 
+def _zip_entries_within(fileobj, limit: int) -> None:
+    """Refuse a zip whose end record announces more than `limit` entries before ZipFile reads
+    its whole central directory into memory (an upload of tiny entries would take gigabytes).
+    The end record's layout: PKWARE APPNOTE 4.3.16 (from memory), read by zipfile's own
+    `_EndRecData`; without that private helper the check is skipped."""
+    end = getattr(zipfile, "_EndRecData", None)
+    if end is None:
+        return
+    rec = end(fileobj)
+    fileobj.seek(0)
+    if rec and rec[zipfile._ECD_ENTRIES_TOTAL] > limit:
+        raise UploadError(f"assets: the archive has more than {limit} entries")
+
+
 def unpack_archive(source, filename: str, dest: Path, max_bytes: int = MAX_BYTES,
                    max_members: int = MAX_MEMBERS) -> list[PurePosixPath]:
     """Check an archive (bytes, or a seekable binary file) and unpack its regular files under
@@ -100,6 +118,7 @@ def unpack_archive(source, filename: str, dest: Path, max_bytes: int = MAX_BYTES
     fileobj = io.BytesIO(source) if isinstance(source, (bytes, bytearray)) else source
     try:
         if kind == ".zip":
+            _zip_entries_within(fileobj, 2 * max_members)
             arc = zipfile.ZipFile(fileobj)
             opener = arc.open
         else:

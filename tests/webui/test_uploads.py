@@ -68,7 +68,7 @@ def upload(user, shot=MESH_SHOT.encode(), shot_name="tiny.toml", archive=None,
     (zip_of({"courtyard/assets/floor.obj": FLOOR_OBJ}), "folder.zip"),  # the shot's own folder
     # what `tar -C folder -czf a.tgz .` makes: a "./" entry first, then "./assets/…"
     (tgz_of({"./assets/floor.obj": FLOOR_OBJ}, folders=("./", "./assets")), "dot.tgz"),
-])
+], ids=["zip", "tar.gz", "folder-zip", "dot-tgz"])
 def test_an_uploaded_shot_with_its_assets_becomes_a_job(user, head, archive, name):
     resp = upload(user, archive=archive, archive_name=name)
     assert resp.status_code == 202, resp.get_json()
@@ -104,7 +104,7 @@ def test_nothing_of_the_upload_is_left_behind(user, head, state):
      "is both a file and a folder"),
     (tgz_of({"assets/x/y": b"y", "assets/x": b"x"}), "a.tgz", "is both a file and a folder"),
     (encrypted_zip_of({"assets/floor.obj": FLOOR_OBJ}), "a.zip", "not a readable .zip archive"),
-])
+], ids=lambda v: v if isinstance(v, str) else "archive")
 def test_a_bad_archive_is_refused_with_a_clear_message(user, head, archive, name, words):
     resp = upload(user, archive=archive, archive_name=name)
     assert resp.status_code == 400
@@ -121,6 +121,17 @@ def test_an_archive_is_checked_whole_before_anything_is_written(tmp_path):
     with pytest.raises(UploadError):
         unpack_archive(archive, "a.zip", tmp_path)
     assert list(tmp_path.iterdir()) == []
+
+
+@pytest.mark.parametrize("archive,name", [
+    (zip_of({f"folder{i}/": b"" for i in range(50)}), "a.zip"),
+    (tgz_of({}, folders=tuple(f"folder{i}" for i in range(50))), "a.tgz")], ids=["zip", "tgz"])
+def test_an_archive_of_too_many_entries_is_refused_before_it_is_read_whole(tmp_path, archive,
+                                                                           name):
+    from lampyr.scheduler.uploads import UploadError, unpack_archive
+
+    with pytest.raises(UploadError, match="more than 20 entries"):
+        unpack_archive(archive, name, tmp_path, max_members=10)
 
 
 def test_a_shot_file_larger_than_a_shot_is_refused_naming_the_field(user, monkeypatch):
