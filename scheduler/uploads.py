@@ -23,6 +23,9 @@ from pathlib import Path, PurePosixPath
 from .bundle import MAX_BYTES, MAX_MEMBERS, BundleError, _safe_name
 
 ARCHIVES = (".zip", ".tar.gz", ".tgz", ".tar")
+# the shot's key that `Shot.with_overrides` sets → the form field that gave it
+OVERRIDE_FIELDS = {"frames": "frames", "sampling.samples": "samples", "image.width": "width",
+                   "image.height": "height"}
 MAX_SHOT_BYTES = 16 * 1024**2  # a shot file is text (rule of thumb: far above a long animation)
 _SHOT_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9 _.-]{0,80}\.toml")
 
@@ -168,7 +171,7 @@ def submit_upload(r, uploads: Path, shot_name: str, shot_bytes: bytes, archive_n
     archive: the assets archive as bytes or a seekable binary file, or None.
     ShotError / AssetError (bad shot), UploadError (bad file or archive) on refusal."""
     from ..engine.shot import load_shot
-    from ..errors import AssetError, ShotError
+    from ..errors import AssetError, ShotError, UsageError
     from .submit import submit_request
 
     name = shot_file_name(shot_name)
@@ -196,8 +199,14 @@ def submit_upload(r, uploads: Path, shot_name: str, shot_bytes: bytes, archive_n
                 errors.append(err)
                 path.unlink()
                 continue
-            return submit_request(r, path, overrides, None, priority, tile_size,
-                                  deadline=deadline)
+            try:
+                return submit_request(r, path, overrides, None, priority, tile_size,
+                                      deadline=deadline)
+            except ShotError as err:  # the shot was fine: an override the form gave is not
+                field = OVERRIDE_FIELDS.get(err.key)
+                if field is None:
+                    raise
+                raise UsageError(f"{field}: {err.problem}") from None
         # a missing asset in one place is expected; a mistake in the shot itself says more
         err = next((e for e in errors if not isinstance(e, AssetError)), errors[0])
         err.file = name  # not the upload folder's path on the head

@@ -194,6 +194,16 @@ def test_a_bad_override_is_refused_naming_the_field(user, field, value):
     assert resp.status_code == 400 and resp.get_json()["error"].startswith(field + ":")
 
 
+@pytest.mark.parametrize("field,value,words", [
+    ("frames", "5-3", "first <= last"), ("frames", "1-99999999", "a frame number between")])
+def test_an_override_the_shot_refuses_is_refused_naming_the_field_not_the_head_s_folder(
+        user, field, value, words):
+    resp = upload(user, archive=zip_of({"assets/floor.obj": FLOOR_OBJ}), **{field: value})
+    err = resp.get_json()["error"]
+    assert resp.status_code == 400 and err.startswith(field + ": ") and words in err
+    assert "uploads" not in err and "/state/" not in err
+
+
 def test_an_upload_with_a_ready_by_time_gets_that_deadline(user, head):
     import time
 
