@@ -21,6 +21,7 @@ import logging
 import os
 import socket
 import sys
+import time
 
 from ..scheduler import protocol as P
 
@@ -122,11 +123,32 @@ def run_celery(url: str, cores: int, pool: str, name: str, gate_folder: str | No
             Gate(gate_folder).set_stop(True)
 
     worker_shutting_down.connect(hand_back, weak=False)
+    _stop_with_supervisor()
     # --quiet: no start-up banner; the supervisor says what matters in its own lines
     argv = ["--quiet", "worker", "-P", pool, "-c", str(cores if pool == "prefork" else 1), "-Q", P.QUEUE,
             "-n", f"{name}@{socket.gethostname()}", "--without-gossip", "--without-mingle",
             "--without-heartbeat", "-l", loglevel]
     app.worker_main(argv)
+
+
+def _stop_with_supervisor(every: float = 0.5) -> None:
+    """Warm shutdown (and so a hand-back) when the supervisor that started this process is
+    gone: Linux says so with PR_SET_PDEATHSIG, other systems do not."""
+    import signal
+    import threading
+
+    import psutil
+
+    parent = psutil.Process(os.getppid())
+
+    def watch():
+        while True:
+            time.sleep(every)
+            if not parent.is_running():
+                os.kill(os.getpid(), signal.SIGTERM)
+                return
+
+    threading.Thread(target=watch, name="lampyr-parent-watch", daemon=True).start()
 
 
 if __name__ == "__main__":

@@ -250,3 +250,23 @@ def test_the_head_queues_only_for_workers_that_can_take_work(redis_url, tmp_path
     info = {"name": "pc", "cores": 8, **({"state": state} if state else {})}
     redis.Redis.from_url(redis_url).set("lampyr:host:pc", json.dumps(info))
     assert head.worker_cores() == (8 if counted else 0)
+
+
+def test_a_worker_killed_outright_leaves_nothing_running_and_its_batch_is_handed_back(
+        farm, tiny_shot, tmp_path):
+    farm.start_head()
+    proc = farm.start_worker("gone", env={"LAMPYR_TEST_CHUNK_DELAY": "1.0"})
+    job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
+    wait_for(lambda: rendering_a_full_batch(farm.url, "gone"), what="a batch under way")
+    tree = psutil.Process(proc.pid).children(recursive=True)
+    assert tree  # the Celery worker and its pool process
+    os.kill(proc.pid, signal.SIGKILL)  # the supervisor alone
+    proc.wait()
+    wait_for(lambda: not any(p.is_running() and p.status() != psutil.STATUS_ZOMBIE for p in tree),
+             timeout=60, what="the render processes to end")
+    handed = wait_for(lambda: [line for line in (tmp_path / "head.log").read_text().splitlines()
+                               if "handed back by gone" in line], what="the hand-back")
+    assert any(f"with {k} of 3 samples" in line for line in handed for k in (1, 2))
+    farm.start_worker("next")
+    assert farm.wait(job, timeout=120)["state"] == "done"
+    assert_frames_match_engine(tmp_path / "out", tiny_shot)
