@@ -32,11 +32,20 @@ MAX_SAMPLES = 1_048_576
 
 def _body() -> dict:
     if request.is_json:
-        data = request.get_json(silent=True)
+        try:
+            data = request.get_json(silent=True)
+        except RecursionError:  # nested deeper than the interpreter's stack
+            data = None
         if not isinstance(data, dict):
             raise UsageError("body: expected a JSON object")
         return data
     return request.form.to_dict()
+
+
+def _shown(raw) -> str:
+    """A value as an error line quotes it: its repr, cut to a readable length."""
+    text = repr(raw)
+    return text if len(text) <= 40 else text[:37] + "…"
 
 
 def _int(data: dict, key: str, lo: int, hi: int, required: bool = True):
@@ -50,7 +59,8 @@ def _int(data: dict, key: str, lo: int, hi: int, required: bool = True):
         if isinstance(raw, float) and raw != value or isinstance(raw, bool):
             raise ValueError
     except (TypeError, ValueError, OverflowError):  # OverflowError: JSON's 1e999 is infinity
-        raise UsageError(f"{key}: expected a whole number between {lo} and {hi}, got {raw!r}") from None
+        raise UsageError(f"{key}: expected a whole number between {lo} and {hi}, "
+                         f"got {_shown(raw)}") from None
     if not lo <= value <= hi:
         raise UsageError(f"{key}: expected a whole number between {lo} and {hi}, got {value}")
     return value
@@ -133,7 +143,7 @@ def refine(job):
                 raise ValueError
         except (TypeError, ValueError):
             raise UsageError(f"noise: expected a relative noise goal above 0 (e.g. 0.05), "
-                             f"got {data.get('noise')!r}") from None
+                             f"got {_shown(data.get('noise'))}") from None
     else:
         noise = None
     if frames is None and noise is None and samples <= st.get("samples", 0):
@@ -165,7 +175,8 @@ def _frames_field(text: str):
             return (int(a), int(b))
         return (int(text), int(text))
     except ValueError:
-        raise UsageError(f"frames: expected a frame or a range like 1-48, got {text!r}") from None
+        raise UsageError(f"frames: expected a frame or a range like 1-48, "
+                         f"got {_shown(text)}") from None
 
 
 @bp.route("/api/submit", methods=["POST"])

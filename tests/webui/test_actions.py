@@ -60,6 +60,18 @@ def test_a_priority_beyond_any_number_is_refused_not_a_crash(user, queued_job, r
     assert resp.get_json()["error"].startswith("priority: expected a whole number between")
 
 
+def test_a_body_nested_deeper_than_python_reads_is_refused_not_a_crash(user, queued_job):
+    resp = user.post(f"/api/jobs/{queued_job}/priority", data="[" * 100_000,
+                     content_type="application/json", headers={"X-Lampyr-Token": user.token})
+    assert resp.status_code == 400 and resp.get_json() == {"error": "body: expected a JSON object"}
+
+
+def test_a_long_bad_value_is_quoted_short_in_the_error(user, queued_job):
+    resp = post(user, f"/api/jobs/{queued_job}/priority", {"priority": "9" * 5000})
+    err = resp.get_json()["error"]
+    assert resp.status_code == 400 and err.startswith("priority: ") and len(err) < 120
+
+
 @pytest.mark.parametrize("op", ["pause", "resume", "cancel", "retry"])
 def test_an_action_on_an_unknown_job_is_a_404(user, op):
     assert post(user, f"/api/jobs/nope-123456/{op}").status_code == 404
