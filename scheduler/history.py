@@ -56,9 +56,10 @@ def note_hosts(r, pipe, now: float) -> None:
     keys = list(r.scan_iter(match=P.key("host", "*"), count=500))
     beats = r.mget(keys) if keys else []
     mapping = {}
-    for raw in beats:
+    for key, raw in zip(keys, beats):
         if raw:
             info = json.loads(raw)
+            info.setdefault("name", key.decode()[len(P.key("host", "")):])  # as its key does
             info["last_seen"] = now
             mapping[info["name"]] = json.dumps(info)
     if mapping:

@@ -75,3 +75,9 @@ def test_offline_workers_are_listed_newest_first(r):
     r.hset(P.K_SEEN, mapping={n: json.dumps({"name": n, "last_seen": t})
                               for n, t in (("a", T0 - 50), ("b", T0 - 10), ("c", T0 - 30))})
     assert [w["name"] for w in history.roster(r, now=T0)["offline"]] == ["b", "c", "a"]
+
+
+def test_a_heartbeat_without_its_name_is_seen_by_its_key_s_name(r):
+    r.set(P.k_host("desk-9"), json.dumps({"cores": 4}), ex=60)
+    record(history.HistoryRecorder(), HeadView(r, {}), T0)
+    assert json.loads(r.hget(P.K_SEEN, "desk-9"))["cores"] == 4
