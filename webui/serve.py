@@ -17,6 +17,9 @@ from ..errors import UsageError
 
 DEFAULT_PORT = 7361
 THREADS = 8  # waitress worker threads: polling clients are short requests
+# waitress buffers a whole body (to disk past a point) before the app sees the request; it is
+# told to refuse at once a body the app would refuse anyway (the app's 413 names the limit)
+BODY_SLACK = 1024 * 1024
 
 log = logging.getLogger("lampyr.web")
 
@@ -41,9 +44,10 @@ class WebServer:
     def start(self) -> "WebServer":
         from waitress.server import create_server
 
+        opts = {"threads": THREADS, "ident": "lampyr", "channel_timeout": 60,
+                "max_request_body_size": self.app.config["MAX_CONTENT_LENGTH"] + BODY_SLACK}
         try:
-            self.server = create_server(self.app, host=self.listen, port=self.port,
-                                        threads=THREADS, ident="lampyr", channel_timeout=60)
+            self.server = create_server(self.app, host=self.listen, port=self.port, **opts)
         except OSError as err:
             if err.errno != errno.EADDRINUSE:
                 raise
@@ -51,8 +55,7 @@ class WebServer:
                 raise UsageError(f"--web-port: port {self.port} on {self.listen} is in use; "
                                  "choose another or 0 for any free port") from None
             log.warning("web port %d is in use; using a free one", self.port)
-            self.server = create_server(self.app, host=self.listen, port=0, threads=THREADS,
-                                        ident="lampyr", channel_timeout=60)
+            self.server = create_server(self.app, host=self.listen, port=0, **opts)
         self.port = self.server.effective_port
         self.thread = threading.Thread(target=self._run, name="lampyr-web", daemon=True)
         self.thread.start()
