@@ -53,7 +53,7 @@ def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: in
         log = open(state / "worker.log", "wb")
         worker = subprocess.Popen(
             [sys.executable, "-m", "lampyr.cli", "worker", server.url, "--cores", str(workers),
-             "--name", "local"],
+             "--name", "local", "--normal-priority"],  # the artist asked for this render
             stdin=subprocess.DEVNULL, stdout=log, stderr=subprocess.STDOUT,
             start_new_session=True, cwd=state, preexec_fn=die_with_parent())
         batch = batch_samples or max(1, shot.samples)
