@@ -9,8 +9,8 @@ with their own session, then request one endpoint again and again:
 - flat out: back to back, to see the page's ceiling on this machine.
 
 Endpoints, side by side in one run: `/api/health` (no farm reads: the server's floor), `/`
-(the overview's HTML), `/api/farm` (the overview's live update) and `/api/jobs/<job>` (the job
-page's live update). Aim (issue 4): p99 ≤ 200 ms at 50 clients.
+(the overview's HTML), `/api/farm` (the overview's live update), and `/api/jobs/<job>` and
+`/api/jobs/<job>/frames/<f>` (the job page's live updates). Aim (issue 4): p99 ≤ 200 ms at 50 clients.
 
     python bench/web.py [--clients 50] [--seconds 15]
 """
@@ -172,7 +172,7 @@ def main() -> None:
                 raise RuntimeError("the job never started:\n" + worker_log.read_text()[-2000:])
             time.sleep(0.5)
 
-        paths = ["/api/health", "/", "/api/farm", f"/api/jobs/{job}"]
+        paths = ["/api/health", "/", "/api/farm", f"/api/jobs/{job}", f"/api/jobs/{job}/frames/1"]
         print(f"{a.clients} clients in {a.procs} processes, {a.seconds:.0f} s per row, while "
               f"job {job} renders (1 worker process); 2 cores shared by server, worker and "
               "clients\n")

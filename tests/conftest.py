@@ -142,7 +142,6 @@ class Farm:
             args += ["--redis", self.url]
         self.head_proc = self._spawn(args, "head.log")
         deadline = time.monotonic() + 60
-        head_json = self.state / "head.json"
         while True:
             log = (self.tmp / "head.log").read_text(errors="replace")
             if "Workers join with:" in log:

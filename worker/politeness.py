@@ -96,7 +96,7 @@ class LoadMeter:
     def sample(self) -> float:
         """Load of others since the previous sample, 0..1 of the machine."""
         now = self._read()
-        (w0, b0, t0), (w1, b1, t1) = self._last, now
+        (_, b0, t0), (_, b1, t1) = self._last, now
         self._last = now
         span = t1 - t0
         if span <= 0:

@@ -1,10 +1,40 @@
-"""Helpers for the farm tests: reference renders and frame comparison."""
+"""Helpers for the farm tests: reference renders, frame comparison, waiting, a queued batch."""
 
 from __future__ import annotations
 
+import time
 from pathlib import Path
 
 import numpy as np
+
+LAYOUT = ("--tile", 8, "--batch", 3)  # 16 × 12 px → 4 tiles; 8 spp → ranges 1, 3, 3, 1
+
+
+def wait_for(cond, timeout=60, what="condition"):
+    deadline = time.monotonic() + timeout
+    while not (value := cond()):
+        if time.monotonic() > deadline:
+            raise AssertionError(f"timed out waiting for {what}")
+        time.sleep(0.05)
+    return value
+
+
+def queue_one_batch(redis_url: str, shot_path: Path, lease_seconds: float):
+    """A bundle of the shot in Redis and one queued batch of 3 samples (frame 1, tile 0,
+    samples 2–4, ticket 1), as a head leaves it; returns (redis client, its RenderTask)."""
+    import redis
+
+    from lampyr.engine.shot import load_shot
+    from lampyr.scheduler import protocol as P
+    from lampyr.scheduler.bundle import pack
+
+    r = redis.Redis.from_url(redis_url)
+    data, sha, member = pack(load_shot(shot_path))
+    r.set(P.k_bundle(sha), data)
+    r.hset(P.K_CONFIG, mapping={"lease_seconds": lease_seconds, "max_attempts": 2})
+    batch = P.Batch("job", 1, 0, 2, 3, 0, 0, 8, 8)
+    r.hset(P.K_INFLIGHT, batch.id, 1)
+    return r, P.RenderTask(P.PROTOCOL_VERSION, batch, 1, sha, member, {})
 
 
 def reference_mean(shot_path: Path, frame: int, samples: int | None = None) -> np.ndarray:

@@ -14,19 +14,7 @@ import time
 import pytest
 import redis
 
-from .farmtools import assert_same_image, frame_mean, reference_mean
-
-LAYOUT = ("--tile", 8, "--batch", 3)  # 16 × 12 px → 4 tiles; 8 spp → ranges 1, 3, 3, 1
-
-
-def wait_for(cond, timeout=60, what="condition"):
-    deadline = time.monotonic() + timeout
-    while not (value := cond()):
-        if time.monotonic() > deadline:
-            raise AssertionError(f"timed out waiting for {what}")
-        time.sleep(0.05)
-    return value
-
+from .farmtools import LAYOUT, assert_same_image, frame_mean, reference_mean, wait_for
 
 def busy_slot(url, worker):
     """The first batch `worker` renders now, as its slot record (batch, pid)."""

@@ -6,7 +6,6 @@ import base64
 import json
 
 import pytest
-import redis
 
 from lampyr.scheduler import protocol as P
 from lampyr.scheduler.head import Head, submit_request

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import pytest
 
-from lampyr.scheduler.planner import (TARGET_SECONDS, choose_layout, first_pass_samples,
+from lampyr.scheduler.planner import (choose_layout, first_pass_samples,
                                       plan_batches, sample_ranges)
 
 

@@ -15,17 +15,15 @@ import time
 
 import numpy as np
 import pytest
-import redis
 
 from lampyr.engine.shot import load_shot
 from lampyr.scheduler import protocol as P
 from lampyr.scheduler.assembler import _remainders
-from lampyr.scheduler.bundle import pack
 from lampyr.scheduler.head import Head, submit_request
 from lampyr.worker.gate import Gate
 from lampyr.worker.tasks import Context, run_batch
 
-from ..scheduler.farmtools import assert_same_image, frame_mean, reference_mean
+from ..scheduler.farmtools import assert_same_image, frame_mean, queue_one_batch, reference_mean
 
 
 @pytest.fixture
@@ -40,13 +38,8 @@ def one_batch(redis_url, tiny_shot, tmp_path, monkeypatch, gate):
     """A bundle in Redis, a queued batch of 3 samples (ticket 1) and a worker context with a
     gate; returns (r, ctx, task)."""
     monkeypatch.setenv("LAMPYR_CACHE", str(tmp_path / "cache"))
-    r = redis.Redis.from_url(redis_url)
-    data, sha, member = pack(load_shot(tiny_shot))
-    r.set(P.k_bundle(sha), data)
-    r.hset(P.K_CONFIG, mapping={"lease_seconds": 2, "max_attempts": 2})
-    batch = P.Batch("job", 1, 0, 2, 3, 0, 0, 8, 8)
-    r.hset(P.K_INFLIGHT, batch.id, 1)
-    return r, Context(redis_url, "w", gate), P.RenderTask(P.PROTOCOL_VERSION, batch, 1, sha, member, {})
+    r, task = queue_one_batch(redis_url, tiny_shot, lease_seconds=2)
+    return r, Context(redis_url, "w", gate), task
 
 
 def raise_after_first_chunk(r, flag, worker="w"):

@@ -19,19 +19,7 @@ import psutil
 import pytest
 import redis
 
-from ..scheduler.farmtools import assert_same_image, frame_mean, reference_mean
-
-LAYOUT = ("--tile", 8, "--batch", 3)  # 16 × 12 px → 4 tiles; 8 spp → ranges 1, 3, 3, 1
-
-
-def wait_for(cond, timeout=60, what="condition"):
-    deadline = time.monotonic() + timeout
-    while not (value := cond()):
-        if time.monotonic() > deadline:
-            raise AssertionError(f"timed out waiting for {what}")
-        time.sleep(0.05)
-    return value
-
+from ..scheduler.farmtools import LAYOUT, assert_same_image, frame_mean, reference_mean, wait_for
 
 def heartbeat(url, name):
     raw = redis.Redis.from_url(url).get(f"lampyr:host:{name}")

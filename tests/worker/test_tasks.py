@@ -6,25 +6,19 @@ import json
 
 import numpy as np
 import pytest
-import redis
 
 from lampyr.engine.shot import load_shot
 from lampyr.scheduler import protocol as P
-from lampyr.scheduler.bundle import pack
 from lampyr.worker.tasks import Context, run_batch
+
+from ..scheduler.farmtools import queue_one_batch
 
 
 @pytest.fixture
 def setup(redis_url, tiny_shot, tmp_path, monkeypatch):
     """A bundle in Redis, a queued batch (ticket 1) and a worker context; returns (r, ctx, task)."""
     monkeypatch.setenv("LAMPYR_CACHE", str(tmp_path / "cache"))
-    r = redis.Redis.from_url(redis_url)
-    data, sha, member = pack(load_shot(tiny_shot))
-    r.set(P.k_bundle(sha), data)
-    r.hset(P.K_CONFIG, mapping={"lease_seconds": 5, "max_attempts": 2})
-    batch = P.Batch("job", 1, 0, 2, 3, 0, 0, 8, 8)
-    r.hset(P.K_INFLIGHT, batch.id, 1)
-    task = P.RenderTask(P.PROTOCOL_VERSION, batch, 1, sha, member, {})
+    r, task = queue_one_batch(redis_url, tiny_shot, lease_seconds=5)
     return r, Context(redis_url, "w"), task
 
 
