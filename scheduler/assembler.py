@@ -16,7 +16,7 @@ from .accumulator import TileAccumulator, samples_held
 from .jobs import JobFolder, JobRecord
 from .planner import plan_batches
 from .progress import tile_noise
-from .protocol import Batch
+from .protocol import Batch, parse_batch_id
 
 
 class JobRun:
@@ -86,7 +86,21 @@ class JobRun:
         return True
 
     def frame_level(self, frame: int) -> int:
-        return min(samples_held(self.held[(frame, i)]) for i in range(len(self.tiles)))
+        """The fewest samples a tile of `frame` holds, not counting tiles that hold none because
+        their work failed for good: the frame is then written with those pixels empty (spp 0)
+        rather than not at all. 0 when no other tile holds a sample."""
+        dead = self._failed_and_empty(frame)
+        levels = [samples_held(self.held[(frame, i)]) for i in range(len(self.tiles))
+                  if i not in dead]
+        return min(levels) if levels else 0
+
+    def _failed_and_empty(self, frame: int) -> set[int]:
+        out = set()
+        for bid in self.rec.failed:
+            _, f, i, _, _ = parse_batch_id(bid)
+            if f == frame and not self.held.get((f, i)):
+                out.add(i)
+        return out
 
     def frame_complete(self, frame: int) -> bool:
         return all(samples_held(self.held[(frame, i)]) >= self.tile_target(frame, i)

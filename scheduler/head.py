@@ -309,6 +309,7 @@ class Head(JobCommands):
             self.metrics.batches_failed += 1
             run.rec.failed[bid] = f"{error} (after {attempts} attempt(s))"
             self._save(run)
+            run.write_frame_if_grown(P.parse_batch_id(bid)[1])  # without that tile, if need be
             log.warning("batch %s failed: %s", bid, error)
         else:
             self._requeue(entry.batch)
@@ -333,6 +334,7 @@ class Head(JobCommands):
                 run.rec.failed[entry.batch.id] = (f"its worker stopped answering {attempts} "
                                                   "time(s) (lease expired)")
                 self._save(run)
+                run.write_frame_if_grown(entry.batch.frame)
             else:
                 log.info("lease of %s expired; queueing it again", entry.batch.id)
                 self._requeue(entry.batch)

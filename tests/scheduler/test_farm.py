@@ -150,6 +150,22 @@ def test_poison_batch_fails_after_the_limit_and_retry_requeues_it(farm, tiny_sho
     assert_frames_match_engine(tmp_path / "out", tiny_shot)
 
 
+def test_a_frame_whose_tile_failed_is_written_with_that_tile_empty(farm, tiny_shot, tmp_path):
+    import numpy as np
+    import OpenEXR
+
+    farm.start_head(attempts=1)
+    farm.start_worker("p", env={"LAMPYR_TEST_POISON": "1/0"})
+    job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
+    assert farm.wait(job)["state"] == "failed"
+    with OpenEXR.File(str(tmp_path / "out" / "tiny.0001.exr"), separate_channels=True) as f:
+        spp = np.array(f.channels()["spp"].pixels)
+    empty = np.zeros_like(spp, dtype=bool)
+    empty[0:8, 0:8] = True  # tile 0 with LAYOUT's 8 px tiles
+    assert np.all(spp[empty] == 0)
+    assert np.all(spp[~empty] == 8)
+
+
 def test_head_killed_and_restarted_completes_with_equal_frames(farm, tiny_shot, tmp_path):
     farm.start_head()
     farm.start_worker("a", env={"LAMPYR_TEST_CHUNK_DELAY": "0.02"})
