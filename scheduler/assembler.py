@@ -143,14 +143,13 @@ class JobRun:
         return held, total
 
     def noisy_tiles(self, goal: float) -> list[tuple[int, int]]:
-        """(frame, tile) whose mean relative standard error (luminance) is above `goal`."""
-        import numpy as np
-
+        """(frame, tile) whose mean relative standard error (luminance) is above `goal`, or not
+        known yet; from the noise kept at every merge, so no accumulator is read again."""
         out = []
         for f in self.frames:
-            for i, t in enumerate(self.tiles):
-                acc = TileAccumulator.load(self.folder.tile(f, i), t.w, t.h)
-                if acc.film is None or float(np.mean(acc.film.rel_noise())) > goal:
+            for i in range(len(self.tiles)):
+                e = self.noise.get((f, i))
+                if e is None or e > goal:
                     out.append((f, i))
         return out
 

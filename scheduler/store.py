@@ -99,23 +99,33 @@ def job_status(r, job: str) -> dict | None:
 
 
 def list_jobs(r) -> list[dict]:
-    return [s for j in r.zrange(P.K_JOBS, 0, -1) if (s := job_status(r, j.decode())) is not None]
+    """Every job's status, oldest first, in one round trip to Redis."""
+    ids = [j.decode() for j in r.zrange(P.K_JOBS, 0, -1)]
+    pipe = r.pipeline(transaction=False)
+    for job in ids:
+        pipe.hgetall(P.k_job(job))
+    return [{k.decode(): json.loads(v) for k, v in raw.items()} for raw in pipe.execute() if raw]
+
+
+def _values(r, pattern: str) -> list[tuple[str, dict]]:
+    """(key suffix, JSON value) of every live key matching `pattern`, read with one MGET."""
+    keys = list(r.scan_iter(match=pattern, count=500))
+    if not keys:
+        return []
+    return [(k.decode().split(":", 2)[2], json.loads(raw))
+            for k, raw in zip(keys, r.mget(keys)) if raw]
 
 
 def workers(r) -> list[dict]:
     """Live worker hosts with the batches their processes render now."""
     hosts = {}
-    for k in r.scan_iter(match=P.key("host", "*"), count=500):
-        raw = r.get(k)
-        if raw:
-            info = json.loads(raw)
-            info["slots"] = []
-            hosts[info["name"]] = info
-    for k in r.scan_iter(match=P.key("slot", "*"), count=500):
-        raw = r.get(k)
-        if raw:
-            slot = json.loads(raw)
-            hosts.setdefault(slot["worker"], {"name": slot["worker"], "slots": []})["slots"].append(slot)
+    for name, info in _values(r, P.key("host", "*")):
+        info.setdefault("name", name)  # a heartbeat names its host; its key does too
+        info["slots"] = []
+        hosts[info["name"]] = info
+    for suffix, slot in _values(r, P.key("slot", "*")):
+        worker = slot.get("worker") or suffix.rsplit(":", 1)[0]
+        hosts.setdefault(worker, {"name": worker, "slots": []})["slots"].append(slot)
     return sorted(hosts.values(), key=lambda h: h["name"])
 
 
