@@ -147,6 +147,7 @@ class Head(JobCommands):
 
     def run(self, stop=lambda: False, idle: float = 0.05) -> None:
         import redis
+        from kombu.exceptions import OperationalError
 
         down = False
         while not stop():
@@ -160,7 +161,8 @@ class Head(JobCommands):
                     down = False
                 busy = self.step()
             except (redis.exceptions.ConnectionError, redis.exceptions.TimeoutError,
-                    redis.exceptions.BusyLoadingError) as err:
+                    redis.exceptions.BusyLoadingError, OperationalError) as err:
+                # OperationalError: Celery's sender (kombu) wraps the same lost connection
                 log.warning("Redis unreachable (%s); retrying", err)
                 down = True
                 time.sleep(0.5)

@@ -188,9 +188,21 @@ def test_redis_restart_during_a_job_resumes(embedded_farm, tiny_shot, tmp_path):
     wait_for(lambda: farm.status(job)["pixel_samples_done"] > 0, what="progress")
     time.sleep(1.1)  # appendfsync everysec
     os.kill(r.info("server")["process_id"], signal.SIGKILL)
+    # clients are refused until the head has started its Redis again (that is the behaviour)
+    try:
+        wait_for(lambda: _answers(r), timeout=60, what="the head to start Redis again")
+    except AssertionError as err:
+        raise AssertionError(f"{err}\n{farm.logs()}") from None
     st = farm.wait(job, timeout=120)
     assert st["state"] == "done"
     assert_frames_match_engine(tmp_path / "out", tiny_shot)
+
+
+def _answers(r) -> bool:
+    try:
+        return bool(r.ping())
+    except redis.exceptions.ConnectionError:
+        return False
 
 
 def test_refine_adds_samples_equal_to_rendering_them_directly(farm, tiny_shot, tmp_path):
