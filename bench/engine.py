@@ -23,15 +23,8 @@ import numpy as np
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO = ROOT / "examples" / "courtyard" / "courtyard.toml"
-
-
-def table(title: str, header: list[str], rows: list[list]) -> None:
-    print(f"\n{title}")
-    widths = [max(len(str(x)) for x in col) for col in zip(header, *rows)]
-    print("  ".join(h.ljust(w) for h, w in zip(header, widths)))
-    print("  ".join("-" * w for w in widths))
-    for row in rows:
-        print("  ".join(str(x).ljust(w) for x, w in zip(row, widths)))
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from tables import print_table  # noqa: E402  (bench/ is run as scripts, not a package)
 
 
 THREAD_HEADER = ["threads", "pixels x spp", "seconds", "k samples/s", "speed-up"]
@@ -70,7 +63,7 @@ def startup() -> None:
             out = subprocess.run([sys.executable, "-c", code], env=e, capture_output=True, text=True, check=True)
             total = time.perf_counter() - t0
             rows.append([label, f"{float(out.stdout.strip()):.2f}", f"{total:.2f}"])
-    table("1. kernel start-up (seconds)", ["case", "import→first sample", "whole process"], rows)
+    print_table("1. kernel start-up (seconds)", ["case", "import→first sample", "whole process"], rows)
 
 
 def courtyard(small: bool) -> None:
@@ -83,7 +76,7 @@ def courtyard(small: bool) -> None:
     shot = load_shot(DEMO).with_overrides(width=w, height=h, samples=spp)
     geom = compile_geometry(shot)
     renderer = FrameRenderer(shot, 12, geom)
-    table("2. courtyard frame 12 (triangles: %d)" % geom.triangle_count, THREAD_HEADER,
+    print_table("2. courtyard frame 12 (triangles: %d)" % geom.triangle_count, THREAD_HEADER,
           thread_rows(renderer, w, h, spp))
 
 
@@ -135,7 +128,7 @@ sphere = {{ center = [0, -1000, 0], radius = 1000 }}
         renderer = FrameRenderer(shot, 1)
         setup = time.perf_counter() - t0
         rows = thread_rows(renderer, w, h, spp)
-    table(f"2b. icosphere of {renderer.geometry.triangle_count:,} triangles (scene set-up {setup:.1f} s)",
+    print_table(f"2b. icosphere of {renderer.geometry.triangle_count:,} triangles (scene set-up {setup:.1f} s)",
           THREAD_HEADER, rows)
 
 
@@ -163,13 +156,12 @@ def sampler_quality(small: bool) -> None:
                 errs.append(np.mean((render_frame(s2, 12, 0, spp, geometry=geom).mean() - reference) ** 2))
             mse[mode] = float(np.mean(errs))
         rows.append([spp, f"{mse['sobol']:.3e}", f"{mse['random']:.3e}", f"{mse['random'] / mse['sobol']:.2f}"])
-    table(f"3. sampler: MSE against a {ref_spp}-spp reference ({w}x{h}, courtyard frame 12)",
+    print_table(f"3. sampler: MSE against a {ref_spp}-spp reference ({w}x{h}, courtyard frame 12)",
           ["spp", "Owen-Sobol", "random", "random/Sobol"], rows)
 
 
 def rays(small: bool) -> None:
-    sys.path.insert(0, str(Path(__file__).parent))
-    import rays as rays_bench
+    import rays as rays_bench  # beside this file: on the path since start-up
 
     rays_bench.main(["--small"] if small else [])
 

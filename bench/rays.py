@@ -18,19 +18,14 @@ from __future__ import annotations
 import argparse
 import math
 import os
+import sys
 import time
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 
-
-def print_table(title: str, header: list[str], rows: list[list]) -> None:
-    print(f"\n{title}")
-    widths = [max(len(str(x)) for x in col) for col in zip(header, *rows)]
-    print("  ".join(h.ljust(w) for h, w in zip(header, widths)))
-    print("  ".join("-" * w for w in widths))
-    for row in rows:
-        print("  ".join(str(x).ljust(w) for x, w in zip(row, widths)))
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+from tables import print_table  # noqa: E402  (bench/ is run as scripts, not a package)
 
 
 def _rss_kib(field: str) -> int:
