@@ -1,15 +1,15 @@
 """Materials: the material table row, the shading frame, and BSDF evaluation and sampling.
 
-A material is one row `params: (12,) float64` of the scene's `(m, 12)` material table:
+A material is one row `params: (MATERIAL_SIZE,) float64` of the scene's material table; its
+columns are named in material_table.py. The legacy types read only these:
 
-  [0]     type: DIFFUSE = 0, METAL = 1, GLASS = 2, PLASTIC = 3
+  [0]     type: DIFFUSE = 0, METAL = 1, GLASS = 2, PLASTIC = 3 (PBR = 4: pbr.py)
   [1:4]   colour r, g, b in [0, 1]: diffuse albedo; metal reflectance at normal incidence (F0);
           glass transmission tint; plastic base albedo
   [4]     roughness in [0, 1], perceptual: the GGX width is alpha = roughness². Below
           SMOOTH_ROUGHNESS a surface is perfectly smooth (delta lobes).
   [5]     index of refraction (glass; the plastic's coat), 1.5 by default
   [6:9]   emitted radiance r, g, b (read by the integrator, not here)
-  [9:12]  reserved, zero
 
 Directions are in the local shading frame (z = normal), unit length, both pointing away from
 the surface: wo towards the viewer, wi towards the light. For DIFFUSE, METAL and PLASTIC the
@@ -53,23 +53,23 @@ from .lobes import (
     plastic_sample,
 )
 
-DIFFUSE = 0
-METAL = 1
-GLASS = 2
-PLASTIC = 3
+from .material_table import (  # noqa: F401  (re-exported: the types and the row size)
+    DIFFUSE, GLASS, M_ALPHA, M_ATTEN_COLOR, M_ATTEN_DIST, M_COLOR, M_EMISSION, M_IOR, M_ROUGHNESS, M_SPECULAR,
+    M_SPECULAR_COLOR, M_TYPE, MATERIAL_SIZE, METAL, PBR, PLASTIC, TEXTURE_COLUMNS,
+)
+
 MATERIAL_NAMES = {DIFFUSE: "diffuse", METAL: "metal", GLASS: "glass", PLASTIC: "plastic"}
 
-# column layout of a material row
-P_TYPE = 0
-P_COLOR = 1
-P_ROUGHNESS = 4
-P_IOR = 5
-P_EMISSION = 6
-MATERIAL_SIZE = 12
+# column names of a material row used here (material_table.py has them all)
+P_TYPE = M_TYPE
+P_COLOR = M_COLOR
+P_ROUGHNESS = M_ROUGHNESS
+P_IOR = M_IOR
+P_EMISSION = M_EMISSION
 
 
 def material_row(type, color, roughness=0.0, ior=1.5, emission=(0.0, 0.0, 0.0)) -> np.ndarray:
-    """One material-table row, (12,) float64, in the layout above.
+    """One material-table row, (MATERIAL_SIZE,) float64, in the layout of material_table.py.
 
     type: DIFFUSE, METAL, GLASS or PLASTIC; color: 3 floats in [0, 1]; roughness in [0, 1];
     ior >= 1 (any positive value for glass); emission: 3 non-negative floats.
@@ -94,6 +94,13 @@ def material_row(type, color, roughness=0.0, ior=1.5, emission=(0.0, 0.0, 0.0)) 
     row[P_ROUGHNESS] = roughness
     row[P_IOR] = ior
     row[P_EMISSION:P_EMISSION + 3] = e
+    # the other columns at the values that change nothing: opaque, no textures, no absorption
+    row[M_ALPHA] = 1.0
+    row[M_SPECULAR] = 1.0
+    row[M_SPECULAR_COLOR:M_SPECULAR_COLOR + 3] = 1.0
+    row[M_ATTEN_COLOR:M_ATTEN_COLOR + 3] = 1.0
+    row[M_ATTEN_DIST] = math.inf
+    row[list(TEXTURE_COLUMNS)] = -1.0
     return row
 
 

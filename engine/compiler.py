@@ -14,7 +14,7 @@ import numpy as np
 
 from .animation import object_transform
 from .assets import load_environment_map, load_mesh
-from .bsdf import DIFFUSE, GLASS, METAL, PLASTIC, material_row
+from .bsdf import DIFFUSE, GLASS, MATERIAL_SIZE, METAL, PLASTIC, material_row
 from .bvh import build_bvh, pack_triangles
 from .camera import compile_camera
 from .lights import build_env_distribution
@@ -139,7 +139,7 @@ def compile_geometry(shot) -> Geometry:
         mesh_tri_base=np.array(tri_base, np.int64),
         mesh_tri_count=np.array(tri_count, np.int64),
         parts=tuple(parts),
-        mats=np.ascontiguousarray(np.array(mats, np.float64).reshape(-1, 12)),
+        mats=np.ascontiguousarray(np.array(mats, np.float64).reshape(-1, MATERIAL_SIZE)),
         env_color=np.asarray(env.color, np.float64),
         env_map=np.ascontiguousarray(env_map, np.float64),
         env_row_cdf=row_cdf,
@@ -239,7 +239,7 @@ def compile_frame(shot, geom: Geometry, frame: int):
         inst_moving=moving,
         inst_motion=motion,
         inst_light_base=inst_light_base,
-        mats=geom.mats if len(geom.mats) else np.zeros((1, 12)),
+        mats=geom.mats if len(geom.mats) else np.zeros((1, MATERIAL_SIZE)),
         light_inst=np.array(light_inst, np.int64),
         light_prim=np.array(light_prim, np.int64),
         light_pmf=pmf,

@@ -55,7 +55,7 @@ class Scene(NamedTuple):
     inst_moving: np.ndarray  # (K,) int64: 1 when open and close placements differ
     inst_motion: np.ndarray  # (K, 2, 10) float64 placements at shutter open / close
     inst_light_base: np.ndarray  # (K,) int64 first light index of the instance, -1 if it does not emit
-    mats: np.ndarray  # (m, 12) float64 material rows (see bsdf.py)
+    mats: np.ndarray  # (m, MATERIAL_SIZE) float64 material rows (material_table.py)
     # lights: emissive triangles and spheres, chosen in proportion to power
     light_inst: np.ndarray  # (L,) int64
     light_prim: np.ndarray  # (L,) int64 absolute triangle index, -1 for a sphere
