@@ -273,9 +273,20 @@ def submit(shot, out, priority, samples, frames, width, height, tile_size, batch
     deadline = None if until is None else parse_until(until)
     r = _farm(head_addr, state)
     overrides = _overrides(samples, _parse_frames(frames), width, height)
+    sent: list = []
     job = submit_request(r, shot, overrides, None if out is None else str(out), priority,
-                         tile_size, batch_samples, deadline=deadline)
+                         tile_size, batch_samples, deadline=deadline, sent=sent)
+    s = sent[0]
+    click.echo(f"scene: {s.files} file(s), {_size(s.bytes)}; sent {_size(s.new_bytes)} "
+               f"({s.new_chunks} of {s.chunks} chunk(s) new to the farm)", err=True)
     click.echo(job)
+
+
+def _size(n: int) -> str:
+    for unit in ("bytes", "KiB", "MiB", "GiB"):
+        if n < 1024 or unit == "GiB":
+            return f"{n} {unit}" if unit == "bytes" else f"{n:.1f} {unit}"
+        n /= 1024
 
 
 @cli.command()

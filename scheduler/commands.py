@@ -24,20 +24,21 @@ class JobCommands:
                    batch_samples: int | None = None, submitted: float | None = None,
                    deadline: float | None = None) -> None:
         from ..engine.shot import load_shot
-        from .bundle import unpack
+        from ..worker.cache import FileCache
         from .planner import choose_layout, first_pass_samples, probe_cost, sample_ranges
+        from .transfer import read_manifest, safe_name
 
         if job in self.jobs:
             return
         folder = JobFolder(self.state, job)
-        data = self.r.get(P.k_bundle(bundle))
-        if data is None:
-            raise ValueError(f"bundle {bundle[:12]} is not in Redis")
-        if not folder.bundle.exists():
+        if not (folder.root / "scene.json").exists():
+            # the scene's files, linked from the head's file cache; the manifest beside them
+            # lets the head put back into Redis whatever it loses (Head._hold_files)
             folder.root.mkdir(parents=True, exist_ok=True)
-            unpack(data, folder.bundle, sha=bundle)
-            write_atomic(folder.root / "bundle.tgz", data)  # to restore a Redis that lost it
-        spec = load_shot(folder.bundle / shot)
+            _, raw = read_manifest(self.r, bundle)
+            FileCache().materialise(self.r, bundle, dest=folder.bundle)
+            write_atomic(folder.root / "scene.json", raw)
+        spec = load_shot(folder.bundle.joinpath(*safe_name(shot).parts))
         o = dict(overrides)
         if "frames" in o:
             o["frames"] = tuple(o["frames"])

@@ -80,6 +80,8 @@ class Head(JobCommands):
         self.deadlines = DeadlineKeeper(self)  # forecasts, holds back, stops at deadlines
         self.progress = ProgressPublisher()  # per-frame / per-tile summary for the web page
         self.history = HistoryRecorder()  # throughput per minute, workers last seen
+        self._held: dict[str, float] = {}  # job → when its scene's files were last held
+        self._hold_at = 0.0
 
     # -- start-up ---------------------------------------------------------------------------
 
@@ -123,11 +125,9 @@ class Head(JobCommands):
         for bid in queued:
             pipe.exists(P.k_lease(bid))
         live = {bid for bid, alive in zip(queued, pipe.execute()) if alive}
-        # a Redis that lost its data lost the bundles too: put back those of unfinished jobs
-        for run in self.jobs.values():
-            packed = run.folder.root / "bundle.tgz"
-            if run.pending and packed.exists() and not r.exists(P.k_bundle(run.rec.bundle)):
-                r.set(P.k_bundle(run.rec.bundle), packed.read_bytes())
+        # a Redis that lost its data lost the scenes' files too: held again (and put back from
+        # the job folders) before the next batch of each job is queued
+        self._held.clear()
         for run in self.jobs.values():
             keep = []
             for b in run.pending:
@@ -182,8 +182,41 @@ class Head(JobCommands):
         self.reap()
         self.deadlines.tick()
         busy |= self.dispatch() > 0
+        self.hold_files()
         self.publish()
         return busy
+
+    # -- scene files ------------------------------------------------------------------------
+
+    def hold_files(self, every: float = 60.0) -> None:
+        """Keep alive in Redis the files of every job with work left (transfer.py: keys live
+        P.FILE_TTL after their last renewal, so a finished job's files leave by themselves)."""
+        now = time.monotonic()
+        if now - self._hold_at < every:
+            return
+        self._hold_at = now
+        busy = {e.batch.job for e in self.leases.table.values()}
+        for run in list(self.jobs.values()):
+            if not run.rec.cancelled and (run.pending or run.rec.id in busy):
+                self._hold_files(run)
+
+    def _hold_files(self, run: JobRun) -> None:
+        """Renew the job's scene keys at most every P.FILE_REFRESH seconds, putting back from
+        the job folder any that Redis lost; a failure is logged (its batches then fail with the
+        worker's message) and never stops the head."""
+        from .transfer import TransferError, hold
+
+        now = time.monotonic()
+        if now - self._held.get(run.rec.id, -1e18) < P.FILE_REFRESH:
+            return
+        self._held[run.rec.id] = now
+        try:
+            back = hold(self.r, (run.folder.root / "scene.json").read_bytes(), run.folder.bundle)
+        except (OSError, TransferError) as err:
+            log.error("job %s: cannot keep its scene's files in Redis: %s", run.rec.id, err)
+            return
+        if back:
+            log.warning("job %s: put back %d bytes of its scene Redis had lost", run.rec.id, back)
 
     # -- commands ---------------------------------------------------------------------------
 
@@ -382,6 +415,7 @@ class Head(JobCommands):
 
     def _send(self, b: P.Batch) -> None:
         run = self.jobs[b.job]
+        self._hold_files(run)
         ticket = self.tickets.get(b.id, 0) + 1
         self.tickets[b.id] = ticket
         self.r.hset(P.K_INFLIGHT, b.id, ticket)

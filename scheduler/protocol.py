@@ -16,7 +16,8 @@ Redis keys (prefix `lampyr:`):
 | `epoch` | string | head | random token; a missing epoch means Redis lost its data |
 | `config` | hash | head | lease_seconds, max_attempts |
 | `control` | list | CLI, web page | JSON commands for the head (submit, retry, pause, resume, cancel, refine, priority) |
-| `bundle:<sha256>` | string | CLI | a scene bundle (gzip tar) |
+| `scene:<sha256>` | string, TTL | CLI, head | a scene's manifest (JSON, transfer.py): its files' shot-relative paths, sizes, sha256 and chunk hashes, and which one is the shot; named by the sha256 of its bytes |
+| `blob:<sha256>` | string, TTL | CLI, head | one chunk of a scene file (at most `chunk_bytes` of the manifest, 16 MiB), named by the sha256 of its bytes; shared by every scene that holds the same bytes |
 | `job:<id>` | hash | head | live status of a job (JSON values), read by `status` |
 | `jobs` | zset | head | job ids scored by submission time |
 | `inflight` | hash | head | batch id → current ticket |
@@ -43,7 +44,7 @@ from dataclasses import asdict, dataclass
 
 from ..errors import LampyrError
 
-PROTOCOL_VERSION = 2  # 2: `partial` result notices (a version-1 head would misread them)
+PROTOCOL_VERSION = 3  # 2: `partial` result notices; 3: scenes as `scene:`/`blob:` keys, no bundles
 TASK_RENDER = "lampyr.render_batch"
 QUEUE = "lampyr"
 PREFIX = "lampyr:"
@@ -51,6 +52,8 @@ PREFIX = "lampyr:"
 RESULT_TTL = 7 * 24 * 3600  # seconds a result waits for the head before Redis drops it
 HEARTBEAT_TTL = 15  # seconds a worker's heartbeat outlives its last beat
 HEARTBEAT_EVERY = 5
+FILE_TTL = 6 * 3600  # seconds a `scene:`/`blob:` key lives after its last refresh (transfer.py)
+FILE_REFRESH = 600  # the head refreshes the files of unfinished jobs this often
 VISIBILITY_TIMEOUT = 3600  # Celery's redelivery backstop; lampyr's leases act long before it
 
 
@@ -72,8 +75,12 @@ K_THROUGHPUT = key("throughput")
 K_SEEN = key("seen")
 
 
-def k_bundle(sha: str) -> str:
-    return key("bundle", sha)
+def k_scene(sha: str) -> str:
+    return key("scene", sha)
+
+
+def k_blob(sha: str) -> str:
+    return key("blob", sha)
 
 
 def k_job(job: str) -> str:
@@ -144,7 +151,8 @@ def parse_batch_id(text: str) -> tuple[str, int, int, int, int]:
 class RenderTask:
     """The JSON argument of TASK_RENDER.
 
-    bundle: sha256 of the scene bundle; shot: the shot file's path inside it; overrides: the
+    bundle: sha256 of the scene's manifest (`scene:<sha>`); shot: the shot file's path in the
+    scene (also named by the manifest); overrides: the
     job's `Shot.with_overrides` arguments (frames as [first, last]).
     """
 

@@ -87,10 +87,6 @@ def send_command(r, op: str, **args) -> None:
     r.rpush(P.K_CONTROL, json.dumps({"op": op, **args}))
 
 
-def store_bundle(r, data: bytes, sha: str) -> None:
-    r.set(P.k_bundle(sha), data)
-
-
 def job_status(r, job: str) -> dict | None:
     raw = r.hgetall(P.k_job(job))
     if not raw:

@@ -1,4 +1,5 @@
-"""Submitting a shot: validate it with the engine, pack its bundle, queue a `submit` command."""
+"""Submitting a shot: validate it with the engine, send its files (transfer.py), queue a `submit`
+command."""
 
 from __future__ import annotations
 
@@ -12,20 +13,22 @@ from .jobs import new_job_id
 
 def submit_request(r, shot_path: Path, overrides: dict, out: str | None, priority: int = 0,
                    tile_size: int | None = None, batch_samples: int | None = None,
-                   deadline: float | None = None) -> str:
-    """Validate and pack a shot, store its bundle and ask the head to run it; returns the job id.
+                   deadline: float | None = None, sent: list | None = None) -> str:
+    """Validate a shot, send the files Redis lacks and ask the head to run it; returns the job id.
 
-    deadline: epoch seconds the frames are wanted by (`deadline.parse_until`), or None."""
+    deadline: epoch seconds the frames are wanted by (`deadline.parse_until`), or None;
+    sent: a list, when given, gets the upload's `transfer.Sent` appended."""
     from ..engine.shot import load_shot
-    from .bundle import pack
-    from .store import send_command, store_bundle
+    from .store import send_command
+    from .transfer import upload_shot
 
     spec = load_shot(shot_path)
     if overrides:
         o = dict(overrides)
         spec = spec.with_overrides(**o)
-    data, sha, member = pack(spec)
-    store_bundle(r, data, sha)
+    sha, member, stats = upload_shot(r, spec)
+    if sent is not None:
+        sent.append(stats)
     job = new_job_id(spec.name)
     o = dict(overrides)
     if "frames" in o:

@@ -1,11 +1,12 @@
 """Submitting a shot that arrives as an upload: a shot file plus an archive of its assets.
 
-The archive (.zip, .tar.gz / .tgz, or .tar) is unpacked with the same checks as a scene bundle
-(`bundle._safe_name`, its size and member limits): regular files only, no absolute names, no `..`,
-nothing written before every member passed. The shot file lands in the unpacked folder — or in
-the archive's one top folder, when the archive holds one and the shot's assets resolve there —
-and is then submitted as `lampyr submit` would (`submit.submit_request`, which packs and stores
-the bundle). The upload folder is removed afterwards: the bundle in Redis is what the head uses.
+The archive (.zip, .tar.gz / .tgz, or .tar) is unpacked with the same name checks as a scene's
+files (`transfer.safe_name`) and its own size and member limits: regular files only, no absolute
+names, no `..`, nothing written before every member passed. The shot file lands in the unpacked
+folder — or in the archive's one top folder, when the archive holds one and the shot's assets
+resolve there — and is then submitted as `lampyr submit` would (`submit.submit_request`, which
+sends the files Redis lacks). The upload folder is removed afterwards: the files in Redis are
+what the head uses.
 """
 
 from __future__ import annotations
@@ -20,7 +21,10 @@ import zipfile
 import zlib
 from pathlib import Path, PurePosixPath
 
-from .bundle import MAX_BYTES, MAX_MEMBERS, BundleError, _safe_name
+from .transfer import TransferError, safe_name
+
+MAX_BYTES = 2 * 1024**3  # an archive's unpacked size (rule of thumb: 4× the 512 MiB upload limit)
+MAX_MEMBERS = 10_000
 
 ARCHIVES = (".zip", ".tar.gz", ".tgz", ".tar")
 # the shot's key that `Shot.with_overrides` sets → the form field that gave it
@@ -30,7 +34,7 @@ MAX_SHOT_BYTES = 16 * 1024**2  # a shot file is text (rule of thumb: far above a
 _SHOT_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9 _.-]{0,80}\.toml")
 
 
-class UploadError(BundleError):
+class UploadError(TransferError):
     """An uploaded shot or asset archive that is refused (one line naming the field)."""
 
 
@@ -52,7 +56,7 @@ def _member_name(name: str, folder: bool = False) -> PurePosixPath | None:
         if folder:
             return None
         raise UploadError(f"assets: member {name!r}: expected a file name")
-    return _safe_name(bare)
+    return safe_name(bare)
 
 
 def _members(arc, kind: str, max_bytes: int, max_members: int) -> list:
@@ -141,7 +145,7 @@ def unpack_archive(source, filename: str, dest: Path, max_bytes: int = MAX_BYTES
                     raise UploadError(f"assets: member {path.as_posix()!r}: size does not match")
     except UploadError:
         raise
-    except BundleError as err:
+    except TransferError as err:
         raise UploadError(f"assets: {err}") from None
     except (tarfile.TarError, zipfile.BadZipFile, EOFError, ValueError, zlib.error,
             RuntimeError, NotImplementedError) as err:  # zipfile: encrypted, unknown method

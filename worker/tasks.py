@@ -33,19 +33,19 @@ PAUSE_POLL = 0.2  # seconds between looks at the gate while paused
 
 
 class Context:
-    """Per-process worker state: Redis client, bundle cache, identity."""
+    """Per-process worker state: Redis client, scene cache, identity."""
 
     def __init__(self, url: str, name: str, gate=None):
         from ..scheduler.store import connect
-        from .cache import BundleCache
+        from .cache import SceneCache
 
         self.r = connect(url, check=False)
         self.name = name
         self.pid = os.getpid()
         self.holder = f"{name}:{self.pid}:{os.urandom(4).hex()}"
         self.gate = gate  # a worker.gate.Gate, or None: never paused or stopped
-        self.cache = BundleCache(self.r)
-        self.prepare_seconds = 0.0  # fetching, unpacking and compiling the scene, last batch
+        self.cache = SceneCache(self.r)
+        self.prepare_seconds = 0.0  # fetching the scene's files and compiling it, last batch
         self._config = (0.0, {})
 
     def config(self) -> dict:

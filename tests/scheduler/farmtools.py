@@ -20,17 +20,16 @@ def wait_for(cond, timeout=60, what="condition"):
 
 
 def queue_one_batch(redis_url: str, shot_path: Path, lease_seconds: float):
-    """A bundle of the shot in Redis and one queued batch of 3 samples (frame 1, tile 0,
+    """The shot's files in Redis and one queued batch of 3 samples (frame 1, tile 0,
     samples 2–4, ticket 1), as a head leaves it; returns (redis client, its RenderTask)."""
     import redis
 
     from lampyr.engine.shot import load_shot
     from lampyr.scheduler import protocol as P
-    from lampyr.scheduler.bundle import pack
+    from lampyr.scheduler.transfer import upload_shot
 
     r = redis.Redis.from_url(redis_url)
-    data, sha, member = pack(load_shot(shot_path))
-    r.set(P.k_bundle(sha), data)
+    sha, member, _ = upload_shot(r, load_shot(shot_path))
     r.hset(P.K_CONFIG, mapping={"lease_seconds": lease_seconds, "max_attempts": 2})
     batch = P.Batch("job", 1, 0, 2, 3, 0, 0, 8, 8)
     r.hset(P.K_INFLIGHT, batch.id, 1)

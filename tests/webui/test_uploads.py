@@ -1,4 +1,5 @@
-"""Submitting a shot by upload: a shot file plus an archive of its assets, checked like bundles."""
+"""Submitting a shot by upload: a shot file plus an archive of its assets, checked like a
+scene's files."""
 
 from __future__ import annotations
 
@@ -93,9 +94,9 @@ def test_nothing_of_the_upload_is_left_behind(user, head, state):
 
 
 @pytest.mark.parametrize("archive,name,words", [
-    (zip_of({"../escape.obj": FLOOR_OBJ}), "a.zip", "paths leaving the bundle are refused"),
+    (zip_of({"../escape.obj": FLOOR_OBJ}), "a.zip", "paths leaving the shot's folder are refused"),
     (zip_of({"/etc/x.obj": FLOOR_OBJ}), "a.zip", "absolute paths are refused"),
-    (tgz_of({"assets/../../x.obj": FLOOR_OBJ}), "a.tar.gz", "paths leaving the bundle"),
+    (tgz_of({"assets/../../x.obj": FLOOR_OBJ}), "a.tar.gz", "paths leaving the shot's folder"),
     (tgz_of({}, links={"assets/floor.obj": "/etc/passwd"}), "a.tar.gz", "only regular files"),
     (b"this is not an archive", "a.zip", "not a readable .zip archive"),
     (b"\x1f\x8b broken gzip", "a.tgz", "not a readable .tgz archive"),

@@ -35,7 +35,7 @@ def gate(tmp_path):
 
 @pytest.fixture
 def one_batch(redis_url, tiny_shot, tmp_path, monkeypatch, gate):
-    """A bundle in Redis, a queued batch of 3 samples (ticket 1) and a worker context with a
+    """The shot's files in Redis, a queued batch of 3 samples (ticket 1) and a worker context with a
     gate; returns (r, ctx, task)."""
     monkeypatch.setenv("LAMPYR_CACHE", str(tmp_path / "cache"))
     r, task = queue_one_batch(redis_url, tiny_shot, lease_seconds=2)

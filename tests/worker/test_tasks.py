@@ -16,7 +16,8 @@ from ..scheduler.farmtools import queue_one_batch
 
 @pytest.fixture
 def setup(redis_url, tiny_shot, tmp_path, monkeypatch):
-    """A bundle in Redis, a queued batch (ticket 1) and a worker context; returns (r, ctx, task)."""
+    """The shot's files in Redis, a queued batch (ticket 1) and a worker context; returns
+    (r, ctx, task)."""
     monkeypatch.setenv("LAMPYR_CACHE", str(tmp_path / "cache"))
     r, task = queue_one_batch(redis_url, tiny_shot, lease_seconds=5)
     return r, Context(redis_url, "w"), task
@@ -87,14 +88,16 @@ def test_a_message_of_another_protocol_version_is_refused(setup):
     assert "protocol" in json.loads(r.lpop(P.K_RESULTS))["error"]
 
 
-def test_the_bundle_is_fetched_once(setup):
+def test_the_scene_is_fetched_once_and_kept_on_disk(setup):
     r, ctx, task = setup
     run_batch(ctx, task.to_json())
     other = P.Batch("job", 2, 1, 0, 1, 8, 0, 8, 8)
     r.hset(P.K_INFLIGHT, other.id, 1)
     run_batch(ctx, P.RenderTask(P.PROTOCOL_VERSION, other, 1, task.bundle, task.shot, {}).to_json())
-    assert ctx.cache.fetches == 1
-    r.delete(P.k_bundle(task.bundle))  # a fresh process finds the unpacked copy on disk
+    assert ctx.cache.fetches == 1  # the tiny shot is one file: the shot itself
+    for k in r.scan_iter(match=P.key("blob", "*")):  # a fresh process finds the files on disk
+        r.delete(k)
+    r.delete(P.k_scene(task.bundle))
     fresh = Context(_url(r), "w2")
     r.hset(P.K_INFLIGHT, other.id, 2)
     again = P.RenderTask(P.PROTOCOL_VERSION, other, 2, task.bundle, task.shot, {})
