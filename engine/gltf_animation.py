@@ -33,8 +33,6 @@ from lampyr.errors import AssetError
 from .animation import quat_slerp, quat_to_matrix
 from .scene_data import Channel, SceneData
 
-PATHS = ("translation", "rotation", "scale", "weights")
-INTERPOLATIONS = ("LINEAR", "STEP", "CUBICSPLINE")
 SHEAR_TOLERANCE = 1e-5  # see decompose_trs
 
 
