@@ -26,6 +26,7 @@ node and path (possible only across animations), the later one in `scene.channel
 from __future__ import annotations
 
 import math
+import weakref
 
 import numpy as np
 
@@ -34,6 +35,10 @@ from .animation import quat_slerp, quat_to_matrix
 from .scene_data import Channel, SceneData
 
 SHEAR_TOLERANCE = 1e-5  # see decompose_trs
+
+# per-scene lookups (a SceneData is frozen, so they never go stale); freed with the scene
+_TARGETS: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()
+_ORDERS: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()
 
 
 # ---------------------------------------------------------------------------------------------
@@ -98,8 +103,14 @@ def animation_length(scene: SceneData) -> float:
 
 
 def channels_by_target(scene: SceneData) -> dict[tuple[int, str], Channel]:
-    """{(node, path): channel}, the later channel winning when two aim at the same target."""
-    return {(c.node, c.path): c for c in scene.channels}
+    """{(node, path): channel}, the later channel winning when two aim at the same target.
+
+    Built once per scene and kept while the scene lives; treat it as read-only."""
+    found = _TARGETS.get(scene)
+    if found is None:
+        found = {(c.node, c.path): c for c in scene.channels}
+        _TARGETS[scene] = found
+    return found
 
 
 # ---------------------------------------------------------------------------------------------
@@ -146,6 +157,13 @@ def node_order(scene: SceneData) -> list[int]:
 
     Raises AssetError when the parent links form a cycle or name a missing node.
     """
+    found = _ORDERS.get(scene)
+    if found is None:
+        found = _ORDERS[scene] = _node_order(scene)
+    return list(found)
+
+
+def _node_order(scene: SceneData) -> tuple:
     n = len(scene.nodes)
     state = [0] * n  # 0 unvisited, 1 on the current chain, 2 placed
     order: list[int] = []
@@ -164,7 +182,7 @@ def node_order(scene: SceneData) -> list[int]:
         for j in reversed(chain):
             state[j] = 2
             order.append(j)
-    return order
+    return tuple(order)
 
 
 def world_matrices(scene: SceneData, t: float, locals_=None) -> np.ndarray:
