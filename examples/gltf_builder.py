@@ -1,4 +1,4 @@
-"""A small glTF 2.0 writer for the tests and the demo generator, on top of pygltflib.
+"""A small glTF 2.0 writer for the tests and the demo generator.
 
 Build a document step by step, then `save("x.glb")` or `save("x.gltf")`:
 
@@ -19,6 +19,11 @@ Every array goes into one binary buffer (the GLB chunk, or for .gltf a `.bin` fi
 data URI). The root nodes of the single scene are the nodes that no other node lists as a child,
 unless `add_scene` is called. Extensions named in materials, textures and lights are added to
 `extensionsUsed` when saving; `require_extension` also lists one in `extensionsRequired`.
+
+The document is kept as plain JSON and the GLB container written here (spec 4.4): a round trip
+through pygltflib's classes would drop `node.weights` (its Node has no such field) and would add
+an empty buffer to a file without binary data, which the validator rejects. `load_document`
+reads a written file back with pygltflib, for the tests.
 """
 
 from __future__ import annotations
@@ -27,6 +32,7 @@ import base64
 import io
 import json
 import math
+import struct
 from pathlib import Path
 
 import numpy as np
@@ -498,9 +504,7 @@ class GltfBuilder:
         path.parent.mkdir(parents=True, exist_ok=True)
         blob = bytes(self.blob) + b"\0" * (-len(self.blob) % 4)
         if path.suffix.lower() == ".glb":
-            gltf = pygltflib.GLTF2.from_json(json.dumps(self.document()))
-            gltf.set_binary_blob(blob)
-            gltf.save_binary(str(path))
+            path.write_bytes(glb_bytes(self.document(), blob))
         else:
             uri = None
             if self.blob and buffer == "file":
@@ -508,13 +512,29 @@ class GltfBuilder:
                 (path.parent / uri).write_bytes(blob)
             elif self.blob:
                 uri = "data:application/octet-stream;base64," + base64.b64encode(blob).decode("ascii")
-            gltf = pygltflib.GLTF2.from_json(json.dumps(self.document(uri)))
-            gltf.save_json(str(path))
+            path.write_text(json.dumps(self.document(uri), indent=1), encoding="utf-8")
         for uri, data in self.external_images.items():  # uri as written, before percent-encoding
             target = path.parent / uri
             target.parent.mkdir(parents=True, exist_ok=True)
             target.write_bytes(data)
         return path
+
+
+def glb_bytes(document: dict, blob: bytes) -> bytes:
+    """A GLB container (spec 4.4): 12-byte header, JSON chunk padded with spaces, and a BIN
+    chunk padded with zeros when `blob` is not empty (a GLB without buffer data has no BIN chunk)."""
+    text = json.dumps(document, separators=(",", ":")).encode("utf-8")
+    text += b" " * (-len(text) % 4)
+    out = struct.pack("<II", len(text), 0x4E4F534A) + text  # "JSON"
+    if blob:
+        blob = bytes(blob) + b"\0" * (-len(blob) % 4)
+        out += struct.pack("<II", len(blob), 0x004E4942) + blob  # "BIN\0"
+    return struct.pack("<III", 0x46546C67, 2, 12 + len(out)) + out  # "glTF", version 2, length
+
+
+def load_document(path) -> "pygltflib.GLTF2":
+    """A written .glb / .gltf file parsed by pygltflib (an independent reader)."""
+    return pygltflib.GLTF2().load(str(path))
 
 
 def quat_xyzw(axis, angle: float) -> list[float]:
