@@ -70,6 +70,8 @@ class GltfFile:
             raw = self.path.read_bytes()
         except OSError as exc:
             self.fail("", f"expected a readable glTF file, got an error reading it: {exc.strerror or exc}")
+        if not raw:
+            self.fail("", "expected a glTF file (a GLB container or JSON text), got an empty file")
         if raw[:4] == b"glTF":
             text = self._split_glb(raw)
         else:

@@ -53,7 +53,9 @@ def decode_image(gf: GltfFile, data: bytes, where: str) -> np.ndarray:
                 grey = (np.asarray(img, np.int64) >> 8).clip(0, 255).astype(np.uint8)
                 img = PILImage.fromarray(grey, "L")
             rgba = np.asarray(img.convert("RGBA"), np.uint8)
-    except (UnidentifiedImageError, OSError, ValueError, SyntaxError) as exc:
+    except UnidentifiedImageError:
+        gf.fail(where, f"expected a PNG or JPEG image, got {len(data)} bytes that are no image Pillow knows")
+    except (OSError, ValueError, SyntaxError) as exc:
         first = (str(exc).strip().splitlines() or [type(exc).__name__])[0]
         gf.fail(where, f"expected a PNG or JPEG image, got bytes Pillow cannot decode ({first})")
     return np.ascontiguousarray(rgba)

@@ -27,12 +27,11 @@ import numpy as np
 
 from lampyr.engine.gltf_accessors import GltfFile, quoted
 from lampyr.engine.gltf_materials import MATERIAL_EXTENSIONS, MaterialReader
+from lampyr.engine.gltf_meshes import index_of, read_mesh, vector
 from lampyr.engine.scene_data import (LIGHT_DIRECTIONAL, LIGHT_POINT, LIGHT_SPOT, CameraSpec, Channel,
-                                      LightSpec, MeshData, NodeSpec, SceneData, SkinSpec)
+                                      LightSpec, NodeSpec, SceneData, SkinSpec)
 
 SUPPORTED_EXTENSIONS = frozenset(MATERIAL_EXTENSIONS + ("KHR_lights_punctual", "KHR_mesh_quantization"))
-MODE_NAMES = {0: "POINTS", 1: "LINES", 2: "LINE_LOOP", 3: "LINE_STRIP", 4: "TRIANGLES",
-              5: "TRIANGLE_STRIP", 6: "TRIANGLE_FAN"}
 LIGHT_TYPES = {"point": LIGHT_POINT, "spot": LIGHT_SPOT, "directional": LIGHT_DIRECTIONAL}
 PATH_WIDTH = {"translation": 3, "rotation": 4, "scale": 3}
 
@@ -52,7 +51,7 @@ def read_gltf(path, key: str, shown: str | None = None) -> SceneData:
     cameras, camera_index = _cameras(gf)
     lights = _lights(gf)
     nodes = _nodes(gf, camera_index, len(lights))
-    meshes = tuple(_mesh(gf, i) for i in range(len(doc.meshes or [])))
+    meshes = tuple(read_mesh(gf, i) for i in range(len(doc.meshes or [])))
     return SceneData(path=str(path), nodes=nodes, roots=_roots(gf, nodes), meshes=meshes,
                      materials=materials, images=tuple(mats.images), cameras=cameras, lights=lights,
                      channels=_channels(gf, nodes, meshes), skins=_skins(gf), extensions_ignored=ignored)
@@ -74,27 +73,6 @@ def _check_extensions(gf: GltfFile) -> tuple:
 # ------------------------------------------------------------------------------------ nodes
 
 
-def _index(gf: GltfFile, value, n: int, where: str, what: str) -> int:
-    """A reference to item `value` of a list of `n` (-1 when absent)."""
-    if value is None:
-        return -1
-    if isinstance(value, bool) or not isinstance(value, int) or not 0 <= value < n:
-        gf.fail(where, f"expected a {what} index below {n}, got {quoted(value)}")
-    return value
-
-
-def _vector(gf: GltfFile, value, n: int, where: str, default) -> np.ndarray:
-    if value is None:
-        return np.array(default, np.float64)
-    arr = np.asarray(value, dtype=object)
-    if arr.shape != (n,) or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value):
-        gf.fail(where, f"expected {n} numbers, got {quoted(value)}")
-    out = np.array(value, np.float64)
-    if not np.all(np.isfinite(out)):
-        gf.fail(where, f"expected finite numbers, got {quoted(value)}")
-    return out
-
-
 def _nodes(gf: GltfFile, camera_index: dict, n_lights: int) -> tuple:
     """Every node of the file (NodeSpec), parents filled in, hierarchy checked to be a forest."""
     doc = gf.doc
@@ -103,7 +81,7 @@ def _nodes(gf: GltfFile, camera_index: dict, n_lights: int) -> tuple:
     parent = [-1] * n
     for i, node in enumerate(raw):
         for c in node.children or []:
-            c = _index(gf, c, n, f"nodes[{i}].children", "node")
+            c = index_of(gf, c, n, f"nodes[{i}].children", "node")
             if parent[c] != -1 or c == i:
                 gf.fail(f"nodes[{i}].children", f"expected each node to have one parent, got nodes[{c}] "
                                                 f"as a child of nodes[{parent[c] if c != i else i}] too")
@@ -114,30 +92,30 @@ def _nodes(gf: GltfFile, camera_index: dict, n_lights: int) -> tuple:
         matrix = None
         if node.matrix is not None:
             # spec 3.5.3: matrices are stored column-major; the 16 numbers are the columns in turn
-            matrix = _vector(gf, node.matrix, 16, where + ".matrix", None).reshape(4, 4).T.copy()
-        xyzw = _vector(gf, node.rotation, 4, where + ".rotation", [0.0, 0.0, 0.0, 1.0])
+            matrix = vector(gf, node.matrix, 16, where + ".matrix", None).reshape(4, 4).T.copy()
+        xyzw = vector(gf, node.rotation, 4, where + ".rotation", [0.0, 0.0, 0.0, 1.0])
         norm = float(np.linalg.norm(xyzw))
         if norm == 0.0:
             gf.fail(where + ".rotation", f"expected a unit quaternion, got {quoted(node.rotation)}")
         light = (node.extensions or {}).get("KHR_lights_punctual")
-        mesh = _index(gf, node.mesh, len(doc.meshes or []), where + ".mesh", "mesh")
-        camera = _index(gf, node.camera, len(doc.cameras or []), where + ".camera", "camera")
+        mesh = index_of(gf, node.mesh, len(doc.meshes or []), where + ".mesh", "mesh")
+        camera = index_of(gf, node.camera, len(doc.cameras or []), where + ".camera", "camera")
         raw_weights = gf.tree["nodes"][i].get("weights")  # pygltflib's Node has no weights field
         weights = None
         if raw_weights is not None:
             if not isinstance(raw_weights, list):
                 gf.fail(where + ".weights", f"expected a list of morph weights, got {quoted(raw_weights)}")
-            weights = _vector(gf, raw_weights, len(raw_weights), where + ".weights", None)
+            weights = vector(gf, raw_weights, len(raw_weights), where + ".weights", None)
         out.append(NodeSpec(
             name=node.name if node.name is not None else f"node{i}",
             parent=parent[i], children=tuple(node.children or ()),
-            translation=_vector(gf, node.translation, 3, where + ".translation", [0.0, 0.0, 0.0]),
+            translation=vector(gf, node.translation, 3, where + ".translation", [0.0, 0.0, 0.0]),
             rotation=xyzw[[3, 0, 1, 2]] / norm,  # file x, y, z, w -> lampyr w, x, y, z
-            scale=_vector(gf, node.scale, 3, where + ".scale", [1.0, 1.0, 1.0]),
+            scale=vector(gf, node.scale, 3, where + ".scale", [1.0, 1.0, 1.0]),
             matrix=matrix, mesh=mesh, camera=camera_index.get(camera, -1),
-            light=_index(gf, light.get("light") if isinstance(light, dict) else None, n_lights,
+            light=index_of(gf, light.get("light") if isinstance(light, dict) else None, n_lights,
                          where + ".extensions.KHR_lights_punctual.light", "light"),
-            skin=_index(gf, node.skin, len(doc.skins or []), where + ".skin", "skin"),
+            skin=index_of(gf, node.skin, len(doc.skins or []), where + ".skin", "skin"),
             weights=weights, source=where))
     _check_acyclic(gf, out)
     return tuple(out)
@@ -163,10 +141,10 @@ def _roots(gf: GltfFile, nodes: tuple) -> tuple:
     if not scenes:
         return tuple(i for i, nd in enumerate(nodes) if nd.parent == -1)
     s = doc.scene if doc.scene is not None else 0
-    s = _index(gf, s, len(scenes), "scene", "scene")
+    s = index_of(gf, s, len(scenes), "scene", "scene")
     roots = []
     for k, r in enumerate(scenes[s].nodes or []):
-        r = _index(gf, r, len(nodes), f"scenes[{s}].nodes[{k}]", "node")
+        r = index_of(gf, r, len(nodes), f"scenes[{s}].nodes[{k}]", "node")
         if nodes[r].parent != -1:
             gf.fail(f"scenes[{s}].nodes[{k}]", f"expected a root node, got nodes[{r}], a child of "
                                                f"nodes[{nodes[r].parent}]")
@@ -218,167 +196,10 @@ def _lights(gf: GltfFile) -> tuple:
             gf.fail(where + ".spot", f"expected 0 <= innerConeAngle < outerConeAngle <= pi/2, got {inner:g} "
                                      f"and {outer:g}")
         out.append(LightSpec(name=light.get("name") or f"light{i}", type=LIGHT_TYPES[light["type"]],
-                             color=_vector(gf, light.get("color"), 3, where + ".color", [1.0, 1.0, 1.0]),
+                             color=vector(gf, light.get("color"), 3, where + ".color", [1.0, 1.0, 1.0]),
                              intensity=float(intensity), range=float(rng) if rng is not None else None,
                              inner_cone=inner, outer_cone=outer, source=where))
     return tuple(out)
-
-
-# ------------------------------------------------------------------------------------ meshes
-
-
-def triangle_list(indices: np.ndarray, mode: int) -> np.ndarray:
-    """Vertex indices (N,) of a TRIANGLES / TRIANGLE_STRIP / TRIANGLE_FAN primitive -> (F, 3).
-
-    Spec 3.7.2.1: strip triangle i is (v[i], v[i + 1 + i % 2], v[i + 2 - i % 2]); fan triangle i
-    is (v[i + 1], v[i + 2], v[0]); both keep the first triangle's winding."""
-    v = np.asarray(indices, np.int64)
-    if mode == 4:
-        return v[: len(v) - len(v) % 3].reshape(-1, 3)
-    n = max(len(v) - 2, 0)
-    i = np.arange(n)
-    if mode == 5:
-        return np.stack([v[i], v[i + 1 + i % 2], v[i + 2 - i % 2]], axis=1)
-    return np.stack([v[i + 1], v[i + 2], np.zeros(n, np.int64) + (v[0] if n else 0)], axis=1)
-
-
-def _attribute(gf: GltfFile, attrs: dict, name: str, where: str, count: int, width: int):
-    """Attribute `name` as float64 (count, width) or None when the primitive lacks it."""
-    index = attrs.get(name)
-    if index is None:
-        return None
-    awhere = f"{where}.{name}"
-    arr = gf.accessor(index, awhere)
-    if arr.ndim != 2 or arr.shape[1] != width:
-        gf.fail(awhere, f"expected VEC{width} elements, got accessors[{index}] of type "
-                        f"{gf.doc.accessors[index].type}")
-    if len(arr) != count:
-        gf.fail(awhere, f"expected {count} elements (the POSITION count), got {len(arr)}")
-    if arr.dtype.kind == "f" and not np.all(np.isfinite(arr)):
-        gf.fail(awhere, "expected finite numbers, got NaN or infinity")
-    return arr
-
-
-def _primitive(gf: GltfFile, m: int, j: int, prim) -> dict:
-    """One primitive as vertex arrays and its triangles (F, 3) into them."""
-    where = f"meshes[{m}].primitives[{j}]"
-    mode = prim.mode if prim.mode is not None else 4
-    if mode not in (4, 5, 6):
-        gf.fail(where + ".mode", f"expected a triangle mode (4 TRIANGLES, 5 TRIANGLE_STRIP, 6 TRIANGLE_FAN), "
-                                 f"got {quoted(mode)} ({MODE_NAMES.get(mode, 'unknown')}); lampyr renders surfaces only")
-    attrs = {k: v for k, v in vars(prim.attributes).items() if v is not None} if prim.attributes else {}
-    aw = where + ".attributes"
-    if "POSITION" not in attrs:
-        gf.fail(aw, "expected a POSITION attribute, got none")
-    pos = gf.accessor(attrs["POSITION"], aw + ".POSITION").astype(np.float64)
-    if pos.ndim != 2 or pos.shape[1] != 3:
-        gf.fail(aw + ".POSITION", "expected VEC3 positions, got another type")
-    if not np.all(np.isfinite(pos)):
-        bad = int(np.flatnonzero(~np.all(np.isfinite(pos), axis=1))[0])
-        gf.fail(aw + ".POSITION", f"expected finite positions, got NaN or infinity at vertex {bad}")
-    count = len(pos)
-    if prim.indices is not None:
-        idx = gf.accessor(prim.indices, where + ".indices", normalize=False)
-        if idx.ndim != 1 or idx.dtype.kind != "i":
-            gf.fail(where + ".indices", "expected SCALAR integer indices, got another type")
-        if len(idx) and (idx.min() < 0 or idx.max() >= count):
-            gf.fail(where + ".indices", f"expected indices below the vertex count {count}, got {int(idx.max())}")
-    else:
-        idx = np.arange(count, dtype=np.int64)
-    if mode == 4 and len(idx) % 3:
-        gf.fail(where + (".indices" if prim.indices is not None else ".attributes.POSITION"),
-                f"expected a multiple of 3 vertices for TRIANGLES, got {len(idx)}")
-    faces = triangle_list(idx, mode)
-    keep = (faces[:, 0] != faces[:, 1]) & (faces[:, 1] != faces[:, 2]) & (faces[:, 2] != faces[:, 0])
-    out = {"faces": faces[keep], "POSITION": pos, "mode": mode}
-    normals = _attribute(gf, attrs, "NORMAL", aw, count, 3)
-    if normals is not None:
-        length = np.linalg.norm(normals, axis=1, keepdims=True)
-        out["NORMAL"] = np.divide(normals, length, out=np.zeros_like(normals), where=length > 0)
-    for name, width in (("TEXCOORD_0", 2), ("TEXCOORD_1", 2), ("TANGENT", 4), ("WEIGHTS_0", 4)):
-        out[name] = _attribute(gf, attrs, name, aw, count, width)
-    if attrs.get("JOINTS_0") is not None:
-        joints = gf.accessor(attrs["JOINTS_0"], aw + ".JOINTS_0", normalize=False)
-        if joints.shape != (count, 4) or joints.dtype.kind != "i":
-            gf.fail(aw + ".JOINTS_0", f"expected {count} VEC4 unsigned integer joint indices, got another shape or type")
-        out["JOINTS_0"] = joints
-    targets = []
-    for t, target in enumerate(prim.targets or []):
-        tw = f"{where}.targets[{t}]"
-        targets.append({name: _attribute(gf, target, name, tw, count, 3) for name in ("POSITION", "NORMAL")})
-    out["targets"] = targets
-    return out
-
-
-def _flat(prim: dict) -> dict:
-    """The primitive with its vertices split per triangle and flat (face) normals, for a mesh
-    whose other primitives have normals (spec 3.7.2.1: no normals => flat normals)."""
-    order = prim["faces"].reshape(-1)
-    out = {k: (v[order] if isinstance(v, np.ndarray) and k != "faces" else v) for k, v in prim.items()}
-    out["targets"] = [{k: (v[order] if v is not None else None) for k, v in t.items()} for t in prim["targets"]]
-    tri = prim["POSITION"][prim["faces"]]
-    n = np.cross(tri[:, 1] - tri[:, 0], tri[:, 2] - tri[:, 0])
-    length = np.linalg.norm(n, axis=1, keepdims=True)
-    n = np.divide(n, length, out=np.zeros_like(n), where=length > 0)
-    out["NORMAL"] = np.repeat(n, 3, axis=0)
-    out["faces"] = np.arange(len(order), dtype=np.int64).reshape(-1, 3)
-    return out
-
-
-def _mesh(gf: GltfFile, m: int) -> MeshData:
-    """meshes[m]: its primitives concatenated into one MeshData (see the module's choices)."""
-    mesh = gf.doc.meshes[m]
-    where = f"meshes[{m}]"
-    n_mat = len(gf.doc.materials or [])
-    prims = [_primitive(gf, m, j, p) for j, p in enumerate(mesh.primitives or [])]
-    if not prims:
-        gf.fail(where + ".primitives", "expected at least one primitive, got none")
-    n_targets = len(prims[0]["targets"])
-    for j, p in enumerate(prims):
-        if len(p["targets"]) != n_targets:
-            gf.fail(f"{where}.primitives[{j}].targets", f"expected {n_targets} morph targets like primitives[0], "
-                                                        f"got {len(p['targets'])}")
-    if any(p.get("NORMAL") is not None for p in prims):
-        prims = [p if p.get("NORMAL") is not None else _flat(p) for p in prims]
-
-    def joined(name, width, fill=0.0, need_all=False):
-        have = [p.get(name) is not None for p in prims]
-        if not any(have) or (need_all and not all(have)):
-            return None
-        parts = [p[name] if p.get(name) is not None else np.full((len(p["POSITION"]), width), fill) for p in prims]
-        return np.concatenate(parts).astype(np.int64 if name == "JOINTS_0" else np.float64)
-
-    faces, mat, base = [], [], 0
-    for j, (p, raw) in enumerate(zip(prims, mesh.primitives)):
-        faces.append(p["faces"] + base)
-        material = _index(gf, raw.material, n_mat, f"{where}.primitives[{j}].material", "material")
-        mat.append(np.full(len(p["faces"]), material, np.int64))
-        base += len(p["POSITION"])
-    weights = joined("WEIGHTS_0", 4)
-    if weights is not None:  # a primitive without skin weights follows joint 0 (JOINTS_0 filled with 0)
-        for j, p in enumerate(prims):
-            if p.get("WEIGHTS_0") is None:
-                start = sum(len(q["POSITION"]) for q in prims[:j])
-                weights[start:start + len(p["POSITION"]), 0] = 1.0
-    morph_pos = morph_nrm = None
-    if n_targets:
-        def stack(name):
-            if not any(t[name] is not None for p in prims for t in p["targets"]):
-                return None
-            return np.stack([np.concatenate([p["targets"][k][name] if p["targets"][k][name] is not None
-                                             else np.zeros((len(p["POSITION"]), 3)) for p in prims])
-                             for k in range(n_targets)])
-        morph_pos, morph_nrm = stack("POSITION"), stack("NORMAL")
-    default_weights = np.zeros(n_targets)
-    if mesh.weights is not None:
-        default_weights = _vector(gf, mesh.weights, n_targets, where + ".weights", None)
-    return MeshData(
-        name=mesh.name if mesh.name is not None else f"mesh{m}",
-        positions=np.concatenate([p["POSITION"] for p in prims]), faces=np.concatenate(faces),
-        face_material=np.concatenate(mat), normals=joined("NORMAL", 3),
-        uv0=joined("TEXCOORD_0", 2), uv1=joined("TEXCOORD_1", 2), tangents=joined("TANGENT", 4, need_all=True),
-        joints=joined("JOINTS_0", 4), weights=weights, morph_positions=morph_pos, morph_normals=morph_nrm,
-        morph_weights=default_weights, source=where)
 
 
 # ------------------------------------------------------------------------------------ animation, skins
@@ -394,11 +215,11 @@ def _channels(gf: GltfFile, nodes: tuple, meshes: tuple) -> tuple:
             target = ch.target
             if target is None or target.node is None:
                 continue  # spec 3.11: a channel may target something an extension defines
-            node = _index(gf, target.node, len(nodes), where + ".target.node", "node")
+            node = index_of(gf, target.node, len(nodes), where + ".target.node", "node")
             path = target.path
             if path not in ("translation", "rotation", "scale", "weights"):
                 gf.fail(where + ".target.path", f"expected translation, rotation, scale or weights, got {quoted(path)}")
-            s = _index(gf, ch.sampler, len(samplers), where + ".sampler", "sampler")
+            s = index_of(gf, ch.sampler, len(samplers), where + ".sampler", "sampler")
             sw = f"animations[{a}].samplers[{s}]"
             sampler = samplers[s]
             interp = sampler.interpolation or "LINEAR"
@@ -434,7 +255,7 @@ def _skins(gf: GltfFile) -> tuple:
     n_nodes = len(gf.doc.nodes or [])
     for k, skin in enumerate(gf.doc.skins or []):
         where = f"skins[{k}]"
-        joints = np.array([_index(gf, j, n_nodes, f"{where}.joints[{i}]", "node")
+        joints = np.array([index_of(gf, j, n_nodes, f"{where}.joints[{i}]", "node")
                            for i, j in enumerate(skin.joints or [])], np.int64)
         if len(joints) == 0:
             gf.fail(where + ".joints", "expected at least one joint, got none")
@@ -446,6 +267,6 @@ def _skins(gf: GltfFile) -> tuple:
                 gf.fail(where + ".inverseBindMatrices", f"expected {len(joints)} MAT4 matrices, got shape "
                                                         f"{inv.shape}")
         out.append(SkinSpec(joints=joints, inverse_bind=inv.astype(np.float64),
-                            skeleton=_index(gf, skin.skeleton, n_nodes, where + ".skeleton", "node"),
+                            skeleton=index_of(gf, skin.skeleton, n_nodes, where + ".skeleton", "node"),
                             source=where))
     return tuple(out)
