@@ -3,7 +3,8 @@
 A material is one row `params: (MATERIAL_SIZE,) float64` of the scene's material table; its
 columns are named in material_table.py. The legacy types read only these:
 
-  [0]     type: DIFFUSE = 0, METAL = 1, GLASS = 2, PLASTIC = 3 (PBR = 4: pbr.py)
+  [0]     type: DIFFUSE = 0, METAL = 1, GLASS = 2, PLASTIC = 3 (PBR = 4: pbr.py, which reads
+          the other columns; `needs_outward_normal` says which normal it wants)
   [1:4]   colour r, g, b in [0, 1]: diffuse albedo; metal reflectance at normal incidence (F0);
           glass transmission tint; plastic base albedo
   [4]     roughness in [0, 1], perceptual: the GGX width is alpha = roughness². Below
@@ -57,6 +58,7 @@ from .material_table import (  # noqa: F401  (re-exported: the types and the row
     DIFFUSE, GLASS, M_ALPHA, M_ATTEN_COLOR, M_ATTEN_DIST, M_COLOR, M_EMISSION, M_IOR, M_ROUGHNESS, M_SPECULAR,
     M_SPECULAR_COLOR, M_TYPE, MATERIAL_SIZE, METAL, PBR, PLASTIC, TEXTURE_COLUMNS,
 )
+from .pbr import is_volume, pbr_eval, pbr_has_delta_lobe, pbr_has_nonspecular_lobe, pbr_sample
 
 MATERIAL_NAMES = {DIFFUSE: "diffuse", METAL: "metal", GLASS: "glass", PLASTIC: "plastic"}
 
@@ -150,6 +152,8 @@ def has_nonspecular_lobe(params):
     """True when bsdf_eval can be non-zero, i.e. next-event estimation is worth a shadow ray.
     False for smooth metal and smooth glass, which are pure delta lobes."""
     t = params[P_TYPE]
+    if t == PBR:
+        return pbr_has_nonspecular_lobe(params)
     if t == DIFFUSE or t == PLASTIC:
         return True
     return not _is_smooth(params)
@@ -158,8 +162,21 @@ def has_nonspecular_lobe(params):
 @njit(cache=True)
 def has_delta_lobe(params):
     """True when bsdf_sample can return a delta lobe (is_delta): smooth metal, smooth glass,
-    and plastic with a smooth coat."""
+    and plastic with a smooth coat; for PBR see pbr.pbr_has_delta_lobe."""
+    if params[P_TYPE] == PBR:
+        return pbr_has_delta_lobe(params)
     return params[P_TYPE] != DIFFUSE and _is_smooth(params)
+
+
+@njit(cache=True)
+def needs_outward_normal(params):
+    """True when the caller must pass the outward geometric normal (wo.z > 0 = arriving from
+    outside) instead of the normal faced towards wo: GLASS, and PBR refracting solids
+    (transmission > 0 with thickness > 0, KHR_materials_volume)."""
+    t = params[P_TYPE]
+    if t == GLASS:
+        return True
+    return t == PBR and is_volume(params)
 
 
 @njit(cache=True)
@@ -167,6 +184,8 @@ def bsdf_eval(params, wox, woy, woz, wix, wiy, wiz):
     """(fr, fg, fb, pdf): the BSDF f(wo, wi) without the cosine, and the solid-angle density of
     wi under bsdf_sample (mixture density over the non-delta lobes). Delta lobes add 0."""
     t = params[P_TYPE]
+    if t == PBR:
+        return pbr_eval(params, wox, woy, woz, wix, wiy, wiz)
     cr, cg, cb = params[P_COLOR], params[P_COLOR + 1], params[P_COLOR + 2]
     smooth = _is_smooth(params)
     # perceptual roughness: alpha = roughness² (makes roughness closer to linear in appearance)
@@ -191,6 +210,8 @@ def bsdf_sample(params, wox, woy, woz, u0, u1, u2):
     f |cos θi| / pdf per channel. u0 chooses the lobe, (u1, u2) the direction; all in [0, 1).
     For a delta lobe pdf is 0.0 and is_delta True; a failed sample has weight 0."""
     t = params[P_TYPE]
+    if t == PBR:
+        return pbr_sample(params, wox, woy, woz, u0, u1, u2)
     cr, cg, cb = params[P_COLOR], params[P_COLOR + 1], params[P_COLOR + 2]
     smooth = _is_smooth(params)
     alpha = params[P_ROUGHNESS] * params[P_ROUGHNESS]  # perceptual roughness, as in bsdf_eval
