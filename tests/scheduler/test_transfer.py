@@ -381,3 +381,49 @@ def test_a_scene_used_within_the_hour_is_kept_even_past_the_limit(r, scene, tmp_
     second = send(r, scene)[0]
     cache.materialise(r, second)
     assert cache.scene_dir(first).is_dir() and cache.scene_dir(second).is_dir()
+
+
+# ---------------------------------------------------------------------------------------------
+# the head keeps the files of unfinished jobs
+
+
+@pytest.fixture
+def head(redis_url, tmp_path, monkeypatch):
+    from lampyr.scheduler.head import Head
+
+    monkeypatch.setenv("LAMPYR_CACHE", str(tmp_path / "head-cache"))
+    h = Head(tmp_path / "state", redis_url, lease_seconds=5)
+    h.start()
+    return h
+
+
+def _submit(head, shot):
+    from lampyr.scheduler.submit import submit_request
+
+    job = submit_request(head.r, shot, {}, None, tile_size=8, batch_samples=3)
+    head.take_commands()
+    return job
+
+
+def test_the_head_puts_back_the_files_redis_lost_before_queueing(head, scene):
+    _submit(head, scene)
+    head.dispatch()  # the files were renewed just now
+    keys = {k: head.r.get(k) for k in head.r.scan_iter(match=P.key("blob", "*"))}
+    head.r.flushdb()  # Redis restarted without its data
+    head.reconcile()
+    assert head.dispatch() > 0
+    assert {k: head.r.get(k) for k in head.r.scan_iter(match=P.key("blob", "*"))} == keys
+
+
+@pytest.mark.parametrize("cancelled", [False, True])
+def test_the_head_renews_the_files_of_unfinished_jobs_only(head, scene, cancelled):
+    job = _submit(head, scene)
+    if cancelled:
+        head.cmd_cancel(job)
+    for k in head.r.scan_iter(match=P.key("*")):
+        if k.startswith(P.key("blob").encode()) or k.startswith(P.key("scene").encode()):
+            head.r.expire(k, 100)
+    head._held.clear()
+    head.hold_files(every=0)
+    ttls = [head.r.ttl(k) for k in head.r.scan_iter(match=P.key("blob", "*"))]
+    assert ttls and all(t <= 100 if cancelled else t > 100 for t in ttls)
