@@ -308,3 +308,25 @@ class GltfFile:
         if cols > 1:  # stored column by column: element [c, r] is row r of column c
             return np.ascontiguousarray(np.transpose(out, (0, 2, 1)))
         return out.reshape(count) if rows == 1 else out.reshape(count, rows)
+
+
+def index_of(gf: GltfFile, value, n: int, where: str, what: str) -> int:
+    """A reference to item `value` of a list of `n` (-1 when absent)."""
+    if value is None:
+        return -1
+    if isinstance(value, bool) or not isinstance(value, int) or not 0 <= value < n:
+        gf.fail(where, f"expected a {what} index below {n}, got {quoted(value)}")
+    return value
+
+
+def vector(gf: GltfFile, value, n: int, where: str, default) -> np.ndarray:
+    """`n` finite numbers from the JSON as float64 (n,), or `default` when absent."""
+    if value is None:
+        return np.array(default, np.float64)
+    arr = np.asarray(value, dtype=object)
+    if arr.shape != (n,) or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value):
+        gf.fail(where, f"expected {n} numbers, got {quoted(value)}")
+    out = np.array(value, np.float64)
+    if not np.all(np.isfinite(out)):
+        gf.fail(where, f"expected finite numbers, got {quoted(value)}")
+    return out

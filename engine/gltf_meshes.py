@@ -9,32 +9,11 @@ from __future__ import annotations
 
 import numpy as np
 
-from lampyr.engine.gltf_accessors import GltfFile, quoted
+from lampyr.engine.gltf_accessors import GltfFile, index_of, quoted, vector
 from lampyr.engine.scene_data import MeshData
 
 MODE_NAMES = {0: "POINTS", 1: "LINES", 2: "LINE_LOOP", 3: "LINE_STRIP", 4: "TRIANGLES",
               5: "TRIANGLE_STRIP", 6: "TRIANGLE_FAN"}
-
-
-def index_of(gf: GltfFile, value, n: int, where: str, what: str) -> int:
-    """A reference to item `value` of a list of `n` (-1 when absent)."""
-    if value is None:
-        return -1
-    if isinstance(value, bool) or not isinstance(value, int) or not 0 <= value < n:
-        gf.fail(where, f"expected a {what} index below {n}, got {quoted(value)}")
-    return value
-
-
-def vector(gf: GltfFile, value, n: int, where: str, default) -> np.ndarray:
-    if value is None:
-        return np.array(default, np.float64)
-    arr = np.asarray(value, dtype=object)
-    if arr.shape != (n,) or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value):
-        gf.fail(where, f"expected {n} numbers, got {quoted(value)}")
-    out = np.array(value, np.float64)
-    if not np.all(np.isfinite(out)):
-        gf.fail(where, f"expected finite numbers, got {quoted(value)}")
-    return out
 
 
 def triangle_list(indices: np.ndarray, mode: int) -> np.ndarray:

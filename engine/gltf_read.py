@@ -25,9 +25,9 @@ import math
 
 import numpy as np
 
-from lampyr.engine.gltf_accessors import GltfFile, quoted
+from lampyr.engine.gltf_accessors import GltfFile, index_of, quoted, vector
 from lampyr.engine.gltf_materials import MATERIAL_EXTENSIONS, MaterialReader
-from lampyr.engine.gltf_meshes import index_of, read_mesh, vector
+from lampyr.engine.gltf_meshes import read_mesh
 from lampyr.engine.scene_data import (LIGHT_DIRECTIONAL, LIGHT_POINT, LIGHT_SPOT, CameraSpec, Channel,
                                       LightSpec, NodeSpec, SceneData, SkinSpec)
 
