@@ -11,7 +11,6 @@ import math
 
 import numpy as np
 import pytest
-from PIL import Image as PILImage
 
 from examples.gltf_builder import (CLAMP_TO_EDGE, MIRRORED_REPEAT, REPEAT, GltfBuilder, tex,
                                    texture_transform)
@@ -19,7 +18,7 @@ from lampyr.engine.gltf_materials import uv_transform_matrix
 from lampyr.engine.gltf_read import read_gltf
 from lampyr.engine.scene_data import (ALPHA_BLEND, ALPHA_MASK, ALPHA_OPAQUE, WRAP_CLAMP, WRAP_MIRROR,
                                       WRAP_REPEAT)
-from tests.engine.gltf_files import quad_scene, save_valid
+from tests.engine.gltf_files import QUAD_FACES, QUAD_NORMALS, QUAD_POSITIONS, QUAD_UVS, quad_scene, save_valid
 
 CHECKER = np.zeros((4, 6, 4), np.uint8)  # rows top to bottom; each pixel distinct
 CHECKER[..., 0] = np.arange(4)[:, None] * 60
@@ -36,8 +35,6 @@ def _textured(tmp_path, store="buffer", sampler=None, ext="glb", **tex_kw):
     b = GltfBuilder()
     img = b.add_image(CHECKER, store=store, uri="maps/stone wall.png" if store == "file" else None)
     t = b.add_texture(img, b.add_sampler(**sampler) if sampler is not None else None)
-    from tests.engine.gltf_files import QUAD_FACES, QUAD_NORMALS, QUAD_POSITIONS, QUAD_UVS
-
     mat = b.add_material("textured", base_color_tex=tex(t, **tex_kw))
     prim = b.primitive(QUAD_POSITIONS, QUAD_NORMALS, QUAD_UVS, QUAD_UVS, indices=QUAD_FACES, material=mat)
     b.add_node("n", mesh=b.add_mesh([prim]))
@@ -179,8 +176,6 @@ def test_sampler_wrap_modes(tmp_path, sampler, expected):
 def test_normal_texture_keeps_its_scale_and_uv_set(tmp_path):
     b = quad_scene()
     b.doc["materials"][0]["normalTexture"] = tex(b.add_texture(b.add_image(CHECKER)), texcoord=1, scale=0.4)
-    from tests.engine.gltf_files import QUAD_UVS
-
     b.doc["meshes"][0]["primitives"][0]["attributes"]["TEXCOORD_1"] = b.add_accessor(QUAD_UVS, type="VEC2")
     ref = read_gltf(save_valid(b, tmp_path / "n.glb"), "scene").materials[0].normal_tex
     assert (ref.scale, ref.texcoord) == (0.4, 1)

@@ -11,16 +11,17 @@ from __future__ import annotations
 import math
 
 import numpy as np
+import pygltflib
 import pytest
 import trimesh
 from scipy.spatial.transform import Rotation
 
-from examples.gltf_builder import (FLOAT, SHORT, TRIANGLE_FAN, TRIANGLE_STRIP, TRIANGLES, UNSIGNED_BYTE,
+from examples.gltf_builder import (SHORT, TRIANGLE_FAN, TRIANGLE_STRIP, TRIANGLES, UNSIGNED_BYTE,
                                    UNSIGNED_SHORT, GltfBuilder, quat_xyzw)
 from lampyr.engine.gltf_read import read_gltf
 from lampyr.engine.scene_data import LIGHT_DIRECTIONAL, LIGHT_POINT, LIGHT_SPOT
-from tests.engine.gltf_files import (QUAD_FACES, QUAD_NORMALS, QUAD_POSITIONS, QUAD_UVS, quad_scene,
-                                     save_valid)
+from tests.engine.gltf_files import QUAD_FACES, QUAD_NORMALS, QUAD_POSITIONS, QUAD_UVS, rewrite_json, save_valid
+from tests.gltf_validator import assert_valid
 
 
 @pytest.fixture(params=["glb", "gltf"])
@@ -53,9 +54,6 @@ def test_file_without_scenes_shows_every_root_node(tmp_path):
     a, c, d = b.add_node("a"), b.add_node("c"), b.add_node("d")
     b.add_child(a, c)
     path = b.save(tmp_path / "s.gltf")
-    from tests.engine.gltf_files import rewrite_json
-    from tests.gltf_validator import assert_valid
-
     rewrite_json(path, lambda doc: (doc.pop("scenes"), doc.pop("scene")))
     assert_valid(path)
     scene = read_gltf(path, "scene")
@@ -103,8 +101,6 @@ def test_node_world_transforms_agree_with_trimesh(tmp_path, ext, name):
 def test_node_matrix_is_read_column_major(tmp_path):
     # spec 3.5.3: matrix is column-major, so numbers 12, 13, 14 of the list are the translation
     path, index = _hierarchy(tmp_path, "gltf")
-    import pygltflib
-
     raw = pygltflib.GLTF2().load(str(path)).nodes[index["mid"]].matrix
     node = read_gltf(path, "scene").nodes[index["mid"]]
     np.testing.assert_array_equal(node.matrix[:3, 3], raw[12:15])
@@ -115,8 +111,6 @@ def test_node_matrix_is_read_column_major(tmp_path):
 def test_rotation_is_reordered_to_w_x_y_z(tmp_path):
     # scene_data: lampyr stores w, x, y, z; the file (pygltflib) x, y, z, w
     path, index = _hierarchy(tmp_path, "glb")
-    import pygltflib
-
     x, y, z, w = pygltflib.GLTF2().load(str(path)).nodes[index["top"]].rotation
     np.testing.assert_allclose(read_gltf(path, "scene").nodes[index["top"]].rotation, [w, x, y, z], rtol=1e-7)
 
@@ -185,8 +179,6 @@ def test_vertex_counts_and_uvs_agree_with_trimesh_and_pygltflib(tmp_path, ext):
     # trimesh turns glTF UVs (v down, spec 3.7.2.1) into its own convention v' = 1 - v
     np.testing.assert_allclose(mesh.uv0[:, 0], theirs.visual.uv[:, 0], atol=1e-7)
     np.testing.assert_allclose(mesh.uv0[:, 1], 1.0 - np.asarray(theirs.visual.uv)[:, 1], atol=1e-7)
-    import pygltflib
-
     doc = pygltflib.GLTF2().load(str(path))
     assert doc.accessors[doc.meshes[0].primitives[0].attributes.TEXCOORD_0].count == len(mesh.uv0)
 
