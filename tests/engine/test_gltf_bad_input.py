@@ -14,7 +14,8 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from examples.gltf_builder import LINE_LOOP, LINE_STRIP, LINES, POINTS, GltfBuilder, jpeg_bytes, png_bytes, tex
+from examples.gltf_builder import (FLOAT, LINE_LOOP, LINE_STRIP, LINES, POINTS, UNSIGNED_INT, GltfBuilder, jpeg_bytes,
+                                   png_bytes, tex)
 from lampyr.engine.gltf_read import read_gltf
 from lampyr.errors import AssetError
 from tests.engine.gltf_files import (QUAD_FACES, QUAD_POSITIONS, QUAD_UVS, quad_scene, rewrite_json,
@@ -222,3 +223,64 @@ def test_unsupported_optional_extensions_are_listed_not_refused(tmp_path):
     b.use_extension("EXT_meshopt_compression")
     scene = read_gltf(save_valid(b, tmp_path / "opt.glb"), "scene")
     assert scene.extensions_ignored == ("EXT_meshopt_compression", "KHR_materials_sheen")
+
+
+# ------------------------------------------------------------------------------------ structure
+
+
+def test_node_with_two_parents_is_refused(tmp_path):
+    b = GltfBuilder()
+    a, c, child = b.add_node("a"), b.add_node("c"), b.add_node("child")
+    b.add_child(a, child)
+    b.add_scene([a, c])
+    path = b.save(tmp_path / "tree.gltf")
+    rewrite_json(path, lambda doc: doc["nodes"][c].update(children=[child]))
+    text = _error(path)
+    assert f'"tree.gltf" nodes[{c}].children' in text and "one parent" in text
+    assert validator_pointers(path)  # spec 3.5.3: the hierarchy must be disjoint strict trees
+
+
+def test_node_loop_is_refused(tmp_path):
+    b = GltfBuilder()
+    a, c = b.add_node("a"), b.add_node("c")
+    b.add_child(a, c)
+    b.add_child(c, a)
+    b.doc["scenes"] = [{"nodes": []}]
+    path = b.save(tmp_path / "loop.gltf")
+    assert '"loop.gltf" nodes[0].children' in _error(path)
+    assert validator_pointers(path)
+
+
+def test_key_times_that_go_backwards_are_refused(tmp_path):
+    b = GltfBuilder()
+    b.add_node("n")
+    b.add_animation([(0, "translation", [0.0, 1.0, 0.5], np.zeros((3, 3)), "LINEAR")])
+    path = b.save(tmp_path / "anim.glb")
+    assert '"anim.glb" animations[0].samplers[0].input' in _error(path)
+    assert validator_pointers(path)
+
+
+def test_animation_output_of_the_wrong_length_is_refused(tmp_path):
+    b = GltfBuilder()
+    b.add_node("n")
+    b.add_animation([(0, "translation", [0.0, 1.0], np.zeros((2, 3)), "LINEAR")])
+    b.doc["animations"][0]["samplers"][0]["output"] = b.add_accessor(np.zeros((3, 3)), type="VEC3")
+    path = b.save(tmp_path / "anim.glb")
+    text = _error(path)
+    assert '"anim.glb" animations[0].samplers[0].output' in text and "2 keys" in text
+    assert validator_pointers(path)
+
+
+def test_sparse_index_past_the_accessors_count_is_refused(tmp_path):
+    b = GltfBuilder()
+    b.doc["accessors"] = [{"componentType": FLOAT, "count": 2, "type": "SCALAR", "sparse": {
+        "count": 1, "indices": {"bufferView": b.add_buffer_view(np.array([5], np.uint32).tobytes()),
+                                "componentType": UNSIGNED_INT},
+        "values": {"bufferView": b.add_buffer_view(np.array([1.0], np.float32).tobytes())}}}]
+    b.add_node("n")
+    b.add_animation([(0, "translation", [0.0, 1.0], np.zeros((2, 3)), "LINEAR")])
+    b.doc["animations"][0]["samplers"][0]["input"] = 0
+    path = b.save(tmp_path / "sparse.glb")
+    text = _error(path)
+    assert '"sparse.glb" accessors[0].sparse.indices' in text and "below the accessor's count 2" in text
+    assert validator_pointers(path)
