@@ -99,3 +99,19 @@ def diffuse_fresnel(eta):
         return _diffuse_fresnel_external(eta)
     n = 1.0 / eta
     return 1.0 - (1.0 - _diffuse_fresnel_external(n)) / (n * n)
+
+
+@njit(cache=True)
+def schlick_weight(c):
+    """(1 - |c|)^5, Schlick's (1994) interpolation weight between F0 and F90."""
+    x = 1.0 - min(abs(c), 1.0)
+    x2 = x * x
+    return x2 * x2 * x
+
+
+@njit(cache=True)
+def ior_f0(ior):
+    """Reflectance at normal incidence of an interface air | ior: ((ior - 1) / (ior + 1))²
+    (Fresnel equations at normal incidence; KHR_materials_ior). ior = 0 gives 1."""
+    r = (ior - 1.0) / (ior + 1.0)
+    return r * r

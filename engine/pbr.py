@@ -26,12 +26,13 @@ The model (glTF 2.0 specification, Appendix B "BRDF Implementation"; alpha = rou
                s = specular (KHR_materials_ior and the KHR_materials_specular README: F0 scaled by
                specularColor and s, F90 = s; the base weighted with max over the channels).
   The Appendix's sample `fresnel_mix` weights the base by 1 - F(v·h); its own discussion
-  ("Coupling Diffuse and Specular Reflection") says that breaks energy conservation (a white
-  dielectric then reflects up to ~1.6 at grazing view) and names the form used here,
-  (1 - F(n·l))(1 - F(n·v)) (Burley 2012, "Physically-based shading at Disney", §5.3), which
-  conserves energy and is reciprocal. The spec asks a physically based renderer for both.
+  ("Coupling Diffuse and Specular Reflection") says that breaks energy conservation (measured
+  here: a smooth white dielectric then returns 1.55 of the light at cos θo = 0.1) and names,
+  after Burley 2012 ("Physically-based shading at Disney"), the form used here,
+  (1 - F(n·l))(1 - F(n·v)), which conserves energy and is reciprocal, as the Appendix asks of
+  a physically based renderer ("Complete Model").
   Clearcoat (KHR_materials_clearcoat README, `fresnel_coat`): the whole material below is
-  scaled by (1 - c Fc(n·v)) and a second GGX lobe cc Fc(n·v) D_c V_c (alpha_c = clearcoat
+  scaled by (1 - cc Fc(n·v)) and a second GGX lobe cc Fc(n·v) D_c V_c (alpha_c = clearcoat
   roughness²) is added, Fc Schlick with f0 = 0.04 (ior 1.5). As in the README it depends on
   n·v only, so the coat is not reciprocal; the clearcoat normal is the shading normal.
   Transmission (KHR_materials_transmission README) replaces the diffuse base:
@@ -57,7 +58,7 @@ import math
 import numpy as np
 from numba import njit
 
-from .fresnel import INDEX_MATCHED, fresnel_dielectric
+from .fresnel import INDEX_MATCHED, fresnel_dielectric, ior_f0, schlick_weight
 from .lobes import NO_SAMPLE, SMOOTH_ROUGHNESS, cosine_hemisphere, glass_eval, glass_sample
 from .material_table import (
     M_ALPHA, M_ATTEN_COLOR, M_ATTEN_DIST, M_CLEARCOAT, M_CLEARCOAT_ROUGHNESS, M_COLOR, M_EMISSION, M_IOR,
@@ -75,22 +76,6 @@ COAT_F0 = 0.04
 ROUGH_THIN_TRANSMISSION = 0.995
 # floor of a specular lobe's albedo estimate, so a lobe with f > 0 is never sampled with probability 0
 LOBE_FLOOR = 0.02
-
-
-@njit(cache=True)
-def schlick_weight(c):
-    """(1 - |c|)^5, Schlick's (1994) interpolation weight between F0 and F90."""
-    x = 1.0 - min(abs(c), 1.0)
-    x2 = x * x
-    return x2 * x2 * x
-
-
-@njit(cache=True)
-def ior_f0(ior):
-    """Reflectance at normal incidence of an interface air | ior: ((ior - 1) / (ior + 1))²
-    (Fresnel equations at normal incidence; KHR_materials_ior). ior = 0 gives 1."""
-    r = (ior - 1.0) / (ior + 1.0)
-    return r * r
 
 
 @njit(cache=True)
@@ -189,7 +174,8 @@ def _lobe_probabilities(m, woz):
     fm = (br + (1.0 - br) * w + bg + (1.0 - bg) * w + bb + (1.0 - bb) * w) / 3.0
     fr, fg, fb, fmax = dielectric_fresnel(m, woz)
     a = 1.0 - cc * coat_fresnel(woz)
-    e_spec = a * (metal * max(fm, LOBE_FLOOR) + layer_weight(m) * max((fr + fg + fb) / 3.0, LOBE_FLOOR * m[M_SPECULAR]))
+    e_layer = max((fr + fg + fb) / 3.0, LOBE_FLOOR * m[M_SPECULAR])
+    e_spec = a * (metal * max(fm, LOBE_FLOOR) + layer_weight(m) * e_layer)
     e_diff = a * (1.0 - metal) * (1.0 - t) * (1.0 - fmax) * mean_base
     e_coat = cc * coat_fresnel(woz)
     e_thin = 0.0

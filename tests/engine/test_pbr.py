@@ -444,7 +444,8 @@ def test_absorption_is_beer_lambert():
 
 def test_infinite_attenuation_distance_absorbs_nothing():
     # KHR_materials_volume: attenuationDistance defaults to +infinity, "no attenuation"
-    assert pbr_absorption(row(transmission=1.0, thickness=1.0, attenuation_color=(0.5, 0.5, 0.5)), 10.0) == (1.0, 1.0, 1.0)
+    m = row(transmission=1.0, thickness=1.0, attenuation_color=(0.5, 0.5, 0.5))
+    assert pbr_absorption(m, 10.0) == (1.0, 1.0, 1.0)
 
 
 # --------------------------------------------------------------------------- for the integrator
