@@ -16,8 +16,8 @@ Redis keys (prefix `lampyr:`):
 | `epoch` | string | head | random token; a missing epoch means Redis lost its data |
 | `config` | hash | head | lease_seconds, max_attempts |
 | `control` | list | CLI, web page | JSON commands for the head (submit, retry, pause, resume, cancel, refine, priority) |
-| `scene:<sha256>` | string, TTL | CLI, head | a scene's manifest (JSON, transfer.py): its files' shot-relative paths, sizes, sha256 and chunk hashes, and which one is the shot; named by the sha256 of its bytes |
-| `blob:<sha256>` | string, TTL | CLI, head | one chunk of a scene file (at most `chunk_bytes` of the manifest, 16 MiB), named by the sha256 of its bytes; shared by every scene that holds the same bytes |
+| `scene:<sha256>` | string, TTL | CLI, web page, head | a scene's manifest (JSON, transfer.py): its files' shot-relative paths, sizes, sha256 and chunk hashes, and which one is the shot; named by the sha256 of its bytes |
+| `blob:<sha256>` | string, TTL | CLI, web page, head | one chunk of a scene file (at most `chunk_bytes` of the manifest, 16 MiB), named by the sha256 of its bytes; shared by every scene that holds the same bytes |
 | `job:<id>` | hash | head | live status of a job (JSON values), read by `status` |
 | `jobs` | zset | head | job ids scored by submission time |
 | `inflight` | hash | head | batch id → current ticket |
