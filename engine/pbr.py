@@ -118,8 +118,15 @@ def _coat_smooth(m):
 
 
 @njit(cache=True)
+def refraction_ior(m):
+    """The index a volume refracts with: M_IOR, or 1 (no bending) for ior <= 0, which the
+    KHR_materials_specular README uses only to reach f0 = 1 and calls unfit for volumes."""
+    return m[M_IOR] if m[M_IOR] > 0.0 else 1.0
+
+
+@njit(cache=True)
 def _glass_smooth(m):
-    return m[M_ROUGHNESS] < SMOOTH_ROUGHNESS or abs(m[M_IOR] - 1.0) < INDEX_MATCHED
+    return m[M_ROUGHNESS] < SMOOTH_ROUGHNESS or abs(refraction_ior(m) - 1.0) < INDEX_MATCHED
 
 
 @njit(cache=True)
@@ -181,7 +188,7 @@ def _lobe_probabilities(m, woz):
     e_thin = 0.0
     e_glass = 0.0
     if volume:
-        f = fresnel_dielectric(woz, m[M_IOR])
+        f = fresnel_dielectric(woz, refraction_ior(m))
         e_glass = a * (1.0 - metal) * t * (f + (1.0 - f) * mean_base)
     else:
         e_thin = thin_factor(m, woz) * mean_base
@@ -236,7 +243,7 @@ def pbr_eval(m, wox, woy, woz, wix, wiy, wiz):
             fb += v
             pdf += p_coat * ggx_g1(woz, ac) * dc / (4.0 * woz)
     if is_volume(m) and not _glass_smooth(m):
-        gr, gg, gb, gp = glass_eval(br, bg, bb, alpha, m[M_IOR], wox, woy, woz, wix, wiy, wiz)
+        gr, gg, gb, gp = glass_eval(br, bg, bb, alpha, refraction_ior(m), wox, woy, woz, wix, wiy, wiz)
         w = (1.0 - metal) * m[M_TRANSMISSION] * _coat_crossing(m, woz, wiz)
         fr += w * gr
         fg += w * gg
@@ -302,7 +309,7 @@ def pbr_sample(m, wox, woy, woz, u0, u1, u2):
         u = min((u0 - c4) / p_glass, 1.0 - 1e-16)
         alpha = m[M_ROUGHNESS] * m[M_ROUGHNESS]
         wix, wiy, wiz, gr, gg, gb, gp, delta = glass_sample(
-            m[M_COLOR], m[M_COLOR + 1], m[M_COLOR + 2], alpha, _glass_smooth(m), m[M_IOR],
+            m[M_COLOR], m[M_COLOR + 1], m[M_COLOR + 2], alpha, _glass_smooth(m), refraction_ior(m),
             wox, woy, woz, u, u1, u2)
         if not (gr > 0.0 or gg > 0.0 or gb > 0.0):
             return NO_SAMPLE

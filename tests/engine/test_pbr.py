@@ -484,3 +484,29 @@ def test_opaque_and_volume_materials_block_shadow_rays(p):
 def test_opaque_pbr_does_not_transmit():
     m = row(base=GOLD, metallic=0.3, roughness=0.4)
     assert bsdf_eval(m, *direction(0.7), *direction(-0.5)) == (0.0, 0.0, 0.0, 0.0)
+
+
+@pytest.mark.parametrize("p", [
+    pytest.param(dict(base=(0.0, 0.0, 0.0), metallic=0.0, roughness=0.5), id="black"),
+    pytest.param(dict(base=(0.0, 0.0, 0.0), metallic=1.0, roughness=0.5), id="black-metal"),
+    pytest.param(dict(base=GOLD, metallic=0.0, roughness=0.5, specular=0.0), id="no-specular"),
+    pytest.param(dict(base=GOLD, metallic=0.0, roughness=0.5, ior=0.0, specular_color=(0.3, 0.5, 0.9)),
+                 id="ior0-spec-gloss"),
+    pytest.param(dict(base=GOLD, metallic=0.0, roughness=0.5, ior=0.0, transmission=1.0, thickness=1.0),
+                 id="ior0-volume"),
+    pytest.param(dict(base=GOLD, metallic=0.0, roughness=0.5, ior=1.0, transmission=1.0, thickness=1.0),
+                 id="index-matched-volume"),
+    pytest.param(dict(base=GOLD, metallic=1.0, roughness=0.3, transmission=1.0), id="metal-transmission"),
+    pytest.param(dict(base=WHITE, metallic=0.0, roughness=0.0, clearcoat=1.0), id="full-smooth-coat"),
+])
+@pytest.mark.parametrize("cos_o", [1.0, 0.3, 1e-6, -0.5])
+def test_edge_materials_give_finite_non_negative_results(p, cos_o):
+    # rule of thumb: a BSDF never returns NaN, infinity or a negative weight, whatever the row
+    m = row(**p)
+    wo = direction(cos_o)
+    s = _sample_many(m, *wo, np.random.default_rng(32).random((2000, 3)))
+    wi = random_upper(np.random.default_rng(33), 2000)
+    wi[1::2, 2] *= -1.0  # both sides of the surface
+    e = _eval_many(m, np.tile(wo, (2000, 1)), wi)
+    assert np.all(np.isfinite(s)) and np.all(s[:, 3:7] >= 0.0)
+    assert np.all(np.isfinite(e)) and np.all(e >= 0.0)
