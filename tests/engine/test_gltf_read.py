@@ -163,6 +163,19 @@ def test_primitives_are_concatenated_with_a_material_per_face(tmp_path):
     np.testing.assert_array_equal(mesh.face_material, [red, red, -1])  # -1: the spec's default material
 
 
+def test_primitives_sharing_vertex_accessors_store_the_vertices_once(tmp_path):
+    # spec 3.7.2.1 lets primitives of a mesh share attribute accessors and differ in indices
+    b = GltfBuilder()
+    red, blue = b.add_material("red"), b.add_material("blue")
+    first = b.primitive(QUAD_POSITIONS, QUAD_NORMALS, indices=QUAD_FACES[:1], material=red)
+    second = dict(first, indices=b.add_accessor(QUAD_FACES[1], UNSIGNED_SHORT, "SCALAR"), material=blue)
+    b.add_node("n", mesh=b.add_mesh([first, second]))
+    mesh = read_gltf(save_valid(b, tmp_path / "shared.glb"), "scene").meshes[0]
+    np.testing.assert_array_equal(mesh.positions, QUAD_POSITIONS)
+    np.testing.assert_array_equal(mesh.faces, QUAD_FACES)
+    np.testing.assert_array_equal(mesh.face_material, [red, blue])
+
+
 def test_vertex_counts_and_uvs_agree_with_trimesh_and_pygltflib(tmp_path, ext):
     rng = np.random.default_rng(3)
     pos = rng.normal(size=(30, 3))
