@@ -9,11 +9,14 @@ differences,
     e1 = du1 T + dv1 B,  e2 = du2 T + dv2 B  =>  T = (dv2 e1 - dv1 e2) / d,  B = (du1 e2 - du2 e1) / d,
     d = du1 dv2 - du2 dv1,
 
-and borrows two of MikkTSpace's choices: at each corner the triangle's vectors are projected into
-the vertex normal's plane, normalised and weighted by the corner's angle before they are summed.
-The sum is Gram-Schmidt orthogonalised against the normal. MikkTSpace's splitting of a vertex whose
-triangles disagree (a mirrored UV seam on shared vertices) is not done: such a vertex takes the
-sum. The measured difference to MikkTSpace is in bench/textures.py and tests/engine/test_tangents.py.
+and borrows three of MikkTSpace's choices: at each corner the triangle's vectors are projected
+into the vertex normal's plane, normalised and weighted by the corner's angle before they are
+summed; and triangles of opposite UV orientation (sign of d) are summed apart, as MikkTSpace keeps
+them in separate groups. MikkTSpace then gives such a vertex two tangent frames; one row per vertex
+cannot, so the group of larger total corner angle wins (a mirrored UV seam on shared vertices is
+right on one side only; an exporter splits those vertices). The sum is Gram-Schmidt
+orthogonalised against the normal. The measured difference to MikkTSpace is in bench/textures.py
+and tests/engine/test_tangents.py.
 
 Handedness, glTF 2.0 section 3.7.2.1: bitangent = cross(normal, tangent.xyz) · w. The normal
 texture's +Y is "up" in the image (section 3.9.3), which in glTF UVs (v grows downwards) is
@@ -43,7 +46,8 @@ def _any_perpendicular(n: np.ndarray) -> np.ndarray:
 
 
 def _face_frames(positions, uvs, faces):
-    """Per triangle (T = dP/du, U = -dP/dv, ok): the UV derivatives (F, 3) and which are usable."""
+    """Per triangle (T = dP/du, U = -dP/dv, ok, d): the UV derivatives (F, 3), which are usable,
+    and the UV determinant d (its sign is the triangle's orientation in UV space)."""
     p = positions[faces]
     t = uvs[faces]
     e1, e2 = p[:, 1] - p[:, 0], p[:, 2] - p[:, 0]
@@ -55,7 +59,7 @@ def _face_frames(positions, uvs, faces):
     inv = np.where(ok, 1.0 / np.where(ok, d, 1.0), 0.0)
     T = (dv2[:, None] * e1 - dv1[:, None] * e2) * inv[:, None]
     B = (du1[:, None] * e2 - du2[:, None] * e1) * inv[:, None]
-    return T, -B, ok
+    return T, -B, ok, d
 
 
 def _corner_angles(positions, faces) -> np.ndarray:
@@ -82,17 +86,23 @@ def vertex_tangents(positions, normals, uvs, faces) -> np.ndarray:
     uvs = np.asarray(uvs, np.float64)
     faces = np.asarray(faces, np.int64).reshape(-1, 3)
     nv = len(positions)
-    T, U, ok = _face_frames(positions, uvs, faces)
+    T, U, ok, d = _face_frames(positions, uvs, faces)
     angles = np.where(ok[:, None], _corner_angles(positions, faces), 0.0)
-    acc_t = np.zeros((nv, 3))
-    acc_u = np.zeros((nv, 3))
+    group = np.where(d < 0.0, 1, 0)  # UV orientation: 0 counter-clockwise, 1 clockwise
+    acc_t = np.zeros((2, nv, 3))
+    acc_u = np.zeros((2, nv, 3))
+    weight = np.zeros((2, nv))
     for k in range(3):
         idx = faces[:, k]
         n = normals[idx]
         tk, _ = _unit(T - n * np.sum(n * T, axis=1, keepdims=True))
         uk, _ = _unit(U - n * np.sum(n * U, axis=1, keepdims=True))
-        np.add.at(acc_t, idx, tk * angles[:, k:k + 1])
-        np.add.at(acc_u, idx, uk * angles[:, k:k + 1])
+        np.add.at(acc_t, (group, idx), tk * angles[:, k:k + 1])
+        np.add.at(acc_u, (group, idx), uk * angles[:, k:k + 1])
+        np.add.at(weight, (group, idx), angles[:, k])
+    pick = np.where(weight[1] > weight[0], 1, 0)  # the orientation with the larger total angle
+    acc_t = acc_t[pick, np.arange(nv)]
+    acc_u = acc_u[pick, np.arange(nv)]
     tangent, tlen = _unit(acc_t - normals * np.sum(normals * acc_t, axis=1, keepdims=True))
     missing = (tlen <= 1e-12 * np.maximum(np.linalg.norm(acc_t, axis=1), 1e-300)) | (tlen == 0.0)
     good_n = nlen > 0.0
@@ -113,8 +123,10 @@ def vertex_tangents_reference(positions, normals, uvs, faces) -> np.ndarray:
     for n in np.asarray(normals, np.float64):
         length = float(np.linalg.norm(n))
         nrm.append(n / length if length > 0 else n)
-    acc_t = [np.zeros(3) for _ in positions]
-    acc_u = [np.zeros(3) for _ in positions]
+    # per vertex and UV orientation (0: d > 0 or d = 0, 1: d < 0): summed tangent, up vector, angle
+    acc_t = [[np.zeros(3), np.zeros(3)] for _ in positions]
+    acc_u = [[np.zeros(3), np.zeros(3)] for _ in positions]
+    weight = [[0.0, 0.0] for _ in positions]
     for tri in np.asarray(faces, np.int64).reshape(-1, 3):
         p0, p1, p2 = positions[tri]
         (u0, v0), (u1, v1), (u2, v2) = uvs[tri]
@@ -125,6 +137,7 @@ def vertex_tangents_reference(positions, normals, uvs, faces) -> np.ndarray:
             continue
         t = (dv2 * e1 - dv1 * e2) / d  # dP/du
         up = -(du1 * e2 - du2 * e1) / d  # -dP/dv: up in the image
+        g = 1 if d < 0 else 0
         corners = (p0, p1, p2)
         for k, i in enumerate(tri):
             a = corners[(k + 1) % 3] - corners[k]
@@ -132,21 +145,24 @@ def vertex_tangents_reference(positions, normals, uvs, faces) -> np.ndarray:
             degenerate = not np.any(a) or not np.any(b)
             angle = 0.0 if degenerate else float(np.arctan2(np.linalg.norm(np.cross(a, b)), a @ b))
             n = nrm[i]
+            weight[i][g] += angle
             for vec, acc in ((t, acc_t), (up, acc_u)):
                 proj = vec - n * (n @ vec)
                 length = np.linalg.norm(proj)
                 if length > 0:
-                    acc[i] += angle * proj / length
+                    acc[i][g] += angle * proj / length
     out = np.zeros((len(positions), 4))
     for i, n in enumerate(nrm):
-        t = acc_t[i] - n * (n @ acc_t[i])
+        g = 1 if weight[i][1] > weight[i][0] else 0
+        summed_t, summed_u = acc_t[i][g], acc_u[i][g]
+        t = summed_t - n * (n @ summed_t)
         length = np.linalg.norm(t)
-        if length > 1e-12 * max(np.linalg.norm(acc_t[i]), 1e-300) and length > 0:
+        if length > 1e-12 * max(np.linalg.norm(summed_t), 1e-300) and length > 0:
             t = t / length
         elif np.linalg.norm(n) > 0:
             t = _any_perpendicular(n[None, :])[0]
         else:
             t = np.array([1.0, 0.0, 0.0])
         out[i, :3] = t
-        out[i, 3] = -1.0 if np.cross(n, t) @ acc_u[i] < 0.0 else 1.0
+        out[i, 3] = -1.0 if np.cross(n, t) @ summed_u < 0.0 else 1.0
     return out

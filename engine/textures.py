@@ -130,6 +130,8 @@ def khr_texture_transform(offset=(0.0, 0.0), rotation: float = 0.0, scale=(1.0, 
 @njit(cache=True, inline="always")
 def _wrap(i, n, mode):
     """Texel index i wrapped into [0, n) (OpenGL 4.6, table 8.20)."""
+    if 0 <= i < n:
+        return i  # every mode leaves an index inside the image as it is
     if mode == WRAP_CLAMP:
         return min(max(i, 0), n - 1)
     if mode == WRAP_MIRROR:
