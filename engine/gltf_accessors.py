@@ -243,6 +243,10 @@ class GltfFile:
         col_bytes = rows * size if cols == 1 else -(-rows * size // 4) * 4
         elem = col_bytes * (cols - 1) + rows * size
         elem_padded = col_bytes * cols if cols > 1 else elem
+        if stride is not None and stride < elem:
+            self.fail(f"bufferViews[{acc.bufferView}].byteStride", f"expected at least {elem} bytes (one {acc.type} "
+                                                                   f"{COMPONENT_NAMES[acc.componentType]} element of "
+                                                                   f"{awhere}), got {stride}")
         stride = stride or elem_padded
         offset = acc.byteOffset or 0
         if not isinstance(offset, int) or offset < 0:

@@ -284,3 +284,16 @@ def test_sparse_index_past_the_accessors_count_is_refused(tmp_path):
     text = _error(path)
     assert '"sparse.glb" accessors[0].sparse.indices' in text and "below the accessor's count 2" in text
     assert validator_pointers(path)
+
+
+def test_byte_stride_shorter_than_an_element_is_refused(tmp_path):
+    path = _two_primitives(tmp_path)
+
+    def squeeze(doc):
+        view = doc["accessors"][doc["meshes"][0]["primitives"][0]["attributes"]["POSITION"]]["bufferView"]
+        doc["bufferViews"][view]["byteStride"] = 8  # a VEC3 of FLOAT is 12 bytes (spec 3.6.2.4)
+
+    rewrite_json(path, squeeze)
+    text = _error(path)
+    assert "byteStride" in text and "at least 12 bytes" in text
+    assert validator_pointers(path)
