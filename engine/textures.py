@@ -26,7 +26,10 @@ table before filtering (filtering happens on linear values); other data (metalli
 normal, transmission, ...) is read as byte / 255. Alpha is always linear.
 
 Pool processes of one machine can share one copy of `tex_pixels`: `shared_textures` writes it to
-a file once and maps the file copy-on-write, so the pages live once in the page cache.
+a file once and maps the file copy-on-write, so the pages live once in the page cache (measured
+in bench/textures.py: two processes mapping 2.68 GB have a PSS of 1.39 GB each, against 2.73 GB
+each for private copies). `save_images` writes the file from the decoded images without making
+the packed copy first.
 """
 
 from __future__ import annotations
@@ -71,11 +74,8 @@ def srgb_table() -> np.ndarray:
     return np.where(c <= 0.04045, c / 12.92, ((c + 0.055) / 1.055) ** 2.4)
 
 
-def pack_images(images) -> tuple[np.ndarray, np.ndarray]:
-    """(tex_pixels (N,) uint8, tex_info (I, 4) int64) of a sequence of `Image` (rgba (H, W, 4) uint8).
-
-    Images keep their order: image i is row i of tex_info. No image gives empty arrays.
-    """
+def _image_table(images) -> np.ndarray:
+    """tex_info (I, 4) int64 of a sequence of `Image`, after checking each is (H, W, 4) uint8."""
     info = np.zeros((len(images), 4), np.int64)
     offset = 0
     for i, img in enumerate(images):
@@ -85,6 +85,16 @@ def pack_images(images) -> tuple[np.ndarray, np.ndarray]:
                              f"{rgba.shape}")
         info[i] = (offset, rgba.shape[1], rgba.shape[0], 0)
         offset += rgba.size
+    return info
+
+
+def pack_images(images) -> tuple[np.ndarray, np.ndarray]:
+    """(tex_pixels (N,) uint8, tex_info (I, 4) int64) of a sequence of `Image` (rgba (H, W, 4) uint8).
+
+    Images keep their order: image i is row i of tex_info. No image gives empty arrays.
+    """
+    info = _image_table(images)
+    offset = int(info[-1, TI_OFFSET]) + images[-1].rgba.size if len(images) else 0
     pixels = np.empty(offset, np.uint8)
     for i, img in enumerate(images):
         start = int(info[i, TI_OFFSET])
@@ -293,6 +303,22 @@ def save_textures(tex_pixels: np.ndarray, tex_info: np.ndarray, path) -> Path:
     path.parent.mkdir(parents=True, exist_ok=True)
     _atomic_write(_info_path(path), lambda fh: np.save(fh, np.asarray(tex_info, np.int64)))
     _atomic_write(path, lambda fh: np.ascontiguousarray(tex_pixels, np.uint8).tofile(fh))
+    return path
+
+
+def save_images(images, path) -> Path:
+    """`save_textures(*pack_images(images), path)` without the packed copy in memory: each image's
+    texels are written straight to the file (the peak stays at the decoded images)."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    info = _image_table(images)
+    _atomic_write(_info_path(path), lambda fh: np.save(fh, info))
+
+    def write(fh):
+        for img in images:
+            np.ascontiguousarray(img.rgba).tofile(fh)
+
+    _atomic_write(path, write)
     return path
 
 

@@ -17,7 +17,7 @@ import pytest
 from lampyr.engine.scene_data import IDENTITY_UV, WRAP_CLAMP, WRAP_MIRROR, WRAP_REPEAT, Image, TexRef
 from lampyr.engine.textures import (
     TEXREF_SIZE, TR_IMAGE, TR_SCALE, TR_SRGB, TR_TEXCOORD, TR_UV, TR_WRAP_S, TR_WRAP_T,
-    khr_texture_transform, map_textures, pack_images, save_textures, shared_textures, srgb_table,
+    khr_texture_transform, map_textures, pack_images, save_images, save_textures, shared_textures, srgb_table,
     tex_lookup, tex_lookup_reference, texref_row,
 )
 
@@ -308,6 +308,16 @@ def test_saved_textures_map_back_equal(tmp_path):
     np.testing.assert_array_equal(got_pixels, pixels)
     np.testing.assert_array_equal(got_info, info)
     assert got_pixels.dtype == np.uint8 and got_pixels.flags.c_contiguous
+
+
+def test_saved_images_equal_the_packed_ones(tmp_path):
+    rng = np.random.default_rng(16)
+    images = [random_image(rng, 3, 4), random_image(rng, 1, 2)]
+    save_images(images, tmp_path / "s")
+    pixels, info = pack_images(images)
+    got_pixels, got_info = map_textures(tmp_path / "s")
+    np.testing.assert_array_equal(got_pixels, pixels)
+    np.testing.assert_array_equal(got_info, info)
 
 
 def test_shared_textures_builds_once(tmp_path):
