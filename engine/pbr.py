@@ -41,8 +41,9 @@ The model (glTF 2.0 specification, Appendix B "BRDF Implementation"; alpha = rou
       k = 1 for a smooth surface and ROUGH_THIN_TRANSMISSION for a rough one;
     * a volume (thickness > 0): the engine's dielectric interface (lobes.glass_*) with exact
       Fresnel for n = ior (the Appendix's discussion recommends full Fresnel for transparent
-      dielectrics), tinted by the base colour on every crossing like GLASS, weight
-      (1 - metallic) T. KHR_materials_specular does not act on it. The coat factor applies
+      dielectrics), tinted by the base colour on every crossing like GLASS (the volume
+      README, "Base Color and Absorption": base colour acts at the boundary, "as if the
+      object is covered with a colored, transparent foil"), weight (1 - metallic) T. KHR_materials_specular does not act on it. The coat factor applies
       on the outside direction of a crossing. Beer-Lambert absorption inside is the
       integrator's (`pbr_absorption`).
   Sampling: one lobe chosen by u0 with probabilities proportional to estimates of each lobe's
