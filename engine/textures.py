@@ -13,9 +13,9 @@ the corner of the first pixel the file stores (the top-left one), u grows to the
 downwards; `tex_lookup` applies the reference's (2, 3) UV transform (KHR_texture_transform's
 T · R · S, see `khr_texture_transform`), wraps each axis with the sampler's mode and filters
 bilinearly. Wrapping and filtering are OpenGL's (The OpenGL 4.6 Core Profile specification,
-section 8.14.2, "Coordinate wrapping and texel selection", and table 8.20 there): texel centres sit at
-(i + 0.5) / width, the two texels around x = u · width - 0.5 are blended, and their integer
-indices are wrapped with
+section 8.14.2, "Coordinate wrapping and texel selection", and its table 8.20; cited from memory):
+texel centres sit at (i + 0.5) / width, the two texels around x = u · width - 0.5 are blended,
+and their integer indices are wrapped with
 
   REPEAT           i mod n
   CLAMP_TO_EDGE    clamp(i, 0, n - 1)

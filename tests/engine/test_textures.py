@@ -111,7 +111,7 @@ def test_u_runs_along_columns_and_v_down_the_rows(axis):
 @pytest.mark.parametrize("mode", list(MODES))
 @pytest.mark.parametrize("shape", [(1, 1), (3, 5), (4, 4), (7, 2)])
 def test_bilinear_at_texel_centres_returns_the_texel(mode, shape):
-    # OpenGL 4.6 section 8.14.2: at a texel centre the neighbour's weight is 0
+    # OpenGL 4.6 section 8.14.2 (from memory): at a texel centre the neighbour's weight is 0
     rng = np.random.default_rng(3)
     img = random_image(rng, *shape).rgba
     s = one(img, MODES[mode], MODES[mode])
@@ -123,7 +123,7 @@ def test_bilinear_at_texel_centres_returns_the_texel(mode, shape):
 
 
 def test_bilinear_halfway_is_the_mean():
-    # OpenGL 4.6 section 8.14.2: weights (1 - alpha, alpha) with alpha = frac(u W - 1/2)
+    # OpenGL 4.6 section 8.14.2 (from memory): weights (1 - alpha, alpha) with alpha = frac(u W - 1/2)
     img = np.array([[[0, 100, 200, 255], [50, 150, 250, 55]]], np.uint8)
     got = one(img, WRAP_CLAMP, WRAP_CLAMP).look(0, 0.5, 0.5)
     np.testing.assert_allclose(got, (linear(img[0, 0]) + linear(img[0, 1])) / 2, atol=1e-15)
@@ -140,7 +140,7 @@ def test_bilinear_filters_after_srgb_decoding():
 
 
 def repeat_texel(col, n):
-    return col % n  # OpenGL: REPEAT reads frac(s), the image tiles the plane
+    return col % n  # OpenGL 4.6 section 8.14.2 (from memory): REPEAT reads frac(s), the image tiles the plane
 
 
 def mirror_texel(col, n, k):
@@ -171,7 +171,7 @@ def test_wrap_outside_the_unit_square(mode, k):
 @pytest.mark.parametrize("mode, blend", [("repeat", 0.5), ("clamp", 0.0), ("mirror", 0.0)])
 def test_wrap_at_the_edge(mode, blend):
     # at u = 0 the filter straddles the edge: REPEAT blends the last texel in half, CLAMP_TO_EDGE
-    # and MIRRORED_REPEAT read texel 0 on both sides (OpenGL 4.6 table 8.20)
+    # and MIRRORED_REPEAT read texel 0 on both sides (OpenGL 4.6 table 8.20, from memory)
     img = np.array([[[0, 0, 0, 0], [9, 9, 9, 9], [200, 200, 200, 200]]], np.uint8)
     got = one(img, MODES[mode], WRAP_CLAMP).look(0, 0.0, 0.5)
     np.testing.assert_allclose(got, (1 - blend) * linear(img[0, 0]) + blend * linear(img[0, 2]), atol=1e-15)
