@@ -131,3 +131,20 @@ def test_sparse_accessor_substitutes_its_elements(tmp_path, with_base):
     expected = _sparse(b, with_base)
     mesh = read_gltf(save_valid(b, tmp_path / "sparse.glb"), "scene").meshes[0]
     np.testing.assert_array_equal(mesh.positions, expected)
+
+
+def test_quantized_positions_and_normals(tmp_path):
+    # KHR_mesh_quantization README: POSITION may be (normalized or not) SHORT, NORMAL normalized
+    # BYTE; the accessors decode as spec 3.11 says (plain integers keep their value)
+    b = GltfBuilder()
+    b.require_extension("KHR_mesh_quantization")
+    pos = np.array([[0, 0, 0], [100, 0, 0], [100, 100, 0], [0, 100, 0]])
+    normals = np.tile([0, 0, 127], (4, 1))
+    prim = {"attributes": {
+        "POSITION": b.add_accessor(pos, SHORT, "VEC3", target=ARRAY_BUFFER, min_max=True, stride=8),
+        "NORMAL": b.add_accessor(normals, BYTE, "VEC3", normalized=True, target=ARRAY_BUFFER, stride=4)},
+        "indices": b.add_accessor(QUAD_FACES.ravel(), UNSIGNED_SHORT, "SCALAR")}
+    b.add_node("n", mesh=b.add_mesh([prim]))
+    mesh = read_gltf(save_valid(b, tmp_path / "quantized.glb"), "scene").meshes[0]
+    np.testing.assert_array_equal(mesh.positions, pos)
+    np.testing.assert_array_equal(mesh.normals, np.tile([0.0, 0.0, 1.0], (4, 1)))
