@@ -116,16 +116,34 @@ def _referenced(path: Path) -> list[str]:
                 for word, rest in _mtl_statements(mtl_path):
                     if word in _MTL_MAPS and rest:
                         refs.append(rest.split()[-1])  # options (-bm 1 ...) come before the file
-    elif ext == ".gltf":
-        try:
-            doc = json.loads(path.read_text(encoding="utf-8"))
-        except (OSError, ValueError):
-            return refs  # load_mesh reports the unreadable file
+    elif ext in (".gltf", ".glb"):
+        doc = _gltf_json(path)
+        if not isinstance(doc, dict):
+            return refs  # the reader reports the unreadable file
         for item in doc.get("buffers", []) + doc.get("images", []):
             uri = item.get("uri") if isinstance(item, dict) else None
             if isinstance(uri, str) and not uri.startswith("data:"):
                 refs.append(unquote(uri))  # glTF URIs are percent-encoded (RFC 3986)
     return refs
+
+
+def _gltf_json(path: Path):
+    """The JSON document of a .gltf file, or of a .glb's first chunk (glTF 2.0 spec, section 4.4:
+    a 12-byte header, then chunks of length, type and data, the first one JSON); None when it is
+    not readable."""
+    try:
+        if path.suffix.lower() == ".gltf":
+            return json.loads(path.read_text(encoding="utf-8"))
+        with open(path, "rb") as fh:
+            header = fh.read(20)
+            if len(header) < 20 or header[:4] != b"glTF":
+                return None
+            length = int.from_bytes(header[12:16], "little")
+            if header[16:20] != b"JSON" or length > 256 * 1024**2:
+                return None
+            return json.loads(fh.read(length).decode("utf-8"))
+    except (OSError, ValueError):
+        return None
 
 
 def asset_files(shot_root, rel_path: str, key: str) -> list[str]:

@@ -20,9 +20,14 @@ from .lobes import concentric_disk
 
 def compile_camera(camera, frame: int, shutter_open: float, shutter_close: float) -> np.ndarray:
     """`(2, 11) float64` camera rows for a frame at the two shutter instants (times in frames)."""
+    return camera_rows([camera_at(camera, time) for time in (shutter_open, shutter_close)])
+
+
+def camera_rows(views) -> np.ndarray:
+    """`(2, 11) float64` camera rows from two views (position, target, up, fov degrees, focus),
+    at shutter open and close."""
     rows = np.empty((2, 11))
-    for i, time in enumerate((shutter_open, shutter_close)):
-        position, target, up, fov, focus = camera_at(camera, time)
+    for i, (position, target, up, fov, focus) in enumerate(views):
         rows[i, 0:3] = position
         rows[i, 3:6] = target
         rows[i, 6:9] = up

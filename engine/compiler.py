@@ -1,123 +1,105 @@
 """Compile a validated shot into the arrays the kernels read.
 
-Meshes are loaded and their BVHs built once per shot (`compile_geometry`); each frame then only
-places instances, builds the small top-level BVH over their motion bounds and gathers lights
-(`compile_frame`). Both return plain arrays, so a worker can keep the geometry of a shot in
-memory and compile frame after frame cheaply.
+Files are read and meshes' BVHs built once per shot (`compile_geometry`); each frame then only
+places instances (shot objects by their keys, scene nodes by their animated world matrices),
+rebuilds the meshes that deform (skins, morph targets), builds the small top-level BVH over the
+instances' motion bounds and gathers lights (`compile_frame`). Both return plain arrays, so a
+worker keeps a shot's geometry in memory and compiles frame after frame cheaply.
+
+Time: a frame's shutter opens and closes at frame ∓ shutter/2 (in frames); the scene file's
+animation is read at `shot.scene_time(t)` seconds, so the shot's first frame (or `time_zero`)
+shows glTF time 0.
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
 
 from .animation import object_transform
-from .assets import load_environment_map, load_mesh
-from .bsdf import DIFFUSE, GLASS, MATERIAL_SIZE, METAL, PLASTIC, material_row
-from .bvh import build_bvh, pack_triangles
-from .camera import compile_camera
+from .assets import load_environment_map
+from .camera import camera_rows, compile_camera
+from .gltf_animation import decompose_trs, world_matrices
 from .lights import build_env_distribution
-from .scene import KIND_MESH, KIND_SPHERE, Scene
+from .material_table import M_EMISSION, MATERIAL_SIZE, is_passable
+from .mesh_table import MeshTable, MeshTableBuilder
+from .punctual import PUNCT_SIZE, light_power, light_row
+from .scene import FLAG_COUNT, FLAG_PASSABLE, KIND_MESH, KIND_SPHERE, Scene
+from .scene_data import LIGHT_DIRECTIONAL, LIGHT_POINT, LIGHT_SPOT
+from .scene_import import Part, assemble, read_scene_file, _mesh_arrays
+from .skinning import SPACE_WORLD, deformed_vertices
+from .bvh import build_bvh
+from .textures import srgb_table
 from .transforms import apply_placement, pack_placement, placement_at
 
-MATERIAL_TYPES = {"diffuse": DIFFUSE, "metal": METAL, "glass": GLASS, "plastic": PLASTIC}
-DEFAULT_GREY = (0.8, 0.8, 0.8)  # rule of thumb: a mid-light grey for meshes without a colour
 MOTION_STEPS = 8  # instants per shutter at which motion bounds are taken
 LUMA = np.array([0.2126, 0.7152, 0.0722])  # Rec. 709 luminance weights (ITU-R BT.709)
+SHOT_LIGHT_TYPES = {"point": LIGHT_POINT, "spot": LIGHT_SPOT, "directional": LIGHT_DIRECTIONAL}
+IDENTITY_ROW = pack_placement((0.0, 0.0, 0.0), (1.0, 0.0, 0.0, 0.0), (1.0, 1.0, 1.0))
 
 
-@dataclass(frozen=True)
-class Part:
-    """One instance to place per frame: an object's sphere or one part of its mesh."""
-
-    obj: int  # index into shot.objects
-    kind: int  # KIND_MESH | KIND_SPHERE
-    mesh: int  # mesh index, -1 for spheres
-    material: int  # row of the material table
-    sphere: tuple  # (cx, cy, cz, r) object space, spheres only
-    box: np.ndarray  # (2, 3) object-space bounds
-
-
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Geometry:
-    """Per-shot, frame-independent arrays: the bottom-level BVHs, materials, environment."""
+    """Per-shot, frame-independent data: the mesh table, instances, materials, textures,
+    environment, and the scene file (for its animation, cameras and lights)."""
 
-    blas_lo: np.ndarray
-    blas_hi: np.ndarray
-    blas_a: np.ndarray
-    blas_count: np.ndarray
-    blas_axis: np.ndarray
-    tris: np.ndarray
-    mesh_node_base: np.ndarray
-    mesh_tri_base: np.ndarray
-    mesh_tri_count: np.ndarray
+    meshes: MeshTable
     parts: tuple
-    mats: np.ndarray
+    mats: np.ndarray  # (m, MATERIAL_SIZE) float64
+    texrefs: np.ndarray
+    tex_pixels: np.ndarray
+    tex_info: np.ndarray
+    srgb_lut: np.ndarray
     env_color: np.ndarray
     env_map: np.ndarray
     env_row_cdf: np.ndarray
     env_col_cdf: np.ndarray
     env_params: np.ndarray  # [has_map, strength, rotate, p_env placeholder]
+    scene: object  # SceneData or None
+    deforming: tuple  # (node, material rows) of the scene's skinned / morphing meshes
+    warnings: tuple  # one line each, for the person submitting
 
     @property
     def triangle_count(self) -> int:
-        return int(self.tris.shape[0])
+        return self.meshes.triangle_count
+
+    @property
+    def tris(self) -> np.ndarray:
+        return self.meshes.tris
 
 
-def _material_from_shot(m) -> np.ndarray:
-    return material_row(MATERIAL_TYPES[m.type], m.color, m.roughness, m.ior, m.emission)
+def read_shot_files(shot):
+    """(scene SceneData or None, {object index: SceneData}) of every file the shot renders."""
+    scene = None if shot.scene is None else read_scene_file(shot.root, shot.scene, "scene")
+    files = {oi: read_scene_file(shot.root, o.mesh, f"object[{o.name}].mesh")
+             for oi, o in enumerate(shot.objects) if o.mesh is not None}
+    if shot.camera.scene_camera is not None:
+        scene_camera_node(shot, scene)  # an unknown name is an error now, not at the first frame
+    return scene, files
+
+
+def scene_camera_node(shot, scene) -> int:
+    """The node of the scene that carries the camera `[camera] scene_camera` names."""
+    name = shot.camera.scene_camera
+    nodes = [i for i, n in enumerate(scene.nodes) if n.camera >= 0]
+    for i in nodes:
+        if scene.nodes[i].name == name or scene.cameras[scene.nodes[i].camera].name == name:
+            return i
+    from lampyr.errors import ShotError
+
+    names = sorted({scene.nodes[i].name for i in nodes if scene.nodes[i].name})
+    have = f"its camera nodes are {', '.join(repr(n) for n in names)}" if names else "it has no camera nodes"
+    raise ShotError("camera.scene_camera", f"expected the name of a camera node of {shot.scene} ({have}), "
+                                           f"got {name!r}")
 
 
 def compile_geometry(shot) -> Geometry:
-    """Load every mesh of the shot, build their BVHs and the material and environment tables."""
-    mats = [_material_from_shot(m) for m in shot.materials]
-    mat_index = {m.name: i for i, m in enumerate(shot.materials)}
-    implicit: dict[tuple, int] = {}
-
-    los, his, As, counts, axes, tris = [], [], [], [], [], []
-    node_base, tri_base, tri_count = [], [], []
-    n_nodes = 0
-    n_tris = 0
-    parts = []
-    for oi, obj in enumerate(shot.objects):
-        if obj.sphere is not None:
-            (cx, cy, cz), r = obj.sphere.center, obj.sphere.radius
-            box = np.array([[cx - r, cy - r, cz - r], [cx + r, cy + r, cz + r]], float)
-            parts.append(Part(oi, KIND_SPHERE, -1, mat_index[obj.material], (cx, cy, cz, r), box))
-            continue
-        for mp in load_mesh(shot.root, obj.mesh, f"object[{obj.name}].mesh"):
-            v = np.asarray(mp.vertices, np.float64)
-            f = np.asarray(mp.faces, np.int64)
-            tri = v[f]
-            # SAH termination (bigger leaves where they are cheaper) pays for meshes: +10 % on
-            # incoherent rays in bench/rays.py; the small top level keeps plain leaves
-            bvh = build_bvh(tri.min(axis=1), tri.max(axis=1), max_leaf=16, trav_cost=4.0)
-            los.append(bvh.lo)
-            his.append(bvh.hi)
-            As.append(bvh.a)
-            counts.append(bvh.count)
-            axes.append(bvh.axis)
-            tris.append(pack_triangles(v, f, bvh.order))
-            node_base.append(n_nodes)
-            tri_base.append(n_tris)
-            tri_count.append(len(f))
-            n_nodes += len(bvh.lo)
-            n_tris += len(f)
-            if obj.material is not None:
-                mi = mat_index[obj.material]
-            else:
-                color = tuple(DEFAULT_GREY if mp.base_color is None else np.round(mp.base_color, 6))
-                if color not in implicit:
-                    implicit[color] = len(mats)
-                    mats.append(material_row(DIFFUSE, color, 0.0, 1.5, (0.0, 0.0, 0.0)))
-                mi = implicit[color]
-            box = np.array([v.min(axis=0), v.max(axis=0)])
-            parts.append(Part(oi, KIND_MESH, len(node_base) - 1, mi, (0.0, 0.0, 0.0, 0.0), box))
-
-    def cat(arrs, shape, dtype):
-        return np.ascontiguousarray(np.concatenate(arrs)) if arrs else np.zeros(shape, dtype)
-
+    """Read every file of the shot, build the meshes' BVHs and the material, texture and
+    environment tables."""
+    scene, files = read_shot_files(shot)
+    asm = assemble(shot, scene, files)
     env = shot.environment
     if env.map is not None:
         env_map = load_environment_map(shot.root, env.map, "environment.map")
@@ -127,24 +109,13 @@ def compile_geometry(shot) -> Geometry:
         env_map = np.zeros((1, 1, 3))
         row_cdf, col_cdf = np.array([0.0, 1.0]), np.array([[0.0, 1.0]])
         params = np.array([0.0, 1.0, 0.0, 0.0])
-
+    mats = asm.mats if len(asm.mats) else np.zeros((1, MATERIAL_SIZE))
     return Geometry(
-        blas_lo=cat(los, (1, 3), np.float32),
-        blas_hi=cat(his, (1, 3), np.float32),
-        blas_a=cat(As, (1,), np.int32),
-        blas_count=cat(counts, (1,), np.int32),
-        blas_axis=cat(axes, (1,), np.int8),
-        tris=cat(tris, (1, 3, 3), np.float32),
-        mesh_node_base=np.array(node_base, np.int64),
-        mesh_tri_base=np.array(tri_base, np.int64),
-        mesh_tri_count=np.array(tri_count, np.int64),
-        parts=tuple(parts),
-        mats=np.ascontiguousarray(np.array(mats, np.float64).reshape(-1, MATERIAL_SIZE)),
-        env_color=np.asarray(env.color, np.float64),
-        env_map=np.ascontiguousarray(env_map, np.float64),
-        env_row_cdf=row_cdf,
-        env_col_cdf=np.ascontiguousarray(col_cdf),
-        env_params=params,
+        meshes=asm.meshes.build(), parts=tuple(asm.parts), mats=mats.reshape(-1, MATERIAL_SIZE),
+        texrefs=asm.texrefs, tex_pixels=asm.tex_pixels, tex_info=asm.tex_info, srgb_lut=srgb_table(),
+        env_color=np.asarray(env.color, np.float64), env_map=np.ascontiguousarray(env_map, np.float64),
+        env_row_cdf=row_cdf, env_col_cdf=np.ascontiguousarray(col_cdf), env_params=params,
+        scene=scene, deforming=tuple(asm.deforming), warnings=tuple(asm.warnings),
     )
 
 
@@ -159,22 +130,116 @@ def shutter_interval(shot, frame: int) -> tuple[float, float]:
     return frame - half, frame + half
 
 
+class _Worlds:
+    """The scene's node world matrices at shutter open and close (computed once per frame)."""
+
+    def __init__(self, shot, scene, t_open: float, t_close: float):
+        self.scene = scene
+        if scene is None:
+            self.open = self.close = None
+            return
+        self.open = world_matrices(scene, shot.scene_time(t_open))
+        self.close = self.open if not scene.channels else world_matrices(scene, shot.scene_time(t_close))
+
+    def placement(self, node: int) -> np.ndarray:
+        """(2, 10) motion rows of a node at open and close."""
+        rows = []
+        for m in (self.open[node], self.close[node]):
+            t, q, s, _ = decompose_trs(m)
+            rows.append(pack_placement(t, q, s))
+        return np.array(rows)
+
+
+def _deforming_meshes(shot, geom: Geometry, worlds: _Worlds, frame: int, builder: MeshTableBuilder,
+                      first_mesh: int) -> list[Part]:
+    """Build the skinned and morphing meshes at the middle of the shutter; their parts."""
+    parts = []
+    scene = geom.scene
+    t_mid = shot.scene_time(frame)
+    mid_worlds = world_matrices(scene, t_mid) if scene.channels else worlds.open
+    for node, mat_rows in geom.deforming:
+        mesh = scene.meshes[scene.nodes[node].mesh]
+        positions, normals, space = deformed_vertices(scene, node, t_mid, mid_worlds)
+        arrays = _mesh_arrays(mesh, mat_rows, list(geom.mats), positions, normals)
+        m = first_mesh + builder.add(*arrays)
+        box = np.array([positions.min(axis=0), positions.max(axis=0)])
+        parts.append(Part(KIND_MESH, m, -1, box, node=-1 if space == SPACE_WORLD else node))
+    return parts
+
+
+def _concat(a: MeshTable, b: MeshTable) -> MeshTable:
+    """Mesh table b appended to a (b's indices shifted)."""
+    n_nodes = len(a.blas_lo)
+    n_tris = len(a.tris)
+    n_verts = len(a.vtx_n)
+    return MeshTable(
+        blas_lo=np.concatenate([a.blas_lo, b.blas_lo]), blas_hi=np.concatenate([a.blas_hi, b.blas_hi]),
+        blas_a=np.concatenate([a.blas_a, b.blas_a]), blas_count=np.concatenate([a.blas_count, b.blas_count]),
+        blas_axis=np.concatenate([a.blas_axis, b.blas_axis]), tris=np.concatenate([a.tris, b.tris]),
+        tri_mat=np.concatenate([a.tri_mat, b.tri_mat]),
+        tri_vtx=np.concatenate([a.tri_vtx, b.tri_vtx + n_verts]).astype(np.int32),
+        vtx_n=np.concatenate([a.vtx_n, b.vtx_n]), vtx_uv=np.concatenate([a.vtx_uv, b.vtx_uv]),
+        vtx_t=np.concatenate([a.vtx_t, b.vtx_t]),
+        mesh_node_base=np.concatenate([a.mesh_node_base, b.mesh_node_base + n_nodes]),
+        mesh_tri_base=np.concatenate([a.mesh_tri_base, b.mesh_tri_base + n_tris]),
+        mesh_tri_count=np.concatenate([a.mesh_tri_count, b.mesh_tri_count]),
+        mesh_attr=np.concatenate([a.mesh_attr, b.mesh_attr]),
+        mesh_box=np.concatenate([a.mesh_box, b.mesh_box]),
+    )
+
+
+def _punctual_rows(shot, geom: Geometry, worlds: _Worlds) -> list[np.ndarray]:
+    """Light rows of the shot's `[[light]]` entries and the scene file's lights at this frame."""
+    rows = []
+    for li in shot.lights:
+        rows.append(light_row(SHOT_LIGHT_TYPES[li.type], li.color * li.intensity, li.position, li.position,
+                              li.direction, li.direction, li.inner_cone, li.outer_cone))
+    scene = geom.scene
+    if scene is not None:
+        for node, spec in enumerate(scene.nodes):
+            if spec.light < 0:
+                continue
+            light = scene.lights[spec.light]
+            at = [(m[:3, 3], -m[:3, 2]) for m in (worlds.open[node], worlds.close[node])]  # down local -Z
+            if not all(np.linalg.norm(d) > 0 for _, d in at):
+                continue  # a light scaled to nothing
+            rows.append(light_row(light.type, np.asarray(light.color) * light.intensity * shot.scene_light_scale,
+                                  at[0][0], at[1][0], at[0][1], at[1][1], light.inner_cone, light.outer_cone))
+    return rows
+
+
 def compile_frame(shot, geom: Geometry, frame: int):
     """(Scene, camera rows) for one frame."""
     t_open, t_close = shutter_interval(shot, frame)
-    k = len(geom.parts)
+    worlds = _Worlds(shot, geom.scene, t_open, t_close)
+    meshes = geom.meshes
+    parts = list(geom.parts)
+    if geom.deforming:
+        builder = MeshTableBuilder()
+        parts += _deforming_meshes(shot, geom, worlds, frame, builder, meshes.mesh_count)
+        meshes = _concat(meshes, builder.build())
+
+    k = len(parts)
     motion = np.zeros((max(k, 1), 2, 10))
+    motion[:] = IDENTITY_ROW
     moving = np.zeros(max(k, 1), np.int64)
     world_lo = np.zeros((max(k, 1), 3))
     world_hi = np.zeros((max(k, 1), 3))
-    placements: dict[int, np.ndarray] = {}
-    for i, part in enumerate(geom.parts):
-        obj = shot.objects[part.obj]
-        if part.obj not in placements:
-            placements[part.obj] = np.array(
-                [pack_placement(*object_transform(obj, t)) for t in (t_open, t_close)]
-            )
-        motion[i] = placements[part.obj]
+    placements: dict[tuple, np.ndarray] = {}
+    for i, part in enumerate(parts):
+        if part.obj >= 0:
+            key = ("obj", part.obj)
+            if key not in placements:
+                obj = shot.objects[part.obj]
+                placements[key] = np.array([pack_placement(*object_transform(obj, t)) for t in (t_open, t_close)])
+        elif part.node >= 0:
+            key = ("node", part.node)
+            if key not in placements:
+                placements[key] = worlds.placement(part.node)
+        else:
+            key = ("fixed",)
+            placements[key] = np.array([IDENTITY_ROW, IDENTITY_ROW])
+        motion[i] = placements[key]
         moving[i] = int(not np.array_equal(motion[i, 0], motion[i, 1]))
         corners = _box_corners(part.box)
         steps = np.linspace(0.0, 1.0, MOTION_STEPS + 1) if moving[i] else [0.0]
@@ -194,27 +259,39 @@ def compile_frame(shot, geom: Geometry, frame: int):
 
     light_inst, light_prim, power = [], [], []
     inst_light_base = np.full(max(k, 1), -1, np.int64)
-    for i, part in enumerate(geom.parts):
-        emission = geom.mats[part.material, 6:9]
-        lum = float(LUMA @ emission)
-        if lum <= 0.0:
-            continue
-        inst_light_base[i] = len(light_inst)
+    emits = (geom.mats[:, M_EMISSION:M_EMISSION + 3] @ LUMA) > 0.0
+    for i, part in enumerate(parts):
         mid = _lerp_row(motion[i], 0.5)
         if part.kind == KIND_SPHERE:
+            lum = float(LUMA @ geom.mats[part.material, M_EMISSION:M_EMISSION + 3])
+            if lum <= 0.0:
+                continue
+            inst_light_base[i] = len(light_inst)
             r = part.sphere[3] * mid[7]
             light_inst.append(i)
             light_prim.append(-1)
             power.append(lum * np.pi * 4.0 * np.pi * r * r)
-        else:
-            first = int(geom.mesh_tri_base[part.mesh])
-            count = int(geom.mesh_tri_count[part.mesh])
-            tri = geom.tris[first:first + count].astype(np.float64)
-            w = apply_placement(mid, tri.reshape(-1, 3)).reshape(-1, 3, 3)
-            area = 0.5 * np.linalg.norm(np.cross(w[:, 1] - w[:, 0], w[:, 2] - w[:, 0]), axis=1)
-            light_inst.extend([i] * count)
-            light_prim.extend(range(first, first + count))
-            power.extend(lum * np.pi * area)
+            continue
+        first = int(meshes.mesh_tri_base[part.mesh])
+        count = int(meshes.mesh_tri_count[part.mesh])
+        rows = np.full(count, part.material) if part.material >= 0 else meshes.tri_mat[first:first + count]
+        if not emits[rows].any():
+            continue
+        inst_light_base[i] = len(light_inst)
+        tri = meshes.tris[first:first + count].astype(np.float64)
+        w = apply_placement(mid, tri.reshape(-1, 3)).reshape(-1, 3, 3)
+        area = 0.5 * np.linalg.norm(np.cross(w[:, 1] - w[:, 0], w[:, 2] - w[:, 0]), axis=1)
+        lum = geom.mats[rows, M_EMISSION:M_EMISSION + 3] @ LUMA
+        light_inst.extend([i] * count)
+        light_prim.extend(range(first, first + count))
+        power.extend(lum * np.pi * area)
+    punct = _punctual_rows(shot, geom, worlds)
+    if punct:
+        radius = 0.5 * float(np.linalg.norm(world_hi[:k].max(axis=0) - world_lo[:k].min(axis=0))) if k else 1.0
+        for p, row in enumerate(punct):
+            light_inst.append(-1)
+            light_prim.append(p)
+            power.append(light_power(row, max(radius, 1e-6)))
     power = np.asarray(power, np.float64)
     if power.size and power.sum() > 0:
         pmf = power / power.sum()
@@ -227,19 +304,27 @@ def compile_frame(shot, geom: Geometry, frame: int):
     env_on = env_params[0] > 0 or float(np.max(geom.env_color)) > 0
     # Light choice: half the samples to the environment when both exist (rule of thumb).
     env_params[3] = 0.0 if not env_on else (1.0 if not light_inst else 0.5)
+    flags = np.zeros(FLAG_COUNT, np.int64)
+    flags[FLAG_PASSABLE] = int(any(is_passable(row) for row in geom.mats))
 
     scene = Scene(
-        geom.blas_lo, geom.blas_hi, geom.blas_a, geom.blas_count, geom.blas_axis, geom.tris,
-        geom.mesh_node_base, geom.mesh_tri_base, geom.mesh_tri_count,
+        meshes.blas_lo, meshes.blas_hi, meshes.blas_a, meshes.blas_count, meshes.blas_axis, meshes.tris,
+        meshes.mesh_node_base, meshes.mesh_tri_base, meshes.mesh_tri_count,
+        meshes.tri_mat, meshes.tri_vtx, meshes.vtx_n, meshes.vtx_uv, meshes.vtx_t, meshes.mesh_attr,
         *tl_arrays,
-        inst_kind=np.array([p.kind for p in geom.parts] or [0], np.int64),
-        inst_mesh=np.array([p.mesh for p in geom.parts] or [-1], np.int64),
-        inst_mat=np.array([p.material for p in geom.parts] or [0], np.int64),
-        inst_sphere=np.array([p.sphere for p in geom.parts] or [(0.0, 0.0, 0.0, 0.0)], np.float64),
+        inst_kind=np.array([p.kind for p in parts] or [0], np.int64),
+        inst_mesh=np.array([p.mesh for p in parts] or [-1], np.int64),
+        inst_mat=np.array([p.material for p in parts] or [0], np.int64),
+        inst_sphere=np.array([p.sphere for p in parts] or [(0.0, 0.0, 0.0, 0.0)], np.float64),
         inst_moving=moving,
         inst_motion=motion,
         inst_light_base=inst_light_base,
-        mats=geom.mats if len(geom.mats) else np.zeros((1, MATERIAL_SIZE)),
+        mats=geom.mats,
+        texrefs=geom.texrefs,
+        tex_pixels=geom.tex_pixels,
+        tex_info=geom.tex_info,
+        srgb_lut=geom.srgb_lut,
+        punct=np.array(punct, np.float64).reshape(-1, PUNCT_SIZE) if punct else np.zeros((1, PUNCT_SIZE)),
         light_inst=np.array(light_inst, np.int64),
         light_prim=np.array(light_prim, np.int64),
         light_pmf=pmf,
@@ -249,8 +334,18 @@ def compile_frame(shot, geom: Geometry, frame: int):
         env_row_cdf=geom.env_row_cdf,
         env_col_cdf=geom.env_col_cdf,
         env_params=env_params,
+        flags=flags,
     )
-    cam = compile_camera(shot.camera, frame, t_open, t_close)
+    if shot.camera.scene_camera is not None:
+        node = scene_camera_node(shot, geom.scene)
+        yfov = geom.scene.cameras[geom.scene.nodes[node].camera].yfov
+        views = []
+        for m in (worlds.open[node], worlds.close[node]):
+            position = m[:3, 3]
+            views.append((position, position - m[:3, 2], m[:3, 1], math.degrees(yfov), shot.camera.focus))
+        cam = camera_rows(views)
+    else:
+        cam = compile_camera(shot.camera, frame, t_open, t_close)
     return scene, cam
 
 

@@ -16,7 +16,7 @@ it is counted in `dropped` instead.
 
 Sample dimensions: 0-1 pixel position, 2-3 lens, 4 shutter time, then 8 per bounce b starting at
 8 + 8b: BSDF direction (2), BSDF lobe (1), roulette (1), light position (2), light choice (1),
-spare (1). The 2D draws sit on dimension pairs (4g, 4g+1) of the padded sampler, whose
+coverage (1: alpha BLEND, reused stretched for each layer). The 2D draws sit on dimension pairs (4g, 4g+1) of the padded sampler, whose
 unscrambled Sobol pair is a (0, 2)-net; pair (4g+2, 4g+3) is not.
 """
 
@@ -27,13 +27,23 @@ import math
 import numpy as np
 from numba import njit, prange
 
-from .bsdf import bsdf_eval, bsdf_sample, build_frame, has_nonspecular_lobe
+from .bsdf import bsdf_eval, bsdf_sample, build_frame, has_nonspecular_lobe, needs_outward_normal
 from .camera import camera_ray
 from .lights import env_pdf, env_radiance, light_pdf, sample_light
+from .material_table import (
+    M_ALPHA_CUTOFF, M_ALPHA_MODE, M_COLOR, M_EMISSION, M_THICKNESS, M_TRANSMISSION, M_TYPE, MATERIAL_SIZE, PBR,
+    passable,
+)
+from .pbr import pbr_absorption, pbr_thin_transmittance
 from .sampler import sample_dim
-from .scene import intersect_scene, occluded_scene, surface_at
+from .scene import FLAG_PASSABLE, intersect_scene, occluded_scene
+from .scene_data import ALPHA_BLEND, ALPHA_MASK
+from .surface import (
+    SF_NG, SF_NS, SURF_SIZE, apply_normal_map, hit_material, hit_surface, lifted_origin, resolve_material,
+)
 
 STACK_SIZE = 64
+MAX_LAYERS = 16  # cut-out or partly covered surfaces a ray passes in one segment (rule of thumb)
 DIMS_PER_BOUNCE = 8
 FIRST_BOUNCE_DIM = 8
 
@@ -45,10 +55,74 @@ def _offset_scale(px, py, pz):
     return 3e-5 * (1.0 + max(abs(px), max(abs(py), abs(pz))))
 
 
+@njit(cache=True, inline="always")
+def _thin(rm):
+    """True for a thin-walled transmissive surface (a pane, a leaf)."""
+    return rm[M_TYPE] == PBR and rm[M_TRANSMISSION] > 0.0 and rm[M_THICKNESS] <= 0.0
+
+
+@njit(cache=True)
+def shadow_transmittance(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack, surf, rm):
+    """(tr, tg, tb): the fraction of light that travels from o along unit d over (0, tmax).
+
+    0 behind anything opaque. Cut-outs (alpha MASK below the cutoff) let everything through,
+    partial coverage (BLEND) lets (1 - alpha) through plus what its covered part transmits, and
+    a thin-walled transmissive surface transmits as its straight-through lobe does. Scenes
+    without such materials take the early-exit occlusion query."""
+    if S.flags[FLAG_PASSABLE] == 0:
+        if occluded_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack):
+            return 0.0, 0.0, 0.0
+        return 1.0, 1.0, 1.0
+    tr = 1.0
+    tg = 1.0
+    tb = 1.0
+    for _ in range(MAX_LAYERS):
+        t, inst, k, u, v = intersect_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack)
+        if inst < 0:
+            return tr, tg, tb
+        mid = hit_material(S, inst, k)
+        if not passable(S.mats[mid]):
+            return 0.0, 0.0, 0.0
+        px = ox + t * dx
+        py = oy + t * dy
+        pz = oz + t * dz
+        hit_surface(S, inst, k, u, v, px, py, pz, time_u, surf)
+        alpha = resolve_material(S, mid, surf, rm)
+        cover = 1.0
+        if rm[M_ALPHA_MODE] == ALPHA_MASK:
+            cover = 1.0 if alpha >= rm[M_ALPHA_CUTOFF] else 0.0
+        elif rm[M_ALPHA_MODE] == ALPHA_BLEND:
+            cover = min(1.0, max(0.0, alpha))
+        if cover > 0.0:
+            ttr = ttg = ttb = 0.0
+            if _thin(rm):
+                gx, gy, gz = surf[SF_NG], surf[SF_NG + 1], surf[SF_NG + 2]
+                ttr, ttg, ttb = pbr_thin_transmittance(rm, abs(gx * dx + gy * dy + gz * dz))
+            tr *= 1.0 - cover + cover * ttr
+            tg *= 1.0 - cover + cover * ttg
+            tb *= 1.0 - cover + cover * ttb
+            if not (tr > 0.0 or tg > 0.0 or tb > 0.0):
+                return 0.0, 0.0, 0.0
+        # go on from just behind the surface
+        gx, gy, gz = surf[SF_NG], surf[SF_NG + 1], surf[SF_NG + 2]
+        eps = _offset_scale(px, py, pz)
+        side = eps if gx * dx + gy * dy + gz * dz > 0.0 else -eps
+        ox = px + gx * side
+        oy = py + gy * side
+        oz = pz + gz * side
+        tmax -= t
+        if tmax <= 0.0:
+            return tr, tg, tb
+    return 0.0, 0.0, 0.0
+
+
 @njit(cache=True)
 def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, rr_start,
-               pixel, fx, fy, index, stack_top, stack):
-    """One camera sample: (Lr, Lg, Lb, hit, albedo rgb, normal xyz, depth)."""
+               pixel, fx, fy, index, stack_top, stack, surf, rm, rm_shadow):
+    """One camera sample: (Lr, Lg, Lb, hit, albedo rgb, normal xyz, depth).
+
+    surf (SURF_SIZE,), rm and rm_shadow (MATERIAL_SIZE,) float64: scratch for the hit's surface
+    and resolved material (surface.py) and for shadow rays' tests, allocated once per thread."""
     jx = sample_dim(seed, frame, pixel, index, 0, mode)
     jy = sample_dim(seed, frame, pixel, index, 1, mode)
     lu = sample_dim(seed, frame, pixel, index, 2, mode)
@@ -73,7 +147,45 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
     prev_z = oz
 
     for bounce in range(max_bounces + 1):
-        t, inst, k, u, v = intersect_scene(S, ox, oy, oz, dx, dy, dz, math.inf, time_u, stack_top, stack)
+        base = FIRST_BOUNCE_DIM + DIMS_PER_BOUNCE * bounce
+        # the next surface the ray stops at: cut-outs and uncovered parts are passed
+        u_cover = sample_dim(seed, frame, pixel, index, base + 7, mode)
+        t = 0.0
+        inst = -1
+        k = -1
+        mid = 0
+        u = v = 0.0
+        px = py = pz = 0.0
+        for _ in range(MAX_LAYERS):
+            t, inst, k, u, v = intersect_scene(S, ox, oy, oz, dx, dy, dz, math.inf, time_u, stack_top, stack)
+            if inst < 0:
+                break
+            px = ox + t * dx
+            py = oy + t * dy
+            pz = oz + t * dz
+            mid = hit_material(S, inst, k)
+            hit_surface(S, inst, k, u, v, px, py, pz, time_u, surf)
+            alpha = resolve_material(S, mid, surf, rm)
+            amode = rm[M_ALPHA_MODE]
+            passes = False
+            if amode == ALPHA_MASK:
+                passes = alpha < rm[M_ALPHA_CUTOFF]
+            elif amode == ALPHA_BLEND:
+                # stochastic coverage: stop with probability alpha; the number is reused,
+                # stretched to [0, 1), for the next layer
+                a = min(1.0, max(0.0, alpha))
+                passes = u_cover >= a
+                if passes:
+                    u_cover = (u_cover - a) / (1.0 - a)
+            if not passes:
+                break
+            gx, gy, gz = surf[SF_NG], surf[SF_NG + 1], surf[SF_NG + 2]
+            eps = _offset_scale(px, py, pz)
+            side = eps if gx * dx + gy * dy + gz * dz > 0.0 else -eps
+            ox = px + gx * side
+            oy = py + gy * side
+            oz = pz + gz * side
+
         if inst < 0:
             er, eg, eb = env_radiance(S, dx, dy, dz)
             w = 1.0
@@ -85,60 +197,82 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
             lb += bb * eb * w
             break
 
-        px = ox + t * dx
-        py = oy + t * dy
-        pz = oz + t * dz
-        nx, ny, nz = surface_at(S, inst, k, u, v, px, py, pz, time_u)
-        mat = S.mats[S.inst_mat[inst]]
-        cos_o = -(nx * dx + ny * dy + nz * dz)
+        gx, gy, gz = surf[SF_NG], surf[SF_NG + 1], surf[SF_NG + 2]  # outward (winding or vertex normals)
+        cos_o = -(gx * dx + gy * dy + gz * dz)
+        refracts = needs_outward_normal(rm)
+
+        # Beer-Lambert absorption over the segment just travelled inside a volume
+        if refracts and rm[M_TYPE] == PBR and cos_o < 0.0:
+            abr, abg, abb = pbr_absorption(rm, t)
+            br *= abr
+            bg *= abg
+            bb *= abb
 
         if bounce == 0:
             first_hit = True
-            ar, ag, ab = mat[1], mat[2], mat[3]
-            sgn = 1.0 if cos_o >= 0.0 else -1.0
-            anx, any_, anz = nx * sgn, ny * sgn, nz * sgn
+            ar, ag, ab = rm[M_COLOR], rm[M_COLOR + 1], rm[M_COLOR + 2]
             depth = t
 
         # emission reached by the previous bounce's BSDF sample
-        if mat[6] > 0.0 or mat[7] > 0.0 or mat[8] > 0.0:
+        if rm[M_EMISSION] > 0.0 or rm[M_EMISSION + 1] > 0.0 or rm[M_EMISSION + 2] > 0.0:
             w = 1.0
             if not prev_delta:
-                pl = light_pdf(S, inst, k, prev_x, prev_y, prev_z, px, py, pz, nx, ny, nz, time_u)
+                pl = light_pdf(S, inst, k, prev_x, prev_y, prev_z, px, py, pz, gx, gy, gz, time_u)
                 w = prev_pdf * prev_pdf / (prev_pdf * prev_pdf + pl * pl)
-            lr += br * mat[6] * w
-            lg += bg * mat[7] * w
-            lb += bb * mat[8] * w
+            lr += br * rm[M_EMISSION] * w
+            lg += bg * rm[M_EMISSION + 1] * w
+            lb += bb * rm[M_EMISSION + 2] * w
+
+        apply_normal_map(S, S.mats[mid], surf)
+        nx, ny, nz = surf[SF_NS], surf[SF_NS + 1], surf[SF_NS + 2]
+        # shading frame: refracting materials keep the outward normal (inside/outside matters);
+        # the others face the normals towards the viewer (two-sided surfaces)
+        lift_side = 1.0  # the side of the geometric normal that the lifted origin lies on
+        if not refracts and cos_o < 0.0:
+            gx, gy, gz = -gx, -gy, -gz
+            nx, ny, nz = -nx, -ny, -nz
+            lift_side = -1.0
+        # a shading normal that puts the viewer on the other side than the geometry does
+        # (a strong normal map at a silhouette) falls back to the geometric normal
+        if (nx * dx + ny * dy + nz * dz) * (gx * dx + gy * dy + gz * dz) <= 0.0:
+            nx, ny, nz = gx, gy, gz
+        if bounce == 0:
+            sgn = 1.0 if -(nx * dx + ny * dy + nz * dz) >= 0.0 else -1.0
+            anx, any_, anz = nx * sgn, ny * sgn, nz * sgn
 
         if bounce == max_bounces:
             break
 
-        # shading frame: glass keeps the outward normal (inside/outside matters); opaque
-        # materials face the normal towards the viewer (two-sided surfaces)
-        if mat[0] != 2.0 and cos_o < 0.0:
-            nx, ny, nz = -nx, -ny, -nz
         tx, ty, tz, sx, sy, sz = build_frame(nx, ny, nz)
         wox = -(dx * tx + dy * ty + dz * tz)
         woy = -(dx * sx + dy * sy + dz * sz)
         woz = -(dx * nx + dy * ny + dz * nz)
         eps = _offset_scale(px, py, pz)
-        base = FIRST_BOUNCE_DIM + DIMS_PER_BOUNCE * bounce
+        # origins for rays leaving on the lifted side start from the smooth surface (Hanika 2021)
+        hx, hy, hz = lifted_origin(S, inst, k, u, v, px, py, pz, time_u)
 
         # next-event estimation
-        if has_nonspecular_lobe(mat):
+        if has_nonspecular_lobe(rm):
             u1 = sample_dim(seed, frame, pixel, index, base + 4, mode)
             u2 = sample_dim(seed, frame, pixel, index, base + 5, mode)
             u_sel = sample_dim(seed, frame, pixel, index, base + 6, mode)
-            wx, wy, wz, dist, er, eg, eb, pl = sample_light(S, px, py, pz, time_u, u_sel, u1, u2)
+            wx, wy, wz, dist, er, eg, eb, pl, delta = sample_light(S, px, py, pz, time_u, u_sel, u1, u2)
+            cos_g = wx * gx + wy * gy + wz * gz
             if pl > 0.0 and (er > 0.0 or eg > 0.0 or eb > 0.0):
                 wix = wx * tx + wy * ty + wz * tz
                 wiy = wx * sx + wy * sy + wz * sz
                 wiz = wx * nx + wy * ny + wz * nz
-                fr, fg, fb, pb = bsdf_eval(mat, wox, woy, woz, wix, wiy, wiz)
-                if fr > 0.0 or fg > 0.0 or fb > 0.0:
-                    side = eps if wiz > 0.0 else -eps
-                    sox = px + nx * side
-                    soy = py + ny * side
-                    soz = pz + nz * side
+                fr, fg, fb, pb = bsdf_eval(rm, wox, woy, woz, wix, wiy, wiz)
+                # the geometric and the shading normal must agree on the side of wi, or light
+                # would leak through the surface (Veach 1997, PhD thesis, section 5.3)
+                if (fr > 0.0 or fg > 0.0 or fb > 0.0) and cos_g * wiz > 0.0:
+                    side = eps if cos_g > 0.0 else -eps
+                    qx, qy, qz = px, py, pz
+                    if cos_g * lift_side > 0.0:
+                        qx, qy, qz = hx, hy, hz
+                    sox = qx + gx * side
+                    soy = qy + gy * side
+                    soz = qz + gz * side
                     # aim the shadow ray from the lifted origin at the light point itself and
                     # stop just short of it: reusing the direction from p would move the end
                     # point, which at a sphere's silhouette moves the hit a long way
@@ -152,38 +286,48 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
                         sdy /= span
                         sdz /= span
                         tmax = span * (1.0 - 1e-4)
-                    if not occluded_scene(S, sox, soy, soz, sdx, sdy, sdz, tmax, time_u, stack_top, stack):
-                        # the BSDF could have sampled this direction too: weigh against it
-                        w = pl * pl / (pl * pl + pb * pb)
-                        c = abs(wiz) * w / pl
-                        lr += br * fr * er * c
-                        lg += bg * fg * eg * c
-                        lb += bb * fb * eb * c
+                    vr, vg, vb = shadow_transmittance(S, sox, soy, soz, sdx, sdy, sdz, tmax, time_u,
+                                                      stack_top, stack, surf, rm_shadow)
+                    if vr > 0.0 or vg > 0.0 or vb > 0.0:
+                        if delta:  # a punctual light: no BSDF sample can reach it, no MIS
+                            c = abs(wiz) / pl
+                        else:  # the BSDF could have sampled this direction too: weigh against it
+                            c = abs(wiz) * (pl * pl / (pl * pl + pb * pb)) / pl
+                        lr += br * fr * er * c * vr
+                        lg += bg * fg * eg * c * vg
+                        lb += bb * fb * eb * c * vb
 
         # continue the path by sampling the BSDF
         u1 = sample_dim(seed, frame, pixel, index, base + 0, mode)
         u2 = sample_dim(seed, frame, pixel, index, base + 1, mode)
         u0 = sample_dim(seed, frame, pixel, index, base + 2, mode)
-        wix, wiy, wiz, wr, wg, wb, pdf, is_delta = bsdf_sample(mat, wox, woy, woz, u0, u1, u2)
+        wix, wiy, wiz, wr, wg, wb, pdf, is_delta = bsdf_sample(rm, wox, woy, woz, u0, u1, u2)
         if not (wr > 0.0 or wg > 0.0 or wb > 0.0):
             break
+        ndx = wix * tx + wiy * sx + wiz * nx
+        ndy = wix * ty + wiy * sy + wiz * ny
+        ndz = wix * tz + wiy * sz + wiz * nz
+        dn = math.sqrt(ndx * ndx + ndy * ndy + ndz * ndz)
+        ndx /= dn
+        ndy /= dn
+        ndz /= dn
+        cos_g = ndx * gx + ndy * gy + ndz * gz
+        if cos_g * wiz <= 0.0:
+            break  # the sample leaves on the other side of the geometry than of the shading normal
         br *= wr
         bg *= wg
         bb *= wb
         prev_pdf = pdf
         prev_delta = is_delta
         prev_x, prev_y, prev_z = px, py, pz
-        dx = wix * tx + wiy * sx + wiz * nx
-        dy = wix * ty + wiy * sy + wiz * ny
-        dz = wix * tz + wiy * sz + wiz * nz
-        dn = math.sqrt(dx * dx + dy * dy + dz * dz)
-        dx /= dn
-        dy /= dn
-        dz /= dn
-        side = eps if wiz > 0.0 else -eps
-        ox = px + nx * side
-        oy = py + ny * side
-        oz = pz + nz * side
+        dx, dy, dz = ndx, ndy, ndz
+        side = eps if cos_g > 0.0 else -eps
+        qx, qy, qz = px, py, pz
+        if cos_g * lift_side > 0.0:
+            qx, qy, qz = hx, hy, hz
+        ox = qx + gx * side
+        oy = qy + gy * side
+        oz = qz + gz * side
 
         if bounce + 1 >= rr_start:
             q = min(0.95, max(br, max(bg, bb)))
@@ -209,6 +353,9 @@ def render_tile(S, cam, aperture, width, height, frame, seed, mode, max_bounces,
     for ty in prange(tile_h):
         stack_top = np.empty(STACK_SIZE, np.int32)
         stack = np.empty(STACK_SIZE, np.int32)
+        surf = np.zeros(SURF_SIZE)
+        rm = np.zeros(MATERIAL_SIZE)
+        rm_shadow = np.zeros(MATERIAL_SIZE)
         y = y0 + ty
         for tx in range(tile_w):
             x = x0 + tx
@@ -216,7 +363,7 @@ def render_tile(S, cam, aperture, width, height, frame, seed, mode, max_bounces,
             for s in range(first, first + count):
                 lr, lg, lb, hit, ar, ag, ab, nx, ny, nz, depth = trace_path(
                     S, cam, aperture, width, height, frame, seed, mode, max_bounces, rr_start,
-                    pixel, float(x), float(y), s, stack_top, stack,
+                    pixel, float(x), float(y), s, stack_top, stack, surf, rm, rm_shadow,
                 )
                 if not (math.isfinite(lr) and math.isfinite(lg) and math.isfinite(lb)):
                     dropped[ty, tx] += 1.0

@@ -7,6 +7,8 @@ techniques for Monte Carlo rendering") using the same numbers from both sides.
 
 Choice of light: the environment with probability `p_env` (env_params[3]), otherwise one scene
 light in proportion to its power (`light_pmf`, emitted flux at the frame's middle instant).
+Scene lights are emissive triangles and spheres, and punctual lights (punctual.py): those are
+delta lights, whose samples report the probability of their choice instead of a density.
 
 Environment maps are latitude-longitude: row 0 is straight up (+y), the middle row the horizon,
 the middle column looks towards -z, and `rotate` turns the map about +y. They are sampled with a
@@ -21,10 +23,12 @@ import math
 import numpy as np
 from numba import njit
 
+from .punctual import sample_punctual
 from .scene import KIND_SPHERE, point_to_world
+from .surface import emission_at
 
 INV_4PI = 1.0 / (4.0 * math.pi)
-NO_SAMPLE = (0.0, 0.0, 1.0, 0.0, 0.0, 0.0, 0.0, 0.0)
+NO_SAMPLE = (0.0, 0.0, 1.0, 0.0, 0.0, 0.0, 0.0, 0.0, False)
 
 
 @njit(cache=True, inline="always")
@@ -215,13 +219,23 @@ def _orthonormal(wx, wy, wz):
     return 1.0 + sgn * wx * wx * a, sgn * b, -sgn * wx, b, sgn + wy * wy * a, -wy
 
 
+@njit(cache=True, inline="always")
+def _light_material(S, inst, k):
+    """Material row of a light: the instance's, else its triangle k's."""
+    m = S.inst_mat[inst]
+    if m >= 0 or k < 0:
+        return max(m, 0)
+    return S.tri_mat[k]
+
+
 @njit(cache=True)
 def sample_light(S, px, py, pz, time_u, u_sel, u1, u2):
     """Pick a light and a point on it as seen from p.
 
-    Returns (wx, wy, wz, dist, Lr, Lg, Lb, pdf): unit direction from p, distance to the light
-    point (inf for the environment), its emitted radiance towards p, and the solid-angle pdf with
-    the choice of light included. pdf = 0 means no sample.
+    Returns (wx, wy, wz, dist, Lr, Lg, Lb, pdf, delta): unit direction from p, distance to the
+    light point (inf for the environment), its emitted radiance towards p, and the solid-angle pdf
+    with the choice of light included. pdf = 0 means no sample. For a punctual light delta is True,
+    L is the irradiance it gives at normal incidence and pdf the probability of choosing it.
     """
     p_env = S.env_params[3]
     n_lights = S.light_inst.shape[0]
@@ -232,11 +246,19 @@ def sample_light(S, px, py, pz, time_u, u_sel, u1, u2):
         if pdf <= 0.0:
             return NO_SAMPLE
         lr, lg, lb = env_radiance(S, dx, dy, dz)
-        return dx, dy, dz, math.inf, lr, lg, lb, p_env * pdf
+        return dx, dy, dz, math.inf, lr, lg, lb, p_env * pdf, False
     light = _search(S.light_cdf, min((u_sel - p_env) / (1.0 - p_env), 0.99999999))
     inst = S.light_inst[light]
-    em = S.mats[S.inst_mat[inst]]
     p_choice = (1.0 - p_env) * S.light_pmf[light]
+    if p_choice <= 0.0:
+        return NO_SAMPLE
+    if inst < 0:
+        wx, wy, wz, dist, er, eg, eb = sample_punctual(S.punct[S.light_prim[light]], px, py, pz, time_u)
+        return wx, wy, wz, dist, er, eg, eb, p_choice, True
+    k = S.light_prim[light]
+    em = S.mats[_light_material(S, inst, k)]
+    wb = 0.0
+    wc = 0.0
     if S.inst_kind[inst] == KIND_SPHERE:
         cx, cy, cz, r = _world_sphere(S, inst, time_u)
         ex, ey, ez = cx - px, cy - py, cz - pz
@@ -257,7 +279,7 @@ def sample_light(S, px, py, pz, time_u, u_sel, u1, u2):
             dz = cp * tz + sp * bz + cos_t * wz
             # distance to the near side along d (clamped for rays at the silhouette)
             dist = d * cos_t - math.sqrt(max(0.0, r * r - d2 * sin_t * sin_t))
-            return dx, dy, dz, dist, em[6], em[7], em[8], p_choice / (2.0 * math.pi * one_minus)
+            return dx, dy, dz, dist, em[6], em[7], em[8], p_choice / (2.0 * math.pi * one_minus), False
         # inside the sphere: uniform by area
         z = 1.0 - 2.0 * u1
         rr = math.sqrt(max(0.0, 1.0 - z * z))
@@ -266,7 +288,6 @@ def sample_light(S, px, py, pz, time_u, u_sel, u1, u2):
         qx, qy, qz = cx + r * nx, cy + r * ny, cz + r * nz
         conv = _area_to_solid(px, py, pz, qx, qy, qz, nx, ny, nz, 4.0 * math.pi * r * r)
     else:
-        k = S.light_prim[light]
         ax, ay, az, bx, by, bz, cx, cy, cz = _world_triangle(S, inst, k, time_u)
         # uniform point on the triangle (Osada et al. 2002, "Shape distributions", eq. 1)
         su = math.sqrt(u1)
@@ -284,4 +305,7 @@ def sample_light(S, px, py, pz, time_u, u_sel, u1, u2):
         return NO_SAMPLE
     lx, ly, lz = qx - px, qy - py, qz - pz
     dist = math.sqrt(lx * lx + ly * ly + lz * lz)
-    return lx / dist, ly / dist, lz / dist, dist, em[6], em[7], em[8], p_choice * conv
+    if k >= 0:  # a triangle: its emission may be textured
+        er, eg, eb = emission_at(S, _light_material(S, inst, k), inst, k, wb, wc)
+        return lx / dist, ly / dist, lz / dist, dist, er, eg, eb, p_choice * conv, False
+    return lx / dist, ly / dist, lz / dist, dist, em[6], em[7], em[8], p_choice * conv, False

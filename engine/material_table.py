@@ -28,6 +28,13 @@ Columns (the legacy types DIFFUSE, METAL, GLASS, PLASTIC read only 0-8):
 
 from __future__ import annotations
 
+import math
+
+import numpy as np
+from numba import njit
+
+from .scene_data import ALPHA_OPAQUE
+
 M_TYPE = 0
 M_COLOR = 1
 M_ROUGHNESS = 4
@@ -66,3 +73,73 @@ METAL = 1
 GLASS = 2
 PLASTIC = 3
 PBR = 4
+
+
+def row_from_spec(spec, texref_index) -> np.ndarray:
+    """The PBR row of a `scene_data.MaterialSpec`.
+
+    texref_index(ref: TexRef, srgb: bool) -> int gives the texture-reference row of a texture
+    (srgb: its rgb is sRGB-encoded, as glTF says of base colour, emissive and specular colour).
+    """
+    row = blank_row(PBR)
+    row[M_COLOR:M_COLOR + 3] = np.asarray(spec.base_color, np.float64)[:3]
+    row[M_ALPHA] = float(np.asarray(spec.base_color, np.float64)[3])
+    row[M_ROUGHNESS] = spec.roughness
+    row[M_METALLIC] = spec.metallic
+    row[M_IOR] = spec.ior
+    row[M_EMISSION:M_EMISSION + 3] = np.asarray(spec.emissive, np.float64) * spec.emissive_strength
+    row[M_ALPHA_MODE] = spec.alpha_mode
+    row[M_ALPHA_CUTOFF] = spec.alpha_cutoff
+    row[M_DOUBLE_SIDED] = 1.0 if spec.double_sided else 0.0
+    row[M_TRANSMISSION] = spec.transmission
+    row[M_THICKNESS] = spec.thickness
+    row[M_ATTEN_COLOR:M_ATTEN_COLOR + 3] = spec.attenuation_color
+    row[M_ATTEN_DIST] = spec.attenuation_distance
+    row[M_CLEARCOAT] = spec.clearcoat
+    row[M_CLEARCOAT_ROUGHNESS] = spec.clearcoat_roughness
+    row[M_SPECULAR] = spec.specular
+    row[M_SPECULAR_COLOR:M_SPECULAR_COLOR + 3] = spec.specular_color
+    for column, ref, srgb in (
+        (M_TEX_BASE, spec.base_color_tex, True),
+        (M_TEX_METALLIC_ROUGHNESS, spec.metallic_roughness_tex, False),
+        (M_TEX_NORMAL, spec.normal_tex, False),
+        (M_TEX_EMISSIVE, spec.emissive_tex, True),
+        (M_TEX_TRANSMISSION, spec.transmission_tex, False),
+        (M_TEX_CLEARCOAT, spec.clearcoat_tex, False),
+        (M_TEX_CLEARCOAT_ROUGHNESS, spec.clearcoat_roughness_tex, False),
+        (M_TEX_SPECULAR, spec.specular_tex, False),
+        (M_TEX_SPECULAR_COLOR, spec.specular_color_tex, True),
+    ):
+        if ref is not None:
+            row[column] = texref_index(ref, srgb)
+    return row
+
+
+def blank_row(kind: int) -> np.ndarray:
+    """A row of type `kind` whose every column has the value that changes nothing: opaque,
+    one-sided off, no textures, no absorption, the specular extension's neutral 1."""
+    row = np.zeros(MATERIAL_SIZE, np.float64)
+    row[M_TYPE] = kind
+    row[M_IOR] = 1.5
+    row[M_ALPHA] = 1.0
+    row[M_ALPHA_CUTOFF] = 0.5
+    row[M_SPECULAR] = 1.0
+    row[M_SPECULAR_COLOR:M_SPECULAR_COLOR + 3] = 1.0
+    row[M_ATTEN_COLOR:M_ATTEN_COLOR + 3] = 1.0
+    row[M_ATTEN_DIST] = math.inf
+    row[list(TEXTURE_COLUMNS)] = -1.0
+    return row
+
+
+@njit(cache=True)
+def passable(row):
+    """True when a ray may pass the material without scattering: a cut-out (MASK), partial
+    coverage (BLEND) or a thin-walled transmissive surface (before textures are applied)."""
+    if row[M_ALPHA_MODE] != ALPHA_OPAQUE:
+        return True
+    return row[M_TYPE] == PBR and row[M_TRANSMISSION] > 0.0 and row[M_THICKNESS] <= 0.0
+
+
+def is_passable(row: np.ndarray) -> bool:
+    """`passable` for Python callers."""
+    return bool(passable(np.asarray(row, np.float64)))

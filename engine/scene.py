@@ -40,6 +40,13 @@ class Scene(NamedTuple):
     mesh_node_base: np.ndarray  # (M,) int64
     mesh_tri_base: np.ndarray  # (M,) int64
     mesh_tri_count: np.ndarray  # (M,) int64
+    # per triangle and per vertex (mesh_table.py)
+    tri_mat: np.ndarray  # (T,) int32 material row of each triangle
+    tri_vtx: np.ndarray  # (T, 3) int32 rows of its corners in the vertex arrays
+    vtx_n: np.ndarray  # (V, 3) float32 unit normals
+    vtx_uv: np.ndarray  # (V, 4) float32 u0, v0, u1, v1
+    vtx_t: np.ndarray  # (V, 4) float32 tangent xyz, handedness w
+    mesh_attr: np.ndarray  # (M,) int64 ATTR_* bits
     # top level, world space
     tl_lo: np.ndarray  # (Q, 3) float32
     tl_hi: np.ndarray
@@ -50,15 +57,22 @@ class Scene(NamedTuple):
     # instances
     inst_kind: np.ndarray  # (K,) int64: KIND_MESH | KIND_SPHERE
     inst_mesh: np.ndarray  # (K,) int64 mesh index, -1 for spheres
-    inst_mat: np.ndarray  # (K,) int64 row of `mats`
+    inst_mat: np.ndarray  # (K,) int64 row of `mats` for the whole instance, -1: per triangle
     inst_sphere: np.ndarray  # (K, 4) float64 object-space centre and radius
     inst_moving: np.ndarray  # (K,) int64: 1 when open and close placements differ
     inst_motion: np.ndarray  # (K, 2, 10) float64 placements at shutter open / close
     inst_light_base: np.ndarray  # (K,) int64 first light index of the instance, -1 if it does not emit
     mats: np.ndarray  # (m, MATERIAL_SIZE) float64 material rows (material_table.py)
+    # textures (textures.py)
+    texrefs: np.ndarray  # (R, TEXREF_SIZE) float64 texture references
+    tex_pixels: np.ndarray  # (N,) uint8 RGBA texels of every image
+    tex_info: np.ndarray  # (I, 4) int64 [offset, width, height, 0] per image
+    srgb_lut: np.ndarray  # (256,) float64 sRGB-encoded byte -> linear
+    # punctual lights (punctual.py)
+    punct: np.ndarray  # (P, PUNCT_SIZE) float64
     # lights: emissive triangles and spheres, chosen in proportion to power
-    light_inst: np.ndarray  # (L,) int64
-    light_prim: np.ndarray  # (L,) int64 absolute triangle index, -1 for a sphere
+    light_inst: np.ndarray  # (L,) int64 instance; -1 for a punctual light
+    light_prim: np.ndarray  # (L,) int64 absolute triangle index, -1 for a sphere, row of punct
     light_pmf: np.ndarray  # (L,) float64
     light_cdf: np.ndarray  # (L + 1,) float64
     # environment
@@ -67,6 +81,11 @@ class Scene(NamedTuple):
     env_row_cdf: np.ndarray  # (H + 1,) float64 marginal over rows
     env_col_cdf: np.ndarray  # (H, W + 1) float64 conditional over columns per row
     env_params: np.ndarray  # (4,) float64: [has_map, strength, rotate (radians), p_env]
+    flags: np.ndarray  # (FLAG_COUNT,) int64 scene-wide facts (FLAG_*)
+
+
+FLAG_PASSABLE = 0  # some material lets shadow rays through (cut-outs, coverage, thin transmission)
+FLAG_COUNT = 4
 
 
 # ------------------------------------------------------------------------------------------
@@ -97,6 +116,17 @@ def normal_to_world(motion, moving, time_u, nx, ny, nz):
     wx, wy, wz = quat_rotate(qw, qx, qy, qz, nx / sx, ny / sy, nz / sz)
     n = math.sqrt(wx * wx + wy * wy + wz * wz)
     return wx / n, wy / n, wz / n
+
+
+@njit(cache=True, inline="always")
+def vector_to_world(motion, moving, time_u, vx, vy, vz):
+    """World direction of an object-space surface direction (a tangent): R (s * v)."""
+    if moving:
+        tx, ty, tz, qw, qx, qy, qz, sx, sy, sz = placement_at(motion, time_u)
+    else:
+        m = motion[0]
+        qw, qx, qy, qz, sx, sy, sz = m[3], m[4], m[5], m[6], m[7], m[8], m[9]
+    return quat_rotate(qw, qx, qy, qz, vx * sx, vy * sy, vz * sz)
 
 
 @njit(cache=True, inline="always")

@@ -31,7 +31,9 @@ MAX_SIZE = 16384
 MAX_PIXELS = 100_000_000
 MAX_SAMPLES = 1_048_576
 MAX_BOUNCES = 128
-MATERIAL_TYPES = ("diffuse", "metal", "glass", "plastic")
+MATERIAL_TYPES = ("diffuse", "metal", "glass", "plastic", "pbr")
+LIGHT_TYPES = ("point", "spot", "directional")
+SCENE_EXTENSIONS = (".glb", ".gltf")
 SAMPLERS = ("sobol", "random")
 _NAME = re.compile(r"[A-Za-z0-9_][A-Za-z0-9_.-]{0,99}")
 _LABEL = re.compile(r"[A-Za-z0-9_.-]([A-Za-z0-9 _.-]{0,62}[A-Za-z0-9_.-])?")
@@ -211,6 +213,7 @@ class Camera:
     shutter: float
     keys: tuple = ()
     auto_focus: bool = False
+    scene_camera: str | None = None  # render through this camera node of the shot's scene file
 
 
 @dataclass(frozen=True, eq=False)
@@ -229,6 +232,25 @@ class Material:
     roughness: float
     ior: float
     emission: np.ndarray  # (3,) radiance
+    metallic: float = 0.0  # "pbr" only
+    transmission: float = 0.0  # "pbr" only: a thin-walled transmissive surface
+
+
+@dataclass(frozen=True, eq=False)
+class Light:
+    """A punctual light of the shot (docs/shot-file.md, "Lights"): position and direction (3,)
+    float64 (direction: where the light travels, unit); color (3,); intensity: irradiance
+    I cos θ / d² (point, spot) or E cos θ (directional) in the shot's radiance units; cone angles
+    in radians."""
+
+    name: str
+    type: str
+    position: np.ndarray
+    direction: np.ndarray
+    color: np.ndarray
+    intensity: float
+    inner_cone: float
+    outer_cone: float
 
 
 @dataclass(frozen=True, eq=False)
@@ -277,6 +299,10 @@ class Shot:
     environment: Environment
     materials: tuple
     objects: tuple
+    scene: str | None = None  # shot-relative path of a glTF 2.0 scene file
+    time_zero: float | None = None  # the frame that shows the scene file's time 0 (None: first frame)
+    scene_light_scale: float = 1.0  # multiplies the intensity of the scene file's lights
+    lights: tuple = ()
     path: Path | None = None
     root: Path | None = None
     raw: dict = field(default_factory=dict, repr=False)
@@ -284,10 +310,18 @@ class Shot:
     def frames(self) -> range:
         return range(self.first_frame, self.last_frame + 1)
 
+    def scene_time(self, frame: float) -> float:
+        """Seconds of scene-file animation time shown at (fractional) `frame`: (frame - zero) / fps,
+        with zero = `time_zero` or the first frame."""
+        zero = self.first_frame if self.time_zero is None else self.time_zero
+        return (float(frame) - zero) / self.fps
+
     def files(self) -> list[str]:
         """Sorted shot-relative paths of every file the shot uses (meshes with their MTL files,
         textures and buffers; the environment map), for bundling."""
         out: set[str] = set()
+        if self.scene is not None:
+            out.update(asset_files(self.root, self.scene, "scene"))
         for o in self.objects:
             if o.mesh is not None:
                 out.update(asset_files(self.root, o.mesh, f"object[{o.name}].mesh"))
@@ -351,7 +385,13 @@ def _keys(t: _Table, allowed, read) -> tuple:
     return tuple(keys)
 
 
-def _camera(t: _Table) -> Camera:
+def _camera_name(v, key):
+    if not (isinstance(v, str) and v.strip()):
+        _fail(key, "the name of a camera node in the scene file", v)
+    return v
+
+
+def _camera(t: _Table, scene_file: bool = False) -> Camera:
     up_check = vector("3 numbers [x, y, z], the camera's up direction")
 
     def read_key(kt, frame):
@@ -359,7 +399,13 @@ def _camera(t: _Table) -> Camera:
                          kt.get("up", up_check, None), kt.get("fov", _FOV, None),
                          kt.get("focus", _FOCUS, None))
 
-    position, target = t.get("position", _POINT), t.get("target", _POINT)
+    scene_camera = t.get("scene_camera", _camera_name, None)
+    if scene_camera is not None and not scene_file:
+        _fail(t.key("scene_camera"), 'a shot with a scene file (scene = "assets/shot.glb") to take the camera from',
+              scene_camera)
+    placeholder = None if scene_camera is None else _frozen([0, 0, 0])
+    position = t.get("position", _POINT, placeholder)
+    target = t.get("target", _POINT, None if scene_camera is None else _frozen([0, 0, -1]))
     keys = _keys(t, {"frame", "position", "target", "up", "fov", "focus"}, read_key)
     auto = not t.has("focus") and all(k.focus is None for k in keys)
     distance = float(np.linalg.norm(target - position))
@@ -369,8 +415,10 @@ def _camera(t: _Table) -> Camera:
         aperture=t.get("aperture", number("a lens radius >= 0 in scene units", 0), 0.0),
         focus=t.get("focus", _FOCUS, distance if distance > 0 else 1.0),
         shutter=t.get("shutter", number("an open fraction between 0 and 1", 0, 1), 0.5),
-        keys=keys, auto_focus=auto,
+        keys=keys, auto_focus=auto, scene_camera=scene_camera,
     )
+    if scene_camera is not None:
+        return cam  # placed by the scene's camera node (checked when the scene is read)
     for i, key in enumerate(keys or [None], 1):
         where = "camera" if key is None else f"camera.key[{i}]"
         when = "" if key is None else f" at frame {key.frame}"
@@ -397,6 +445,9 @@ def _environment(t: _Table, root) -> Environment:
 
 def _material(t: _Table, name: str) -> Material:
     kind = t.get("type", choice(MATERIAL_TYPES))
+    for only_pbr in ("metallic", "transmission"):
+        if kind != "pbr" and t.has(only_pbr):
+            _fail(t.key(only_pbr), 'no such key for this type (it belongs to type = "pbr")', t.data[only_pbr])
     return Material(
         name=name, type=kind,
         color=t.get("color", vector("3 numbers between 0 and 1 [r, g, b]", 0, 1), _frozen([0.8] * 3)),
@@ -405,6 +456,46 @@ def _material(t: _Table, name: str) -> Material:
         ior=t.get("ior", number("an index of refraction between 1 and 4", 1, 4), 1.5),
         emission=t.get("emission", vector("a radiance >= 0: one number or [r, g, b]", 0, scalar=True),
                        _frozen([0, 0, 0])),
+        metallic=t.get("metallic", number("a metalness between 0 and 1", 0, 1), 0.0),
+        transmission=t.get("transmission", number("a transmission between 0 and 1", 0, 1), 0.0),
+    )
+
+
+def _light(t: _Table, name: str) -> Light:
+    kind = t.get("type", choice(LIGHT_TYPES))
+    direction = _frozen([0, -1, 0])
+    if kind != "directional" or t.has("position"):
+        position = t.get("position", _POINT)
+    else:
+        position = _frozen([0, 0, 0])
+    if kind != "point":
+        aim = vector("3 numbers [x, y, z], the direction the light shines, not all zero")
+        if t.has("direction") == t.has("target"):
+            _fail(t.path, "exactly one of direction = [x, y, z] or target = [x, y, z]",
+                  _Text("both" if t.has("direction") else "neither"))
+        d = t.get("direction", aim) if t.has("direction") else t.get("target", _POINT) - position
+        norm = float(np.linalg.norm(d))
+        if not norm > 0:
+            _fail(t.key("direction" if t.has("direction") else "target"),
+                  "a direction that is not zero (a target away from the position)", d.tolist())
+        direction = _frozen(d / norm)
+    elif t.has("direction") or t.has("target"):
+        key = "direction" if t.has("direction") else "target"
+        _fail(t.key(key), 'no such key for a point light (it belongs to "spot" and "directional")', t.data[key])
+    cone = number("an angle in degrees between 0 and 90", 0, 90)
+    outer = t.get("outer_cone", cone, 45.0) if kind == "spot" else 45.0
+    inner = t.get("inner_cone", cone, 0.0) if kind == "spot" else 0.0
+    if kind != "spot":
+        for k in ("inner_cone", "outer_cone"):
+            if t.has(k):
+                _fail(t.key(k), 'no such key for this light (it belongs to type = "spot")', t.data[k])
+    if inner >= outer and kind == "spot":
+        _fail(t.key("inner_cone"), f"an angle below outer_cone ({outer:g})", inner)
+    return Light(
+        name=name, type=kind, position=position, direction=direction,
+        color=t.get("color", vector("3 numbers between 0 and 1 [r, g, b]", 0, 1), _frozen([1, 1, 1])),
+        intensity=t.get("intensity", number("an intensity >= 0 in the shot's radiance units", 0), 1.0),
+        inner_cone=math.radians(inner), outer_cone=math.radians(outer),
     )
 
 
@@ -454,7 +545,9 @@ def parse_shot(data: dict, root=None, path=None) -> Shot:
     given); path: the shot file, if any. Raises ShotError (AssetError for files).
     """
     top = _Table(data, "", {"name", "frames", "fps", "image", "sampling", "camera", "environment",
-                            "material", "object"}, "a table of shot keys")
+                            "material", "object", "light", "scene", "time_zero", "scene_light_scale"},
+                 "a table of shot keys")
+    scene = top.get("scene", _asset(SCENE_EXTENSIONS, root), None)
     name = top.get("name", lambda v, k: v if isinstance(v, str) and _NAME.fullmatch(v) else _fail(
         k, "a name of letters, digits and _ - . (not starting with . or -), at most 100 characters", v))
     first, last = top.get("frames", _frames)
@@ -470,13 +563,19 @@ def parse_shot(data: dict, root=None, path=None) -> Shot:
                       "a table [sampling] with samples")
     bounce = integer(f"a bounce count between 0 and {MAX_BOUNCES}", 0, MAX_BOUNCES)
     camera = _camera(_Table(data.get("camera", _MISSING), "camera", {
-        "position", "target", "up", "fov", "aperture", "focus", "shutter", "key"}))
+        "position", "target", "up", "fov", "aperture", "focus", "shutter", "key", "scene_camera"}),
+        scene_file=scene is not None)
     environment = _environment(_Table(data.get("environment", {}), "environment",
                                       {"color", "map", "strength", "rotate"}), root)
 
     mat_data = top.array("material", "an array of tables ([[material]] blocks)")
-    materials = tuple(_material(_Table(d, label, {"name", "type", "color", "roughness", "ior", "emission"}),
+    materials = tuple(_material(_Table(d, label, {"name", "type", "color", "roughness", "ior", "emission",
+                                                  "metallic", "transmission"}),
                                 d["name"]) for d, label in zip(mat_data, _labels(mat_data, "material")))
+    light_data = top.array("light", "an array of tables ([[light]] blocks)")
+    lights = tuple(_light(_Table(d, label, {"name", "type", "position", "direction", "target", "color",
+                                            "intensity", "inner_cone", "outer_cone"}), d["name"])
+                   for d, label in zip(light_data, _labels(light_data, "light")))
     known = {m.name: m for m in materials}
     obj_data = top.array("object", "an array of tables ([[object]] blocks)")
     objects = tuple(_object(_Table(d, label, {"name", "material", "sphere", "mesh", "translate", "rotate",
@@ -493,6 +592,9 @@ def parse_shot(data: dict, root=None, path=None) -> Shot:
         sampler=sampling.get("sampler", choice(SAMPLERS), "sobol"),
         roulette=sampling.get("roulette", bounce, 3),
         camera=camera, environment=environment, materials=materials, objects=objects,
+        scene=scene, lights=lights,
+        time_zero=top.get("time_zero", number("a frame number (may be negative or fractional)"), None),
+        scene_light_scale=top.get("scene_light_scale", number("a multiplier >= 0", 0), 1.0),
         path=None if path is None else Path(path), root=None if root is None else Path(root),
         raw=copy.deepcopy(data),
     )

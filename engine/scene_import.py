@@ -1,0 +1,279 @@
+"""A shot's files as one scene: its glTF scene file, its objects' mesh files and its own
+materials, gathered into the tables the compiler hands to the kernels.
+
+* The scene file (`scene = "assets/shot.glb"`) keeps its node hierarchy and instancing: each
+  glTF mesh is stored once in its object space, and every node that uses it becomes an instance
+  placed, frame by frame, by the node's world matrix. A node whose world matrix cannot be written
+  as translation × rotation × per-axis scale (a shear from a non-uniformly scaled parent) gets
+  its own copy of the mesh with the matrix applied, when it is not animated.
+* An object's `mesh = "x.glb"` (or .obj, .ply, .stl) is flattened at the file's time 0: every
+  node's mesh with its world matrix applied, placed by the object's own transform.
+* Materials: the shot's `[[material]]` rows first (objects name them), then each file's
+  materials; a file material whose name equals a shot material's is replaced by the shot's.
+  A file mesh without a material gets the glTF default material (glTF files) or a mid grey
+  diffuse (other formats).
+* Textures are packed once per image (textures.py); every texture reference a material uses
+  becomes one row of the reference table.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from lampyr.errors import AssetError
+
+from .assets import resolve_asset
+from .bsdf import DIFFUSE, GLASS, METAL, PLASTIC, material_row
+from .gltf_animation import decompose_trs, world_matrices
+from .material_table import M_METALLIC, M_TEX_NORMAL, M_TRANSMISSION, PBR, row_from_spec
+from .mesh_table import MeshTableBuilder
+from .scene_data import MaterialSpec, SceneData
+from .skinning import is_deforming
+from .tangents import vertex_tangents
+from .textures import pack_images, texref_row
+
+MATERIAL_TYPES = {"diffuse": DIFFUSE, "metal": METAL, "glass": GLASS, "plastic": PLASTIC, "pbr": PBR}
+DEFAULT_GREY = (0.8, 0.8, 0.8)  # rule of thumb: a mid-light grey for meshes without a colour
+GLTF_EXTENSIONS = (".glb", ".gltf")
+SCENE_MESH_EXTENSIONS = (".glb", ".gltf", ".obj", ".ply", ".stl")
+
+
+def read_scene_file(root, rel_path: str, key: str) -> SceneData:
+    """The SceneData of a shot-relative glTF, OBJ, PLY or STL file; errors are AssetError naming key."""
+    path = resolve_asset(root, rel_path, key, SCENE_MESH_EXTENSIONS)
+    if path.suffix.lower() in GLTF_EXTENSIONS:
+        from .gltf_read import read_gltf
+
+        return read_gltf(path, key)
+    from .mesh_read import read_mesh_file
+
+    return read_mesh_file(path, key)
+
+
+def shot_material_row(m) -> np.ndarray:
+    """The table row of a shot's `[[material]]`."""
+    kind = MATERIAL_TYPES[m.type]
+    if kind != PBR:
+        return material_row(kind, m.color, m.roughness, m.ior, m.emission)
+    row = material_row(DIFFUSE, m.color, m.roughness, m.ior, m.emission)  # checks the values
+    row[0] = PBR
+    row[M_METALLIC] = m.metallic
+    row[M_TRANSMISSION] = m.transmission
+    return row
+
+
+@dataclass(frozen=True, eq=False)
+class Part:
+    """One instance to place per frame: a sphere or a mesh of the mesh table.
+
+    material: row for the whole instance, or -1 for the triangles' own; obj: the shot object
+    that places it (its keys), or -1; node: the scene node that places it (its world matrix), or
+    -1; neither: placed where it is (identity). box: (2, 3) object-space bounds.
+    """
+
+    kind: int
+    mesh: int
+    material: int
+    box: np.ndarray
+    sphere: tuple = (0.0, 0.0, 0.0, 0.0)
+    obj: int = -1
+    node: int = -1
+
+
+@dataclass(eq=False)
+class Assembly:
+    """What `assemble` gathers: the tables and the instance list (see compiler.Geometry)."""
+
+    meshes: object  # MeshTable
+    parts: list
+    mats: np.ndarray
+    texrefs: np.ndarray
+    tex_pixels: np.ndarray
+    tex_info: np.ndarray
+    scene: SceneData | None
+    deforming: list = field(default_factory=list)  # (node, material rows (F,)) rebuilt per frame
+    warnings: list = field(default_factory=list)
+
+
+class _Tables:
+    """Materials, images and texture references as they are gathered."""
+
+    def __init__(self, shot):
+        self.rows = [shot_material_row(m) for m in shot.materials]
+        self.by_name = {m.name: i for i, m in enumerate(shot.materials)}
+        self.images: list = []
+        self.texrefs: list = []
+        self._grey = None
+        self._gltf_default = None
+
+    def file_materials(self, sd: SceneData, gltf: bool) -> np.ndarray:
+        """Rows of a file's materials, (len(materials) + 1,) int64, the last for 'no material'."""
+        image_base = len(self.images)
+        self.images.extend(sd.images)
+
+        def ref_row(ref, srgb):
+            row = texref_row(ref, srgb)
+            row[0] = ref.image + image_base  # the image's row in the packed table
+            self.texrefs.append(row)
+            return len(self.texrefs) - 1
+
+        out = []
+        for spec in sd.materials:
+            if spec.name in self.by_name:
+                out.append(self.by_name[spec.name])  # the shot's material of that name replaces it
+                continue
+            self.rows.append(row_from_spec(spec, ref_row))
+            out.append(len(self.rows) - 1)
+        out.append(self.default_row(gltf))
+        return np.array(out, np.int64)
+
+    def default_row(self, gltf: bool) -> int:
+        if gltf:
+            if self._gltf_default is None:  # glTF 2.0 spec, 3.9.6: the default material
+                self.rows.append(row_from_spec(MaterialSpec("default"), None))
+                self._gltf_default = len(self.rows) - 1
+            return self._gltf_default
+        if self._grey is None:
+            self.rows.append(material_row(DIFFUSE, DEFAULT_GREY))
+            self._grey = len(self.rows) - 1
+        return self._grey
+
+
+def _mesh_arrays(mesh, mat_rows: np.ndarray, rows: list, positions=None, normals=None):
+    """(positions, faces, tri_mat, normals, uv0, uv1, tangents) of a MeshData for the builder,
+    tangents computed when a normal-mapped material needs them and the file has none."""
+    positions = mesh.positions if positions is None else positions
+    normals = mesh.normals if normals is None else normals
+    faces = np.asarray(mesh.faces, np.int64)
+    tri_mat = mat_rows[np.asarray(mesh.face_material, np.int64)]  # -1 indexes the default row
+    tangents = mesh.tangents
+    if tangents is None and normals is not None:
+        uses = [rows[int(m)] for m in np.unique(tri_mat)]
+        mapped = [r for r in uses if r[M_TEX_NORMAL] >= 0]
+        if mapped and (mesh.uv0 is not None or mesh.uv1 is not None):
+            uv = mesh.uv0 if mesh.uv0 is not None else mesh.uv1
+            tangents = vertex_tangents(positions, normals, uv, faces)
+    return positions, faces, tri_mat, normals, mesh.uv0, mesh.uv1, tangents
+
+
+def _transformed(mesh, matrix: np.ndarray):
+    """(positions, normals, faces-reversal flag) of a mesh under a (4, 4) matrix."""
+    a = matrix[:3, :3]
+    positions = np.asarray(mesh.positions, np.float64) @ a.T + matrix[:3, 3]
+    normals = None
+    if mesh.normals is not None:
+        normals = np.asarray(mesh.normals, np.float64) @ np.linalg.inv(a)  # (A^-T n) as rows
+        length = np.linalg.norm(normals, axis=1, keepdims=True)
+        normals = normals / np.where(length > 0, length, 1.0)
+    return positions, normals
+
+
+def assemble(shot, scene: SceneData | None, object_files: dict) -> Assembly:
+    """Gather the shot's objects, its scene file and its mesh files into the scene's tables.
+
+    scene: the shot's scene file read (or None); object_files: object index -> SceneData of its
+    mesh file.
+    """
+    from .scene import KIND_MESH, KIND_SPHERE
+
+    tables = _Tables(shot)
+    builder = MeshTableBuilder()
+    parts: list[Part] = []
+    deforming: list = []
+    warnings: list[str] = []
+
+    for oi, obj in enumerate(shot.objects):
+        if obj.sphere is not None:
+            (cx, cy, cz), r = obj.sphere.center, obj.sphere.radius
+            box = np.array([[cx - r, cy - r, cz - r], [cx + r, cy + r, cz + r]], float)
+            parts.append(Part(KIND_SPHERE, -1, tables.by_name[obj.material], box, (cx, cy, cz, r), obj=oi))
+            continue
+        sd = object_files[oi]
+        gltf = Path(sd.path).suffix.lower() in GLTF_EXTENSIONS
+        mat_rows = tables.file_materials(sd, gltf)
+        override = tables.by_name[obj.material] if obj.material is not None else -1
+        worlds = world_matrices(sd, 0.0) if sd.nodes else np.zeros((0, 4, 4))
+        for node in _mesh_nodes(sd):
+            mesh = sd.meshes[sd.nodes[node].mesh]
+            if len(mesh.faces) == 0:
+                continue
+            pos, nrm = _transformed(mesh, worlds[node])
+            arrays = _mesh_arrays(mesh, mat_rows, tables.rows, pos, nrm)
+            if np.linalg.det(worlds[node][:3, :3]) < 0.0:  # a mirror: keep outward outward
+                arrays = (arrays[0], arrays[1][:, ::-1].copy()) + arrays[2:]
+            m = builder.add(*arrays)
+            parts.append(Part(KIND_MESH, m, override, _box(arrays[0]), obj=oi))
+
+    if scene is not None:
+        mat_rows = tables.file_materials(scene, True)
+        rest = world_matrices(scene, 0.0)
+        mesh_index: dict[int, int] = {}
+        animated = {c.node for c in scene.channels}
+        for node in _mesh_nodes(scene):
+            spec = scene.nodes[node]
+            mesh = scene.meshes[spec.mesh]
+            if len(mesh.faces) == 0:
+                continue
+            if is_deforming(scene, node):
+                deforming.append((node, mat_rows))
+                continue
+            _, _, _, exact = decompose_trs(rest[node])
+            if not exact and not _moves(scene, node, animated):
+                arrays = _mesh_arrays(mesh, mat_rows, tables.rows, *_transformed(mesh, rest[node]))
+                m = builder.add(*arrays)
+                parts.append(Part(KIND_MESH, m, -1, _box(arrays[0])))  # placed where it is
+                continue
+            if not exact:
+                warnings.append(f"{scene.path}: nodes[{node}] ({spec.name}) is sheared and animated; "
+                                f"lampyr renders it with the nearest rotation and scale")
+            if spec.mesh not in mesh_index:
+                arrays = _mesh_arrays(mesh, mat_rows, tables.rows)
+                mesh_index[spec.mesh] = builder.add(*arrays)
+            m = mesh_index[spec.mesh]
+            parts.append(Part(KIND_MESH, m, -1, _box(mesh.positions), node=node))
+        if scene.extensions_ignored:
+            warnings.append(f"{scene.path}: lampyr ignores the optional extensions "
+                            f"{', '.join(scene.extensions_ignored)}")
+
+    tex_pixels, tex_info = pack_images(tables.images)
+    from .textures import TEXREF_SIZE
+
+    texrefs = np.array(tables.texrefs, np.float64).reshape(-1, TEXREF_SIZE) if tables.texrefs \
+        else np.zeros((1, TEXREF_SIZE))
+    return Assembly(
+        meshes=builder, parts=parts, mats=np.ascontiguousarray(np.array(tables.rows, np.float64)),
+        texrefs=np.ascontiguousarray(texrefs), tex_pixels=tex_pixels, tex_info=tex_info, scene=scene,
+        deforming=deforming, warnings=warnings,
+    )
+
+
+def _mesh_nodes(sd: SceneData) -> list[int]:
+    """Nodes of the shown scene (roots and their descendants) that carry a mesh, in index order."""
+    seen, stack = set(), list(sd.roots)
+    while stack:
+        n = stack.pop()
+        if n in seen:
+            continue
+        seen.add(n)
+        stack.extend(sd.nodes[n].children)
+    return sorted(n for n in seen if sd.nodes[n].mesh >= 0)
+
+
+def _moves(sd: SceneData, node: int, animated: set) -> bool:
+    """True when the node or one of its ancestors is animated."""
+    while node >= 0:
+        if node in animated:
+            return True
+        node = sd.nodes[node].parent
+    return False
+
+
+def _box(positions) -> np.ndarray:
+    p = np.asarray(positions, np.float64)
+    return np.array([p.min(axis=0), p.max(axis=0)])
+
+
+__all__ = ["Assembly", "Part", "assemble", "read_scene_file", "shot_material_row", "AssetError"]

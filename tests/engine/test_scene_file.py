@@ -1,0 +1,169 @@
+"""A shot's `scene = "file.glb"`: node placement and instancing, materials, cameras, lights and
+time, checked against the glTF 2.0 specification and independent arithmetic (scipy Rotation).
+
+Every file is written with examples/gltf_builder.py and passes the Khronos glTF-Validator with
+0 errors before lampyr reads it (tests/engine/gltf_files.py).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from scipy.spatial.transform import Rotation
+
+from examples.gltf_builder import GltfBuilder
+from lampyr.engine.compiler import compile_frame, compile_geometry
+from lampyr.engine.material_table import M_COLOR, M_TYPE, PBR
+from lampyr.engine.punctual import L_DIR_OPEN, L_POS_OPEN, L_RGB
+from lampyr.engine.render import render_frame
+from lampyr.errors import ShotError
+from tests.engine.gltf_files import QUAD_FACES, QUAD_NORMALS, QUAD_POSITIONS, QUAD_UVS, save_valid
+from tests.engine.scenes import load, shot_text
+
+
+def scene_shot(tmp_path, builder: GltfBuilder, body: str = "", camera=None, frames="1", extra_top=""):
+    save_valid(builder, tmp_path / "scene.glb")
+    camera = camera or "position = [0, 0, 5]\ntarget = [0, 0, 0]"
+    text = shot_text(body, camera=camera, frames=frames)
+    text = f'scene = "scene.glb"\n{extra_top}\n' + text
+    return load(tmp_path, text)
+
+
+def quad_builder(material: dict | None = None) -> tuple[GltfBuilder, int]:
+    b = GltfBuilder()
+    mat = b.add_material("paint", **(material or {"base_color": [0.2, 0.4, 0.6, 1.0]}))
+    mesh = b.add_mesh([b.primitive(QUAD_POSITIONS, QUAD_NORMALS, QUAD_UVS, indices=QUAD_FACES, material=mat)],
+                      name="quad")
+    return b, mesh
+
+
+def test_a_mesh_used_by_two_nodes_is_stored_once_and_placed_twice(tmp_path):
+    b, mesh = quad_builder()
+    b.add_node("left", mesh=mesh, translation=[-2, 0, 0])
+    b.add_node("right", mesh=mesh, translation=[2, 0, 0], rotation=Rotation.from_euler("y", 30, degrees=True).as_quat())
+    shot = scene_shot(tmp_path, b)
+    geom = compile_geometry(shot)
+    assert geom.meshes.mesh_count == 1 and geom.triangle_count == 2
+    scene, _ = compile_frame(shot, geom, 1)
+    assert len(scene.inst_mesh) == 2 and set(scene.inst_mesh) == {0}
+    # placement rows: translation and w-x-y-z quaternion of each node (glTF stores x, y, z, w)
+    q = Rotation.from_euler("y", 30, degrees=True).as_quat()  # scipy: x, y, z, w
+    rows = {tuple(np.round(m[0, 0:3], 9)): m[0] for m in scene.inst_motion}
+    np.testing.assert_allclose(rows[(2.0, 0.0, 0.0)][3:7], [q[3], q[0], q[1], q[2]], atol=1e-12)
+
+
+def test_a_child_node_is_placed_by_its_parents_world_matrix(tmp_path):
+    b, mesh = quad_builder()
+    rp = Rotation.from_euler("z", 90, degrees=True)
+    rc = Rotation.from_euler("x", 45, degrees=True)
+    child = b.add_node("child", mesh=mesh, translation=[1, 0, 0], rotation=rc.as_quat(), scale=[2, 2, 2])
+    b.add_node("parent", translation=[0, 3, 0], rotation=rp.as_quat(), children=[child])
+    shot = scene_shot(tmp_path, b)
+    scene, _ = compile_frame(shot, compile_geometry(shot), 1)
+    m = scene.inst_motion[0, 0]
+    # world = T_p R_p · T_c R_c S_c, composed with scipy (not lampyr)
+    np.testing.assert_allclose(m[0:3], np.array([0, 3, 0]) + rp.apply([1, 0, 0]), atol=1e-12)
+    w = (rp * rc).as_quat()
+    assert np.allclose(m[3:7], [w[3], w[0], w[1], w[2]], atol=1e-12) or \
+        np.allclose(m[3:7], [-w[3], -w[0], -w[1], -w[2]], atol=1e-12)
+    np.testing.assert_allclose(m[7:10], 2.0)
+
+
+def test_triangles_carry_their_primitives_materials(tmp_path):
+    b = GltfBuilder()
+    red = b.add_material("red", base_color=[1, 0, 0, 1])
+    blue = b.add_material("blue", base_color=[0, 0, 1, 1])
+    prims = [b.primitive(QUAD_POSITIONS, QUAD_NORMALS, QUAD_UVS, indices=QUAD_FACES, material=red),
+             b.primitive(QUAD_POSITIONS + [0, 0, -1], QUAD_NORMALS, QUAD_UVS, indices=QUAD_FACES[:1], material=blue)]
+    b.add_node("two", mesh=b.add_mesh(prims))
+    geom = compile_geometry(scene_shot(tmp_path, b))
+    colours = sorted(tuple(geom.mats[r, M_COLOR:M_COLOR + 3]) for r in geom.meshes.tri_mat)
+    assert colours == [(0, 0, 1), (1, 0, 0), (1, 0, 0)]
+    assert all(geom.mats[r, M_TYPE] == PBR for r in geom.meshes.tri_mat)
+
+
+def test_a_shot_material_of_the_same_name_replaces_the_files(tmp_path):
+    b, mesh = quad_builder()
+    b.add_node("quad", mesh=mesh)
+    shot = scene_shot(tmp_path, b, body='[[material]]\nname = "paint"\ntype = "diffuse"\ncolor = [0.9, 0.1, 0.1]')
+    geom = compile_geometry(shot)
+    row = geom.mats[geom.meshes.tri_mat[0]]
+    assert row[M_TYPE] == 0 and tuple(row[M_COLOR:M_COLOR + 3]) == (0.9, 0.1, 0.1)
+
+
+def test_the_first_frame_shows_time_zero_and_time_zero_moves_it(tmp_path):
+    b, mesh = quad_builder()
+    node = b.add_node("mover", mesh=mesh)
+    # translation x = seconds (LINEAR from (0 s, 0) to (10 s, 10))
+    b.add_animation([(node, "translation", [0.0, 10.0], [[0, 0, 0], [10, 0, 0]], "LINEAR")])
+    shot = scene_shot(tmp_path, b, frames="[5, 29]", camera="position = [0, 0, 5]\ntarget = [0, 0, 0]\nshutter = 0")
+    geom = compile_geometry(shot)
+    fps = shot.fps
+    for frame in (5, 17, 29):
+        scene, _ = compile_frame(shot, geom, frame)
+        assert scene.inst_motion[0, 0, 0] == pytest.approx((frame - 5) / fps, abs=1e-9)
+    shot2 = scene_shot(tmp_path, b, frames="[5, 29]", extra_top="time_zero = 1",
+                       camera="position = [0, 0, 5]\ntarget = [0, 0, 0]\nshutter = 0")
+    scene, _ = compile_frame(shot2, compile_geometry(shot2), 5)
+    assert scene.inst_motion[0, 0, 0] == pytest.approx(4 / fps, abs=1e-9)
+
+
+def test_motion_blur_reads_the_animation_at_shutter_open_and_close(tmp_path):
+    b, mesh = quad_builder()
+    node = b.add_node("mover", mesh=mesh)
+    b.add_animation([(node, "translation", [0.0, 1.0], [[0, 0, 0], [24, 0, 0]], "LINEAR")])
+    shot = scene_shot(tmp_path, b, frames="[1, 24]", camera="position = [0, 0, 5]\ntarget = [0, 0, 0]\nshutter = 0.5")
+    scene, _ = compile_frame(shot, compile_geometry(shot), 3)
+    # 24 units per second at 24 fps: one unit per frame; the shutter spans frames 2.75 .. 3.25
+    np.testing.assert_allclose(scene.inst_motion[0, :, 0], [1.75, 2.25], atol=1e-9)
+    assert scene.inst_moving[0] == 1
+
+
+def test_scene_camera_renders_as_the_same_view_written_in_the_shot(tmp_path):
+    b, mesh = quad_builder()
+    b.add_node("quad", mesh=mesh)
+    cam = b.add_camera(yfov=math.radians(40), name="lens")
+    # a camera at (0.5, 0.5, 4) looking down its -z: towards -z, up +y
+    b.add_node("shot_cam", camera=cam, translation=[0.5, 0.5, 4.0])
+    env = '[environment]\ncolor = [0.2, 0.3, 0.4]'
+    through = scene_shot(tmp_path, b, body=env, camera='scene_camera = "shot_cam"\nshutter = 0')
+    written = scene_shot(tmp_path, b, body=env,
+                         camera="position = [0.5, 0.5, 4]\ntarget = [0.5, 0.5, 3]\nfov = 40\nshutter = 0")
+    np.testing.assert_array_equal(render_frame(through, 1).mean(), render_frame(written, 1).mean())
+
+
+def test_an_unknown_scene_camera_is_one_line_naming_the_key(tmp_path):
+    b, mesh = quad_builder()
+    b.add_node("quad", mesh=mesh)
+    b.add_node("main", camera=b.add_camera(yfov=0.7))
+    shot = scene_shot(tmp_path, b, camera='scene_camera = "missing"')
+    with pytest.raises(ShotError) as err:
+        compile_geometry(shot)
+    text = str(err.value)
+    assert "camera.scene_camera" in text and "'main'" in text and "missing" in text and "\n" not in text
+
+
+def test_scene_lights_take_their_nodes_position_and_direction(tmp_path):
+    b, mesh = quad_builder()
+    b.add_node("quad", mesh=mesh)
+    light = b.add_light("spot", color=[1.0, 0.5, 0.25], intensity=8.0, inner_cone=0.1, outer_cone=0.5)
+    turn = Rotation.from_euler("x", -90, degrees=True)  # local -z turned to point down (-y)
+    b.add_node("lamp", light=light, translation=[1, 2, 3], rotation=turn.as_quat())
+    shot = scene_shot(tmp_path, b, extra_top="scene_light_scale = 0.5")
+    scene, _ = compile_frame(shot, compile_geometry(shot), 1)
+    row = scene.punct[0]
+    np.testing.assert_allclose(row[L_POS_OPEN:L_POS_OPEN + 3], [1, 2, 3], atol=1e-12)
+    np.testing.assert_allclose(row[L_DIR_OPEN:L_DIR_OPEN + 3], turn.apply([0, 0, -1]), atol=1e-12)
+    np.testing.assert_allclose(row[L_RGB:L_RGB + 3], np.array([1.0, 0.5, 0.25]) * 8.0 * 0.5)
+
+
+def test_a_shot_of_only_a_scene_file_is_valid_and_renders(tmp_path):
+    b, mesh = quad_builder({"base_color": [1, 1, 1, 1], "emissive": [1, 1, 1]})
+    b.add_node("quad", mesh=mesh, translation=[-2, -2, 0], scale=[4, 4, 1])
+    shot = scene_shot(tmp_path, b)
+    assert shot.objects == ()
+    film = render_frame(shot, 1)
+    # the emissive quad fills the middle of the view: radiance 1 there (glTF emissiveFactor)
+    assert film.mean()[4, 4, 0] == pytest.approx(1.0)
