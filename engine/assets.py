@@ -1,19 +1,21 @@
-"""The files a shot refers to: meshes (through trimesh) and environment maps (through OpenEXR).
+"""The files a shot refers to: path checks, the files a mesh or scene file pulls in, and
+environment maps (through OpenEXR).
 
 Every path in a shot is relative to the shot file's folder (the shot's `root`) and may not leave
 it: a path is refused when it is absolute, uses a backslash, or has a `..` part. The check is on
 the text of the path (a symbolic link inside the folder is followed as the system does), which is
 what keeps a submitted shot from naming a file elsewhere on the head's disk.
 
-Colours are taken as linear: glTF 2.0 defines `baseColorFactor` as linear already, and the MTL
-format says nothing about `Kd`, which lampyr also reads as linear.
+`asset_files` lists a mesh or scene file with every file it references (an OBJ's MTL files and
+their texture maps, a glTF's buffers and images), which is what submitting a shot sends. The
+meshes themselves are read by scene_import.py (glTF through gltf_read.py, OBJ / PLY / STL
+through mesh_read.py, which also uses the MTL statement readers here).
 """
 
 from __future__ import annotations
 
 import json
 from urllib.parse import unquote
-from dataclasses import dataclass
 from pathlib import Path, PurePosixPath
 
 import numpy as np
@@ -29,20 +31,6 @@ _MTL_MAPS = ("map_kd", "map_ka", "map_ks", "map_ke", "map_ns", "map_d", "map_bum
 def _q(text) -> str:
     """A value as it would be written in TOML (strings in double quotes)."""
     return json.dumps(text) if isinstance(text, str) else repr(text)
-
-
-@dataclass(frozen=True, eq=False)
-class MeshPart:
-    """One triangle list of a mesh file, in the file's world space (its node matrices applied).
-
-    vertices: (v, 3) float64; faces: (f, 3) int64 indices into vertices;
-    base_color: (3,) float64 linear RGB, or None when the file gives no colour.
-    """
-
-    name: str
-    vertices: np.ndarray
-    faces: np.ndarray
-    base_color: np.ndarray | None
 
 
 def check_relative(rel_path, key: str) -> PurePosixPath:
@@ -82,7 +70,7 @@ def resolve_asset(shot_root, rel_path, key: str, extensions=MESH_EXTENSIONS) -> 
 
 
 # --------------------------------------------------------------------------------------------
-# the files an asset pulls in, for bundling
+# the files an asset pulls in, for submitting
 
 
 def _obj_mtllibs(path: Path) -> list[str]:
@@ -171,125 +159,6 @@ def asset_files(shot_root, rel_path: str, key: str) -> list[str]:
         if parts and (root / PurePosixPath(*parts)).is_file():
             out.append(str(PurePosixPath(*parts)))
     return out
-
-
-# --------------------------------------------------------------------------------------------
-# meshes
-
-
-def _mtl_colors(path: Path) -> dict[str, np.ndarray]:
-    """Material name -> Kd (3,) float64 over the OBJ's MTL files (trimesh keeps only uint8)."""
-    colors: dict[str, np.ndarray] = {}
-    for mtl in _obj_mtllibs(path):
-        mtl_path = path.parent / mtl
-        if not mtl_path.is_file():
-            continue
-        name = None
-        for word, rest in _mtl_statements(mtl_path):
-            if word == "newmtl":
-                name = rest.strip()
-            elif word == "kd" and name is not None:
-                try:
-                    colors[name] = np.array([float(x) for x in rest.split()[:3]], np.float64)
-                except ValueError:
-                    pass
-    return colors
-
-
-def _gltf_colors(path: Path) -> list[tuple[str | None, np.ndarray | None]]:
-    """(name, baseColorFactor rgb (3,) float64 or None) per glTF material, read with pygltflib."""
-    import pygltflib
-
-    doc = pygltflib.GLTF2().load(str(path))
-    out = []
-    for m in doc.materials or []:
-        pbr = m.pbrMetallicRoughness
-        factor = None if pbr is None else pbr.baseColorFactor
-        if factor is None and (pbr is None or pbr.baseColorTexture is None):
-            factor = [1.0, 1.0, 1.0]  # glTF 2.0 spec: the factor defaults to 1 (white)
-        out.append((m.name, None if factor is None else np.array(factor[:3], np.float64)))
-    return out
-
-
-def _base_color(geom, ext: str, mtl: dict, gltf: list) -> np.ndarray | None:
-    """The linear base colour of one trimesh geometry, preferring the file's own floats."""
-    material = getattr(geom.visual, "material", None)
-    if material is None:
-        return None
-    name = getattr(material, "name", None)
-    if ext == ".obj":
-        if name in mtl:
-            return mtl[name]
-        coarse = getattr(material, "diffuse", None)
-    else:
-        coarse = getattr(material, "baseColorFactor", None)
-        if gltf:
-            # trimesh rounds the factor to uint8 (round(f * 255)); pick the file's float that
-            # has this name and rounds to the same bytes
-            match = [c for n, c in gltf if n == name and c is not None and (
-                coarse is None or np.all(np.abs(c * 255.0 - np.asarray(coarse[:3], float)) <= 0.5 + 1e-9))]
-            if match and all(np.array_equal(match[0], c) for c in match):
-                return match[0]
-    if coarse is None:
-        return None
-    return np.asarray(coarse[:3], np.float64) / 255.0
-
-
-def load_mesh(shot_root, rel_path: str, key: str) -> list[MeshPart]:
-    """Every triangle part of the mesh file `shot_root / rel_path` in the file's world space.
-
-    A scene (glTF/GLB, multi-material OBJ) is flattened through its node graph: each instance of
-    a geometry becomes its own part with the node's world matrix applied (faces reversed under a
-    mirroring matrix, so outward stays outward). Errors are AssetError naming `key`.
-    """
-    import trimesh
-
-    path = resolve_asset(shot_root, rel_path, key)
-    ext = path.suffix.lower()
-    try:
-        scene = trimesh.load_scene(str(path), process=False)
-        mtl = _mtl_colors(path) if ext == ".obj" else {}
-        gltf = _gltf_colors(path) if ext in (".glb", ".gltf") else []
-    except Exception as exc:  # trimesh raises many kinds; the person needs one line
-        first = (str(exc).strip().splitlines() or [type(exc).__name__])[0]
-        raise AssetError(key, f"expected a readable {ext[1:].upper()} mesh ({', '.join(MESH_EXTENSIONS)}), "
-                              f"got {_q(rel_path)}, which failed to load: {first}") from None
-
-    parts: list[MeshPart] = []
-    for node in sorted(scene.graph.nodes_geometry):  # a fixed order: part indices feed the sampler
-        matrix, geom_name = scene.graph[node]
-        geom = scene.geometry[geom_name]
-        faces = getattr(geom, "faces", None)
-        if faces is None or len(faces) == 0:
-            continue  # point clouds and paths carry nothing to render
-        vertices = np.asarray(geom.vertices, np.float64)
-        faces = np.asarray(faces, np.int64)
-        if not np.all(np.isfinite(vertices)):
-            raise AssetError(key, f"expected finite vertex positions, got NaN or infinity in {_q(rel_path)}"
-                                  f" (part {_q(geom_name)})")
-        if faces.min() < 0 or faces.max() >= len(vertices):
-            raise AssetError(key, f"expected face indices below the vertex count {len(vertices)}, got "
-                                  f"indices {faces.min()}..{faces.max()} in {_q(rel_path)} (part {_q(geom_name)})")
-        m = np.asarray(matrix, np.float64)
-        world = vertices @ m[:3, :3].T + m[:3, 3]
-        if np.linalg.det(m[:3, :3]) < 0.0:
-            faces = faces[:, ::-1].copy()
-        parts.append(MeshPart(str(node), world, faces, _base_color(geom, ext, mtl, gltf)))
-
-    if not parts:
-        raise AssetError(key, f"expected a mesh with triangle faces, got {_q(rel_path)} with no faces")
-    if not any(_has_area(p) for p in parts):
-        raise AssetError(key, f"expected a mesh with at least one triangle of non-zero area, got "
-                              f"{_q(rel_path)}, whose triangles are all degenerate")
-    return parts
-
-
-def _has_area(part: MeshPart) -> bool:
-    tri = part.vertices[part.faces]
-    cross = np.cross(tri[:, 1] - tri[:, 0], tri[:, 2] - tri[:, 0])
-    extent = float(np.ptp(part.vertices, axis=0).max()) if len(part.vertices) else 0.0
-    # an area below float64 rounding of the mesh's size squared counts as zero
-    return extent > 0.0 and float(np.linalg.norm(cross, axis=1).max()) > 1e-12 * extent * extent
 
 
 # --------------------------------------------------------------------------------------------

@@ -13,7 +13,6 @@ import PIL.Image
 import pytest
 import trimesh
 
-from lampyr.engine.assets import load_mesh
 from lampyr.engine.mesh_read import read_mesh_file
 from lampyr.engine.scene_data import ALPHA_BLEND, ALPHA_OPAQUE, TexRef
 from lampyr.engine.textures import TEXREF_SIZE, pack_images, srgb_table, tex_lookup, texref_row
@@ -169,14 +168,6 @@ def test_nodes_are_roots_at_rest(quad):
     sd = read_mesh_file(quad, KEY)
     assert sd.roots == tuple(range(len(sd.nodes)))
     assert all(n.matrix is None and n.parent == -1 and n.mesh >= 0 for n in sd.nodes)
-
-
-def test_legacy_loader_still_reads_the_same_file(quad):
-    # assets.load_mesh (the shot's object meshes today) is untouched: same triangles, same Kd
-    parts = load_mesh(quad.parent, quad.name, KEY)
-    sd = read_mesh_file(quad, KEY)
-    assert len(parts) == 1 and len(parts[0].faces) == len(sd.meshes[0].faces)
-    np.testing.assert_array_equal(parts[0].base_color, sd.materials[0].base_color[:3])
 
 
 # --------------------------------------------------------------------------------- MTL
