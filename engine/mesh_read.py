@@ -11,14 +11,14 @@ uint8 and the emission only as text).
   A mesh without them is shaded flat, as glTF 2.0 section 3.7.2.1 asks.
 * UVs from OBJ `vt` (PLY s/t): those formats count v upwards from the image's bottom, glTF
   downwards from its top, so v' = 1 - v.
-* MTL, per material: Kd -> linear base colour (as `assets.py` reads it), map_Kd -> base-colour
-  texture (sRGB), Ke -> emission, map_Ke -> emissive texture (sRGB), d (or 1 - Tr) -> alpha
-  (BLEND below 1), Ni -> index of refraction. Ks, Ns and illum have no counterpart in the
-  metallic-roughness model and are not read: an OBJ material is a dielectric (metallic 0) of
-  roughness 1, seen from both sides (OBJ has no notion of a back face). A material without Kd is
-  white under a map_Kd, else 0.8 grey (rule of thumb). Options before a map's file name
-  (-s, -o, -bm ...) are skipped; the file is the last word, as `assets.py` bundles it, relative
-  to the OBJ's folder.
+* MTL, per material: Kd -> linear base colour (the MTL format names no colour space), map_Kd
+  -> base-colour texture (sRGB), Ke -> emission, map_Ke -> emissive texture (sRGB), d (or
+  1 - Tr) -> alpha (BLEND below 1), Ni -> index of refraction. Ks, Ns and illum have no
+  counterpart in the metallic-roughness model and are not read: an OBJ material is a dielectric
+  (metallic 0) of roughness 1, seen from both sides (OBJ has no notion of a back face). A
+  material without Kd is white under a map_Kd, else 0.8 grey (rule of thumb). Options before a
+  map's file name (-s, -o, -bm ...) are skipped; the file is the last word, as
+  `assets.asset_files` lists it, relative to the OBJ's folder.
 
 Errors are one-line `AssetError`s naming the key, the file and the place in it.
 """

@@ -318,7 +318,7 @@ class Shot:
 
     def files(self) -> list[str]:
         """Sorted shot-relative paths of every file the shot uses (meshes with their MTL files,
-        textures and buffers; the environment map), for bundling."""
+        textures and buffers; the environment map), which submitting sends."""
         out: set[str] = set()
         if self.scene is not None:
             out.update(asset_files(self.root, self.scene, "scene"))
@@ -611,7 +611,7 @@ def _toml_error(exc: tomllib.TOMLDecodeError) -> ShotError:
 
 
 def parse_shot_text(text: str, root=None, path=None) -> Shot:
-    """Parse shot TOML text (for instance from a scene bundle); see parse_shot."""
+    """Parse shot TOML text (for instance from a submitted scene's files); see parse_shot."""
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:

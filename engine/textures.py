@@ -343,7 +343,7 @@ def shared_textures(path, build) -> tuple[np.ndarray, np.ndarray]:
     """`map_textures(path)`; when the file is not there yet, `build()` -> (tex_pixels, tex_info)
     (`pack_images` of the decoded images) makes them and `save_textures` writes them first.
 
-    `path` must name the content (the scene bundle's hash and member under the worker's cache
+    `path` must name the content (the scene manifest's hash and member under the worker's cache
     folder, say): a process that finds the file maps it without decoding any image, and the
     pool processes of one machine then share one copy of the texels.
     """

@@ -1,8 +1,9 @@
 """Jobs on the head's disk: `<state>/jobs/<id>/` holds everything the head needs to resume one.
 
     job.json      the record below (rewritten atomically on every change)
-    bundle/       the unpacked scene bundle the head renders frames' metadata from
-    bundle.tgz    the bundle as stored in Redis, to put back if Redis loses its data
+    bundle/       the scene's files (shot file, meshes, textures, maps), fetched from Redis and
+                  linked from the head's file cache; the head renders frames' metadata from them
+    scene.json    the scene's manifest (transfer.py), to put its files back if Redis loses them
     tiles/<frame>/<tile>.acc   tile accumulators (see accumulator.py)
 
 `ranges` lists the sample ranges every tile gets, in dispatch order; `refine` appends to it, or,

@@ -309,7 +309,7 @@ def test_a_redis_that_lost_its_data_is_rebuilt_from_the_heads_disk(farm, tiny_sh
     farm.start_worker("a", env={"LAMPYR_TEST_CHUNK_DELAY": "0.05"})
     job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
     wait_for(lambda: farm.status(job)["pixel_samples_done"] > 0, what="progress")
-    redis.Redis.from_url(farm.url).flushdb()  # queue, bundle, leases, status: all gone
+    redis.Redis.from_url(farm.url).flushdb()  # queue, scene files, leases, status: all gone
     time.sleep(1.5)  # the head notices within a second
     st = farm.wait(job, timeout=90)
     assert st["state"] == "done"
