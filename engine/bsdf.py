@@ -55,8 +55,7 @@ from .lobes import (
 )
 
 from .material_table import (  # noqa: F401  (re-exported: the types and the row size)
-    DIFFUSE, GLASS, M_ALPHA, M_ATTEN_COLOR, M_ATTEN_DIST, M_COLOR, M_EMISSION, M_IOR, M_ROUGHNESS, M_SPECULAR,
-    M_SPECULAR_COLOR, M_TYPE, MATERIAL_SIZE, METAL, PBR, PLASTIC, TEXTURE_COLUMNS,
+    DIFFUSE, GLASS, M_COLOR, M_EMISSION, M_IOR, M_ROUGHNESS, M_TYPE, MATERIAL_SIZE, METAL, PBR, PLASTIC, blank_row,
 )
 from .pbr import is_volume, pbr_eval, pbr_has_delta_lobe, pbr_has_nonspecular_lobe, pbr_sample
 
@@ -90,19 +89,11 @@ def material_row(type, color, roughness=0.0, ior=1.5, emission=(0.0, 0.0, 0.0)) 
         raise ValueError(f"roughness must be in [0, 1], got {roughness!r}")
     if not (math.isfinite(float(ior)) and float(ior) > 0.0) or (t != GLASS and float(ior) < 1.0):
         raise ValueError(f"ior must be >= 1 (any positive value for glass), got {ior!r}")
-    row = np.zeros(MATERIAL_SIZE, dtype=np.float64)
-    row[P_TYPE] = t
+    row = blank_row(t)  # the other columns at the values that change nothing
     row[P_COLOR:P_COLOR + 3] = c
     row[P_ROUGHNESS] = roughness
     row[P_IOR] = ior
     row[P_EMISSION:P_EMISSION + 3] = e
-    # the other columns at the values that change nothing: opaque, no textures, no absorption
-    row[M_ALPHA] = 1.0
-    row[M_SPECULAR] = 1.0
-    row[M_SPECULAR_COLOR:M_SPECULAR_COLOR + 3] = 1.0
-    row[M_ATTEN_COLOR:M_ATTEN_COLOR + 3] = 1.0
-    row[M_ATTEN_DIST] = math.inf
-    row[list(TEXTURE_COLUMNS)] = -1.0
     return row
 
 

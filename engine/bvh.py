@@ -268,6 +268,25 @@ def _leaf_triangle(tris, k, kx, ky, kz, okx, oky, okz, sx, sy, sz, tmin, tmax):
 
 
 @njit(cache=True, inline="always")
+def _leaf(tris, tris_end, k, ke, w, kx, ky, kz, okx, oky, okz, sx, sy, sz, tmin, tmax):
+    """The leaf test of triangle k; for a deforming mesh (w > 0, or any time of a mesh with a
+    second pose) the corners are blended linearly towards row ke of `tris_end`: (1 - w) a + w b."""
+    if tris_end.shape[0] == 0:
+        return _leaf_triangle(tris, k, kx, ky, kz, okx, oky, okz, sx, sy, sz, tmin, tmax)
+    a = tris[k]
+    b = tris_end[ke]
+    return sheared_triangle(
+        sx, sy, sz, tmin, tmax,
+        a[0, kx] + w * (b[0, kx] - a[0, kx]) - okx, a[0, ky] + w * (b[0, ky] - a[0, ky]) - oky,
+        a[0, kz] + w * (b[0, kz] - a[0, kz]) - okz,
+        a[1, kx] + w * (b[1, kx] - a[1, kx]) - okx, a[1, ky] + w * (b[1, ky] - a[1, ky]) - oky,
+        a[1, kz] + w * (b[1, kz] - a[1, kz]) - okz,
+        a[2, kx] + w * (b[2, kx] - a[2, kx]) - okx, a[2, ky] + w * (b[2, ky] - a[2, ky]) - oky,
+        a[2, kz] + w * (b[2, kz] - a[2, kz]) - okz,
+    )
+
+
+@njit(cache=True, inline="always")
 def _ray_frame(ox, oy, oz, dx, dy, dz):
     kx, ky, kz, sx, sy, sz = ray_setup(dx, dy, dz)
     o = (ox, oy, oz)
@@ -285,11 +304,22 @@ def intersect_mesh(node_lo, node_hi, node_a, node_count, node_axis, tris, node_b
     Both children's boxes are tested at their parent; the nearer is entered, the farther pushed
     and tested again when popped, against the closest hit found by then.
     """
+    return intersect_mesh_at(node_lo, node_hi, node_a, node_count, node_axis, tris, tris[:0], node_base,
+                             tri_base, 0, 0.0, ox, oy, oz, dx, dy, dz, tmin, tmax, stack)
+
+
+@njit(cache=True)
+def intersect_mesh_at(node_lo, node_hi, node_a, node_count, node_axis, tris, tris_end, node_base, tri_base,
+                      end_base, w, ox, oy, oz, dx, dy, dz, tmin, tmax, stack):
+    """`intersect_mesh` for a mesh that may deform: with a non-empty `tris_end`, triangle k's
+    corners are blended by w towards row k - tri_base + end_base of `tris_end` (its pose at
+    shutter close); the node boxes must bound both poses."""
     idx, idy, idz = inverse(dx), inverse(dy), inverse(dz)
     kx, ky, kz, okx, oky, okz, sx, sy, sz = _ray_frame(ox, oy, oz, dx, dy, dz)
     best_t, best_k, best_u, best_v = tmax, -1, 0.0, 0.0
     base = np.uint64(node_base)
     tbase = np.uint64(tri_base)
+    shift = np.int64(end_base) - np.int64(tri_base)
     node = base
     hit, tnear = ray_box_at(ox, oy, oz, idx, idy, idz, tmin, best_t, node_lo, node_hi, node)
     if not hit:
@@ -300,7 +330,8 @@ def intersect_mesh(node_lo, node_hi, node_a, node_count, node_axis, tris, node_b
         if cnt > 0:
             first = tbase + np.uint64(node_a[node])
             for k in range(first, first + np.uint64(cnt)):
-                h, t, u, v = _leaf_triangle(tris, k, kx, ky, kz, okx, oky, okz, sx, sy, sz, tmin, best_t)
+                h, t, u, v = _leaf(tris, tris_end, k, np.int64(k) + shift, w, kx, ky, kz, okx, oky, okz,
+                                   sx, sy, sz, tmin, best_t)
                 if h:
                     best_t, best_k, best_u, best_v = t, np.int64(k), u, v
         else:
@@ -330,10 +361,19 @@ def intersect_mesh(node_lo, node_hi, node_a, node_count, node_axis, tris, node_b
 def occluded_mesh(node_lo, node_hi, node_a, node_count, node_axis, tris, node_base, tri_base,
                   ox, oy, oz, dx, dy, dz, tmin, tmax, stack):
     """True if any triangle of the mesh is hit in (tmin, tmax): shadow rays, first hit wins."""
+    return occluded_mesh_at(node_lo, node_hi, node_a, node_count, node_axis, tris, tris[:0], node_base,
+                            tri_base, 0, 0.0, ox, oy, oz, dx, dy, dz, tmin, tmax, stack)
+
+
+@njit(cache=True)
+def occluded_mesh_at(node_lo, node_hi, node_a, node_count, node_axis, tris, tris_end, node_base, tri_base,
+                     end_base, w, ox, oy, oz, dx, dy, dz, tmin, tmax, stack):
+    """`occluded_mesh` for a mesh that may deform (see intersect_mesh_at)."""
     idx, idy, idz = inverse(dx), inverse(dy), inverse(dz)
     kx, ky, kz, okx, oky, okz, sx, sy, sz = _ray_frame(ox, oy, oz, dx, dy, dz)
     base = np.uint64(node_base)
     tbase = np.uint64(tri_base)
+    shift = np.int64(end_base) - np.int64(tri_base)
     stack[0] = node_base
     sp = 1
     while sp > 0:
@@ -346,7 +386,8 @@ def occluded_mesh(node_lo, node_hi, node_a, node_count, node_axis, tris, node_ba
         if cnt > 0:
             first = tbase + np.uint64(node_a[node])
             for k in range(first, first + np.uint64(cnt)):
-                h, t, u, v = _leaf_triangle(tris, k, kx, ky, kz, okx, oky, okz, sx, sy, sz, tmin, tmax)
+                h, t, u, v = _leaf(tris, tris_end, k, np.int64(k) + shift, w, kx, ky, kz, okx, oky, okz,
+                                   sx, sy, sz, tmin, tmax)
                 if h:
                     return True
         else:

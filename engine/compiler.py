@@ -80,6 +80,18 @@ def read_shot_files(shot):
     return scene, files
 
 
+def check_shot_files(shot) -> list[str]:
+    """Read every file the shot renders, as a worker will, so that a bad file is refused before
+    anything is submitted (AssetError / ShotError); returns warning lines for the person."""
+    scene, files = read_shot_files(shot)
+    warnings = []
+    for sd in ([scene] if scene is not None else []) + list(files.values()):
+        if sd.extensions_ignored:
+            warnings.append(f"{sd.path}: lampyr does not read the optional extension(s) "
+                            f"{', '.join(sd.extensions_ignored)}; the scene renders without them")
+    return warnings
+
+
 def scene_camera_node(shot, scene) -> int:
     """The node of the scene that carries the camera `[camera] scene_camera` names."""
     name = shot.camera.scene_camera
@@ -150,19 +162,20 @@ class _Worlds:
         return np.array(rows)
 
 
-def _deforming_meshes(shot, geom: Geometry, worlds: _Worlds, frame: int, builder: MeshTableBuilder,
-                      first_mesh: int) -> list[Part]:
-    """Build the skinned and morphing meshes at the middle of the shutter; their parts."""
+def _deforming_meshes(shot, geom: Geometry, worlds: _Worlds, t_open: float, t_close: float,
+                      builder: MeshTableBuilder, first_mesh: int) -> list[Part]:
+    """Build the skinned and morphing meshes in their poses at shutter open and close (a ray
+    blends the two: deformation blur); their parts. Normals and tangents are the open pose's."""
     parts = []
     scene = geom.scene
-    t_mid = shot.scene_time(frame)
-    mid_worlds = world_matrices(scene, t_mid) if scene.channels else worlds.open
     for node, mat_rows in geom.deforming:
         mesh = scene.meshes[scene.nodes[node].mesh]
-        positions, normals, space = deformed_vertices(scene, node, t_mid, mid_worlds)
+        positions, normals, space = deformed_vertices(scene, node, shot.scene_time(t_open), worlds.open)
+        end, _, _ = deformed_vertices(scene, node, shot.scene_time(t_close), worlds.close)
         arrays = _mesh_arrays(mesh, mat_rows, list(geom.mats), positions, normals)
-        m = first_mesh + builder.add(*arrays)
-        box = np.array([positions.min(axis=0), positions.max(axis=0)])
+        m = first_mesh + builder.add(*arrays, positions_end=end)
+        both = np.concatenate([positions, end])
+        box = np.array([both.min(axis=0), both.max(axis=0)])
         parts.append(Part(KIND_MESH, m, -1, box, node=-1 if space == SPACE_WORLD else node))
     return parts
 
@@ -185,6 +198,8 @@ def _concat(a: MeshTable, b: MeshTable) -> MeshTable:
         mesh_tri_count=np.concatenate([a.mesh_tri_count, b.mesh_tri_count]),
         mesh_attr=np.concatenate([a.mesh_attr, b.mesh_attr]),
         mesh_box=np.concatenate([a.mesh_box, b.mesh_box]),
+        tris_end=np.concatenate([a.tris_end, b.tris_end]),
+        mesh_end=np.concatenate([a.mesh_end, np.where(b.mesh_end >= 0, b.mesh_end + len(a.tris_end), -1)]),
     )
 
 
@@ -216,7 +231,7 @@ def compile_frame(shot, geom: Geometry, frame: int):
     parts = list(geom.parts)
     if geom.deforming:
         builder = MeshTableBuilder()
-        parts += _deforming_meshes(shot, geom, worlds, frame, builder, meshes.mesh_count)
+        parts += _deforming_meshes(shot, geom, worlds, t_open, t_close, builder, meshes.mesh_count)
         meshes = _concat(meshes, builder.build())
 
     k = len(parts)
@@ -311,6 +326,7 @@ def compile_frame(shot, geom: Geometry, frame: int):
         meshes.blas_lo, meshes.blas_hi, meshes.blas_a, meshes.blas_count, meshes.blas_axis, meshes.tris,
         meshes.mesh_node_base, meshes.mesh_tri_base, meshes.mesh_tri_count,
         meshes.tri_mat, meshes.tri_vtx, meshes.vtx_n, meshes.vtx_uv, meshes.vtx_t, meshes.mesh_attr,
+        meshes.tris_end, meshes.mesh_end,
         *tl_arrays,
         inst_kind=np.array([p.kind for p in parts] or [0], np.int64),
         inst_mesh=np.array([p.mesh for p in parts] or [-1], np.int64),

@@ -24,7 +24,7 @@ import numpy as np
 from numba import njit
 
 from .punctual import sample_punctual
-from .scene import KIND_SPHERE, point_to_world
+from .scene import KIND_SPHERE, point_to_world, tri_corners
 from .surface import emission_at
 
 INV_4PI = 1.0 / (4.0 * math.pi)
@@ -146,10 +146,10 @@ def build_env_distribution(env_map: np.ndarray):
 def _world_triangle(S, inst, k, time_u):
     motion = S.inst_motion[inst]
     moving = S.inst_moving[inst]
-    tri = S.tris[k]
-    ax, ay, az = point_to_world(motion, moving, time_u, tri[0, 0], tri[0, 1], tri[0, 2])
-    bx, by, bz = point_to_world(motion, moving, time_u, tri[1, 0], tri[1, 1], tri[1, 2])
-    cx, cy, cz = point_to_world(motion, moving, time_u, tri[2, 0], tri[2, 1], tri[2, 2])
+    a0, a1, a2, b0, b1, b2, c0, c1, c2 = tri_corners(S, S.inst_mesh[inst], k, time_u)
+    ax, ay, az = point_to_world(motion, moving, time_u, a0, a1, a2)
+    bx, by, bz = point_to_world(motion, moving, time_u, b0, b1, b2)
+    cx, cy, cz = point_to_world(motion, moving, time_u, c0, c1, c2)
     return ax, ay, az, bx, by, bz, cx, cy, cz
 
 

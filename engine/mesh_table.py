@@ -12,6 +12,11 @@ in BVH leaf order; for triangle row k (absolute):
 
 `mesh_attr[m]` says which attributes mesh m has (ATTR_* bits); a kernel reads an attribute only
 when its bit is set, so a mesh without them costs nothing but its `tri_vtx` rows.
+
+A deforming mesh (a skin or morph targets, rebuilt every frame) also has its pose at shutter
+close: `mesh_end[m]` is the row of `tris_end` (T2, 3, 3) float32 that holds its first triangle
+there (-1 for meshes that do not deform), and its BVH bounds both poses. A ray at shutter
+fraction w sees the corners (1 - w) a + w b (deformation blur).
 """
 
 from __future__ import annotations
@@ -48,6 +53,8 @@ class MeshTable:
     mesh_tri_count: np.ndarray  # (M,) int64
     mesh_attr: np.ndarray  # (M,) int64
     mesh_box: np.ndarray  # (M, 2, 3) float64 object-space bounds
+    tris_end: np.ndarray  # (T2, 3, 3) float32 deforming meshes' triangles at shutter close
+    mesh_end: np.ndarray  # (M,) int64 first row in tris_end, -1 when the mesh does not deform
 
     @property
     def triangle_count(self) -> int:
@@ -64,15 +71,22 @@ class MeshTableBuilder:
     def __init__(self):
         self._parts: list[dict] = []
 
-    def add(self, positions, faces, tri_mat, normals=None, uv0=None, uv1=None, tangents=None) -> int:
+    def add(self, positions, faces, tri_mat, normals=None, uv0=None, uv1=None, tangents=None,
+            positions_end=None) -> int:
         """Add one mesh; returns its index.
 
         positions (V, 3) float64, faces (F, 3) int64, tri_mat (F,) int material rows; optional
-        per-vertex normals (V, 3), uv0 / uv1 (V, 2), tangents (V, 4), all float.
+        per-vertex normals (V, 3), uv0 / uv1 (V, 2), tangents (V, 4), all float; positions_end
+        (V, 3): the vertices at shutter close, for a mesh that deforms.
         """
         v = np.asarray(positions, np.float64)
         f = np.asarray(faces, np.int64).reshape(-1, 3)
         tri = v[f]
+        end = None
+        if positions_end is not None:
+            v_end = np.asarray(positions_end, np.float64)
+            end = v_end[f]
+            tri = np.concatenate([tri, end], axis=1)  # boxes bound both poses
         # SAH termination (bigger leaves where they are cheaper) pays for meshes: +10 % on
         # incoherent rays in bench/rays.py; the small top level keeps plain leaves
         bvh = build_bvh(tri.min(axis=1), tri.max(axis=1), max_leaf=16, trav_cost=4.0)
@@ -99,7 +113,8 @@ class MeshTableBuilder:
         self._parts.append(dict(
             bvh=bvh, tris=pack_triangles(v, f, order), tri_mat=np.asarray(tri_mat, np.int32)[order],
             tri_vtx=f[order].astype(np.int64), vn=vn, uv=uv, vt=vt, attr=attr,
-            box=np.array([v.min(axis=0), v.max(axis=0)]),
+            box=np.array([tri.reshape(-1, 3).min(axis=0), tri.reshape(-1, 3).max(axis=0)]),
+            tris_end=None if end is None else pack_triangles(v_end, f, order),
         ))
         return len(self._parts) - 1
 
@@ -108,7 +123,14 @@ class MeshTableBuilder:
         node_base, tri_base, tri_count = [], [], []
         n_nodes = n_tris = n_verts = 0
         tri_vtx = []
+        mesh_end = []
+        n_end = 0
         for p in parts:
+            if p["tris_end"] is None:
+                mesh_end.append(-1)
+            else:
+                mesh_end.append(n_end)
+                n_end += len(p["tris_end"])
             node_base.append(n_nodes)
             tri_base.append(n_tris)
             tri_count.append(len(p["tris"]))
@@ -138,4 +160,6 @@ class MeshTableBuilder:
             mesh_tri_count=np.array(tri_count, np.int64),
             mesh_attr=np.array([p["attr"] for p in parts], np.int64),
             mesh_box=np.array([p["box"] for p in parts], np.float64).reshape(-1, 2, 3),
+            tris_end=cat([p["tris_end"] for p in parts if p["tris_end"] is not None], (0, 3, 3), np.float32),
+            mesh_end=np.array(mesh_end, np.int64),
         )

@@ -21,7 +21,7 @@ from typing import NamedTuple
 import numpy as np
 from numba import njit
 
-from .bvh import build_bvh, intersect_mesh, occluded_mesh, pack_triangles
+from .bvh import intersect_mesh, intersect_mesh_at, occluded_mesh, occluded_mesh_at
 from .intersect import ray_box, ray_sphere
 from .transforms import placement_at, quat_rotate
 
@@ -47,6 +47,8 @@ class Scene(NamedTuple):
     vtx_uv: np.ndarray  # (V, 4) float32 u0, v0, u1, v1
     vtx_t: np.ndarray  # (V, 4) float32 tangent xyz, handedness w
     mesh_attr: np.ndarray  # (M,) int64 ATTR_* bits
+    tris_end: np.ndarray  # (T2, 3, 3) float32 deforming meshes at shutter close (mesh_table.py)
+    mesh_end: np.ndarray  # (M,) int64 their first row there, -1 for meshes that do not deform
     # top level, world space
     tl_lo: np.ndarray  # (Q, 3) float32
     tl_hi: np.ndarray
@@ -156,11 +158,16 @@ def intersect_instance(S, i, ox, oy, oz, dx, dy, dz, tmax, time_u, stack):
             return t, 0, 0.0, 0.0
         return tmax, -1, 0.0, 0.0
     m = S.inst_mesh[i]
-    t, k, u, v = intersect_mesh(
-        S.blas_lo, S.blas_hi, S.blas_a, S.blas_count, S.blas_axis, S.tris,
-        S.mesh_node_base[m], S.mesh_tri_base[m], lox, loy, loz, ldx, ldy, ldz, 0.0, tmax, stack,
+    if S.mesh_end[m] < 0:
+        return intersect_mesh(
+            S.blas_lo, S.blas_hi, S.blas_a, S.blas_count, S.blas_axis, S.tris,
+            S.mesh_node_base[m], S.mesh_tri_base[m], lox, loy, loz, ldx, ldy, ldz, 0.0, tmax, stack,
+        )
+    return intersect_mesh_at(
+        S.blas_lo, S.blas_hi, S.blas_a, S.blas_count, S.blas_axis, S.tris, S.tris_end,
+        S.mesh_node_base[m], S.mesh_tri_base[m], S.mesh_end[m], time_u,
+        lox, loy, loz, ldx, ldy, ldz, 0.0, tmax, stack,
     )
-    return t, k, u, v
 
 
 @njit(cache=True)
@@ -238,9 +245,16 @@ def occluded_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack):
                         return True
                 else:
                     m = S.inst_mesh[i]
-                    if occluded_mesh(
-                        S.blas_lo, S.blas_hi, S.blas_a, S.blas_count, S.blas_axis, S.tris,
-                        S.mesh_node_base[m], S.mesh_tri_base[m],
+                    if S.mesh_end[m] < 0:
+                        if occluded_mesh(
+                            S.blas_lo, S.blas_hi, S.blas_a, S.blas_count, S.blas_axis, S.tris,
+                            S.mesh_node_base[m], S.mesh_tri_base[m],
+                            lox, loy, loz, ldx, ldy, ldz, 0.0, tmax, stack,
+                        ):
+                            return True
+                    elif occluded_mesh_at(
+                        S.blas_lo, S.blas_hi, S.blas_a, S.blas_count, S.blas_axis, S.tris, S.tris_end,
+                        S.mesh_node_base[m], S.mesh_tri_base[m], S.mesh_end[m], time_u,
                         lox, loy, loz, ldx, ldy, ldz, 0.0, tmax, stack,
                     ):
                         return True
@@ -251,24 +265,16 @@ def occluded_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack):
     return False
 
 
-@njit(cache=True)
-def surface_at(S, i, k, u, v, px, py, pz, time_u):
-    """Geometric unit normal (world, outward for closed shapes) at a hit of instance i."""
-    motion = S.inst_motion[i]
-    moving = S.inst_moving[i]
-    if S.inst_kind[i] == KIND_SPHERE:
-        c = S.inst_sphere[i]
-        # object-space point of the world hit, then the radial direction
-        lox, loy, loz, _, _, _ = ray_to_object(motion, moving, time_u, px, py, pz, 0.0, 0.0, 1.0)
-        return normal_to_world(motion, moving, time_u, lox - c[0], loy - c[1], loz - c[2])
-    tri = S.tris[k]
-    e1x = tri[1, 0] - tri[0, 0]
-    e1y = tri[1, 1] - tri[0, 1]
-    e1z = tri[1, 2] - tri[0, 2]
-    e2x = tri[2, 0] - tri[0, 0]
-    e2y = tri[2, 1] - tri[0, 1]
-    e2z = tri[2, 2] - tri[0, 2]
-    nx = e1y * e2z - e1z * e2y
-    ny = e1z * e2x - e1x * e2z
-    nz = e1x * e2y - e1y * e2x
-    return normal_to_world(motion, moving, time_u, nx, ny, nz)
+@njit(cache=True, inline="always")
+def tri_corners(S, m, k, time_u):
+    """Object-space corners of triangle k (of mesh m) at shutter fraction time_u: 9 floats,
+    a, b, c; blended towards the pose at shutter close for a deforming mesh."""
+    a = S.tris[k]
+    e = S.mesh_end[m]
+    if e < 0:
+        return a[0, 0], a[0, 1], a[0, 2], a[1, 0], a[1, 1], a[1, 2], a[2, 0], a[2, 1], a[2, 2]
+    b = S.tris_end[k - S.mesh_tri_base[m] + e]
+    w = time_u
+    return (a[0, 0] + w * (b[0, 0] - a[0, 0]), a[0, 1] + w * (b[0, 1] - a[0, 1]), a[0, 2] + w * (b[0, 2] - a[0, 2]),
+            a[1, 0] + w * (b[1, 0] - a[1, 0]), a[1, 1] + w * (b[1, 1] - a[1, 1]), a[1, 2] + w * (b[1, 2] - a[1, 2]),
+            a[2, 0] + w * (b[2, 0] - a[2, 0]), a[2, 1] + w * (b[2, 1] - a[2, 1]), a[2, 2] + w * (b[2, 2] - a[2, 2]))

@@ -34,7 +34,7 @@ from .material_table import (
     M_TRANSMISSION, M_TYPE, MATERIAL_SIZE, PBR,
 )
 from .mesh_table import ATTR_NORMAL, ATTR_TANGENT, ATTR_UV0, ATTR_UV1
-from .scene import KIND_SPHERE, normal_to_world, point_to_world, ray_to_object, vector_to_world
+from .scene import KIND_SPHERE, normal_to_world, point_to_world, ray_to_object, tri_corners, vector_to_world
 from .textures import TR_SCALE, TR_TEXCOORD, tex_lookup
 
 SF_NG = 0  # geometric normal, 3 columns
@@ -71,13 +71,13 @@ def hit_surface(S, inst, k, u, v, px, py, pz, time_u, surf):
         surf[SF_NS], surf[SF_NS + 1], surf[SF_NS + 2] = nx, ny, nz
         surf[SF_ATTR] = 0.0
         return
-    tri = S.tris[k]
-    e1x = tri[1, 0] - tri[0, 0]
-    e1y = tri[1, 1] - tri[0, 1]
-    e1z = tri[1, 2] - tri[0, 2]
-    e2x = tri[2, 0] - tri[0, 0]
-    e2y = tri[2, 1] - tri[0, 1]
-    e2z = tri[2, 2] - tri[0, 2]
+    ax, ay, az, bx, by, bz, cx, cy, cz = tri_corners(S, S.inst_mesh[inst], k, time_u)
+    e1x = bx - ax
+    e1y = by - ay
+    e1z = bz - az
+    e2x = cx - ax
+    e2y = cy - ay
+    e2z = cz - az
     gx, gy, gz = normal_to_world(motion, moving, time_u, e1y * e2z - e1z * e2y, e1z * e2x - e1x * e2z,
                                  e1x * e2y - e1y * e2x)
     attr = S.mesh_attr[S.inst_mesh[inst]]
@@ -221,20 +221,23 @@ def lifted_origin(S, inst, k, u, v, px, py, pz, time_u):
     (Hanika 2021; see the module docstring). p itself for spheres and meshes without normals."""
     if S.inst_kind[inst] == KIND_SPHERE or not S.mesh_attr[S.inst_mesh[inst]] & ATTR_NORMAL:
         return px, py, pz
-    tri = S.tris[k]
+    ax, ay, az, bx, by, bz, cx, cy, cz = tri_corners(S, S.inst_mesh[inst], k, time_u)
     w0 = 1.0 - u - v
     # the hit in object space, from the barycentrics (exact, unlike moving p back)
-    qx = w0 * tri[0, 0] + u * tri[1, 0] + v * tri[2, 0]
-    qy = w0 * tri[0, 1] + u * tri[1, 1] + v * tri[2, 1]
-    qz = w0 * tri[0, 2] + u * tri[1, 2] + v * tri[2, 2]
+    qx = w0 * ax + u * bx + v * cx
+    qy = w0 * ay + u * by + v * cy
+    qz = w0 * az + u * bz + v * cz
     ox = qx
     oy = qy
     oz = qz
     for j in range(3):
         bw = w0 if j == 0 else (u if j == 1 else v)
+        vx = ax if j == 0 else (bx if j == 1 else cx)
+        vy = ay if j == 0 else (by if j == 1 else cy)
+        vz = az if j == 0 else (bz if j == 1 else cz)
         n = S.vtx_n[S.tri_vtx[k, j]]
-        # the corner's tangent plane through tri[j]: lift q onto it when q lies below it
-        d = (qx - tri[j, 0]) * n[0] + (qy - tri[j, 1]) * n[1] + (qz - tri[j, 2]) * n[2]
+        # the corner's tangent plane through it: lift q onto the plane when q lies below it
+        d = (qx - vx) * n[0] + (qy - vy) * n[1] + (qz - vz) * n[2]
         if d < 0.0:
             ox -= bw * d * n[0]
             oy -= bw * d * n[1]

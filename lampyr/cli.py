@@ -74,6 +74,7 @@ def render(shot, out, workers, samples, frames, width, height, tile_size, quiet)
     from rich.console import Console
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn, TimeRemainingColumn
 
+    from .engine.compiler import check_shot_files
     from .engine.shot import load_shot
     from .scheduler.local_farm import render_on_farm
 
@@ -82,6 +83,8 @@ def render(shot, out, workers, samples, frames, width, height, tile_size, quiet)
     spec = load_shot(shot)
     if overrides:
         spec = spec.with_overrides(**overrides)
+    for line in check_shot_files(spec):  # a bad file stops here, before any farm starts
+        console.print(f"warning: {line}", markup=False)
     workers = workers or os.cpu_count() or 1
     if not _kernels_cached():
         console.print("Compiling the render kernels for this machine — once, about a minute; "
@@ -274,8 +277,11 @@ def submit(shot, out, priority, samples, frames, width, height, tile_size, batch
     r = _farm(head_addr, state)
     overrides = _overrides(samples, _parse_frames(frames), width, height)
     sent: list = []
+    notes: list = []
     job = submit_request(r, shot, overrides, None if out is None else str(out), priority,
-                         tile_size, batch_samples, deadline=deadline, sent=sent)
+                         tile_size, batch_samples, deadline=deadline, sent=sent, warnings=notes)
+    for line in notes:
+        click.echo(f"warning: {line}", err=True)
     s = sent[0]
     click.echo(f"scene: {s.files} file(s), {_size(s.bytes)}; sent {_size(s.new_bytes)} "
                f"({s.new_chunks} of {s.chunks} chunk(s) new to the farm)", err=True)

@@ -13,11 +13,14 @@ from .jobs import new_job_id
 
 def submit_request(r, shot_path: Path, overrides: dict, out: str | None, priority: int = 0,
                    tile_size: int | None = None, batch_samples: int | None = None,
-                   deadline: float | None = None, sent: list | None = None) -> str:
+                   deadline: float | None = None, sent: list | None = None,
+                   warnings: list | None = None) -> str:
     """Validate a shot, send the files Redis lacks and ask the head to run it; returns the job id.
 
     deadline: epoch seconds the frames are wanted by (`deadline.parse_until`), or None;
-    sent: a list, when given, gets the upload's `transfer.Sent` appended."""
+    sent: a list, when given, gets the upload's `transfer.Sent` appended; warnings: a list, when
+    given, gets the warning lines about the shot's files (optional glTF extensions not read)."""
+    from ..engine.compiler import check_shot_files
     from ..engine.shot import load_shot
     from .store import send_command
     from .transfer import upload_shot
@@ -26,6 +29,9 @@ def submit_request(r, shot_path: Path, overrides: dict, out: str | None, priorit
     if overrides:
         o = dict(overrides)
         spec = spec.with_overrides(**o)
+    notes = check_shot_files(spec)  # a bad mesh, texture or scene file stops here, nothing sent
+    if warnings is not None:
+        warnings.extend(notes)
     sha, member, stats = upload_shot(r, spec)
     if sent is not None:
         sent.append(stats)

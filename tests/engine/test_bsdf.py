@@ -16,6 +16,9 @@ import pytest
 from numba import njit
 from scipy import stats
 
+from lampyr.engine.material_table import (
+    M_ALPHA, M_ALPHA_MODE, M_ATTEN_DIST, M_METALLIC, M_SPECULAR, TEXTURE_COLUMNS,
+)
 from lampyr.engine.bsdf import (
     DIFFUSE,
     GLASS,
@@ -354,7 +357,12 @@ def test_delta_lobes_add_nothing_to_eval():
 def test_material_row_layout():
     row = material_row(GLASS, (0.1, 0.2, 0.3), 0.25, 1.33, (4.0, 5.0, 6.0))
     assert row.shape == (MATERIAL_SIZE,) and row.dtype == np.float64
-    np.testing.assert_array_equal(row, [2, 0.1, 0.2, 0.3, 0.25, 1.33, 4, 5, 6, 0, 0, 0])
+    np.testing.assert_array_equal(row[:9], [2, 0.1, 0.2, 0.3, 0.25, 1.33, 4, 5, 6])
+    # the glTF columns at the values that change nothing (material_table.py): opaque, no
+    # textures, neutral specular, no absorption
+    assert row[M_ALPHA] == 1.0 and row[M_ALPHA_MODE] == 0.0 and row[M_METALLIC] == 0.0
+    assert all(row[c] == -1.0 for c in TEXTURE_COLUMNS)
+    assert row[M_ATTEN_DIST] == np.inf and row[M_SPECULAR] == 1.0
 
 
 @pytest.mark.parametrize("args", [

@@ -167,3 +167,60 @@ def test_a_shot_of_only_a_scene_file_is_valid_and_renders(tmp_path):
     film = render_frame(shot, 1)
     # the emissive quad fills the middle of the view: radiance 1 there (glTF emissiveFactor)
     assert film.mean()[4, 4, 0] == pytest.approx(1.0)
+
+
+def _strip_builder(targets=None, joints=None, weights=None):
+    """An emissive 1 × 4 strip at x ∈ [0, 1], y ∈ [-2, 2] (z = 0), facing +z."""
+    b = GltfBuilder()
+    mat = b.add_material("glow", base_color=[0, 0, 0, 1], emissive=[1, 1, 1])
+    pos = np.array([[0.0, -2, 0], [1, -2, 0], [1, 2, 0], [0, 2, 0]])
+    prim = b.primitive(pos, QUAD_NORMALS, QUAD_UVS, indices=QUAD_FACES, material=mat, targets=targets,
+                       joints=joints, weights=weights)
+    return b, b.add_mesh([prim], name="strip", weights=[0.0] if targets else None), pos
+
+
+def test_a_morphing_mesh_blurs_linearly_between_its_poses_at_shutter_open_and_close(tmp_path):
+    # morph target: every vertex 2 units along +x; its weight goes 0 -> 1 over scene seconds 0 -> 1
+    b, mesh, pos = _strip_builder(targets=[{"POSITION": np.tile([2.0, 0.0, 0.0], (4, 1))}])
+    node = b.add_node("strip", mesh=mesh)
+    b.add_animation([(node, "weights", [0.0, 1.0], [[0.0], [1.0]], "LINEAR")])
+    # frame 1 at scene time 0.5 s (fps 1, time_zero 0.5); the shutter spans 0 .. 1 s
+    save_valid(b, tmp_path / "scene.glb")
+    shot = load(tmp_path, 'scene = "scene.glb"\nfps = 1\ntime_zero = 0.5\n' + shot_text(
+        "", width=24, height=1, samples=256, sampler="sobol", bounces=0,
+        camera="position = [1.5, 0, 60]\ntarget = [1.5, 0, 0]\nshutter = 1\nfov = 1"))
+    film = render_frame(shot, 1)
+    # a point x is covered while 2w <= x <= 1 + 2w with w the shutter fraction: for that long
+    # half the view's width at z = 0 (square pixels); the view's height (±0.52) lies inside the strip
+    half_w = 60 * math.tan(math.radians(0.5)) * 24
+    edges = np.linspace(1.5 - half_w, 1.5 + half_w, 24 * 64 + 1)
+    x = 0.5 * (edges[:-1] + edges[1:])
+    cover = np.clip(np.minimum(1.0, x / 2) - np.maximum(0.0, (x - 1) / 2), 0.0, None)
+    expected = cover.reshape(24, 64).mean(axis=1)
+    got = film.mean()[0, :, 0]
+    se = film.std_error()[0, :, 0]
+    assert expected.max() > 0.4 and expected.min() == 0.0  # the whole ramp is in view
+    np.testing.assert_array_less(np.abs(got - expected), 4 * se + 0.01)
+
+
+def test_a_skinned_mesh_is_posed_by_its_joint_at_shutter_open_and_close(tmp_path):
+    ones = np.zeros((4, 4))
+    ones[:, 0] = 1.0
+    b, mesh, pos = _strip_builder(joints=np.zeros((4, 4), np.int64), weights=ones)
+    joint = b.add_node("bone")
+    b.add_node("strip", mesh=mesh, skin=b.add_skin([joint]))
+    b.add_animation([(joint, "translation", [0.0, 1.0], [[0, 0, 0], [0, 3, 0]], "LINEAR")])
+    save_valid(b, tmp_path / "scene.glb")
+    shot = load(tmp_path, 'scene = "scene.glb"\nfps = 1\ntime_zero = 0.5\n' + shot_text(
+        "", camera="position = [0, 0, 5]\ntarget = [0, 0, 0]\nshutter = 0.5"))
+    scene, _ = compile_frame(shot, compile_geometry(shot), 1)
+    m = int(scene.inst_mesh[0])
+    first, count = scene.mesh_tri_base[m], scene.mesh_tri_count[m]
+    assert scene.mesh_end[m] >= 0
+    # the joint moves 3 units up per second; the shutter spans 0.25 .. 0.75 s: y + 0.75 and y + 2.25
+    # (glTF 2.0 skinning: jointMatrix = world(joint) · inverseBind, identity here)
+    open_pose = np.sort(scene.tris[first:first + count].reshape(-1, 3), axis=0)
+    close_pose = np.sort(scene.tris_end[scene.mesh_end[m]:scene.mesh_end[m] + count].reshape(-1, 3), axis=0)
+    corners = pos[QUAD_FACES].reshape(-1, 3)
+    np.testing.assert_allclose(open_pose, np.sort(corners + [0, 0.75, 0], axis=0), atol=1e-6)
+    np.testing.assert_allclose(close_pose, np.sort(corners + [0, 2.25, 0], axis=0), atol=1e-6)

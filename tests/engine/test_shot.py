@@ -353,8 +353,8 @@ def test_unknown_key_lists_the_allowed_keys(tmp_path):
     # source: docs/shot-file.md, "unknown keys are errors"
     err = error_of(tmp_path, _cam("fov = 40", "fovy = 40"))
     assert str(err).endswith(
-        'camera.fovy: expected one of the keys aperture, focus, fov, key, position, shutter, target, '
-        'up, got unknown key "fovy" (did you mean fov?)'
+        'camera.fovy: expected one of the keys aperture, focus, fov, key, position, scene_camera, shutter, '
+        'target, up, got unknown key "fovy" (did you mean fov?)'
     )
 
 
