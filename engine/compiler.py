@@ -28,7 +28,7 @@ from .mesh_table import MeshTable, MeshTableBuilder
 from .punctual import PUNCT_SIZE, light_power, light_row
 from .scene import FLAG_COUNT, FLAG_PASSABLE, KIND_MESH, KIND_SPHERE, Scene
 from .scene_data import LIGHT_DIRECTIONAL, LIGHT_POINT, LIGHT_SPOT
-from .scene_import import Part, assemble, read_scene_file, _mesh_arrays
+from .scene_import import Part, _mesh_arrays, assemble, check_has_area, read_scene_file
 from .skinning import SPACE_WORLD, deformed_vertices
 from .bvh import build_bvh
 from .textures import srgb_table
@@ -73,8 +73,11 @@ class Geometry:
 def read_shot_files(shot):
     """(scene SceneData or None, {object index: SceneData}) of every file the shot renders."""
     scene = None if shot.scene is None else read_scene_file(shot.root, shot.scene, "scene")
-    files = {oi: read_scene_file(shot.root, o.mesh, f"object[{o.name}].mesh")
-             for oi, o in enumerate(shot.objects) if o.mesh is not None}
+    files = {}
+    for oi, o in enumerate(shot.objects):
+        if o.mesh is not None:
+            files[oi] = read_scene_file(shot.root, o.mesh, f"object[{o.name}].mesh")
+            check_has_area(files[oi], o.mesh, f"object[{o.name}].mesh")
     if shot.camera.scene_camera is not None:
         scene_camera_node(shot, scene)  # an unknown name is an error now, not at the first frame
     return scene, files

@@ -53,6 +53,23 @@ def read_scene_file(root, rel_path: str, key: str) -> SceneData:
     return read_mesh_file(path, key)
 
 
+def check_has_area(sd: SceneData, rel_path: str, key: str) -> None:
+    """AssetError unless some triangle of the file has an area above float64 rounding of the
+    mesh's size squared (a file of only degenerate triangles shows nothing)."""
+    for mesh in sd.meshes:
+        p = np.asarray(mesh.positions, np.float64)
+        f = np.asarray(mesh.faces, np.int64).reshape(-1, 3)
+        if len(f) == 0 or len(p) == 0:
+            continue
+        tri = p[f]
+        extent = float(np.ptp(p, axis=0).max())
+        cross = np.linalg.norm(np.cross(tri[:, 1] - tri[:, 0], tri[:, 2] - tri[:, 0]), axis=1)
+        if extent > 0.0 and float(cross.max()) > 1e-12 * extent * extent:
+            return
+    raise AssetError(key, f"expected a mesh with at least one triangle of non-zero area, got {rel_path!r}, "
+                          f"whose triangles are all degenerate")
+
+
 def shot_material_row(m) -> np.ndarray:
     """The table row of a shot's `[[material]]`."""
     kind = MATERIAL_TYPES[m.type]

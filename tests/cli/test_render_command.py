@@ -46,11 +46,12 @@ def test_demo_command_renders_frames_and_previews(tmp_path):
 
 @pytest.mark.parametrize("edit, message", [
     (("fov = 50.0", "fov = 0"), "camera.fov: expected degrees between 1 and 179, got 0"),
-    (('mesh = "assets/walls.obj"', 'mesh = "assets/nowhere.obj"'), "object[walls].mesh"),
+    (('scene = "assets/courtyard.glb"', 'scene = "assets/nowhere.glb"'), "scene: expected an existing file"),
     (('material = "glass"', 'material = "crystal"'), "object[glass_ball].material"),
     (("width = 256", "width = 100000"), "image.width"),
 ])
 def test_bad_shot_gives_one_line_and_status_2(tmp_path, edit, message):
+    assert edit[0] in DEMO.read_text()  # the edit applies to the demo as it is
     text = DEMO.read_text().replace(*edit)
     shot = tmp_path / "courtyard" / "bad.toml"
     shot.parent.mkdir()

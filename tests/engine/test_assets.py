@@ -220,9 +220,7 @@ def assert_one_line_naming(info, name: str, found: str):
 BAD_MESHES = [
     pytest.param("nan.obj", "v nan 0 0\nv 1 0 0\nv 0 1 0\nf 1 2 3\n", "NaN or infinity", id="nan"),
     pytest.param("inf.obj", "v inf 0 0\nv 1 0 0\nv 0 1 0\nf 1 2 3\n", "NaN or infinity", id="inf"),
-    pytest.param("line.obj", "v 0 0 0\nv 1 0 0\nv 2 0 0\nf 1 2 3\n", "degenerate", id="zero area",
-                 marks=pytest.mark.xfail(strict=True, reason="docs/shot-file.md refuses a mesh of only "
-                                                             "zero-area triangles; the readers do not check")),
+    pytest.param("line.obj", "v 0 0 0\nv 1 0 0\nv 2 0 0\nf 1 2 3\n", "degenerate", id="zero area"),
     pytest.param("points.obj", "v 0 0 0\nv 1 0 0\n", "no faces", id="no faces"),
     pytest.param("broken.ply", "not a ply file at all\n", "failed to load", id="not a ply"),
     # an unknown extension is refused when the shot is read, listing the supported ones
