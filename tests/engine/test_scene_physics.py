@@ -250,7 +250,9 @@ def test_a_smooth_low_poly_sphere_has_no_black_facets_at_its_terminator(tmp_path
     assert lit.sum() >= 30 and (lit & (cos_l < 0.45)).sum() >= 4  # pixels close to the terminator are checked
     expected = rho * e * cos_l / math.pi
     got = film.mean()[..., 1]
-    np.testing.assert_allclose(got[lit], expected[lit], rtol=1e-6)
+    np.testing.assert_allclose(got[lit], expected[lit], rtol=1e-6,
+                               err_msg="lit pixels darker than Lambert's law with their shading normal: "
+                                       "facets shadowed at the terminator")
 
 
 def leaning_quad(b: GltfBuilder, material: int) -> None:
