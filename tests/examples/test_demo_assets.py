@@ -184,6 +184,17 @@ def test_the_candle_glows_with_an_emissive_strength(scene):
     assert mat["extensions"]["KHR_materials_emissive_strength"]["emissiveStrength"] > 1.0
 
 
+def test_the_candle_flame_is_a_point_light_that_swings_with_the_lantern(scene):
+    doc = scene[1]
+    lights = doc["extensions"]["KHR_lights_punctual"]["lights"]
+    parent = {c: p for p, n in enumerate(doc["nodes"]) for c in n.get("children", [])}
+    holders = [i for i, n in enumerate(doc["nodes"]) if "KHR_lights_punctual" in n.get("extensions", {})]
+    (node,) = holders
+    light = lights[doc["nodes"][node]["extensions"]["KHR_lights_punctual"]["light"]]
+    assert light["type"] == "point" and light["intensity"] > 0  # KHR_lights_punctual README
+    assert parent[node] == _node(doc, "lantern_pivot")
+
+
 def _channels(doc, node) -> list[tuple[dict, dict]]:
     return [(ch, a["samplers"][ch["sampler"]]) for a in doc["animations"] for ch in a["channels"]
             if ch["target"]["node"] == node]
