@@ -133,7 +133,8 @@ def assert_pooled(film, expected, sigmas=5.0):
 def camera_fitting(position, target, up, half: float) -> str:
     d = float(np.linalg.norm(np.subtract(target, position)))
     fov = math.degrees(2 * math.atan(half / d))
-    return f"position = {list(map(float, position))}\ntarget = {list(map(float, target))}\nup = {list(map(float, up))}\nfov = {fov!r}"
+    vec = lambda v: list(map(float, v))  # noqa: E731
+    return f"position = {vec(position)}\ntarget = {vec(target)}\nup = {vec(up)}\nfov = {fov!r}"
 
 
 LOOK_DOWN = "up = [0, 0, -1]"  # looking down -y with up -z: image columns run +x, rows run +z
@@ -287,7 +288,8 @@ def test_no_light_leaks_to_the_side_facing_away_from_the_light(tmp_path, shape):
     sun(b, light, math.pi)
     film = render(tmp_path, b, "position = [0, 0, 6]\ntarget = [0, 0, 0]\nfov = 16", size=8, samples=8)
     seen = film.hits > 0
-    assert seen.sum() >= 40 and (film.normal_mean()[seen] @ light > 0.1).sum() >= 8  # the shading normals face the light
+    # the check can fail: many seen pixels' shading normals face the light
+    assert seen.sum() >= 40 and (film.normal_mean()[seen] @ light > 0.1).sum() >= 8
     assert film.mean().max() == 0.0
 
 
