@@ -110,11 +110,12 @@ def scene_camera_node(shot, scene) -> int:
                                            f"got {name!r}")
 
 
-def compile_geometry(shot) -> Geometry:
+def compile_geometry(shot, texture_file=None) -> Geometry:
     """Read every file of the shot, build the meshes' BVHs and the material, texture and
-    environment tables."""
+    environment tables. texture_file: where to keep the packed texels for other processes of
+    this machine to map (see scene_import.assemble), or None to keep them in this process."""
     scene, files = read_shot_files(shot)
-    asm = assemble(shot, scene, files)
+    asm = assemble(shot, scene, files, texture_file)
     env = shot.environment
     if env.map is not None:
         env_map = load_environment_map(shot.root, env.map, "environment.map")
@@ -130,7 +131,7 @@ def compile_geometry(shot) -> Geometry:
         texrefs=asm.texrefs, tex_pixels=asm.tex_pixels, tex_info=asm.tex_info, srgb_lut=srgb_table(),
         env_color=np.asarray(env.color, np.float64), env_map=np.ascontiguousarray(env_map, np.float64),
         env_row_cdf=row_cdf, env_col_cdf=np.ascontiguousarray(col_cdf), env_params=params,
-        scene=scene, deforming=tuple(asm.deforming), warnings=tuple(asm.warnings),
+        scene=asm.scene, deforming=tuple(asm.deforming), warnings=tuple(asm.warnings),
     )
 
 

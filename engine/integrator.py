@@ -39,11 +39,16 @@ from .sampler import sample_dim
 from .scene import FLAG_PASSABLE, intersect_scene, occluded_scene
 from .scene_data import ALPHA_BLEND, ALPHA_MASK
 from .surface import (
-    SF_NG, SF_NS, SURF_SIZE, apply_normal_map, hit_material, hit_surface, lifted_origin, resolve_material,
+    SF_NG, SF_NS, SURF_SIZE, apply_normal_map, hit_material, hit_surface, lifted_origin, normals_hug_face,
+    resolve_material,
 )
 
 STACK_SIZE = 64
 MAX_LAYERS = 16  # cut-out or partly covered surfaces a ray passes in one segment (rule of thumb)
+# vertex normals within 30° of their face: a mesh approximating a smooth surface, trusted at its
+# shadow terminator (rule of thumb: a 12-sided sphere's normals lie 21° off its faces, while
+# normals leaning 55° or more, as on a box with averaged corner normals, would let light leak)
+SMOOTH_MESH_COS = 0.866
 DIMS_PER_BOUNCE = 8
 FIRST_BOUNCE_DIM = 8
 
@@ -264,11 +269,20 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
                 wiz = wx * nx + wy * ny + wz * nz
                 fr, fg, fb, pb = bsdf_eval(rm, wox, woy, woz, wix, wiy, wiz)
                 # the geometric and the shading normal must agree on the side of wi, or light
-                # would leak through the surface (Veach 1997, PhD thesis, section 5.3)
-                if (fr > 0.0 or fg > 0.0 or fb > 0.0) and cos_g * wiz > 0.0:
+                # would leak through the surface (Veach 1997, PhD thesis, section 5.3) ...
+                agree = cos_g * wiz > 0.0
+                # ... except at the terminator of a smooth-shaded mesh whose vertex normals stay
+                # close to its faces: the light is above the curved surface the normals describe
+                # though below the flat facet, and the shadow ray leaves from that curved surface
+                terminator = (not agree and wiz > 0.0 and lift_side > 0.0 and not refracts
+                              and normals_hug_face(S, inst, k, time_u, SMOOTH_MESH_COS))
+                if (fr > 0.0 or fg > 0.0 or fb > 0.0) and (agree or terminator):
                     side = eps if cos_g > 0.0 else -eps
                     qx, qy, qz = px, py, pz
                     if cos_g * lift_side > 0.0:
+                        qx, qy, qz = hx, hy, hz
+                    if terminator:
+                        side = eps
                         qx, qy, qz = hx, hy, hz
                     sox = qx + gx * side
                     soy = qy + gy * side

@@ -18,7 +18,7 @@ materials, gathered into the tables the compiler hands to the kernels.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -33,7 +33,7 @@ from .mesh_table import MeshTableBuilder
 from .scene_data import MaterialSpec, SceneData
 from .skinning import is_deforming
 from .tangents import vertex_tangents
-from .textures import pack_images, texref_row
+from .textures import TEXREF_SIZE, pack_images, shared_textures, texref_row
 
 MATERIAL_TYPES = {"diffuse": DIFFUSE, "metal": METAL, "glass": GLASS, "plastic": PLASTIC, "pbr": PBR}
 DEFAULT_GREY = (0.8, 0.8, 0.8)  # rule of thumb: a mid-light grey for meshes without a colour
@@ -188,11 +188,13 @@ def _transformed(mesh, matrix: np.ndarray):
     return positions, normals
 
 
-def assemble(shot, scene: SceneData | None, object_files: dict) -> Assembly:
+def assemble(shot, scene: SceneData | None, object_files: dict, texture_file=None) -> Assembly:
     """Gather the shot's objects, its scene file and its mesh files into the scene's tables.
 
     scene: the shot's scene file read (or None); object_files: object index -> SceneData of its
-    mesh file.
+    mesh file; texture_file: a path naming this scene's content, where the packed texels are kept
+    and mapped from (textures.shared_textures), so the processes of one machine share one copy.
+    The Assembly's scene holds no images (they are packed).
     """
     from .scene import KIND_MESH, KIND_SPHERE
 
@@ -255,8 +257,13 @@ def assemble(shot, scene: SceneData | None, object_files: dict) -> Assembly:
             warnings.append(f"{scene.path}: lampyr ignores the optional extensions "
                             f"{', '.join(scene.extensions_ignored)}")
 
-    tex_pixels, tex_info = pack_images(tables.images)
-    from .textures import TEXREF_SIZE
+    if texture_file is None:
+        tex_pixels, tex_info = pack_images(tables.images)
+    else:
+        tex_pixels, tex_info = shared_textures(texture_file, lambda: pack_images(tables.images))
+    tables.images.clear()
+    if scene is not None:
+        scene = replace(scene, images=())  # the texels live on in tex_pixels only
 
     texrefs = np.array(tables.texrefs, np.float64).reshape(-1, TEXREF_SIZE) if tables.texrefs \
         else np.zeros((1, TEXREF_SIZE))

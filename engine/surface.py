@@ -46,7 +46,7 @@ SF_ATTR = 14  # ATTR_* bits of the mesh (0 for spheres)
 SURF_SIZE = 16
 
 __all__ = ["SURF_SIZE", "MATERIAL_SIZE", "hit_material", "hit_surface", "resolve_material", "apply_normal_map",
-           "lifted_origin"]
+           "lifted_origin", "emission_at", "normals_hug_face"]
 
 
 @njit(cache=True, inline="always")
@@ -265,3 +265,28 @@ def emission_at(S, mid, inst, k, u, v):
     tv = w0 * a[col + 1] + u * b[col + 1] + v * c[col + 1]
     r, g, b_, _ = tex_lookup(S.tex_pixels, S.tex_info, S.texrefs, S.srgb_lut, ref, tu, tv)
     return er * r, eg * g, eb * b_
+
+
+@njit(cache=True)
+def normals_hug_face(S, inst, k, time_u, min_cos):
+    """True when every vertex normal of triangle k lies within acos(min_cos) of the triangle's
+    own normal: a mesh that approximates a smooth surface, whose shading may be trusted where it
+    disagrees with the flat face near the shadow terminator. False for spheres and meshes
+    without normals."""
+    if S.inst_kind[inst] == KIND_SPHERE or not S.mesh_attr[S.inst_mesh[inst]] & ATTR_NORMAL:
+        return False
+    ax, ay, az, bx, by, bz, cx, cy, cz = tri_corners(S, S.inst_mesh[inst], k, time_u)
+    e1x, e1y, e1z = bx - ax, by - ay, bz - az
+    e2x, e2y, e2z = cx - ax, cy - ay, cz - az
+    gx = e1y * e2z - e1z * e2y
+    gy = e1z * e2x - e1x * e2z
+    gz = e1x * e2y - e1y * e2x
+    gn = math.sqrt(gx * gx + gy * gy + gz * gz)
+    if gn <= 0.0:
+        return False
+    for j in range(3):
+        n = S.vtx_n[S.tri_vtx[k, j]]
+        nn = math.sqrt(n[0] * n[0] + n[1] * n[1] + n[2] * n[2])
+        if nn <= 0.0 or abs(gx * n[0] + gy * n[1] + gz * n[2]) < min_cos * gn * nn:
+            return False
+    return True

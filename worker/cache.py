@@ -29,6 +29,7 @@ from __future__ import annotations
 import contextlib
 import errno
 import fcntl
+import hashlib
 import json
 import os
 import secrets
@@ -291,7 +292,11 @@ class SceneCache:
             # frame range: jobs of one scene with other overrides share it
             gkey = (sha, member)
             if gkey not in self._geometry:
-                self._geometry = {gkey: compile_geometry(spec)}  # one scene at a time in memory
+                # one scene at a time in memory; its texels in one file that every pool process
+                # of this machine maps (named by the scene's hash: same content, same file)
+                member_key = hashlib.sha256(member.encode()).hexdigest()[:16]
+                texels = self.files.scene_dir(sha) / f".texels-{member_key}.rgba8"
+                self._geometry = {gkey: compile_geometry(spec, texture_file=texels)}
             self._renderer = FrameRenderer(spec, frame, self._geometry[gkey])
             self._renderer_key = (key, frame)
         return self._renderer
