@@ -339,6 +339,7 @@ def compile_frame(shot, geom: Geometry, frame: int):
         inst_moving=moving,
         inst_motion=motion,
         inst_light_base=inst_light_base,
+        inst_passable=_passable_parts(parts, meshes, geom.mats, max(k, 1)),
         mats=geom.mats,
         texrefs=geom.texrefs,
         tex_pixels=geom.tex_pixels,
@@ -367,6 +368,20 @@ def compile_frame(shot, geom: Geometry, frame: int):
     else:
         cam = compile_camera(shot.camera, frame, t_open, t_close)
     return scene, cam
+
+
+def _passable_parts(parts, meshes: MeshTable, mats: np.ndarray, size: int) -> np.ndarray:
+    """(size,) int64: 1 for each instance with a material that lets rays pass (material_table)."""
+    passable = np.array([is_passable(row) for row in mats], bool)
+    out = np.zeros(size, np.int64)
+    for i, part in enumerate(parts):
+        if part.material >= 0:
+            out[i] = passable[part.material]
+        else:
+            first = int(meshes.mesh_tri_base[part.mesh])
+            rows = meshes.tri_mat[first:first + int(meshes.mesh_tri_count[part.mesh])]
+            out[i] = int(passable[np.unique(rows)].any())
+    return out
 
 
 def _lerp_row(motion: np.ndarray, s: float) -> np.ndarray:

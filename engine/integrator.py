@@ -14,10 +14,14 @@ Russian roulette from bounce `rr_start` on keeps the estimate unbiased by dividi
 throughput by the survival probability. A sample whose radiance is NaN or infinite is not added;
 it is counted in `dropped` instead.
 
-Sample dimensions: 0-1 pixel position, 2-3 lens, 4 shutter time, then 8 per bounce b starting at
-8 + 8b: BSDF direction (2), BSDF lobe (1), roulette (1), light position (2), light choice (1),
-coverage (1: alpha BLEND, reused stretched for each layer). The 2D draws sit on dimension pairs (4g, 4g+1) of the padded sampler, whose
-unscrambled Sobol pair is a (0, 2)-net; pair (4g+2, 4g+3) is not.
+Bounces count scattering events: passing straight through a thin-walled transmissive surface (a
+pane) is not one, so `bounces = 1` still lights a floor through a window.
+
+Sample dimensions: 0-1 pixel position, 2-3 lens, 4 shutter time, then 8 per path vertex b
+starting at 8 + 8b: BSDF direction (2), BSDF lobe (1), roulette (1), light position (2), light
+choice (1), coverage (1: alpha BLEND, reused stretched for each layer). The 2D draws sit on
+dimension pairs (4g, 4g+1) of the padded sampler, whose unscrambled Sobol pair is a (0, 2)-net;
+pair (4g+2, 4g+3) is not.
 """
 
 from __future__ import annotations
@@ -36,7 +40,7 @@ from .material_table import (
 )
 from .pbr import pbr_absorption, pbr_thin_transmittance
 from .sampler import sample_dim
-from .scene import FLAG_PASSABLE, intersect_scene, occluded_scene
+from .scene import FLAG_PASSABLE, VISIT_PASSABLE, VISIT_SOLID, intersect_scene, occluded_scene
 from .scene_data import ALPHA_BLEND, ALPHA_MASK
 from .surface import (
     SF_NG, SF_NS, SURF_SIZE, apply_normal_map, hit_material, hit_surface, lifted_origin, normals_hug_face,
@@ -45,6 +49,7 @@ from .surface import (
 
 STACK_SIZE = 64
 MAX_LAYERS = 16  # cut-out or partly covered surfaces a ray passes in one segment (rule of thumb)
+MAX_PASSES = 16  # thin walls a path passes straight through, beyond its bounces (rule of thumb)
 # vertex normals within 30° of their face: a mesh approximating a smooth surface, trusted at its
 # shadow terminator (rule of thumb: a 12-sided sphere's normals lie 21° off its faces, while
 # normals leaning 55° or more, as on a box with averaged corner normals, would let light leak)
@@ -78,11 +83,16 @@ def shadow_transmittance(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, sta
         if occluded_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack):
             return 0.0, 0.0, 0.0
         return 1.0, 1.0, 1.0
+    # first the early-exit query over the instances that stop every ray, then the passable ones
+    # one surface at a time
+    if occluded_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack, VISIT_SOLID):
+        return 0.0, 0.0, 0.0
     tr = 1.0
     tg = 1.0
     tb = 1.0
     for _ in range(MAX_LAYERS):
-        t, inst, k, u, v = intersect_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack)
+        t, inst, k, u, v = intersect_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack,
+                                           VISIT_PASSABLE)
         if inst < 0:
             return tr, tg, tb
         mid = hit_material(S, inst, k)
@@ -151,8 +161,9 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
     prev_y = oy
     prev_z = oz
 
-    for bounce in range(max_bounces + 1):
-        base = FIRST_BOUNCE_DIM + DIMS_PER_BOUNCE * bounce
+    bounce = 0  # scattering events so far; passing straight through a thin wall is not one
+    for vertex in range(max_bounces + 1 + MAX_PASSES):
+        base = FIRST_BOUNCE_DIM + DIMS_PER_BOUNCE * vertex
         # the next surface the ray stops at: cut-outs and uncovered parts are passed
         u_cover = sample_dim(seed, frame, pixel, index, base + 7, mode)
         t = 0.0
@@ -213,7 +224,7 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
             bg *= abg
             bb *= abb
 
-        if bounce == 0:
+        if vertex == 0:
             first_hit = True
             ar, ag, ab = rm[M_COLOR], rm[M_COLOR + 1], rm[M_COLOR + 2]
             depth = t
@@ -241,11 +252,13 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
         # (a strong normal map at a silhouette) falls back to the geometric normal
         if (nx * dx + ny * dy + nz * dz) * (gx * dx + gy * dy + gz * dz) <= 0.0:
             nx, ny, nz = gx, gy, gz
-        if bounce == 0:
+        if vertex == 0:
             sgn = 1.0 if -(nx * dx + ny * dy + nz * dz) >= 0.0 else -1.0
             anx, any_, anz = nx * sgn, ny * sgn, nz * sgn
 
-        if bounce == max_bounces:
+        # the last scattering event is spent: only a thin wall may still be passed
+        last = bounce == max_bounces
+        if last and not _thin(rm):
             break
 
         tx, ty, tz, sx, sy, sz = build_frame(nx, ny, nz)
@@ -257,7 +270,7 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
         hx, hy, hz = lifted_origin(S, inst, k, u, v, px, py, pz, time_u)
 
         # next-event estimation
-        if has_nonspecular_lobe(rm):
+        if not last and has_nonspecular_lobe(rm):
             u1 = sample_dim(seed, frame, pixel, index, base + 4, mode)
             u2 = sample_dim(seed, frame, pixel, index, base + 5, mode)
             u_sel = sample_dim(seed, frame, pixel, index, base + 6, mode)
@@ -316,7 +329,8 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
         u2 = sample_dim(seed, frame, pixel, index, base + 1, mode)
         u0 = sample_dim(seed, frame, pixel, index, base + 2, mode)
         wix, wiy, wiz, wr, wg, wb, pdf, is_delta = bsdf_sample(rm, wox, woy, woz, u0, u1, u2)
-        if not (wr > 0.0 or wg > 0.0 or wb > 0.0):
+        passes = is_delta and _thin(rm) and wiz * woz < 0.0  # straight through a thin wall
+        if not (wr > 0.0 or wg > 0.0 or wb > 0.0) or (last and not passes):
             break
         ndx = wix * tx + wiy * sx + wiz * nx
         ndy = wix * ty + wiy * sy + wiz * ny
@@ -331,9 +345,13 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
         br *= wr
         bg *= wg
         bb *= wb
-        prev_pdf = pdf
-        prev_delta = is_delta
-        prev_x, prev_y, prev_z = px, py, pz
+        # straight through a thin wall the path keeps going as if the wall were not there: the
+        # emission it reaches is weighed against the light sample of the vertex before the
+        # wall, whose shadow ray passed the wall too (else that light would count twice)
+        if not passes:
+            prev_pdf = pdf
+            prev_delta = is_delta
+            prev_x, prev_y, prev_z = px, py, pz
         dx, dy, dz = ndx, ndy, ndz
         side = eps if cos_g > 0.0 else -eps
         qx, qy, qz = px, py, pz
@@ -343,7 +361,10 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
         oy = qy + gy * side
         oz = qz + gz * side
 
-        if bounce + 1 >= rr_start:
+        if passes:
+            continue
+        bounce += 1
+        if bounce >= rr_start:
             q = min(0.95, max(br, max(bg, bb)))
             if sample_dim(seed, frame, pixel, index, base + 3, mode) >= q:
                 break

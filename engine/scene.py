@@ -64,6 +64,7 @@ class Scene(NamedTuple):
     inst_moving: np.ndarray  # (K,) int64: 1 when open and close placements differ
     inst_motion: np.ndarray  # (K, 2, 10) float64 placements at shutter open / close
     inst_light_base: np.ndarray  # (K,) int64 first light index of the instance, -1 if it does not emit
+    inst_passable: np.ndarray  # (K,) int64 1 when some material of the instance lets rays pass
     mats: np.ndarray  # (m, MATERIAL_SIZE) float64 material rows (material_table.py)
     # textures (textures.py)
     texrefs: np.ndarray  # (R, TEXREF_SIZE) float64 texture references
@@ -88,6 +89,11 @@ class Scene(NamedTuple):
 
 FLAG_PASSABLE = 0  # some material lets shadow rays through (cut-outs, coverage, thin transmission)
 FLAG_COUNT = 4
+
+# which instances a query visits
+VISIT_ALL = 0
+VISIT_SOLID = 1  # only instances whose materials all stop rays
+VISIT_PASSABLE = 2  # only instances with some material that lets rays pass
 
 
 # ------------------------------------------------------------------------------------------
@@ -170,11 +176,20 @@ def intersect_instance(S, i, ox, oy, oz, dx, dy, dz, tmax, time_u, stack):
     )
 
 
+@njit(cache=True, inline="always")
+def _skips(S, i, visit):
+    """True when a query of kind `visit` (VISIT_*) passes over instance i."""
+    if visit == VISIT_ALL:
+        return False
+    return (S.inst_passable[i] == 1) == (visit == VISIT_SOLID)
+
+
 @njit(cache=True)
-def intersect_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack):
+def intersect_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack, visit=VISIT_ALL):
     """Closest hit in the scene: (t, instance, k, u, v); instance = -1 on a miss.
 
-    stack_top, stack: (>= 64,) int32 scratch, allocated once per thread by the caller.
+    stack_top, stack: (>= 64,) int32 scratch, allocated once per thread by the caller;
+    visit: which instances to test (VISIT_*).
     """
     best_t = tmax
     best_i = -1
@@ -198,6 +213,8 @@ def intersect_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack):
             first = S.tl_a[node]
             for j in range(first, first + count):
                 i = S.tl_order[j]
+                if _skips(S, i, visit):
+                    continue
                 t, k, u, v = intersect_instance(S, i, ox, oy, oz, dx, dy, dz, best_t, time_u, stack)
                 if k >= 0 and t < best_t:
                     best_t, best_i, best_k, best_u, best_v = t, i, k, u, v
@@ -217,8 +234,9 @@ def intersect_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack):
 
 
 @njit(cache=True)
-def occluded_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack):
-    """True if anything lies on the ray strictly before tmax (shadow rays; early exit)."""
+def occluded_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack, visit=VISIT_ALL):
+    """True if anything lies on the ray strictly before tmax (shadow rays; early exit);
+    visit: which instances to test (VISIT_*)."""
     idx = 1.0 / dx if dx != 0.0 else math.copysign(math.inf, dx)
     idy = 1.0 / dy if dy != 0.0 else math.copysign(math.inf, dy)
     idz = 1.0 / dz if dz != 0.0 else math.copysign(math.inf, dz)
@@ -235,6 +253,8 @@ def occluded_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack):
             first = S.tl_a[node]
             for j in range(first, first + count):
                 i = S.tl_order[j]
+                if _skips(S, i, visit):
+                    continue
                 lox, loy, loz, ldx, ldy, ldz = ray_to_object(
                     S.inst_motion[i], S.inst_moving[i], time_u, ox, oy, oz, dx, dy, dz
                 )

@@ -348,6 +348,29 @@ def test_shadow_rays_pass_a_thin_pane_with_its_fresnel_loss(tmp_path, incidence)
     np.testing.assert_allclose(film.mean(), np.broadcast_to(expected, film.mean().shape), rtol=1e-9)
 
 
+def test_an_area_light_seen_through_a_thin_pane_counts_once(tmp_path):
+    """A Lambertian floor under a horizontal pane, lit through it by an emissive sphere (an area
+    light, so light samples and BSDF samples both find it and are weighed by MIS): the floor gets
+    ρ Le (r/d)² × transmission × baseColor × (1 − F) — a sphere of radiance Le subtending the
+    half-angle asin(r/d) gives irradiance π Le (r/d)² to a point facing it (configuration factor
+    of a sphere, Howell's catalogue, from memory), and within 4° of normal incidence Schlick's F
+    is F0 = ((n − 1)/(n + 1))² to 2e-8. Counting the light both ways would nearly double it.
+    One bounce keeps out the light the floor and the pane's diffuse part pass back and forth."""
+    rho, le, r, d, ior, transmission = 0.7, 40.0, 0.2, 3.0, 1.5, 0.8
+    b = GltfBuilder()
+    b.add_node("floor", mesh=horizontal_quad(b, lambert(b, "floor", [rho] * 3), 5.0, 0.0))
+    b.add_node("pane", mesh=horizontal_quad(b, pane_material(b, transmission, ior), 50.0, 1.0))
+    lamp = (f'[[material]]\nname = "lamp"\ntype = "diffuse"\ncolor = [0, 0, 0]\nemission = {le}\n'
+            f'[[object]]\nname = "lamp"\nmaterial = "lamp"\nsphere = {{ center = [0, {d}, 0], radius = {r} }}')
+    film = render(tmp_path, b, f"position = [0, 0.5, 0]\ntarget = [0, 0, 0]\n{LOOK_DOWN}\nfov = 10",
+                  samples=256, bounces=1, body=lamp)  # one bounce: the pane itself is not one
+    # points off the axis (up to 0.045 away, 1.5 % of d) see the sphere up to 0.05 % smaller
+    expected = rho * le * (r / d) ** 2 * transmission * PANE_TINT * (1.0 - fresnel_normal(ior))
+    got, se = pooled(film)
+    assert np.all(se < 0.02 * expected)
+    assert np.all(np.abs(got - expected) < 5 * se + 5e-4 * expected), (got, expected, se)
+
+
 # --------------------------------------------------------------------------------------------
 # 4. Beer-Lambert inside a KHR_materials_volume slab
 
