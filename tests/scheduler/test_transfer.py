@@ -43,7 +43,8 @@ def scene(tiny_shot):
     (root / "assets" / "tex").mkdir(parents=True)
     (root / "assets" / "tri.obj").write_text(TRI)
     (root / "assets" / "tri.mtl").write_text(
-        "newmtl m\nmap_Kd tex/big.png\nmap_Ks tex/even.png\nmap_Ns tex/empty.png\n")
+        # maps lampyr sends but does not decode (the bytes are noise, not images)
+        "newmtl m\nmap_Ks tex/big.png\nmap_Ns tex/even.png\nmap_Ka tex/empty.png\n")
     (root / "assets" / "tex" / "big.png").write_bytes(_noise(3 * STEP + 7, 1))
     (root / "assets" / "tex" / "even.png").write_bytes(_noise(2 * STEP, 2))
     (root / "assets" / "tex" / "empty.png").write_bytes(b"")
