@@ -66,6 +66,56 @@ def test_bad_shot_gives_one_line_and_status_2(tmp_path, edit, message):
     assert not (tmp_path / "out").exists()
 
 
+def _broken_scenes():
+    """(name, change to the scene's JSON, what the one line must name): bad glTF input the issue
+    lists, each refused before any farm starts (docs/scenes.md)."""
+    def missing_texture(doc):
+        doc["images"] = [{"uri": "nowhere.png"}]
+        doc["textures"] = [{"source": 0}]
+        doc["materials"] = [{"pbrMetallicRoughness": {"baseColorTexture": {"index": 0}}}]
+        doc["meshes"][0]["primitives"][0]["material"] = 0
+
+    def out_of_range(doc):
+        doc["accessors"][doc["meshes"][0]["primitives"][0]["indices"]]["count"] = 10**6
+
+    def lines(doc):
+        doc["meshes"][0]["primitives"][0]["mode"] = 1
+
+    def required(doc):
+        doc["extensionsUsed"] = doc["extensionsRequired"] = ["KHR_draco_mesh_compression"]
+
+    return [
+        pytest.param(missing_texture, "images[0]", id="missing texture"),
+        pytest.param(out_of_range, "accessors[", id="accessor past its buffer"),
+        pytest.param(lines, "meshes[0].primitives[0].mode", id="lines"),
+        pytest.param(required, "KHR_draco_mesh_compression", id="unsupported required extension"),
+    ]
+
+
+@pytest.mark.parametrize("change, names", _broken_scenes())
+def test_a_broken_scene_file_is_one_line_and_status_2_before_anything_starts(tmp_path, change, names):
+    import json
+
+    from examples.gltf_builder import GltfBuilder
+    from tests.engine.gltf_files import QUAD_FACES, QUAD_NORMALS, QUAD_POSITIONS, QUAD_UVS
+
+    b = GltfBuilder()
+    b.add_node("quad", mesh=b.add_mesh([b.primitive(QUAD_POSITIONS, QUAD_NORMALS, QUAD_UVS, indices=QUAD_FACES)]))
+    path = b.save(tmp_path / "scene.gltf")
+    doc = json.loads(path.read_text())
+    change(doc)
+    path.write_text(json.dumps(doc))
+    shot = tmp_path / "shot.toml"
+    shot.write_text('name = "broken"\nframes = 1\nscene = "scene.gltf"\n[image]\nwidth = 4\nheight = 4\n'
+                    '[sampling]\nsamples = 1\n[camera]\nposition = [0, 0, 3]\ntarget = [0, 0, 0]\n')
+    out = tmp_path / "out"
+    res = lampyr("render", shot, "--out", out, "--quiet")
+    assert res.returncode == 2, res.stderr
+    lines = res.stderr.strip().splitlines()
+    assert len(lines) == 1 and names in lines[0] and "scene.gltf" in lines[0], res.stderr
+    assert not out.exists()  # nothing started, nothing written
+
+
 def test_bad_option_gives_status_2(tmp_path):
     res = lampyr("render", DEMO, "--out", tmp_path, "--frames", "one-two")
     assert res.returncode == 2
