@@ -66,6 +66,16 @@ def _offset_scale(px, py, pz):
 
 
 @njit(cache=True, inline="always")
+def _behind(surf, px, py, pz, dx, dy, dz):
+    """The origin that continues a ray of direction d past the surface it hit at p: p moved off
+    the surface along its geometric normal, to the side d goes on to."""
+    gx, gy, gz = surf[SF_NG], surf[SF_NG + 1], surf[SF_NG + 2]
+    eps = _offset_scale(px, py, pz)
+    side = eps if gx * dx + gy * dy + gz * dz > 0.0 else -eps
+    return px + gx * side, py + gy * side, pz + gz * side
+
+
+@njit(cache=True, inline="always")
 def _thin(rm):
     """True for a thin-walled transmissive surface (a pane, a leaf)."""
     return rm[M_TYPE] == PBR and rm[M_TRANSMISSION] > 0.0 and rm[M_THICKNESS] <= 0.0
@@ -118,13 +128,7 @@ def shadow_transmittance(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, sta
             tb *= 1.0 - cover + cover * ttb
             if not (tr > 0.0 or tg > 0.0 or tb > 0.0):
                 return 0.0, 0.0, 0.0
-        # go on from just behind the surface
-        gx, gy, gz = surf[SF_NG], surf[SF_NG + 1], surf[SF_NG + 2]
-        eps = _offset_scale(px, py, pz)
-        side = eps if gx * dx + gy * dy + gz * dz > 0.0 else -eps
-        ox = px + gx * side
-        oy = py + gy * side
-        oz = pz + gz * side
+        ox, oy, oz = _behind(surf, px, py, pz, dx, dy, dz)
         tmax -= t
         if tmax <= 0.0:
             return tr, tg, tb
@@ -195,12 +199,7 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
                     u_cover = (u_cover - a) / (1.0 - a)
             if not passes:
                 break
-            gx, gy, gz = surf[SF_NG], surf[SF_NG + 1], surf[SF_NG + 2]
-            eps = _offset_scale(px, py, pz)
-            side = eps if gx * dx + gy * dy + gz * dz > 0.0 else -eps
-            ox = px + gx * side
-            oy = py + gy * side
-            oz = pz + gz * side
+            ox, oy, oz = _behind(surf, px, py, pz, dx, dy, dz)
 
         if inst < 0:
             er, eg, eb = env_radiance(S, dx, dy, dz)
