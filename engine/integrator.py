@@ -35,8 +35,8 @@ from .bsdf import bsdf_eval, bsdf_sample, build_frame, has_nonspecular_lobe, nee
 from .camera import camera_ray
 from .lights import env_pdf, env_radiance, light_pdf, sample_light
 from .material_table import (
-    M_ALPHA_CUTOFF, M_ALPHA_MODE, M_COLOR, M_EMISSION, M_THICKNESS, M_TRANSMISSION, M_TYPE, MATERIAL_SIZE, PBR,
-    passable,
+    M_ALPHA_CUTOFF, M_ALPHA_MODE, M_COLOR, M_DOUBLE_SIDED, M_EMISSION, M_THICKNESS, M_TRANSMISSION, M_TYPE,
+    MATERIAL_SIZE, PBR, passable,
 )
 from .pbr import pbr_absorption, pbr_thin_transmittance
 from .sampler import sample_dim
@@ -73,6 +73,15 @@ def _behind(surf, px, py, pz, dx, dy, dz):
     eps = _offset_scale(px, py, pz)
     side = eps if gx * dx + gy * dy + gz * dz > 0.0 else -eps
     return px + gx * side, py + gy * side, pz + gz * side
+
+
+@njit(cache=True, inline="always")
+def _culled(rm, surf, dx, dy, dz):
+    """True when a camera ray meets the back of a single-sided glTF material (doubleSided false:
+    back-face culling, glTF 2.0 section 3.9.6); refracting solids are seen from inside."""
+    if rm[M_TYPE] != PBR or rm[M_DOUBLE_SIDED] != 0.0 or needs_outward_normal(rm):
+        return False
+    return surf[SF_NG] * dx + surf[SF_NG + 1] * dy + surf[SF_NG + 2] * dz > 0.0
 
 
 @njit(cache=True, inline="always")
@@ -187,10 +196,10 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
             hit_surface(S, inst, k, u, v, px, py, pz, time_u, surf)
             alpha = resolve_material(S, mid, surf, rm)
             amode = rm[M_ALPHA_MODE]
-            passes = False
-            if amode == ALPHA_MASK:
+            passes = vertex == 0 and _culled(rm, surf, dx, dy, dz)
+            if not passes and amode == ALPHA_MASK:
                 passes = alpha < rm[M_ALPHA_CUTOFF]
-            elif amode == ALPHA_BLEND:
+            elif not passes and amode == ALPHA_BLEND:
                 # stochastic coverage: stop with probability alpha; the number is reused,
                 # stretched to [0, 1), for the next layer
                 a = min(1.0, max(0.0, alpha))

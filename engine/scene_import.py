@@ -28,7 +28,7 @@ from lampyr.errors import AssetError
 from .assets import resolve_asset
 from .bsdf import DIFFUSE, GLASS, METAL, PLASTIC, material_row
 from .gltf_animation import decompose_trs, world_matrices
-from .material_table import M_METALLIC, M_TEX_NORMAL, M_TRANSMISSION, PBR, row_from_spec
+from .material_table import M_DOUBLE_SIDED, M_METALLIC, M_TEX_NORMAL, M_TRANSMISSION, PBR, row_from_spec
 from .mesh_table import MeshTableBuilder
 from .scene_data import MaterialSpec, SceneData
 from .skinning import is_deforming
@@ -77,6 +77,7 @@ def shot_material_row(m) -> np.ndarray:
         return material_row(kind, m.color, m.roughness, m.ior, m.emission)
     row = material_row(DIFFUSE, m.color, m.roughness, m.ior, m.emission)  # checks the values
     row[0] = PBR
+    row[M_DOUBLE_SIDED] = 1.0  # a shot's materials are seen from both sides, as the legacy types are
     row[M_METALLIC] = m.metallic
     row[M_TRANSMISSION] = m.transmission
     return row

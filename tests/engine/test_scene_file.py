@@ -224,3 +224,19 @@ def test_a_skinned_mesh_is_posed_by_its_joint_at_shutter_open_and_close(tmp_path
     corners = pos[QUAD_FACES].reshape(-1, 3)
     np.testing.assert_allclose(open_pose, np.sort(corners + [0, 0.75, 0], axis=0), atol=1e-6)
     np.testing.assert_allclose(close_pose, np.sort(corners + [0, 2.25, 0], axis=0), atol=1e-6)
+
+
+@pytest.mark.parametrize("double_sided", [False, True])
+def test_the_camera_sees_the_back_of_a_surface_only_when_it_is_double_sided(tmp_path, double_sided):
+    # glTF 2.0 section 3.9.6 (material.doubleSided): false means back-face culling
+    b = GltfBuilder()
+    glow = b.add_material("glow", base_color=[0, 0, 0, 1], emissive=[1, 1, 1], double_sided=double_sided)
+    mesh = b.add_mesh([b.primitive(QUAD_POSITIONS, QUAD_NORMALS, QUAD_UVS, indices=QUAD_FACES, material=glow)])
+    b.add_node("quad", mesh=mesh, translation=[-2, -2, 0], scale=[4, 4, 1])  # faces +z
+    env = "[environment]\ncolor = [0.25, 0.25, 0.25]"
+    front = scene_shot(tmp_path, b, body=env, camera="position = [0, 0, 5]\ntarget = [0, 0, 0]")
+    back = scene_shot(tmp_path, b, body=env, camera="position = [0, 0, -5]\ntarget = [0, 0, 0]")
+    # the glow's own specular layer adds a little of the grey surroundings (at most F0 = 0.04 of it)
+    assert render_frame(front, 1).mean()[4, 4, 0] == pytest.approx(1.0, abs=0.02)
+    seen_from_behind = render_frame(back, 1).mean()[4, 4, 0]
+    assert seen_from_behind == pytest.approx(1.0 if double_sided else 0.25, abs=0.02)
