@@ -20,7 +20,8 @@ Sections:
      rest of assembling; then compile_frame.
   3. texture memory: bytes kept (geometry.tex_pixels.nbytes) against the 8-bit RGBA pixel count
      (sum of W·H·4 over the images); also the decoded images the geometry still holds in
-     `geometry.scene.images`, and the growth of this process's RSS over the loads.
+     `geometry.scene.images`, the growth of this process's RSS over the loads, and what
+     tracemalloc sees allocated after one more load and at its peak during it.
   4. the demo shot (examples/courtyard/courtyard.toml, or --shot) at its own size, samples and
      bounces, frame 12: one thread and all cores.
 """
@@ -397,11 +398,23 @@ def load_section(small: bool, repeats: int) -> None:
         pixels = int((info[:, 1] * info[:, 2] * 4).sum())
         kept = geom.tex_pixels.nbytes
         held = sum(im.rgba.nbytes for im in geom.scene.images)  # decoded images the geometry keeps too
-        print_table("3. texture memory (bytes; RSS from psutil: this process, after the last load)",
-                    ["images", "8-bit RGBA pixel count (sum W·H·4)", "tex_pixels.nbytes", "kept / pixel count",
-                     "decoded images held by geometry.scene", "(both) / pixel count", "RSS growth / pixel count"],
+        # one more, untimed load under tracemalloc (numpy reports its array buffers to it): the
+        # bytes still allocated with the geometry alive, and the peak while loading
+        import tracemalloc
+
+        geom = None
+        tracemalloc.start()
+        geom = compiler.compile_geometry(shot)
+        traced_now, traced_peak = tracemalloc.get_traced_memory()
+        tracemalloc.stop()
+        print_table("3. texture memory (bytes; RSS from psutil: this process, after the timed loads; traced: "
+                    "tracemalloc over one more load, everything it allocates, not only textures)",
+                    ["images", "8-bit RGBA pixel count P (sum W·H·4)", "tex_pixels.nbytes", "kept / P",
+                     "decoded images held by geometry.scene", "(both) / P", "RSS growth / P",
+                     "traced after load / P", "traced peak during load / P"],
                     [[len(info), f"{pixels:,}", f"{kept:,}", f"{kept / pixels:.3f}", f"{held:,}",
-                      f"{(kept + held) / pixels:.3f}", f"{(rss_after - rss_before) / pixels:.3f}"]])
+                      f"{(kept + held) / pixels:.3f}", f"{(rss_after - rss_before) / pixels:.3f}",
+                      f"{traced_now / pixels:.3f}", f"{traced_peak / pixels:.3f}"]])
 
 
 # ------------------------------------------------------------------------------------------------
