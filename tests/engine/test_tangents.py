@@ -1,9 +1,9 @@
-"""Vertex tangents: the glTF handedness convention, analytic tangent fields, MikkTSpace.
+"""Vertex tangents: the glTF handedness convention and analytic tangent fields.
 
 Sources: the glTF 2.0 specification, sections 3.7.2.1 (bitangent = cross(normal, tangent.xyz) · w)
 and 3.9.3 (normal texture: +X right, +Y up in the image); analytic derivatives of a sphere and a
 height field with a skewed (sheared, anisotropic) UV layout; the MikkTSpace reference
-implementation through the `pymikktspace` package where it is installed (it is not a project
+implementation is compared in bench/textures.py where `pymikktspace` is installed (it is not a project
 dependency: its sdist needs Cython < 3 to build on Python 3.11).
 """
 
@@ -163,20 +163,3 @@ def test_vectorised_matches_the_reference(mesh):
     pos, nrm, uv, faces, *_ = mesh()
     np.testing.assert_allclose(vertex_tangents(pos, nrm, uv, faces),
                                vertex_tangents_reference(pos, nrm, uv, faces), rtol=0, atol=1e-12)
-
-
-@pytest.mark.parametrize("mesh, max_deg", [(skewed_sphere, 0.01), (bumpy_sheet, 0.01),
-                                           (lambda: bumpy_sheet(64), 0.01)])
-def test_close_to_mikktspace(mesh, max_deg):
-    # the MikkTSpace reference code (pymikktspace) on the same mesh, fed (u, 1 - v): v up, as
-    # MikkTSpace's bitangent is dP/dv; measured (bench/textures.py): at most 0.003°
-    # (MikkTSpace works in float32)
-    mikktspace = pytest.importorskip("mikktspace")
-    pos, nrm, uv, faces, _, _, inner = mesh()
-    flipped = np.stack([uv[:, 0], 1.0 - uv[:, 1]], 1)
-    ref = np.array(mikktspace.gen_default(
-        faces.reshape(-1).astype(int).tolist(), pos.astype(np.float32).reshape(-1),
-        nrm.astype(np.float32).reshape(-1), flipped.astype(np.float32).reshape(-1))).reshape(-1, 4)
-    t = vertex_tangents(pos, nrm, uv, faces)
-    assert angle_deg(t[:, :3], ref[:, :3])[inner].max() < max_deg
-    np.testing.assert_array_equal(t[inner, 3], ref[inner, 3])
