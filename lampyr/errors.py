@@ -48,3 +48,10 @@ class FrameFileError(LampyrError):
     """A frame EXR that lampyr cannot read back as an accumulation state."""
 
     exit_code = 2
+
+
+class RenderFailed(LampyrError):
+    """`lampyr render` could not finish: a batch failed for good, or its local worker stopped.
+    The frames written before stay on disk."""
+
+    exit_code = 1

@@ -18,6 +18,8 @@ import threading
 import time
 from pathlib import Path
 
+from ..errors import RenderFailed
+
 
 def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: int,
                    overrides: dict, on_progress=None, on_frame=None,
@@ -65,7 +67,7 @@ def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: in
                 raise head_error[0]
             if worker.poll() is not None:
                 err = (state / "worker.log").read_text(errors="replace").strip().splitlines()
-                raise RuntimeError("the local worker stopped: " + (err[-1] if err else "?"))
+                raise RenderFailed("the local worker stopped: " + (err[-1] if err else "?"))
             run = head.jobs.get(job)
             if run is not None:
                 held, total = run.pixel_samples()
@@ -80,8 +82,9 @@ def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: in
                             on_frame(path)
                 state_now = head.job_state(run)
                 if state_now == "failed":
-                    msg = next(iter(run.rec.failed.values()))
-                    raise RuntimeError(f"a batch failed: {msg}")
+                    msg = str(next(iter(run.rec.failed.values()))).strip().splitlines() or ["?"]
+                    raise RenderFailed(f"a batch failed for good: {msg[0]}; the frames written "
+                                       f"before it are kept in {out}")
                 if state_now == "done" and len(seen) == len(run.frames):
                     break
             time.sleep(0.05)
