@@ -240,3 +240,17 @@ def test_the_camera_sees_the_back_of_a_surface_only_when_it_is_double_sided(tmp_
     assert render_frame(front, 1).mean()[4, 4, 0] == pytest.approx(1.0, abs=0.02)
     seen_from_behind = render_frame(back, 1).mean()[4, 4, 0]
     assert seen_from_behind == pytest.approx(1.0 if double_sided else 0.25, abs=0.02)
+
+
+def test_an_optional_extension_lampyr_does_not_read_is_one_warning_line(tmp_path):
+    # glTF 2.0 section 3.12: extensionsUsed lists optional extensions a reader may ignore
+    from lampyr.engine.compiler import check_shot_files
+
+    b, mesh = quad_builder()
+    b.add_node("quad", mesh=mesh)
+    b.use_extension("EXT_lights_image_based")
+    b.use_extension("KHR_materials_sheen")
+    shot = scene_shot(tmp_path, b)
+    (line,) = check_shot_files(shot)
+    assert "EXT_lights_image_based" in line and "KHR_materials_sheen" in line and "\n" not in line
+    assert render_frame(shot, 1).mean().shape == (8, 8, 3)  # and the scene renders without them
