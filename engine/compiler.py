@@ -28,7 +28,7 @@ from .mesh_table import MeshTable, MeshTableBuilder
 from .punctual import PUNCT_SIZE, light_power, light_row
 from .scene import FLAG_COUNT, FLAG_PASSABLE, KIND_MESH, KIND_SPHERE, Scene
 from .scene_data import LIGHT_DIRECTIONAL, LIGHT_POINT, LIGHT_SPOT
-from .scene_import import Part, _mesh_arrays, assemble, check_has_area, read_scene_file
+from .scene_import import Part, _mesh_arrays, assemble, check_has_area, read_scene_file, shown_nodes
 from .skinning import SPACE_WORLD, deformed_vertices
 from .bvh import build_bvh
 from .textures import srgb_table
@@ -98,7 +98,7 @@ def check_shot_files(shot) -> list[str]:
 def scene_camera_node(shot, scene) -> int:
     """The node of the scene that carries the camera `[camera] scene_camera` names."""
     name = shot.camera.scene_camera
-    nodes = [i for i, n in enumerate(scene.nodes) if n.camera >= 0]
+    nodes = [i for i in shown_nodes(scene) if scene.nodes[i].camera >= 0]
     for i in nodes:
         if scene.nodes[i].name == name or scene.cameras[scene.nodes[i].camera].name == name:
             return i
@@ -158,10 +158,13 @@ class _Worlds:
         self.close = self.open if not scene.channels else world_matrices(scene, shot.scene_time(t_close))
 
     def placement(self, node: int) -> np.ndarray:
-        """(2, 10) motion rows of a node at open and close."""
+        """(2, 10) motion rows of a node at open and close. A zero scale (a node scaled to
+        nothing, as animators hide things) becomes a tiny one: the kernels divide by it."""
         rows = []
         for m in (self.open[node], self.close[node]):
             t, q, s, _ = decompose_trs(m)
+            tiny = 1e-9 * max(float(np.abs(s).max()), 1e-3)
+            s = np.where(np.abs(s) < tiny, np.copysign(tiny, s), s)
             rows.append(pack_placement(t, q, s))
         return np.array(rows)
 
@@ -176,7 +179,8 @@ def _deforming_meshes(shot, geom: Geometry, worlds: _Worlds, t_open: float, t_cl
         mesh = scene.meshes[scene.nodes[node].mesh]
         positions, normals, space = deformed_vertices(scene, node, shot.scene_time(t_open), worlds.open)
         end, _, _ = deformed_vertices(scene, node, shot.scene_time(t_close), worlds.close)
-        arrays = _mesh_arrays(mesh, mat_rows, list(geom.mats), positions, normals)
+        # tangents follow the deformed surface: computed from it when a normal map needs them
+        arrays = _mesh_arrays(mesh, mat_rows, list(geom.mats), geom.texrefs, positions, normals, None)
         m = first_mesh + builder.add(*arrays, positions_end=end)
         both = np.concatenate([positions, end])
         box = np.array([both.min(axis=0), both.max(axis=0)])
@@ -215,7 +219,8 @@ def _punctual_rows(shot, geom: Geometry, worlds: _Worlds) -> list[np.ndarray]:
                               li.direction, li.direction, li.inner_cone, li.outer_cone))
     scene = geom.scene
     if scene is not None:
-        for node, spec in enumerate(scene.nodes):
+        for node in shown_nodes(scene):
+            spec = scene.nodes[node]
             if spec.light < 0:
                 continue
             light = scene.lights[spec.light]

@@ -130,8 +130,10 @@ def shadow_transmittance(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, sta
         if cover > 0.0:
             ttr = ttg = ttb = 0.0
             if _thin(rm):
-                gx, gy, gz = surf[SF_NG], surf[SF_NG + 1], surf[SF_NG + 2]
-                ttr, ttg, ttb = pbr_thin_transmittance(rm, abs(gx * dx + gy * dy + gz * dz))
+                # the cosine the pass-through lobe sees: the shading normal, normal map applied
+                apply_normal_map(S, S.mats[mid], surf)
+                nx, ny, nz = surf[SF_NS], surf[SF_NS + 1], surf[SF_NS + 2]
+                ttr, ttg, ttb = pbr_thin_transmittance(rm, abs(nx * dx + ny * dy + nz * dz))
             tr *= 1.0 - cover + cover * ttr
             tg *= 1.0 - cover + cover * ttg
             tb *= 1.0 - cover + cover * ttb
@@ -146,11 +148,12 @@ def shadow_transmittance(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, sta
 
 @njit(cache=True)
 def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, rr_start,
-               pixel, fx, fy, index, stack_top, stack, surf, rm, rm_shadow):
+               pixel, fx, fy, index, stack_top, stack, surf, rm, surf_shadow, rm_shadow):
     """One camera sample: (Lr, Lg, Lb, hit, albedo rgb, normal xyz, depth).
 
-    surf (SURF_SIZE,), rm and rm_shadow (MATERIAL_SIZE,) float64: scratch for the hit's surface
-    and resolved material (surface.py) and for shadow rays' tests, allocated once per thread."""
+    surf, surf_shadow (SURF_SIZE,) and rm, rm_shadow (MATERIAL_SIZE,) float64: scratch for the
+    hit's surface and resolved material (surface.py), and the same for shadow rays' tests,
+    allocated once per thread."""
     jx = sample_dim(seed, frame, pixel, index, 0, mode)
     jy = sample_dim(seed, frame, pixel, index, 1, mode)
     lu = sample_dim(seed, frame, pixel, index, 2, mode)
@@ -177,18 +180,23 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
     bounce = 0  # scattering events so far; passing straight through a thin wall is not one
     for vertex in range(max_bounces + 1 + MAX_PASSES):
         base = FIRST_BOUNCE_DIM + DIMS_PER_BOUNCE * vertex
+        unscattered = bounce == 0  # nothing has scattered the ray yet (thin walls pass it on)
         # the next surface the ray stops at: cut-outs and uncovered parts are passed
         u_cover = sample_dim(seed, frame, pixel, index, base + 7, mode)
         t = 0.0
+        travelled = 0.0  # along this segment, past every layer passed (for absorption)
         inst = -1
         k = -1
         mid = 0
         u = v = 0.0
         px = py = pz = 0.0
+        passes = False
         for _ in range(MAX_LAYERS):
             t, inst, k, u, v = intersect_scene(S, ox, oy, oz, dx, dy, dz, math.inf, time_u, stack_top, stack)
             if inst < 0:
+                passes = False
                 break
+            travelled += t
             px = ox + t * dx
             py = oy + t * dy
             pz = oz + t * dz
@@ -196,7 +204,7 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
             hit_surface(S, inst, k, u, v, px, py, pz, time_u, surf)
             alpha = resolve_material(S, mid, surf, rm)
             amode = rm[M_ALPHA_MODE]
-            passes = vertex == 0 and _culled(rm, surf, dx, dy, dz)
+            passes = unscattered and _culled(rm, surf, dx, dy, dz)
             if not passes and amode == ALPHA_MASK:
                 passes = alpha < rm[M_ALPHA_CUTOFF]
             elif not passes and amode == ALPHA_BLEND:
@@ -209,6 +217,8 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
             if not passes:
                 break
             ox, oy, oz = _behind(surf, px, py, pz, dx, dy, dz)
+        if passes:
+            break  # more layers than MAX_LAYERS: taken as blocked, as shadow rays take them
 
         if inst < 0:
             er, eg, eb = env_radiance(S, dx, dy, dz)
@@ -227,7 +237,7 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
 
         # Beer-Lambert absorption over the segment just travelled inside a volume
         if refracts and rm[M_TYPE] == PBR and cos_o < 0.0:
-            abr, abg, abb = pbr_absorption(rm, t)
+            abr, abg, abb = pbr_absorption(rm, travelled)
             br *= abr
             bg *= abg
             bb *= abb
@@ -322,9 +332,12 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
                         sdz /= span
                         tmax = span * (1.0 - 1e-4)
                     vr, vg, vb = shadow_transmittance(S, sox, soy, soz, sdx, sdy, sdz, tmax, time_u,
-                                                      stack_top, stack, surf, rm_shadow)
+                                                      stack_top, stack, surf_shadow, rm_shadow)
                     if vr > 0.0 or vg > 0.0 or vb > 0.0:
-                        if delta:  # a punctual light: no BSDF sample can reach it, no MIS
+                        if delta or terminator:
+                            # a punctual light (no BSDF sample can reach it), or a direction the
+                            # BSDF samples never continue into (they stop at the flat facet):
+                            # the light sample alone carries it
                             c = abs(wiz) / pl
                         else:  # the BSDF could have sampled this direction too: weigh against it
                             c = abs(wiz) * (pl * pl / (pl * pl + pb * pb)) / pl
@@ -399,6 +412,7 @@ def render_tile(S, cam, aperture, width, height, frame, seed, mode, max_bounces,
         surf = np.zeros(SURF_SIZE)
         rm = np.zeros(MATERIAL_SIZE)
         rm_shadow = np.zeros(MATERIAL_SIZE)
+        surf_shadow = np.zeros(SURF_SIZE)
         y = y0 + ty
         for tx in range(tile_w):
             x = x0 + tx
@@ -406,7 +420,7 @@ def render_tile(S, cam, aperture, width, height, frame, seed, mode, max_bounces,
             for s in range(first, first + count):
                 lr, lg, lb, hit, ar, ag, ab, nx, ny, nz, depth = trace_path(
                     S, cam, aperture, width, height, frame, seed, mode, max_bounces, rr_start,
-                    pixel, float(x), float(y), s, stack_top, stack, surf, rm, rm_shadow,
+                    pixel, float(x), float(y), s, stack_top, stack, surf, rm, surf_shadow, rm_shadow,
                 )
                 if not (math.isfinite(lr) and math.isfinite(lg) and math.isfinite(lb)):
                     dropped[ty, tx] += 1.0

@@ -23,6 +23,7 @@ import math
 import numpy as np
 from numba import njit
 
+from .material_table import M_EMISSION
 from .punctual import sample_punctual
 from .scene import KIND_SPHERE, point_to_world, tri_corners
 from .surface import emission_at
@@ -279,7 +280,8 @@ def sample_light(S, px, py, pz, time_u, u_sel, u1, u2):
             dz = cp * tz + sp * bz + cos_t * wz
             # distance to the near side along d (clamped for rays at the silhouette)
             dist = d * cos_t - math.sqrt(max(0.0, r * r - d2 * sin_t * sin_t))
-            return dx, dy, dz, dist, em[6], em[7], em[8], p_choice / (2.0 * math.pi * one_minus), False
+            pdf = p_choice / (2.0 * math.pi * one_minus)
+            return dx, dy, dz, dist, em[M_EMISSION], em[M_EMISSION + 1], em[M_EMISSION + 2], pdf, False
         # inside the sphere: uniform by area
         z = 1.0 - 2.0 * u1
         rr = math.sqrt(max(0.0, 1.0 - z * z))
@@ -308,4 +310,5 @@ def sample_light(S, px, py, pz, time_u, u_sel, u1, u2):
     if k >= 0:  # a triangle: its emission may be textured
         er, eg, eb = emission_at(S, _light_material(S, inst, k), inst, k, wb, wc)
         return lx / dist, ly / dist, lz / dist, dist, er, eg, eb, p_choice * conv, False
-    return lx / dist, ly / dist, lz / dist, dist, em[6], em[7], em[8], p_choice * conv, False
+    er, eg, eb = em[M_EMISSION], em[M_EMISSION + 1], em[M_EMISSION + 2]
+    return lx / dist, ly / dist, lz / dist, dist, er, eg, eb, p_choice * conv, False

@@ -27,9 +27,9 @@ The model (glTF 2.0 specification, Appendix B "BRDF Implementation"; alpha = rou
                specularColor and s, F90 = s; the base weighted with max over the channels).
   The Appendix's sample `fresnel_mix` weights the base by 1 - F(v·h); its own discussion
   ("Coupling Diffuse and Specular Reflection") says that breaks energy conservation (measured
-  here: a smooth white dielectric then returns 1.55 of the light at cos θo = 0.1) and names,
-  after Burley 2012 ("Physically-based shading at Disney"), the form used here,
-  (1 - F(n·l))(1 - F(n·v)), which conserves energy and is reciprocal, as the Appendix asks of
+  here: a smooth white dielectric then returns 1.55 of the light at cos θo = 0.1) and names the
+  form used here, (1 - F(n·l))(1 - F(n·v)), which conserves energy and is reciprocal, as the
+  Appendix asks of
   a physically based renderer ("Complete Model").
   Clearcoat (KHR_materials_clearcoat README, `fresnel_coat`): the whole material below is
   scaled by (1 - cc Fc(n·v)) and a second GGX lobe cc Fc(n·v) D_c V_c (alpha_c = clearcoat
@@ -43,8 +43,9 @@ The model (glTF 2.0 specification, Appendix B "BRDF Implementation"; alpha = rou
       Fresnel for n = ior (the Appendix's discussion recommends full Fresnel for transparent
       dielectrics), tinted by the base colour on every crossing like GLASS (the volume
       README, "Base Color and Absorption": base colour acts at the boundary, "as if the
-      object is covered with a colored, transparent foil"), weight (1 - metallic) T. KHR_materials_specular does not act on it. The coat factor applies
-      on the outside direction of a crossing. Beer-Lambert absorption inside is the
+      object is covered with a colored, transparent foil"), weight (1 - metallic) T.
+      KHR_materials_specular does not act on it. The coat factor applies on the outside
+      direction of a crossing. Beer-Lambert absorption inside is the
       integrator's (`pbr_absorption`).
   Sampling: one lobe chosen by u0 with probabilities proportional to estimates of each lobe's
   albedo at wo (`_lobe_probabilities`); GGX lobes by visible normals (microfacet.py), the base

@@ -31,9 +31,9 @@ from .gltf_animation import decompose_trs, world_matrices
 from .material_table import M_DOUBLE_SIDED, M_METALLIC, M_TEX_NORMAL, M_TRANSMISSION, PBR, row_from_spec
 from .mesh_table import MeshTableBuilder
 from .scene_data import MaterialSpec, SceneData
-from .skinning import is_deforming
+from .skinning import SPACE_WORLD, deformed_vertices, is_deforming
 from .tangents import vertex_tangents
-from .textures import TEXREF_SIZE, pack_images, shared_textures, texref_row
+from .textures import TEXREF_SIZE, TR_TEXCOORD, pack_images, shared_textures, texref_row
 
 MATERIAL_TYPES = {"diffuse": DIFFUSE, "metal": METAL, "glass": GLASS, "plastic": PLASTIC, "pbr": PBR}
 DEFAULT_GREY = (0.8, 0.8, 0.8)  # rule of thumb: a mid-light grey for meshes without a colour
@@ -160,33 +160,56 @@ class _Tables:
         return self._grey
 
 
-def _mesh_arrays(mesh, mat_rows: np.ndarray, rows: list, positions=None, normals=None):
-    """(positions, faces, tri_mat, normals, uv0, uv1, tangents) of a MeshData for the builder,
-    tangents computed when a normal-mapped material needs them and the file has none."""
+_FILE = object()  # "as the file gives it"
+
+
+def _mesh_arrays(mesh, mat_rows: np.ndarray, rows: list, texrefs: list, positions=None, normals=None,
+                 tangents=_FILE):
+    """(positions, faces, tri_mat, normals, uv0, uv1, tangents) of a MeshData for the builder.
+
+    positions / normals / tangents replace the file's (a placed or deformed mesh); tangents are
+    computed (tangents.py) when a normal-mapped material needs them and there are none, from the
+    UV set its normal texture reads (texrefs: the texture-reference rows so far)."""
     positions = mesh.positions if positions is None else positions
     normals = mesh.normals if normals is None else normals
+    tangents = mesh.tangents if tangents is _FILE else tangents
     faces = np.asarray(mesh.faces, np.int64)
     tri_mat = mat_rows[np.asarray(mesh.face_material, np.int64)]  # -1 indexes the default row
-    tangents = mesh.tangents
     if tangents is None and normals is not None:
-        uses = [rows[int(m)] for m in np.unique(tri_mat)]
-        mapped = [r for r in uses if r[M_TEX_NORMAL] >= 0]
-        if mapped and (mesh.uv0 is not None or mesh.uv1 is not None):
-            uv = mesh.uv0 if mesh.uv0 is not None else mesh.uv1
-            tangents = vertex_tangents(positions, normals, uv, faces)
+        mapped = [int(rows[int(m)][M_TEX_NORMAL]) for m in np.unique(tri_mat) if rows[int(m)][M_TEX_NORMAL] >= 0]
+        if mapped:
+            second = texrefs[mapped[0]][TR_TEXCOORD] >= 1.0
+            uv = mesh.uv1 if second and mesh.uv1 is not None else mesh.uv0
+            uv = mesh.uv1 if uv is None else uv
+            if uv is not None:
+                tangents = vertex_tangents(positions, normals, uv, faces)
     return positions, faces, tri_mat, normals, mesh.uv0, mesh.uv1, tangents
 
 
-def _transformed(mesh, matrix: np.ndarray):
-    """(positions, normals, faces-reversal flag) of a mesh under a (4, 4) matrix."""
+def _placed(mesh, matrix: np.ndarray):
+    """(positions, normals, tangents, mirrored) of a mesh under a (4, 4) matrix: points by the
+    matrix, normals by its inverse transpose, tangent directions by its 3×3 part with their
+    handedness flipped under a mirror (negative determinant)."""
     a = matrix[:3, :3]
+    mirrored = bool(np.linalg.det(a) < 0.0)
     positions = np.asarray(mesh.positions, np.float64) @ a.T + matrix[:3, 3]
-    normals = None
+    normals = tangents = None
     if mesh.normals is not None:
-        normals = np.asarray(mesh.normals, np.float64) @ np.linalg.inv(a)  # (A^-T n) as rows
-        length = np.linalg.norm(normals, axis=1, keepdims=True)
-        normals = normals / np.where(length > 0, length, 1.0)
-    return positions, normals
+        normals = _unit_rows(np.asarray(mesh.normals, np.float64) @ np.linalg.inv(a))  # (A^-T n) as rows
+    if mesh.tangents is not None:
+        t = np.asarray(mesh.tangents, np.float64)
+        tangents = np.concatenate([_unit_rows(t[:, :3] @ a.T), t[:, 3:4] * (-1.0 if mirrored else 1.0)], axis=1)
+    return positions, normals, tangents, mirrored
+
+
+def _unit_rows(v: np.ndarray) -> np.ndarray:
+    length = np.linalg.norm(v, axis=1, keepdims=True)
+    return v / np.where(length > 0, length, 1.0)
+
+
+def _reversed(arrays: tuple) -> tuple:
+    """Builder arrays with every face's winding reversed (outward stays outward under a mirror)."""
+    return (arrays[0], arrays[1][:, ::-1].copy()) + arrays[2:]
 
 
 def assemble(shot, scene: SceneData | None, object_files: dict, texture_file=None) -> Assembly:
@@ -220,10 +243,16 @@ def assemble(shot, scene: SceneData | None, object_files: dict, texture_file=Non
             mesh = sd.meshes[sd.nodes[node].mesh]
             if len(mesh.faces) == 0:
                 continue
-            pos, nrm = _transformed(mesh, worlds[node])
-            arrays = _mesh_arrays(mesh, mat_rows, tables.rows, pos, nrm)
-            if np.linalg.det(worlds[node][:3, :3]) < 0.0:  # a mirror: keep outward outward
-                arrays = (arrays[0], arrays[1][:, ::-1].copy()) + arrays[2:]
+            if is_deforming(sd, node):  # a skin or morph targets: the pose at the file's time 0
+                pos, nrm, space = deformed_vertices(sd, node, 0.0, worlds)
+                if space != SPACE_WORLD:
+                    pos, nrm, _, _ = _placed(replace(mesh, positions=pos, normals=nrm, tangents=None), worlds[node])
+                arrays = _mesh_arrays(mesh, mat_rows, tables.rows, tables.texrefs, pos, nrm, None)
+            else:
+                pos, nrm, tan, mirrored = _placed(mesh, worlds[node])
+                arrays = _mesh_arrays(mesh, mat_rows, tables.rows, tables.texrefs, pos, nrm, tan)
+                if mirrored:
+                    arrays = _reversed(arrays)
             m = builder.add(*arrays)
             parts.append(Part(KIND_MESH, m, override, _box(arrays[0]), obj=oi))
 
@@ -242,21 +271,19 @@ def assemble(shot, scene: SceneData | None, object_files: dict, texture_file=Non
                 continue
             _, _, _, exact = decompose_trs(rest[node])
             if not exact and not _moves(scene, node, animated):
-                arrays = _mesh_arrays(mesh, mat_rows, tables.rows, *_transformed(mesh, rest[node]))
-                m = builder.add(*arrays)
+                pos, nrm, tan, mirrored = _placed(mesh, rest[node])
+                arrays = _mesh_arrays(mesh, mat_rows, tables.rows, tables.texrefs, pos, nrm, tan)
+                m = builder.add(*(_reversed(arrays) if mirrored else arrays))
                 parts.append(Part(KIND_MESH, m, -1, _box(arrays[0])))  # placed where it is
                 continue
             if not exact:
                 warnings.append(f"{scene.path}: nodes[{node}] ({spec.name}) is sheared and animated; "
                                 f"lampyr renders it with the nearest rotation and scale")
             if spec.mesh not in mesh_index:
-                arrays = _mesh_arrays(mesh, mat_rows, tables.rows)
+                arrays = _mesh_arrays(mesh, mat_rows, tables.rows, tables.texrefs)
                 mesh_index[spec.mesh] = builder.add(*arrays)
             m = mesh_index[spec.mesh]
             parts.append(Part(KIND_MESH, m, -1, _box(mesh.positions), node=node))
-        if scene.extensions_ignored:
-            warnings.append(f"{scene.path}: lampyr ignores the optional extensions "
-                            f"{', '.join(scene.extensions_ignored)}")
 
     if texture_file is None:
         tex_pixels, tex_info = pack_images(tables.images)
@@ -275,8 +302,8 @@ def assemble(shot, scene: SceneData | None, object_files: dict, texture_file=Non
     )
 
 
-def _mesh_nodes(sd: SceneData) -> list[int]:
-    """Nodes of the shown scene (roots and their descendants) that carry a mesh, in index order."""
+def shown_nodes(sd: SceneData) -> list[int]:
+    """Nodes of the shown scene (its roots and their descendants), in index order."""
     seen, stack = set(), list(sd.roots)
     while stack:
         n = stack.pop()
@@ -284,7 +311,12 @@ def _mesh_nodes(sd: SceneData) -> list[int]:
             continue
         seen.add(n)
         stack.extend(sd.nodes[n].children)
-    return sorted(n for n in seen if sd.nodes[n].mesh >= 0)
+    return sorted(seen)
+
+
+def _mesh_nodes(sd: SceneData) -> list[int]:
+    """Nodes of the shown scene that carry a mesh, in index order."""
+    return [n for n in shown_nodes(sd) if sd.nodes[n].mesh >= 0]
 
 
 def _moves(sd: SceneData, node: int, animated: set) -> bool:

@@ -28,12 +28,13 @@ import numpy as np
 from numba import njit
 
 from .material_table import (
-    M_ALPHA, M_CLEARCOAT, M_CLEARCOAT_ROUGHNESS, M_COLOR, M_EMISSION, M_METALLIC, M_ROUGHNESS, M_SPECULAR,
-    M_SPECULAR_COLOR, M_TEX_BASE, M_TEX_CLEARCOAT, M_TEX_CLEARCOAT_ROUGHNESS, M_TEX_EMISSIVE,
+    M_ALPHA, M_ALPHA_CUTOFF, M_ALPHA_MODE, M_CLEARCOAT, M_CLEARCOAT_ROUGHNESS, M_COLOR, M_EMISSION, M_METALLIC,
+    M_ROUGHNESS, M_SPECULAR, M_SPECULAR_COLOR, M_TEX_BASE, M_TEX_CLEARCOAT, M_TEX_CLEARCOAT_ROUGHNESS, M_TEX_EMISSIVE,
     M_TEX_METALLIC_ROUGHNESS, M_TEX_NORMAL, M_TEX_SPECULAR, M_TEX_SPECULAR_COLOR, M_TEX_TRANSMISSION,
     M_TRANSMISSION, M_TYPE, MATERIAL_SIZE, PBR,
 )
 from .mesh_table import ATTR_NORMAL, ATTR_TANGENT, ATTR_UV0, ATTR_UV1
+from .scene_data import ALPHA_BLEND, ALPHA_MASK, ALPHA_OPAQUE
 from .scene import KIND_SPHERE, normal_to_world, point_to_world, ray_to_object, tri_corners, vector_to_world
 from .textures import TR_SCALE, TR_TEXCOORD, tex_lookup
 
@@ -119,7 +120,10 @@ def hit_surface(S, inst, k, u, v, px, py, pz, time_u, surf):
             if tn > 0.0:
                 tx, ty, tz = tx / tn, ty / tn, tz / tn
             surf[SF_TAN], surf[SF_TAN + 1], surf[SF_TAN + 2] = tx, ty, tz
-            surf[SF_TAN + 3] = -1.0 if ta[3] < 0.0 else 1.0
+            # the bitangent w (N × T) flips under a mirroring placement (negative scale product)
+            m0 = motion[0]
+            mirror = m0[7] * m0[8] * m0[9] < 0.0
+            surf[SF_TAN + 3] = -1.0 if (ta[3] < 0.0) != mirror else 1.0
     surf[SF_NG], surf[SF_NG + 1], surf[SF_NG + 2] = gx, gy, gz
     surf[SF_NS], surf[SF_NS + 1], surf[SF_NS + 2] = nx, ny, nz
 
@@ -251,20 +255,39 @@ def emission_at(S, mid, inst, k, u, v):
     instance inst (k < 0: a sphere): the factor, times the emissive texture where there is one."""
     row = S.mats[mid]
     er, eg, eb = row[M_EMISSION], row[M_EMISSION + 1], row[M_EMISSION + 2]
+    if k < 0 or row[M_TYPE] != PBR:
+        return er, eg, eb
+    has_uv = S.mesh_attr[S.inst_mesh[inst]] & (ATTR_UV0 | ATTR_UV1)
+    # the emission a ray sees there: textured, and as covered as the surface is (a cut-out
+    # emits nothing, partial coverage emits its share), so light samples and rays agree
+    cover = row[M_ALPHA]
+    ref = int(row[M_TEX_BASE])
+    if row[M_ALPHA_MODE] != ALPHA_OPAQUE and ref >= 0 and has_uv:
+        tu, tv = _uv_at(S, ref, k, u, v)
+        cover *= tex_lookup(S.tex_pixels, S.tex_info, S.texrefs, S.srgb_lut, ref, tu, tv)[3]
+    if row[M_ALPHA_MODE] == ALPHA_MASK:
+        cover = 1.0 if cover >= row[M_ALPHA_CUTOFF] else 0.0
+    elif row[M_ALPHA_MODE] == ALPHA_BLEND:
+        cover = min(1.0, max(0.0, cover))
+    else:
+        cover = 1.0
     ref = int(row[M_TEX_EMISSIVE])
-    if ref < 0 or k < 0 or row[M_TYPE] != PBR:
-        return er, eg, eb
-    if not S.mesh_attr[S.inst_mesh[inst]] & (ATTR_UV0 | ATTR_UV1):
-        return er, eg, eb
+    if ref >= 0 and has_uv:
+        tu, tv = _uv_at(S, ref, k, u, v)
+        r, g, b, _ = tex_lookup(S.tex_pixels, S.tex_info, S.texrefs, S.srgb_lut, ref, tu, tv)
+        er, eg, eb = er * r, eg * g, eb * b
+    return er * cover, eg * cover, eb * cover
+
+
+@njit(cache=True, inline="always")
+def _uv_at(S, ref, k, u, v):
+    """The UV set texture reference `ref` reads, at barycentrics (u, v) of triangle k."""
     col = 2 if S.texrefs[ref, TR_TEXCOORD] >= 1.0 else 0
     w0 = 1.0 - u - v
     a = S.vtx_uv[S.tri_vtx[k, 0]]
     b = S.vtx_uv[S.tri_vtx[k, 1]]
     c = S.vtx_uv[S.tri_vtx[k, 2]]
-    tu = w0 * a[col] + u * b[col] + v * c[col]
-    tv = w0 * a[col + 1] + u * b[col + 1] + v * c[col + 1]
-    r, g, b_, _ = tex_lookup(S.tex_pixels, S.tex_info, S.texrefs, S.srgb_lut, ref, tu, tv)
-    return er * r, eg * g, eb * b_
+    return w0 * a[col] + u * b[col] + v * c[col], w0 * a[col + 1] + u * b[col + 1] + v * c[col + 1]
 
 
 @njit(cache=True)

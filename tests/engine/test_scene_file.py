@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 from scipy.spatial.transform import Rotation
 
-from examples.gltf_builder import GltfBuilder
+from examples.gltf_builder import GltfBuilder, tex
 from lampyr.engine.compiler import compile_frame, compile_geometry
 from lampyr.engine.material_table import M_COLOR, M_TYPE, PBR
 from lampyr.engine.punctual import L_DIR_OPEN, L_POS_OPEN, L_RGB
@@ -254,3 +254,45 @@ def test_an_optional_extension_lampyr_does_not_read_is_one_warning_line(tmp_path
     (line,) = check_shot_files(shot)
     assert "EXT_lights_image_based" in line and "KHR_materials_sheen" in line and "\n" not in line
     assert render_frame(shot, 1).mean().shape == (8, 8, 3)  # and the scene renders without them
+
+
+def test_a_node_scaled_to_nothing_renders_as_nothing(tmp_path):
+    # animators hide objects by scaling them to 0 (glTF 2.0 allows any scale)
+    b, mesh = quad_builder({"base_color": [1, 1, 1, 1], "emissive": [1, 1, 1]})
+    b.add_node("hidden", mesh=mesh, translation=[-2, -2, 0], scale=[4, 0, 1])
+    shot = scene_shot(tmp_path, b, body="[environment]\ncolor = [0.25, 0.25, 0.25]")
+    np.testing.assert_allclose(render_frame(shot, 1).mean(), 0.25)
+
+
+def test_lights_and_cameras_of_other_scenes_in_the_file_are_not_used(tmp_path):
+    # glTF 2.0 section 3.5.2: only the nodes of the scene shown are rendered
+    b, mesh = quad_builder()
+    shown = b.add_node("quad", mesh=mesh)
+    lamp = b.add_node("lamp", light=b.add_light("point", intensity=5.0), translation=[0, 0, 2])
+    b.add_node("other_cam", camera=b.add_camera(yfov=0.7))
+    b.add_scene([shown], name="shown", default=True)
+    b.add_scene([lamp], name="spare", default=False)
+    shot = scene_shot(tmp_path, b)
+    scene, _ = compile_frame(shot, compile_geometry(shot), 1)
+    assert not (scene.light_inst == -1).any()  # no punctual light in the light list
+    shot = scene_shot(tmp_path, b, camera='scene_camera = "other_cam"')
+    with pytest.raises(ShotError):
+        compile_geometry(shot)
+
+
+def test_a_cut_out_emitter_gives_no_light_where_it_is_cut(tmp_path):
+    # glTF 2.0 section 3.9.4 (alphaMode MASK): below the cutoff the surface is not there, so it
+    # neither shows nor emits; light samples must agree with the rays that pass it
+    b = GltfBuilder()
+    clear = b.add_image(np.zeros((2, 2, 4), np.uint8))  # alpha 0 everywhere
+    card = b.add_material("card", base_color=[1, 1, 1, 1], emissive=[1, 1, 1], alpha_mode="MASK",
+                          base_color_tex=tex(b.add_texture(clear)))
+    floor = b.add_material("floor", base_color=[0.8, 0.8, 0.8, 1], metallic=0.0, roughness=1.0)
+    card_mesh = b.add_mesh([b.primitive(QUAD_POSITIONS, QUAD_NORMALS, QUAD_UVS, indices=QUAD_FACES,
+                                        material=card)])
+    b.add_node("card", mesh=card_mesh, translation=[-2, -2, 1], scale=[4, 4, 1])
+    floor_mesh = b.add_mesh([b.primitive(QUAD_POSITIONS, QUAD_NORMALS, QUAD_UVS, indices=QUAD_FACES,
+                                         material=floor)])
+    b.add_node("floor", mesh=floor_mesh, translation=[-5, -5, 0], scale=[10, 10, 1])
+    shot = scene_shot(tmp_path, b, camera="position = [0, 0, 5]\ntarget = [0, 0, 0]")
+    assert render_frame(shot, 1).mean().max() == 0.0
