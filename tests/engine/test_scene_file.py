@@ -125,13 +125,21 @@ def test_scene_camera_renders_as_the_same_view_written_in_the_shot(tmp_path):
     b, mesh = quad_builder()
     b.add_node("quad", mesh=mesh)
     cam = b.add_camera(yfov=math.radians(40), name="lens")
-    # a camera at (0.5, 0.5, 4) looking down its -z: towards -z, up +y
-    b.add_node("shot_cam", camera=cam, translation=[0.5, 0.5, 4.0])
+    # a camera node turned 20° about y and tilted 10° down, under a parent moved to (0.5, 0.5, 0):
+    # glTF cameras look down their local -z with +y up (glTF 2.0 section 3.10)
+    turn = Rotation.from_euler("yx", [20, -10], degrees=True)
+    b.add_node("rig", translation=[0.5, 0.5, 0.0],
+               children=[b.add_node("shot_cam", camera=cam, translation=[1.0, 0.0, 4.0], rotation=turn.as_quat())])
+    position = np.array([0.5, 0.5, 0.0]) + [1.0, 0.0, 4.0]
+    target = position + turn.apply([0, 0, -1])  # scipy, not lampyr
+    up = turn.apply([0, 1, 0])
     env = '[environment]\ncolor = [0.2, 0.3, 0.4]'
     through = scene_shot(tmp_path, b, body=env, camera='scene_camera = "shot_cam"\nshutter = 0')
-    written = scene_shot(tmp_path, b, body=env,
-                         camera="position = [0.5, 0.5, 4]\ntarget = [0.5, 0.5, 3]\nfov = 40\nshutter = 0")
-    np.testing.assert_array_equal(render_frame(through, 1).mean(), render_frame(written, 1).mean())
+    written = scene_shot(tmp_path, b, body=env, camera=(
+        f"position = {position.tolist()}\ntarget = {target.tolist()}\nup = {up.tolist()}\nfov = 40\nshutter = 0"))
+    a = render_frame(through, 1).mean()
+    assert a.std() > 0  # the quad is in view, not only the background
+    np.testing.assert_allclose(a, render_frame(written, 1).mean(), rtol=1e-6, atol=1e-9)
 
 
 def test_an_unknown_scene_camera_is_one_line_naming_the_key(tmp_path):
