@@ -13,6 +13,9 @@ One scanline part, ZIP compression (lossless; float32 survives bit for bit), per
                       channel name, from memory); 0 where nothing was hit
   hits         UINT   samples whose camera ray hit geometry (the count behind N and Z)
   dropped      UINT   NaN / inf samples thrown away
+  denoised.R/G/B FLOAT  optional: the mean through the denoiser (engine/denoise.py), written
+                      when a frame is complete; NOT an unbiased estimate, so `read_frame`
+                      ignores it (merging and refining never see it); `read_denoised` reads it
 
 Header attributes: every caller attribute as a string named `lampyr.<key>`, plus
 `lampyr.format` = "1". Numbers are kept as strings because the bindings store float attributes
@@ -44,6 +47,7 @@ ALBEDO = ("albedo.R", "albedo.G", "albedo.B")
 NORMAL = ("N.X", "N.Y", "N.Z")
 FLOAT_CHANNELS = BEAUTY + ("A",) + VARIANCE + ALBEDO + NORMAL + ("Z",)
 UINT_CHANNELS = ("spp", "hits", "dropped")
+DENOISED = ("denoised.R", "denoised.G", "denoised.B")
 CHANNELS = FLOAT_CHANNELS + UINT_CHANNELS
 
 
@@ -118,20 +122,47 @@ def _attr_text(key, value) -> str:
     return value if isinstance(value, str) else repr(value)  # repr: the shortest exact float
 
 
-def write_frame(path, film: Film, attrs: dict[str, str | int | float]) -> None:
+def write_frame(path, film: Film, attrs: dict[str, str | int | float],
+                denoised: np.ndarray | None = None) -> None:
     """Write `film` as the frame file `path`, atomically (see the module docstring).
 
     attrs: stored as strings under `lampyr.<key>` (shot, frame, samples, render_seconds,
     version, ...); the key `format` is reserved.
+    denoised: None, or an (h, w, 3) image stored as the layer denoised.R/G/B (float32).
     """
     header = {PREFIX + k: _attr_text(k, v) for k, v in attrs.items()}
     header[PREFIX + "format"] = FORMAT
     header["compression"] = OpenEXR.ZIP_COMPRESSION
     header["type"] = OpenEXR.scanlineimage
     channels = frame_channels(film)
+    if denoised is not None:
+        d = np.asarray(denoised, dtype=np.float32)
+        if d.shape != film.n.shape + (3,):
+            raise ValueError(f"denoised: expected shape {film.n.shape + (3,)}, got {d.shape}")
+        for i, name in enumerate(DENOISED):
+            channels[name] = np.ascontiguousarray(d[..., i])
     with atomic_target(path) as tmp:
         # the bindings mutate the dicts they are given: pass copies (LIBRARY-NOTES)
         OpenEXR.File(dict(header), dict(channels)).write(str(tmp))
+
+
+def read_denoised(path) -> np.ndarray | None:
+    """The frame file's denoised layer as (h, w, 3) float32, or None when it has none.
+
+    FrameFileError when the file is missing or not a readable OpenEXR file.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise FrameFileError(f"{path}: no such frame file")
+    try:
+        with OpenEXR.File(str(path), separate_channels=True) as exr:
+            chans = exr.channels()
+            if not all(c in chans for c in DENOISED):
+                return None
+            rgb = np.stack([np.array(chans[c].pixels, dtype=np.float32) for c in DENOISED], -1)
+    except Exception as err:  # the bindings raise RuntimeError or ValueError on damaged files
+        raise FrameFileError(f"{path}: not a readable OpenEXR file ({err})") from None
+    return rgb
 
 
 def read_frame(path) -> tuple[Film, dict[str, str]]:
@@ -146,7 +177,8 @@ def read_frame(path) -> tuple[Film, dict[str, str]]:
     try:
         with OpenEXR.File(str(path), separate_channels=True) as exr:
             header = dict(exr.header())
-            planes = {name: (ch.type(), np.array(ch.pixels)) for name, ch in exr.channels().items()}
+            planes = {name: (ch.type(), np.array(ch.pixels))  # other channels (denoised) ignored
+                      for name, ch in exr.channels().items() if name in CHANNELS}
     except Exception as err:  # the bindings raise RuntimeError or ValueError on damaged files
         raise FrameFileError(f"{path}: not a readable OpenEXR file ({err})") from None
 

@@ -303,6 +303,7 @@ class Shot:
     time_zero: float | None = None  # the frame that shows the scene file's time 0 (None: first frame)
     scene_light_scale: float = 1.0  # multiplies the intensity of the scene file's lights
     lights: tuple = ()
+    denoise: bool = True  # [output] denoise: complete frames get a denoised layer
     path: Path | None = None
     root: Path | None = None
     raw: dict = field(default_factory=dict, repr=False)
@@ -329,9 +330,12 @@ class Shot:
             out.update(asset_files(self.root, self.environment.map, "environment.map"))
         return sorted(out)
 
-    def with_overrides(self, samples=None, frames=None, width=None, height=None) -> "Shot":
+    def with_overrides(self, samples=None, frames=None, width=None, height=None,
+                       denoise=None) -> "Shot":
         """A new validated Shot with these values replaced; frames: an int, (first, last) or a range."""
         raw = copy.deepcopy(self.raw)
+        if denoise is not None:
+            raw.setdefault("output", {})["denoise"] = denoise
         if samples is not None:
             raw.setdefault("sampling", {})["samples"] = samples
         if frames is not None:
@@ -357,6 +361,10 @@ _FRAME = integer(f"a frame number between 0 and {MAX_FRAME}", 0, MAX_FRAME)
 _FOV = number("degrees between 1 and 179", 1, 179)
 _FOCUS = number("a focus distance > 0 in scene units", 0, lo_open=True)
 _DEGREES = vector("3 angles [x, y, z] in degrees")
+
+
+def _boolean(v, key):
+    return v if isinstance(v, bool) else _fail(key, "true or false", v)
 
 
 def _frames(v, key):
@@ -545,7 +553,8 @@ def parse_shot(data: dict, root=None, path=None) -> Shot:
     given); path: the shot file, if any. Raises ShotError (AssetError for files).
     """
     top = _Table(data, "", {"name", "frames", "fps", "image", "sampling", "camera", "environment",
-                            "material", "object", "light", "scene", "time_zero", "scene_light_scale"},
+                            "material", "object", "light", "scene", "time_zero",
+                            "scene_light_scale", "output"},
                  "a table of shot keys")
     scene = top.get("scene", _asset(SCENE_EXTENSIONS, root), None)
     name = top.get("name", lambda v, k: v if isinstance(v, str) and _NAME.fullmatch(v) else _fail(
@@ -568,6 +577,7 @@ def parse_shot(data: dict, root=None, path=None) -> Shot:
     environment = _environment(_Table(data.get("environment", {}), "environment",
                                       {"color", "map", "strength", "rotate"}), root)
 
+    output = _Table(data.get("output", {}), "output", {"denoise"}, "a table [output]")
     mat_data = top.array("material", "an array of tables ([[material]] blocks)")
     materials = tuple(_material(_Table(d, label, {"name", "type", "color", "roughness", "ior", "emission",
                                                   "metallic", "transmission"}),
@@ -593,6 +603,7 @@ def parse_shot(data: dict, root=None, path=None) -> Shot:
         roulette=sampling.get("roulette", bounce, 3),
         camera=camera, environment=environment, materials=materials, objects=objects,
         scene=scene, lights=lights,
+        denoise=output.get("denoise", _boolean, True),
         time_zero=top.get("time_zero", number("a frame number (may be negative or fractional)"), None),
         scene_light_scale=top.get("scene_light_scale", number("a multiplier >= 0", 0), 1.0),
         path=None if path is None else Path(path), root=None if root is None else Path(root),

@@ -25,8 +25,8 @@ def _parse_frames(text: str | None):
         raise UsageError(f"--frames: expected a frame or a range like 1-48, got {text!r}") from None
 
 
-def _overrides(samples, frames, width, height) -> dict:
-    out = {}
+def _overrides(samples, frames, width, height, no_denoise: bool = False) -> dict:
+    out = {"denoise": False} if no_denoise else {}
     if samples is not None:
         out["samples"] = samples
     if frames is not None:
@@ -68,8 +68,10 @@ def cli():
 @click.option("--height", type=click.IntRange(1, 16384), default=None, help="Override image.height.")
 @click.option("--tile", "tile_size", type=click.IntRange(8, 1024), default=32, show_default=True,
               help="Tile edge in pixels.")
+@click.option("--no-denoise", "no_denoise", is_flag=True,
+              help="No denoised layer in the frames (as the shot's [output] denoise = false).")
 @click.option("--quiet", is_flag=True, help="No progress bar.")
-def render(shot, out, workers, samples, frames, width, height, tile_size, quiet):
+def render(shot, out, workers, samples, frames, width, height, tile_size, no_denoise, quiet):
     """Render every frame of SHOT on this machine into --out."""
     from rich.console import Console
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn, TimeRemainingColumn
@@ -79,7 +81,7 @@ def render(shot, out, workers, samples, frames, width, height, tile_size, quiet)
     from .scheduler.local_farm import render_on_farm
 
     console = Console(stderr=True, quiet=quiet)
-    overrides = _overrides(samples, _parse_frames(frames), width, height)
+    overrides = _overrides(samples, _parse_frames(frames), width, height, no_denoise)
     spec = load_shot(shot)
     if overrides:
         spec = spec.with_overrides(**overrides)
@@ -261,6 +263,8 @@ def doctor(address, no_render):
               help="Tile edge in pixels (default: chosen from a probe render).")
 @click.option("--batch", "batch_samples", type=click.IntRange(1, 1_048_576), default=None,
               help="Samples per batch (default: chosen from a probe render).")
+@click.option("--no-denoise", "no_denoise", is_flag=True,
+              help="No denoised layer in the frames (as the shot's [output] denoise = false).")
 @click.option("--until", "until", default=None, metavar="TIME",
               help="Deadline: a local time (07:00, its next occurrence) or a date-time "
                    "(2026-12-03T07:00). The head spends the samples the farm can render by then "
@@ -268,14 +272,14 @@ def doctor(address, no_render):
 @click.option("--head", "head_addr", default=None, help=_HEAD_HELP)
 @click.option("--state", type=click.Path(file_okay=False, path_type=Path), default=None, help=_STATE_HELP)
 def submit(shot, out, priority, samples, frames, width, height, tile_size, batch_samples,
-           until, head_addr, state):
+           no_denoise, until, head_addr, state):
     """Queue SHOT on the farm; prints the job id as the last line."""
     from .scheduler.deadline import parse_until
     from .scheduler.submit import submit_request
 
     deadline = None if until is None else parse_until(until)
     r = _farm(head_addr, state)
-    overrides = _overrides(samples, _parse_frames(frames), width, height)
+    overrides = _overrides(samples, _parse_frames(frames), width, height, no_denoise)
     sent: list = []
     notes: list = []
     job = submit_request(r, shot, overrides, None if out is None else str(out), priority,

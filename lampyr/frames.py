@@ -12,8 +12,15 @@ def frame_path(out: Path, name: str, frame: int, ext: str = "exr") -> Path:
     return out / f"{name}.{frame:04d}.{ext}"
 
 
-def write_frame_files(out: Path, shot, frame: int, film, seconds: float) -> Path:
-    """Write `<name>.<frame>.exr` and its PNG preview; returns the EXR path."""
+def write_frame_files(out: Path, shot, frame: int, film, seconds: float,
+                      final: bool = False) -> Path:
+    """Write `<name>.<frame>.exr` and its PNG preview; returns the EXR path.
+
+    final: the frame is complete (its pass is done, or it is as final as it gets): then, unless
+    the shot says `[output] denoise = false`, the EXR gets the denoised layer and the PNG shows
+    it. Intermediate rewrites (final False) are not denoised, so that the head's merging does
+    not wait for the denoiser; their PNG shows the raw mean.
+    """
     from .engine.exr import write_frame
     from .engine.preview import write_preview
 
@@ -27,6 +34,12 @@ def write_frame_files(out: Path, shot, frame: int, film, seconds: float) -> Path
         "render_seconds": f"{seconds:.3f}",
         "version": __version__,
     }
-    write_frame(path, film, attrs)
-    write_preview(frame_path(out, shot.name, frame, "png"), film)
+    denoised = None
+    if final and getattr(shot, "denoise", True):
+        from .engine.denoise import denoise_film
+
+        denoised = denoise_film(film)
+    write_frame(path, film, attrs, denoised)
+    write_preview(frame_path(out, shot.name, frame, "png"),
+                  film if denoised is None else denoised)
     return path

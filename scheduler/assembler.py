@@ -125,8 +125,9 @@ class JobRun:
             acc = TileAccumulator.load(self.folder.tile(frame, i), t.w, t.h)
             if acc.film is not None:
                 film.add_into(acc.film, t.y0, t.x0)
+        # denoised only when complete (its pass done): the intermediate rewrites stay cheap
         path = write_frame_files(Path(self.rec.out), self.shot, frame, film,
-                                 self.seconds.get(frame, 0.0))
+                                 self.seconds.get(frame, 0.0), final=complete)
         self.written[frame] = level
         self.written_sum[frame] = total
         return path

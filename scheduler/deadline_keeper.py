@@ -256,7 +256,8 @@ def write_held_frame(run, frame: int) -> None:
         acc = TileAccumulator.load(run.folder.tile(frame, i), t.w, t.h)
         if acc.film is not None:
             film.add_into(acc.film, t.y0, t.x0)
-    write_frame_files(Path(run.rec.out), run.shot, frame, film, run.seconds.get(frame, 0.0))
+    write_frame_files(Path(run.rec.out), run.shot, frame, film, run.seconds.get(frame, 0.0),
+                      final=True)  # the deadline: as final as the frame gets, so denoised
     run.written[frame] = run.frame_level(frame)
     run.written_sum[frame] = total
 

@@ -72,8 +72,13 @@ def refine_frame_file(path: Path, shot_path: Path, samples: int, noise: float | 
         old = float(attrs.get("render_seconds", 0) or 0)
         attrs["render_seconds"] = f"{old + time.perf_counter() - start:.3f}"
         merged = merge(film, extra)
-        write_frame(path, merged, attrs)
+        denoised = None
+        if shot.denoise:  # a refined frame is final: denoised from the merged mean
+            from ..engine.denoise import denoise_film
+
+            denoised = denoise_film(merged)
+        write_frame(path, merged, attrs, denoised)
         from ..engine.preview import write_preview
 
-        write_preview(path.with_suffix(".png"), merged)
+        write_preview(path.with_suffix(".png"), merged if denoised is None else denoised)
     return {"tiles": refined, "of": len(tiles)}

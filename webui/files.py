@@ -2,10 +2,13 @@
 
     GET /jobs/<job>/frames/<frame>.exr               the frame file (attachment)
     GET /jobs/<job>/frames/<frame>.png               the head's sRGB preview (attachment)
-    GET /jobs/<job>/frames/<frame>/preview.png?exposure=STOPS   linear × 2^STOPS, then sRGB
+    GET /jobs/<job>/frames/<frame>/preview.png?exposure=STOPS&raw=0|1
+        the frame's denoised layer (the raw mean with raw=1, or when the frame has no denoised
+        layer yet) × 2^STOPS, then sRGB
 
 Paths come only from `progress.frame_file`, which resolves a frame inside its job's frames
-folder and nowhere else; anything else is a 404. Previews are cached by (file, mtime, exposure).
+folder and nowhere else; anything else is a 404. Previews are cached by (file, mtime, exposure,
+raw).
 """
 
 from __future__ import annotations
@@ -24,14 +27,15 @@ CACHE_ENTRIES = 48
 
 
 class PreviewCache:
-    """Tone-mapped PNG bytes by (path, mtime_ns, size, exposure); least recently used dropped."""
+    """Tone-mapped PNG bytes by (path, mtime_ns, size, exposure, raw); least recently used
+    dropped."""
 
     def __init__(self, entries: int = CACHE_ENTRIES):
         self.entries = entries
         self.data: OrderedDict = OrderedDict()
         self.lock = threading.Lock()
 
-    def get(self, path, exposure: float) -> bytes:
+    def get(self, path, exposure: float, raw: bool = False) -> bytes:
         """FrameFileError when the file is unreadable or gone (removed since it was found)."""
         from ..errors import FrameFileError
 
@@ -39,12 +43,12 @@ class PreviewCache:
             st = path.stat()
         except FileNotFoundError:
             raise FrameFileError(f"{path}: no such frame file") from None
-        key = (str(path), st.st_mtime_ns, st.st_size, exposure)
+        key = (str(path), st.st_mtime_ns, st.st_size, exposure, raw)
         with self.lock:
             if key in self.data:
                 self.data.move_to_end(key)
                 return self.data[key]
-        png = tone_map(path, exposure)
+        png = tone_map(path, exposure, raw)
         with self.lock:
             self.data[key] = png
             while len(self.data) > self.entries:
@@ -52,13 +56,16 @@ class PreviewCache:
         return png
 
 
-def tone_map(path, exposure: float) -> bytes:
-    """The frame's mean radiance, scaled by 2^exposure, through the sRGB curve, as PNG bytes."""
-    from ..engine.exr import read_frame
+def tone_map(path, exposure: float, raw: bool = False) -> bytes:
+    """The frame's denoised layer (its raw mean radiance when `raw` or when it has no denoised
+    layer), scaled by 2^exposure, through the sRGB curve, as PNG bytes."""
+    from ..engine.exr import read_denoised, read_frame
     from ..engine.preview import to_png_bytes
 
-    film, _ = read_frame(path)
-    return to_png_bytes(film.mean(), exposure)
+    rgb = None if raw else read_denoised(path)
+    if rgb is None:
+        rgb = read_frame(path)[0].mean()
+    return to_png_bytes(rgb, exposure)
 
 
 def _file_or_404(job: str, frame: int, ext: str):
@@ -101,11 +108,14 @@ def preview(job, frame):
     except ValueError:
         abort(400, description=f"exposure: expected stops between {EXPOSURE_RANGE[0]:g} and "
                                f"{EXPOSURE_RANGE[1]:g}, got {raw!r}")
+    raw_flag = request.args.get("raw", "0")
+    if raw_flag not in ("0", "1"):
+        abort(400, description=f"raw: expected 0 (denoised) or 1 (the raw mean), got {raw_flag!r}")
     path = _file_or_404(job, frame, "exr")
     from flask import current_app
 
     try:
-        data = current_app.extensions["lampyr.previews"].get(path, exposure)
+        data = current_app.extensions["lampyr.previews"].get(path, exposure, raw_flag == "1")
     except FrameFileError:  # caught between two writes of the head, or damaged
         abort(404, description=f"frame {frame} of {job!r} cannot be read right now")
     resp = Response(data, mimetype="image/png")

@@ -148,3 +148,31 @@ def test_interrupt_keeps_the_frames_already_written(tmp_path):
         with OpenEXR.File(str(path), separate_channels=True) as f:
             assert np.array(f.channels()["spp"].pixels).min() == 4
     assert not list(out.glob("*.tmp*")), "a half-written file was left behind"
+
+
+DENOISED = ("denoised.R", "denoised.G", "denoised.B")
+
+
+@pytest.mark.parametrize("flags, has_layer", [((), True), (("--no-denoise",), False)])
+def test_no_denoise_leaves_the_denoised_layer_out(tmp_path, tiny_shot, flags, has_layer):
+    # issue 12: complete frames carry denoised.R/G/B unless turned off; read back with OpenEXR
+    out = tmp_path / "renders"
+    res = lampyr("render", tiny_shot, "--out", out, "--frames", "1", "--workers", 1, "--quiet",
+                 *flags)
+    assert res.returncode == 0, res.stderr
+    with OpenEXR.File(str(out / "tiny.0001.exr"), separate_channels=True) as f:
+        names = set(f.channels())
+    assert all((c in names) is has_layer for c in DENOISED)
+
+
+@pytest.mark.parametrize("command", ["render", "submit"])
+def test_both_commands_offer_no_denoise(command):
+    res = lampyr(command, "--help")
+    assert res.returncode == 0 and "--no-denoise" in res.stdout
+
+
+def test_no_denoise_becomes_the_shot_override():
+    from lampyr.cli import _overrides
+
+    assert _overrides(None, None, None, None, True) == {"denoise": False}
+    assert _overrides(None, None, None, None, False) == {}

@@ -8,7 +8,8 @@ import numpy as np
 import OpenEXR
 import pytest
 
-from lampyr.engine.exr import CHANNELS, UINT_CHANNELS, read_frame, write_frame
+from lampyr.engine.exr import (CHANNELS, DENOISED, UINT_CHANNELS, read_denoised, read_frame,
+                               write_frame)
 from lampyr.engine.film import FIELDS, Film, merge
 from lampyr.errors import FrameFileError
 
@@ -239,3 +240,67 @@ def test_unusable_attributes_are_refused(tmp_path, attrs, error):
     with pytest.raises(error):
         write_frame(tmp_path / "x.exr", Film.zeros(1, 1), attrs)
 
+
+
+# -- the denoised layer ---------------------------------------------------------------------------
+
+def _denoised_like(film: Film) -> np.ndarray:
+    """Any (h, w, 3) image stands in for the denoiser's output: the file only stores it."""
+    return (film.mean() * 0.5 + 0.25).astype(np.float32)
+
+
+@pytest.fixture(scope="module")
+def written_denoised(tmp_path_factory):
+    film = accumulate(np.random.default_rng(22), 16)
+    path = tmp_path_factory.mktemp("frames") / "courtyard.0013.exr"
+    picture = _denoised_like(film)
+    write_frame(path, film, ATTRS, picture)
+    return path, film, picture
+
+
+@pytest.mark.parametrize("name", DENOISED)
+def test_the_denoised_layer_is_three_float_channels(written_denoised, name):
+    # read back by the OpenEXR library itself; denoised.R/G/B are the channel names (issue 12)
+    _, channels = openexr_read(written_denoised[0])
+    kind, pixels = channels[name]
+    assert kind == OpenEXR.FLOAT and pixels.dtype == np.float32 and pixels.shape == (H, W)
+
+
+def test_the_denoised_layer_holds_the_given_picture_bit_exact(written_denoised):
+    _, channels = openexr_read(written_denoised[0])
+    got = np.stack([channels[c][1] for c in DENOISED], -1)
+    assert np.array_equal(got, written_denoised[2])  # ZIP is lossless; float32 in, float32 out
+
+
+def test_read_denoised_returns_the_layer(written_denoised):
+    assert np.array_equal(read_denoised(written_denoised[0]), written_denoised[2])
+
+
+def test_read_denoised_of_a_frame_without_the_layer_is_none(written):
+    assert read_denoised(written[0]) is None
+
+
+@pytest.mark.parametrize("field", FIELDS)
+def test_reading_back_ignores_the_denoised_layer(tmp_path, field):
+    # the same film written with and without the layer reads back to the same sums
+    film = accumulate(np.random.default_rng(23), 8)
+    write_frame(tmp_path / "a.exr", film, ATTRS)
+    write_frame(tmp_path / "b.exr", film, ATTRS, _denoised_like(film))
+    a, b = read_frame(tmp_path / "a.exr")[0], read_frame(tmp_path / "b.exr")[0]
+    assert np.array_equal(getattr(a, field), getattr(b, field))
+
+
+@pytest.mark.parametrize("name", CHANNELS)
+def test_the_denoised_layer_leaves_every_other_channel_bit_identical(tmp_path, name):
+    film = accumulate(np.random.default_rng(24), 8)
+    write_frame(tmp_path / "a.exr", film, ATTRS)
+    write_frame(tmp_path / "b.exr", film, ATTRS, _denoised_like(film))
+    a = openexr_read(tmp_path / "a.exr")[1][name][1]
+    b = openexr_read(tmp_path / "b.exr")[1][name][1]
+    assert a.dtype == b.dtype and a.tobytes() == b.tobytes()
+
+
+def test_a_denoised_picture_of_another_size_is_refused(tmp_path):
+    film = accumulate(np.random.default_rng(25), 4)
+    with pytest.raises(ValueError, match="denoised"):
+        write_frame(tmp_path / "a.exr", film, ATTRS, np.zeros((H + 1, W, 3), np.float32))

@@ -449,3 +449,34 @@ def test_nan_in_a_vector_is_not_finite():
     with pytest.raises(ShotError) as info:
         parse_shot(data)
     assert info.value.key == "camera.target"
+
+
+# ---------------------------------------------------------------------------------------------
+# [output]: source docs/shot-file.md, the [output] table
+
+@pytest.mark.parametrize("rest, expected", [("", True), ("[output]\ndenoise = false\n", False),
+                                            ("[output]\ndenoise = true\n", True),
+                                            ("[output]\n", True)])
+def test_output_denoise(rest, expected):
+    assert parse_shot_text(shot_text(rest=MATERIAL + BALL + rest)).denoise is expected
+
+
+@pytest.mark.parametrize("denoise", [False, True])
+def test_with_overrides_sets_denoise(denoise):
+    shot = parse_shot_text(shot_text(rest=MATERIAL + BALL + "[output]\ndenoise = true\n"))
+    assert shot.with_overrides(denoise=denoise).denoise is denoise
+
+
+@pytest.mark.parametrize("rest, key, found", [
+    ("[output]\ndenoise = 1\n", "output.denoise", "got 1"),
+    ('[output]\ndenoise = "no"\n', "output.denoise", 'got "no"'),
+    ("[output]\ndenoize = false\n", "output.denoize", 'got unknown key "denoize"'),
+])
+def test_bad_output_gives_one_line_naming_the_key(tmp_path, rest, key, found):
+    err = error_of(tmp_path, shot_text(rest=MATERIAL + BALL + rest))
+    assert err.key == key and found in err.problem and "\n" not in str(err)
+
+
+def test_output_must_be_a_table(tmp_path):
+    err = error_of(tmp_path, "output = 3\n" + shot_text())
+    assert err.key == "output" and "got 3" in err.problem

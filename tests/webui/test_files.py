@@ -33,18 +33,36 @@ def srgb(linear):
     return np.where(x <= 0.0031308, 12.92 * x, 1.055 * np.power(x, 1 / 2.4) - 0.055)
 
 
+DENOISED = ("denoised.R", "denoised.G", "denoised.B")
+
+
+@pytest.mark.parametrize("query, layer", [("", DENOISED), ("&raw=0", DENOISED),
+                                          ("&raw=1", ("R", "G", "B"))])
 @pytest.mark.parametrize("stops", [0.0, 1.5, -2.0])
 def test_the_preview_is_the_exposed_radiance_through_the_srgb_curve(user, finished_job, state,
-                                                                    stops):
+                                                                    stops, query, layer):
+    # denoised by default, the raw mean with raw=1; read here with the OpenEXR library
     import OpenEXR
 
     with OpenEXR.File(str(exr_path(state, finished_job)), separate_channels=True) as f:
-        rgb = np.stack([np.array(f.channels()[c].pixels, dtype=np.float64) for c in "RGB"], -1)
-    resp = user.get(f"/jobs/{finished_job}/frames/1/preview.png?exposure={stops}")
+        rgb = np.stack([np.array(f.channels()[c].pixels, dtype=np.float64) for c in layer], -1)
+    resp = user.get(f"/jobs/{finished_job}/frames/1/preview.png?exposure={stops}{query}")
     got = np.asarray(Image.open(io.BytesIO(resp.data)).convert("RGB")).astype(np.float64)
     want = np.floor(srgb(rgb * 2.0 ** stops) * 255 + 0.5)
     assert got.shape == (12, 16, 3)
     assert np.abs(got - want).max() <= 1  # one code value for float32 rounding at the knee
+
+
+def test_the_denoised_and_raw_previews_differ(user, finished_job):
+    # a frame of 8 samples is noisy, so the denoiser changes pixels (else the switch shows nothing)
+    base = f"/jobs/{finished_job}/frames/1/preview.png"
+    assert user.get(base).data != user.get(base + "?raw=1").data
+
+
+@pytest.mark.parametrize("value", ["yes", "2", ""])
+def test_an_unknown_raw_switch_is_refused(user, finished_job, value):
+    resp = user.get(f"/jobs/{finished_job}/frames/1/preview.png?raw={value}")
+    assert resp.status_code == 400 and b"raw" in resp.data
 
 
 @pytest.mark.parametrize("value", ["bright", "11", "-10.5", "nan"])

@@ -7,7 +7,7 @@
   const base = "/api/jobs/" + encodeURIComponent(JOB);
   const files = "/jobs/" + encodeURIComponent(JOB) + "/frames/";
   const S = {job: null, layout: null, frames: [], sel: null, picked: new Set(), detail: null,
-             exposure: 0, overlay: "state", tile: null, imgKey: ""};
+             exposure: 0, raw: false, overlay: "state", tile: null, imgKey: ""};
 
   /* ---------------- job header ---------------- */
   function fact(dt, dd, cls) { return el("div", {class: cls || null}, el("dt", {text: dt}), el("dd", {text: dd})); }
@@ -140,10 +140,11 @@
     none.hidden = !!exr;
     img.hidden = !exr;
     if (exr) {
-      const key = S.sel + ":" + exr.mtime + ":" + S.exposure;
+      const key = S.sel + ":" + exr.mtime + ":" + S.exposure + ":" + S.raw;
       if (key !== S.imgKey) {
         S.imgKey = key;
-        img.src = files + S.sel + "/preview.png?exposure=" + S.exposure + "&v=" + exr.mtime;
+        img.src = files + S.sel + "/preview.png?exposure=" + S.exposure + (S.raw ? "&raw=1" : "") +
+                  "&v=" + exr.mtime;
       }
     }
     drawTiles();
@@ -333,6 +334,8 @@
     };
     ex.addEventListener("input", () => setExposure(ex.value));
     document.getElementById("exposure-reset").addEventListener("click", () => setExposure(0));
+    const raw = document.getElementById("raw");
+    raw.addEventListener("change", () => { S.raw = raw.checked; if (S.detail) renderFrame(); });
     for (const r of document.querySelectorAll("input[name=overlay]"))
       r.addEventListener("change", () => { S.overlay = r.value; drawTiles(); });
     const cv = document.getElementById("tiles");
