@@ -426,6 +426,9 @@ def _camera(t: _Table, scene_file: bool = False) -> Camera:
         keys=keys, auto_focus=auto, scene_camera=scene_camera,
     )
     if scene_camera is not None:
+        if cam.aperture > 0 and not t.has("focus"):
+            _fail(t.key("focus"), "a focus distance when a scene_camera has an aperture (glTF cameras carry "
+                                  "none)", _MISSING)
         return cam  # placed by the scene's camera node (checked when the scene is read)
     for i, key in enumerate(keys or [None], 1):
         where = "camera" if key is None else f"camera.key[{i}]"

@@ -304,3 +304,15 @@ def test_a_cut_out_emitter_gives_no_light_where_it_is_cut(tmp_path):
     b.add_node("floor", mesh=floor_mesh, translation=[-5, -5, 0], scale=[10, 10, 1])
     shot = scene_shot(tmp_path, b, camera="position = [0, 0, 5]\ntarget = [0, 0, 0]")
     assert render_frame(shot, 1).mean().max() == 0.0
+
+
+def test_a_scene_camera_with_an_aperture_needs_a_focus(tmp_path):
+    # docs/shot-file.md: focus defaults to |target - position|, which a scene camera does not have
+    b, mesh = quad_builder()
+    b.add_node("quad", mesh=mesh)
+    b.add_node("lens", camera=b.add_camera(yfov=0.7))
+    with pytest.raises(ShotError) as err:
+        scene_shot(tmp_path, b, camera='scene_camera = "lens"\naperture = 0.05')
+    assert err.value.key == "camera.focus"
+    shot = scene_shot(tmp_path, b, camera='scene_camera = "lens"\naperture = 0.05\nfocus = 4')
+    assert shot.camera.focus == 4.0
