@@ -28,7 +28,9 @@ from .mesh_table import MeshTable, MeshTableBuilder
 from .punctual import PUNCT_SIZE, light_power, light_row
 from .scene import FLAG_COUNT, FLAG_PASSABLE, KIND_MESH, KIND_SPHERE, Scene
 from .scene_data import LIGHT_DIRECTIONAL, LIGHT_POINT, LIGHT_SPOT
-from .scene_import import Part, _mesh_arrays, assemble, check_has_area, read_scene_file, shown_nodes
+from .scene_import import (
+    Part, _mesh_arrays, assemble, check_has_area, read_scene_file, sheared_moving_nodes, shown_nodes,
+)
 from .skinning import SPACE_WORLD, deformed_vertices
 from .bvh import build_bvh
 from .textures import srgb_table
@@ -59,7 +61,6 @@ class Geometry:
     env_params: np.ndarray  # [has_map, strength, rotate, p_env placeholder]
     scene: object  # SceneData or None
     deforming: tuple  # (node, material rows) of the scene's skinned / morphing meshes
-    warnings: tuple  # one line each, for the person submitting
 
     @property
     def triangle_count(self) -> int:
@@ -92,6 +93,9 @@ def check_shot_files(shot) -> list[str]:
         if sd.extensions_ignored:
             warnings.append(f"{sd.path}: lampyr does not read the optional extension(s) "
                             f"{', '.join(sd.extensions_ignored)}; the scene renders without them")
+    for node in ([] if scene is None else sheared_moving_nodes(scene)):
+        warnings.append(f"{scene.path}: nodes[{node}] ({scene.nodes[node].name}) is sheared and animated; "
+                        f"lampyr renders it with the nearest rotation and scale")
     return warnings
 
 
@@ -131,7 +135,7 @@ def compile_geometry(shot, texture_file=None) -> Geometry:
         texrefs=asm.texrefs, tex_pixels=asm.tex_pixels, tex_info=asm.tex_info, srgb_lut=srgb_table(),
         env_color=np.asarray(env.color, np.float64), env_map=np.ascontiguousarray(env_map, np.float64),
         env_row_cdf=row_cdf, env_col_cdf=np.ascontiguousarray(col_cdf), env_params=params,
-        scene=asm.scene, deforming=tuple(asm.deforming), warnings=tuple(asm.warnings),
+        scene=asm.scene, deforming=tuple(asm.deforming),
     )
 
 
@@ -329,7 +333,8 @@ def compile_frame(shot, geom: Geometry, frame: int):
     # Light choice: half the samples to the environment when both exist (rule of thumb).
     env_params[3] = 0.0 if not env_on else (1.0 if not light_inst else 0.5)
     flags = np.zeros(FLAG_COUNT, np.int64)
-    flags[FLAG_PASSABLE] = int(any(is_passable(row) for row in geom.mats))
+    inst_passable = _passable_parts(parts, meshes, geom.mats, max(k, 1))
+    flags[FLAG_PASSABLE] = int(inst_passable[:k].any())  # some instance lets shadow rays pass
 
     scene = Scene(
         meshes.blas_lo, meshes.blas_hi, meshes.blas_a, meshes.blas_count, meshes.blas_axis, meshes.tris,
@@ -344,7 +349,7 @@ def compile_frame(shot, geom: Geometry, frame: int):
         inst_moving=moving,
         inst_motion=motion,
         inst_light_base=inst_light_base,
-        inst_passable=_passable_parts(parts, meshes, geom.mats, max(k, 1)),
+        inst_passable=inst_passable,
         mats=geom.mats,
         texrefs=geom.texrefs,
         tex_pixels=geom.tex_pixels,

@@ -1,4 +1,4 @@
-"""Frame files: an OpenEXR image that is also its own checkpoint (DESIGN invariant 3).
+"""Frame files: an OpenEXR image that is also its own checkpoint (docs/farm.md, `lampyr refine`).
 
 One scanline part, ZIP compression (lossless; float32 survives bit for bit), per pixel:
 
@@ -19,7 +19,7 @@ One scanline part, ZIP compression (lossless; float32 survives bit for bit), per
 
 Header attributes: every caller attribute as a string named `lampyr.<key>`, plus
 `lampyr.format` = "1". Numbers are kept as strings because the bindings store float attributes
-as 32-bit and mangle large integers (LIBRARY-NOTES).
+as 32-bit and mangle large integers (measured with OpenEXR 3.5: 2**40 reads back as 0).
 
 `read_frame` rebuilds the sums from the means (rgb_sum = mean·n, rgb_sq = var·(n−1) + mean²·n,
 ...), so a frame is refined by `merge(read_frame(path)[0], new_batches)`.
@@ -142,7 +142,7 @@ def write_frame(path, film: Film, attrs: dict[str, str | int | float],
         for i, name in enumerate(DENOISED):
             channels[name] = np.ascontiguousarray(d[..., i])
     with atomic_target(path) as tmp:
-        # the bindings mutate the dicts they are given: pass copies (LIBRARY-NOTES)
+        # the bindings mutate the dicts they are given: pass copies (seen with OpenEXR 3.5)
         OpenEXR.File(dict(header), dict(channels)).write(str(tmp))
 
 

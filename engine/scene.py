@@ -1,7 +1,7 @@
 """Scene compilation (shot → flat arrays) and ray queries against the compiled scene.
 
 The compiled scene is a two-level hierarchy, kept as a NamedTuple of plain arrays (which numba
-caches well; see LIBRARY-NOTES):
+caches well, where a jitclass argument misses the cache on every run):
 
 * bottom level: one BVH per mesh in its own object space, all concatenated (`blas_*`, `tris`,
   with per-mesh node and triangle offsets), built once per shot and shared by every frame;

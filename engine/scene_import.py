@@ -113,7 +113,6 @@ class Assembly:
     tex_info: np.ndarray
     scene: SceneData | None
     deforming: list = field(default_factory=list)  # (node, material rows (F,)) rebuilt per frame
-    warnings: list = field(default_factory=list)
 
 
 class _Tables:
@@ -226,7 +225,6 @@ def assemble(shot, scene: SceneData | None, object_files: dict, texture_file=Non
     builder = MeshTableBuilder()
     parts: list[Part] = []
     deforming: list = []
-    warnings: list[str] = []
 
     for oi, obj in enumerate(shot.objects):
         if obj.sphere is not None:
@@ -246,7 +244,8 @@ def assemble(shot, scene: SceneData | None, object_files: dict, texture_file=Non
             if is_deforming(sd, node):  # a skin or morph targets: the pose at the file's time 0
                 pos, nrm, space = deformed_vertices(sd, node, 0.0, worlds)
                 if space != SPACE_WORLD:
-                    pos, nrm, _, _ = _placed(replace(mesh, positions=pos, normals=nrm, tangents=None), worlds[node])
+                    posed = replace(mesh, positions=pos, normals=nrm, tangents=None)
+                    pos, nrm, _, _ = _placed(posed, worlds[node])
                 arrays = _mesh_arrays(mesh, mat_rows, tables.rows, tables.texrefs, pos, nrm, None)
             else:
                 pos, nrm, tan, mirrored = _placed(mesh, worlds[node])
@@ -276,9 +275,6 @@ def assemble(shot, scene: SceneData | None, object_files: dict, texture_file=Non
                 m = builder.add(*(_reversed(arrays) if mirrored else arrays))
                 parts.append(Part(KIND_MESH, m, -1, _box(arrays[0])))  # placed where it is
                 continue
-            if not exact:
-                warnings.append(f"{scene.path}: nodes[{node}] ({spec.name}) is sheared and animated; "
-                                f"lampyr renders it with the nearest rotation and scale")
             if spec.mesh not in mesh_index:
                 arrays = _mesh_arrays(mesh, mat_rows, tables.rows, tables.texrefs)
                 mesh_index[spec.mesh] = builder.add(*arrays)
@@ -298,7 +294,7 @@ def assemble(shot, scene: SceneData | None, object_files: dict, texture_file=Non
     return Assembly(
         meshes=builder, parts=parts, mats=np.ascontiguousarray(np.array(tables.rows, np.float64)),
         texrefs=np.ascontiguousarray(texrefs), tex_pixels=tex_pixels, tex_info=tex_info, scene=scene,
-        deforming=deforming, warnings=warnings,
+        deforming=deforming,
     )
 
 
@@ -317,6 +313,14 @@ def shown_nodes(sd: SceneData) -> list[int]:
 def _mesh_nodes(sd: SceneData) -> list[int]:
     """Nodes of the shown scene that carry a mesh, in index order."""
     return [n for n in shown_nodes(sd) if sd.nodes[n].mesh >= 0]
+
+
+def sheared_moving_nodes(sd: SceneData) -> list[int]:
+    """Mesh nodes whose world matrix has a shear and that move: rendered with the nearest
+    rotation and scale (a static sheared node gets a baked copy instead)."""
+    rest = world_matrices(sd, 0.0)
+    animated = {c.node for c in sd.channels}
+    return [n for n in _mesh_nodes(sd) if _moves(sd, n, animated) and not decompose_trs(rest[n])[3]]
 
 
 def _moves(sd: SceneData, node: int, animated: set) -> bool:

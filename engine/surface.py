@@ -135,6 +135,25 @@ def _texture(S, ref, surf):
     return tex_lookup(S.tex_pixels, S.tex_info, S.texrefs, S.srgb_lut, ref, surf[col], surf[col + 1])
 
 
+@njit(cache=True, inline="always")
+def _tint(S, row, tex_col, rm, col, surf):
+    """rm[col:col + 3] *= the rgb of the texture row[tex_col] names, if it names one."""
+    ref = int(row[tex_col])
+    if ref >= 0:
+        r, g, b, _ = _texture(S, ref, surf)
+        rm[col] *= r
+        rm[col + 1] *= g
+        rm[col + 2] *= b
+
+
+@njit(cache=True, inline="always")
+def _scale(S, row, tex_col, channel, rm, col, surf):
+    """rm[col] *= one channel of the texture row[tex_col] names, if it names one."""
+    ref = int(row[tex_col])
+    if ref >= 0:
+        rm[col] *= _texture(S, ref, surf)[channel]
+
+
 @njit(cache=True)
 def resolve_material(S, mid, surf, rm):
     """Copy material row `mid` into `rm` with its textures applied; returns the coverage alpha
@@ -159,30 +178,12 @@ def resolve_material(S, mid, surf, rm):
         r, g, b, a = _texture(S, ref, surf)
         rm[M_ROUGHNESS] *= g  # glTF: roughness in G, metalness in B
         rm[M_METALLIC] *= b
-    ref = int(row[M_TEX_EMISSIVE])
-    if ref >= 0:
-        r, g, b, a = _texture(S, ref, surf)
-        rm[M_EMISSION] *= r
-        rm[M_EMISSION + 1] *= g
-        rm[M_EMISSION + 2] *= b
-    ref = int(row[M_TEX_TRANSMISSION])
-    if ref >= 0:
-        rm[M_TRANSMISSION] *= _texture(S, ref, surf)[0]
-    ref = int(row[M_TEX_CLEARCOAT])
-    if ref >= 0:
-        rm[M_CLEARCOAT] *= _texture(S, ref, surf)[0]
-    ref = int(row[M_TEX_CLEARCOAT_ROUGHNESS])
-    if ref >= 0:
-        rm[M_CLEARCOAT_ROUGHNESS] *= _texture(S, ref, surf)[1]
-    ref = int(row[M_TEX_SPECULAR])
-    if ref >= 0:
-        rm[M_SPECULAR] *= _texture(S, ref, surf)[3]
-    ref = int(row[M_TEX_SPECULAR_COLOR])
-    if ref >= 0:
-        r, g, b, a = _texture(S, ref, surf)
-        rm[M_SPECULAR_COLOR] *= r
-        rm[M_SPECULAR_COLOR + 1] *= g
-        rm[M_SPECULAR_COLOR + 2] *= b
+    _tint(S, row, M_TEX_EMISSIVE, rm, M_EMISSION, surf)
+    _tint(S, row, M_TEX_SPECULAR_COLOR, rm, M_SPECULAR_COLOR, surf)
+    _scale(S, row, M_TEX_TRANSMISSION, 0, rm, M_TRANSMISSION, surf)  # glTF: R
+    _scale(S, row, M_TEX_CLEARCOAT, 0, rm, M_CLEARCOAT, surf)  # R
+    _scale(S, row, M_TEX_CLEARCOAT_ROUGHNESS, 1, rm, M_CLEARCOAT_ROUGHNESS, surf)  # G
+    _scale(S, row, M_TEX_SPECULAR, 3, rm, M_SPECULAR, surf)  # A
     return alpha
 
 

@@ -1,1 +1,1 @@
-"""lampyr.scheduler (see DESIGN.md)."""
+"""lampyr.scheduler  (DEVELOPERS.md has the map)."""

@@ -59,7 +59,8 @@ def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: in
             stdin=subprocess.DEVNULL, stdout=log, stderr=subprocess.STDOUT,
             start_new_session=True, cwd=state, preexec_fn=die_with_parent())
         batch = batch_samples or max(1, shot.samples)
-        job = submit_request(head.r, Path(shot_path), overrides, str(out), 0, tile_size, batch)
+        # `lampyr render` read the shot's files before anything started
+        job = submit_request(head.r, Path(shot_path), overrides, str(out), 0, tile_size, batch, files_checked=True)
         written: list[Path] = []
         seen: set[int] = set()
         while True:

@@ -14,12 +14,13 @@ from .jobs import new_job_id
 def submit_request(r, shot_path: Path, overrides: dict, out: str | None, priority: int = 0,
                    tile_size: int | None = None, batch_samples: int | None = None,
                    deadline: float | None = None, sent: list | None = None,
-                   warnings: list | None = None) -> str:
+                   warnings: list | None = None, files_checked: bool = False) -> str:
     """Validate a shot, send the files Redis lacks and ask the head to run it; returns the job id.
 
     deadline: epoch seconds the frames are wanted by (`deadline.parse_until`), or None;
     sent: a list, when given, gets the upload's `transfer.Sent` appended; warnings: a list, when
-    given, gets the warning lines about the shot's files (optional glTF extensions not read)."""
+    given, gets the warning lines about the shot's files (optional glTF extensions not read);
+    files_checked: the caller has read the shot's files already (`check_shot_files`)."""
     from ..engine.compiler import check_shot_files
     from ..engine.shot import load_shot
     from .store import send_command
@@ -29,7 +30,8 @@ def submit_request(r, shot_path: Path, overrides: dict, out: str | None, priorit
     if overrides:
         o = dict(overrides)
         spec = spec.with_overrides(**o)
-    notes = check_shot_files(spec)  # a bad mesh, texture or scene file stops here, nothing sent
+    # a bad mesh, texture or scene file stops here, nothing sent
+    notes = [] if files_checked else check_shot_files(spec)
     if warnings is not None:
         warnings.extend(notes)
     sha, member, stats = upload_shot(r, spec)

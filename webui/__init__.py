@@ -1,1 +1,1 @@
-"""lampyr.webui (see DESIGN.md)."""
+"""lampyr.webui  (DEVELOPERS.md has the map)."""

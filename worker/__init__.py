@@ -1,1 +1,1 @@
-"""lampyr.worker (see DESIGN.md)."""
+"""lampyr.worker  (DEVELOPERS.md has the map)."""

@@ -2,7 +2,7 @@
 
 Pool: `prefork` with one process per core, each rendering one batch at a time with a single numba
 thread, on numba's `workqueue` threading layer. The parent never runs a kernel, so no OpenMP
-runtime is forked (LIBRARY-NOTES: forking after OpenMP ran kills the child), and each child has
+runtime is forked (seen with numba 0.68: a child forked after GNU OpenMP ran is killed), and each child has
 one Python thread calling kernels (workqueue aborts when two do). On Windows, where nothing
 forks, the pool is `solo`: one process, one batch at a time, with `cores` numba threads.
 

@@ -147,7 +147,7 @@ def _tiny_render() -> Check:
     except Exception as err:  # the engine itself fails here: say so, do not crash the doctor
         return Check("render", PROBLEM, f"the test render failed: {type(err).__name__}: {err}")
     took = time.perf_counter() - start
-    # a camera ray that misses every object records the environment's radiance (DESIGN: pixel
+    # a camera ray that misses every object records the environment's radiance (README: pixel
     # values are scene-linear radiance); a convex diffuse object under uniform light L returns
     # rho * L, since every bounce off it escapes (the furnace identity with one bounce)
     corner = mean[0, 0]

@@ -1,7 +1,7 @@
 """The shot file: parsing, defaults and one-line errors naming the key path.
 
-Source for expected values: the shot file reference (docs/shot-file.md) and the core format in
-DESIGN.md; TOML syntax positions come from tomllib itself.
+Source for expected values: the shot file reference (docs/shot-file.md) and the core format the
+README's shot-file section shows; TOML syntax positions come from tomllib itself.
 """
 
 from __future__ import annotations
@@ -42,7 +42,7 @@ material = "white"
 sphere = { center = [0, 0, 0], radius = 1 }
 """
 
-DESIGN_CORE = """
+README_CORE = """
 name = "courtyard"              # file stem of the frames: courtyard.0001.exr …
 frames = [1, 48]                # first and last frame, inclusive; a single integer for a still
 fps = 24
@@ -106,8 +106,8 @@ def error_of(tmp_path, text: str) -> ShotError:
 
 
 def test_design_core_example_parses(tmp_path):
-    # source: DESIGN.md, "The shot file (TOML) — the core that must keep working"
-    shot = load_shot(write_shot(tmp_path, DESIGN_CORE))
+    # source: README.md, "The shot file" (the core format that must keep working)
+    shot = load_shot(write_shot(tmp_path, README_CORE))
     assert (shot.name, shot.first_frame, shot.last_frame, shot.fps) == ("courtyard", 1, 48, 24.0)
     assert (shot.width, shot.height, shot.samples, shot.bounces, shot.seed) == (960, 540, 128, 8, 1)
     cam = shot.camera
@@ -121,13 +121,13 @@ def test_design_core_example_parses(tmp_path):
 
 
 def test_frames_range_is_inclusive(tmp_path):
-    # source: DESIGN.md, "frames = [1, 48]: first and last frame, inclusive"
-    shot = load_shot(write_shot(tmp_path, DESIGN_CORE))
+    # source: README.md, "frames = [1, 48]  # first and last frame, inclusive"
+    shot = load_shot(write_shot(tmp_path, README_CORE))
     assert shot.frames() == range(1, 49)
 
 
 def test_single_integer_frames_is_a_still(tmp_path):
-    # source: DESIGN.md, "a single integer for a still"
+    # source: README.md, "one integer for a still"
     shot = load_shot(write_shot(tmp_path, shot_text(HEADER.replace("frames = 1", "frames = 12"))))
     assert list(shot.frames()) == [12]
 
@@ -227,7 +227,7 @@ def test_mesh_object_may_omit_its_material(tmp_path):
 
 def test_with_overrides_returns_a_new_shot(tmp_path):
     # source: docs/shot-file.md, overrides
-    shot = load_shot(write_shot(tmp_path, DESIGN_CORE))
+    shot = load_shot(write_shot(tmp_path, README_CORE))
     small = shot.with_overrides(samples=4, frames=(2, 3), width=8, height=6)
     assert (small.samples, small.frames(), small.width, small.height) == (4, range(2, 4), 8, 6)
     assert (shot.samples, shot.width) == (128, 960)
@@ -235,7 +235,7 @@ def test_with_overrides_returns_a_new_shot(tmp_path):
 
 def test_with_overrides_validates(tmp_path):
     # source: docs/shot-file.md, sampling.samples limits
-    path = write_shot(tmp_path, DESIGN_CORE)
+    path = write_shot(tmp_path, README_CORE)
     with pytest.raises(ShotError) as info:
         load_shot(path).with_overrides(samples=0)
     assert info.value.key == "sampling.samples" and str(info.value).startswith(f"{path}: ")
@@ -421,7 +421,7 @@ def test_parse_shot_text_reports_syntax_without_a_file():
     ],
 )
 def test_mesh_path_problems_name_the_object(tmp_path, mesh, found):
-    # source: DESIGN.md, "Paths in a shot are relative to the shot file's folder"
+    # source: docs/shot-file.md, "Paths" (relative to the shot file's folder)
     text = shot_text(rest=f'[[object]]\nname = "lamp"\nmesh = "{mesh}"\n')
     path = write_shot(tmp_path, text)
     with pytest.raises(AssetError) as info:
@@ -430,7 +430,7 @@ def test_mesh_path_problems_name_the_object(tmp_path, mesh, found):
 
 
 def test_files_lists_meshes_and_map_sorted(tmp_path):
-    # source: DESIGN.md, "submitting packs every file a shot uses"
+    # source: docs/shot-file.md, "Files a shot uses"
     (tmp_path / "assets").mkdir()
     (tmp_path / "assets" / "b.stl").write_text("solid b\nendsolid b\n")
     (tmp_path / "a.ply").write_text("ply\n")

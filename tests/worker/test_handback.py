@@ -2,7 +2,7 @@
 object in this process (the farm-level test with real worker processes is in test_polite.py).
 
 A batch [a, b) stopped after k samples delivers [a, a + k) — a valid result on its own, because
-samples are deterministic (DESIGN invariant 1) — and the head queues [a + k, b) again; the
+samples are deterministic (docs/farm.md) — and the head queues [a + k, b) again; the
 frames then equal an uninterrupted render, and nothing is counted twice.
 """
 
