@@ -42,9 +42,9 @@ def spawn(args, log: Path, env=None) -> subprocess.Popen:
 
 def start_head(tmp: Path) -> tuple[subprocess.Popen, str]:
     head = spawn(["head", "--state", tmp / "state"], tmp / "head.log")
-    deadline = time.monotonic() + 60
+    give_up_at = time.monotonic() + 60
     while "Workers join with:" not in (text := (tmp / "head.log").read_text()):
-        if head.poll() is not None or time.monotonic() > deadline:
+        if head.poll() is not None or time.monotonic() > give_up_at:
             raise RuntimeError(text)
         time.sleep(0.05)
     return head, text.split("lampyr worker ", 1)[1].split()[0]

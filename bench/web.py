@@ -42,12 +42,12 @@ def lampyr(*args) -> list[str]:
 
 
 def wait_for(path: Path, pattern: str, proc, timeout: float = 300) -> re.Match:
-    deadline = time.monotonic() + timeout
+    give_up_at = time.monotonic() + timeout
     while True:
         m = re.search(pattern, path.read_text(errors="replace"))
         if m:
             return m
-        if proc.poll() is not None or time.monotonic() > deadline:
+        if proc.poll() is not None or time.monotonic() > give_up_at:
             raise RuntimeError(f"{pattern!r} never appeared in {path}:\n{path.read_text()[-2000:]}")
         time.sleep(0.1)
 
@@ -162,13 +162,13 @@ def main() -> None:
                                     "--tile", 32, "--batch", 2),
                              capture_output=True, text=True, check=True, env=env)
         job = out.stdout.strip().splitlines()[-1]
-        deadline = time.monotonic() + 300
+        give_up_at = time.monotonic() + 300
         while True:  # wait until batches are being merged
             st = subprocess.run(lampyr("status", job, "--json", "--head", url),
                                 capture_output=True, text=True, env=env)
             if st.returncode == 0 and json.loads(st.stdout).get("pixel_samples_done", 0) > 0:
                 break
-            if time.monotonic() > deadline:
+            if time.monotonic() > give_up_at:
                 raise RuntimeError("the job never started:\n" + worker_log.read_text()[-2000:])
             time.sleep(0.5)
 

@@ -266,7 +266,7 @@ def doctor(address, no_render):
 @click.option("--no-denoise", "no_denoise", is_flag=True,
               help="No denoised layer in the frames (as the shot's [output] denoise = false).")
 @click.option("--until", "until", default=None, metavar="TIME",
-              help="Deadline: a local time (07:00, its next occurrence) or a date-time "
+              help="Ready-by time: a local time (07:00, its next occurrence) or a date-time "
                    "(2026-12-03T07:00). The head spends the samples the farm can render by then "
                    "and stops there with every frame written.")
 @click.option("--head", "head_addr", default=None, help=_HEAD_HELP)
@@ -274,16 +274,16 @@ def doctor(address, no_render):
 def submit(shot, out, priority, samples, frames, width, height, tile_size, batch_samples,
            no_denoise, until, head_addr, state):
     """Queue SHOT on the farm; prints the job id as the last line."""
-    from .scheduler.deadline import parse_until
+    from .scheduler.ready_by import parse_until
     from .scheduler.submit import submit_request
 
-    deadline = None if until is None else parse_until(until)
+    ready_by = None if until is None else parse_until(until)
     r = _farm(head_addr, state)
     overrides = _overrides(samples, _parse_frames(frames), width, height, no_denoise)
     sent: list = []
     notes: list = []
     job = submit_request(r, shot, overrides, None if out is None else str(out), priority,
-                         tile_size, batch_samples, deadline=deadline, sent=sent, warnings=notes)
+                         tile_size, batch_samples, ready_by=ready_by, sent=sent, warnings=notes)
     for line in notes:
         click.echo(f"warning: {line}", err=True)
     s = sent[0]
@@ -343,10 +343,10 @@ def _print_job(st):
                f"{100 * done / total:5.1f}% of {st['samples']} spp  "
                f"{st['samples_per_second'] / 1e3:,.1f} k samples/s{eta}  "
                f"failed batches: {len(st['failed'])}")
-    if st.get("deadline") is not None:
-        from .scheduler.deadline import deadline_line
+    if st.get("ready_by") is not None:
+        from .scheduler.ready_by import ready_by_line
 
-        click.echo(f"  {deadline_line(st)}")
+        click.echo(f"  {ready_by_line(st)}")
 
 
 def _job_command(op, job, head_addr, state, **args):

@@ -22,7 +22,7 @@ class JobCommands:
     def cmd_submit(self, job: str, bundle: str, shot: str, overrides: dict, out: str | None,
                    priority: int = 0, tile_size: int | None = None,
                    batch_samples: int | None = None, submitted: float | None = None,
-                   deadline: float | None = None) -> None:
+                   ready_by: float | None = None) -> None:
         from ..engine.shot import load_shot
         from ..worker.cache import FileCache
         from .planner import choose_layout, first_pass_samples, probe_cost, sample_ranges
@@ -55,7 +55,7 @@ class JobCommands:
                         submitted=submitted or time.time(), tile_size=int(tile_size),
                         batch_samples=int(batch_samples), samples=int(spec.samples),
                         ranges=ranges,
-                        deadline=None if deadline is None else float(deadline))
+                        ready_by=None if ready_by is None else float(ready_by))
         folder.save(rec)
         self.jobs[job] = JobRun(self.state, rec, self.partial_frames)
         self.r.zadd(P.K_JOBS, {job: rec.submitted})

@@ -1,16 +1,16 @@
-"""The farm's throughput until a deadline, from what the head measures.
+"""The farm's throughput until a ready-by time, from what the head measures.
 
 Three sources, cheapest first:
 - each worker slot's measured speed (`slot:<name>:<pid>` carries `pixel_samples_per_second`;
   kept per host here as a moving average, since a slot record exists only while it renders);
 - each host's working windows (`host:<name>` may carry `"windows": [[start, end], ...]` in epoch
   seconds for the next 36 hours; absent or empty: always available) — a host contributes its
-  speed only inside its windows, and only until the deadline;
+  speed only inside its windows, and only until the ready-by time;
 - the pixel-samples the head merged per unit time: the fallback speed for a farm no slot has
   reported on yet, and an efficiency factor (queueing, transfer, scene set-up between batches
   are not in a slot's render speed) measured while the queue stayed full.
 
-Capacity is in pixel-samples: Σ_hosts slots × speed × seconds available before the deadline.
+Capacity is in pixel-samples: Σ_hosts slots × speed × seconds available before the ready-by time.
 Everything here is plain data in, numbers out, so the head and the farm simulation
 (tests/scheduler/farmsim.py) run this same code; `read_hosts` is the one function that
 touches Redis.

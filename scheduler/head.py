@@ -27,7 +27,7 @@ from . import protocol as P
 from .accumulator import write_atomic
 from .assembler import JobRun
 from .commands import JobCommands
-from .deadline_keeper import DeadlineKeeper
+from .ready_by_keeper import ReadyByKeeper
 from .history import HistoryRecorder
 from .jobs import JobFolder, list_jobs
 from .leases import LeaseKeeper
@@ -77,7 +77,7 @@ class Head(JobCommands):
         self._epoch_at = 0.0
         self._cores = (0.0, 0)
         self.metrics = HeadCounters()
-        self.deadlines = DeadlineKeeper(self)  # forecasts, holds back, stops at deadlines
+        self.ready_by = ReadyByKeeper(self)  # forecasts, holds back, stops at ready-by times
         self.progress = ProgressPublisher()  # per-frame / per-tile summary for the web page
         self.history = HistoryRecorder()  # throughput per minute, workers last seen
         self._held: dict[str, float] = {}  # job → when its scene's files were last held
@@ -180,7 +180,7 @@ class Head(JobCommands):
         busy = self.take_commands()
         busy |= self.take_results() > 0
         self.reap()
-        self.deadlines.tick()
+        self.ready_by.tick()
         busy |= self.dispatch() > 0
         self.hold_files()
         self.publish()
@@ -407,7 +407,7 @@ class Head(JobCommands):
                 b = run.pending.popleft()
                 if run.is_done(b) or b.id in self.leases:
                     continue
-                if not self.deadlines.admit(run, b):  # beyond what the night affords
+                if not self.ready_by.admit(run, b):  # beyond what the night affords
                     continue
                 self._send(b)
                 sent += 1
@@ -430,7 +430,7 @@ class Head(JobCommands):
         if run.rec.cancelled:
             return "cancelled"
         queued = [e for e in self.leases.table.values() if e.batch.job == run.rec.id]
-        if not run.pending and not queued and not self.deadlines.waiting(run):
+        if not run.pending and not queued and not self.ready_by.waiting(run):
             return "failed" if run.rec.failed else "done"
         if run.rec.paused:
             return "paused"
@@ -458,7 +458,7 @@ class Head(JobCommands):
                 "submitted": run.rec.submitted,
                 "tile_size": run.rec.tile_size, "batch_samples": run.rec.batch_samples,
             }
-            st.update(self.deadlines.status(run))  # deadline, deadline_reached, forecast
+            st.update(self.ready_by.status(run))  # ready_by, ready_by_reached, forecast
             pipe.delete(P.k_job(run.rec.id))
             pipe.hset(P.k_job(run.rec.id), mapping={k: json.dumps(v) for k, v in st.items()})
         publish_metrics(pipe, metrics_snapshot(self))

@@ -52,8 +52,8 @@ class JobRecord:
     cancelled: bool = False
     failed: dict = field(default_factory=dict)
     extra: dict = field(default_factory=dict)  # "frame/tile" → more ranges for that tile only
-    deadline: float | None = None  # epoch seconds the frames are wanted by (deadline.py)
-    deadline_reached: bool = False  # stopped at the deadline with the samples it had
+    ready_by: float | None = None  # epoch seconds the frames are wanted by (ready_by.py)
+    ready_by_reached: bool = False  # stopped at the ready-by time with the samples it had
 
     def to_json(self) -> str:
         return json.dumps(asdict(self), indent=1, sort_keys=True)
@@ -61,9 +61,15 @@ class JobRecord:
     @classmethod
     def from_json(cls, text: str) -> "JobRecord":
         d = json.loads(text)
+        for old, new in _RENAMED.items():  # records written by protocol-3 heads before the rename
+            if old in d:
+                d.setdefault(new, d.pop(old))
         d["ranges"] = [tuple(r) for r in d["ranges"]]
         d["extra"] = {k: [tuple(r) for r in v] for k, v in d.get("extra", {}).items()}
         return cls(**d)
+
+
+_RENAMED = {"deadline": "ready_by", "deadline_reached": "ready_by_reached"}
 
 
 class JobFolder:

@@ -140,7 +140,7 @@ class EmbeddedRedis:
     def _poll(self, client, timeout: float) -> None:
         import redis
 
-        deadline = time.monotonic() + timeout
+        give_up_at = time.monotonic() + timeout
         while True:
             if self.proc is not None and self.proc.poll() is not None:
                 log = self.folder / "redis.log"
@@ -154,7 +154,7 @@ class EmbeddedRedis:
                 pass
             except redis.exceptions.ConnectionError:
                 pass
-            if time.monotonic() > deadline:
+            if time.monotonic() > give_up_at:
                 raise RedisServerError(f"redis-server did not answer on port {self.port}")
             time.sleep(0.05)
 

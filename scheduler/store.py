@@ -128,11 +128,11 @@ def workers(r) -> list[dict]:
 def wait_for_job(r, job: str, states=("done", "failed", "cancelled"), timeout: float = 600,
                  poll: float = 0.2) -> dict:
     """Poll a job's status until its state is one of `states`; returns the status."""
-    deadline = time.monotonic() + timeout
+    give_up_at = time.monotonic() + timeout
     while True:
         st = job_status(r, job)
         if st is not None and st.get("state") in states:
             return st
-        if time.monotonic() > deadline:
+        if time.monotonic() > give_up_at:
             raise FarmError(f"job {job} still {st and st.get('state')} after {timeout:.0f} s")
         time.sleep(poll)

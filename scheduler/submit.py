@@ -13,11 +13,11 @@ from .jobs import new_job_id
 
 def submit_request(r, shot_path: Path, overrides: dict, out: str | None, priority: int = 0,
                    tile_size: int | None = None, batch_samples: int | None = None,
-                   deadline: float | None = None, sent: list | None = None,
+                   ready_by: float | None = None, sent: list | None = None,
                    warnings: list | None = None, files_checked: bool = False) -> str:
     """Validate a shot, send the files Redis lacks and ask the head to run it; returns the job id.
 
-    deadline: epoch seconds the frames are wanted by (`deadline.parse_until`), or None;
+    ready_by: epoch seconds the frames are wanted by (`ready_by.parse_until`), or None;
     sent: a list, when given, gets the upload's `transfer.Sent` appended; warnings: a list, when
     given, gets the warning lines about the shot's files (optional glTF extensions not read);
     files_checked: the caller has read the shot's files already (`check_shot_files`)."""
@@ -46,12 +46,12 @@ def submit_request(r, shot_path: Path, overrides: dict, out: str | None, priorit
              "frames_done": 0, "samples": spec.samples, "pixel_samples_done": 0,
              "pixel_samples_total": len(spec.frames()) * spec.width * spec.height * spec.samples,
              "samples_per_second": 0.0, "eta_seconds": None, "priority": priority,
-             "out": out, "failed": [], "submitted": time.time(), "deadline": deadline,
-             "deadline_reached": False, "forecast": None}
+             "out": out, "failed": [], "submitted": time.time(), "ready_by": ready_by,
+             "ready_by_reached": False, "forecast": None}
     r.hset(P.k_job(job), mapping={k: json.dumps(v) for k, v in first.items()})
     r.zadd(P.K_JOBS, {job: first["submitted"]})
     send_command(r, "submit", job=job, bundle=sha, shot=member, overrides=o,
                  out=None if out is None else str(Path(out).resolve()), priority=priority,
                  tile_size=tile_size, batch_samples=batch_samples, submitted=time.time(),
-                 deadline=deadline)
+                 ready_by=ready_by)
     return job

@@ -168,7 +168,7 @@ def shot_file_name(filename: str) -> str:
 
 def submit_upload(r, uploads: Path, shot_name: str, shot_bytes: bytes, archive_name: str | None,
                   archive, overrides: dict, priority: int = 0,
-                  tile_size: int | None = None, deadline: float | None = None) -> str:
+                  tile_size: int | None = None, ready_by: float | None = None) -> str:
     """Unpack, validate and submit an uploaded shot; returns the job id.
 
     uploads: a folder the upload is unpacked under (a fresh subfolder, removed at the end);
@@ -205,7 +205,7 @@ def submit_upload(r, uploads: Path, shot_name: str, shot_bytes: bytes, archive_n
                 continue
             try:
                 return submit_request(r, path, overrides, None, priority, tile_size,
-                                      deadline=deadline)
+                                      ready_by=ready_by)
             except ShotError as err:  # the shot was fine: an override the form gave is not
                 field = OVERRIDE_FIELDS.get(err.key)
                 if field is None:

@@ -141,13 +141,13 @@ class Farm:
         if not embedded:
             args += ["--redis", self.url]
         self.head_proc = self._spawn(args, "head.log")
-        deadline = time.monotonic() + 60
+        give_up_at = time.monotonic() + 60
         while True:
             log = (self.tmp / "head.log").read_text(errors="replace")
             if "Workers join with:" in log:
                 self.url = log.split("lampyr worker ", 1)[1].split()[0]
                 return self.url
-            if self.head_proc.poll() is not None or time.monotonic() > deadline:
+            if self.head_proc.poll() is not None or time.monotonic() > give_up_at:
                 raise RuntimeError(f"head did not start:\n{log}")
             time.sleep(0.05)
 
@@ -164,10 +164,10 @@ class Farm:
         import redis
 
         r = redis.Redis.from_url(self.url)
-        deadline = time.monotonic() + timeout
+        give_up_at = time.monotonic() + timeout
         # up, and its pool process has loaded the render kernels
         while not (r.exists(f"lampyr:host:{name}") and r.scard(f"lampyr:warm:{name}") >= 1):
-            if self.workers[name].poll() is not None or time.monotonic() > deadline:
+            if self.workers[name].poll() is not None or time.monotonic() > give_up_at:
                 log = (self.tmp / f"worker-{name}.log").read_text(errors="replace")
                 raise RuntimeError(f"worker {name} did not start:\n{log[-3000:]}")
             time.sleep(0.1)
@@ -187,12 +187,12 @@ class Farm:
         return json.loads(self.cli("status", job, "--json", "--head", self.url).stdout)
 
     def wait(self, job: str, states=("done", "failed", "cancelled"), timeout: float = 60) -> dict:
-        deadline = time.monotonic() + timeout
+        give_up_at = time.monotonic() + timeout
         while True:
             st = self.status(job)
             if st["state"] in states:
                 return st
-            if time.monotonic() > deadline:
+            if time.monotonic() > give_up_at:
                 raise AssertionError(f"job {job} still {st['state']} after {timeout} s: {st}\n"
                                      + self.logs())
             time.sleep(0.2)

@@ -8,7 +8,7 @@
     POST /api/submit                multipart: shot (file), assets (archive, optional),
                                     priority, samples, frames ("A-B" or "A"), width, height,
                                     tile (tile edge in px; default: the head's choice),
-                                    until (a deadline: "07:00" or "2026-12-03T07:00", the
+                                    until (a ready-by time: "07:00" or "2026-12-03T07:00", the
                                     head's local time)
 
 Every one answers JSON: 202 {"ok": true, "message"} once queued, 400 {"error"} naming the field,
@@ -205,16 +205,16 @@ def submit():
         overrides["frames"] = frames
     prio = _int(form, "priority", -1000, 1000, required=False) or 0
     tile = _int(form, "tile", 8, 1024, required=False)
-    deadline = None
+    ready_by = None
     if (form.get("until") or "").strip():
-        from ..scheduler.deadline import parse_until
+        from ..scheduler.ready_by import parse_until
 
         try:
-            deadline = parse_until(form["until"])
+            ready_by = parse_until(form["until"])
         except UsageError as err:  # its message names the command-line option
             raise UsageError(str(err).replace("--until:", "until:", 1)) from None
     uploads = Path(current_app.config["STATE"]) / "web" / "uploads"
     job = submit_upload(redis(), uploads, shot.filename, shot_bytes,
                         assets.filename if archive is not None else None, archive, overrides,
-                        prio, tile, deadline)
+                        prio, tile, ready_by)
     return jsonify(ok=True, job=job, message=f"{job} is queued"), 202

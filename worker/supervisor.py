@@ -179,9 +179,9 @@ class Supervisor:
         self.gate.set_stop(True)
         if sys.platform == "win32":
             # no warm shutdown by signal there: wait for the batches to hand back first
-            deadline = time.monotonic() + STOP_TIMEOUT
+            give_up_at = time.monotonic() + STOP_TIMEOUT
             r = _client(self.opts.url)
-            while time.monotonic() < deadline and _has_slots(r, self.opts.name):
+            while time.monotonic() < give_up_at and _has_slots(r, self.opts.name):
                 time.sleep(TICK)
             child.terminate()
         else:

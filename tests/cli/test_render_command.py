@@ -135,8 +135,8 @@ def test_interrupt_keeps_the_frames_already_written(tmp_path):
          "--width", "24", "--height", "16", "--samples", "4", "--workers", "1", "--quiet"],
         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True,
     )
-    deadline = time.monotonic() + 300
-    while not list(out.glob("*.png")) and time.monotonic() < deadline and proc.poll() is None:
+    give_up_at = time.monotonic() + 300
+    while not list(out.glob("*.png")) and time.monotonic() < give_up_at and proc.poll() is None:
         time.sleep(0.1)
     assert proc.poll() is None, "the render ended before it could be interrupted"
     os.killpg(proc.pid, signal.SIGINT)  # as Ctrl-C in a terminal: the whole process group

@@ -125,13 +125,13 @@ def _client(port, password=None):
     import redis
 
     r = redis.Redis(port=port, password=password, socket_timeout=5)
-    deadline = time.monotonic() + 20
+    give_up_at = time.monotonic() + 20
     while True:
         try:
             r.ping()
             return r
         except redis.exceptions.ConnectionError:
-            if time.monotonic() > deadline:
+            if time.monotonic() > give_up_at:
                 raise
             time.sleep(0.05)
         except redis.exceptions.AuthenticationError:

@@ -304,3 +304,13 @@ def test_a_denoised_picture_of_another_size_is_refused(tmp_path):
     film = accumulate(np.random.default_rng(25), 4)
     with pytest.raises(ValueError, match="denoised"):
         write_frame(tmp_path / "a.exr", film, ATTRS, np.zeros((H + 1, W, 3), np.float32))
+
+
+def test_the_readme_frame_file_table_names_every_channel_the_writer_writes():
+    import re
+    from pathlib import Path
+
+    readme = (Path(__file__).resolve().parents[2] / "README.md").read_text()
+    table = readme.split("| channel | meaning |", 1)[1].split("\n\n", 1)[0]
+    named = set(re.findall(r"`([A-Za-z.]+)`", table))
+    assert set(CHANNELS) | set(DENOISED) <= named, sorted(set(CHANNELS) | set(DENOISED) - named)

@@ -3,7 +3,7 @@
 The head's decisions are the real ones: the planner's sample ranges and dispatch order
 (`planner.sample_ranges`, `plan_batches`), the forecast (`forecast.Forecaster`, fed from what the
 simulated head would measure: heartbeats with working windows, slot speeds, merged batches) and
-the spending policy (`deadline.night_forecast`, `NightPlan.admits`). What is simulated is the
+the spending policy (`ready_by.night_forecast`, `NightPlan.admits`). What is simulated is the
 world: workers of different speeds that come online, work inside their windows, and leave
 (some switched off without notice, some joining unannounced), batches that take
 pixels × samples / speed seconds, and a tile's relative noise, modelled by the Monte Carlo error
@@ -24,7 +24,7 @@ from collections import deque
 from dataclasses import dataclass, field, replace
 from typing import NamedTuple
 
-from lampyr.scheduler.deadline import TileState, night_forecast, reached
+from lampyr.scheduler.ready_by import TileState, night_forecast, reached
 from lampyr.scheduler.forecast import Forecaster, in_window
 from lampyr.scheduler.planner import first_pass_samples, plan_batches, sample_ranges
 
@@ -66,15 +66,15 @@ class SimJob:
 
 @dataclass
 class SimResult:
-    held: dict  # (frame, tile) → samples at the deadline
+    held: dict  # (frame, tile) → samples at the ready-by time
     target: int
     first_pass: int
     batch: int
-    noise: dict  # (frame, tile) → σ/√n at the deadline
+    noise: dict  # (frame, tile) → σ/√n at the ready-by time
     forecasts: list  # [(t, forecast fields)] every recompute
-    finished_at: float | None  # when every tile reached its target (None: not by the deadline)
+    finished_at: float | None  # when every tile reached its target (None: not by the ready-by time)
     start: float
-    deadline: float
+    ready_by: float
     work_full: float  # pixel-samples of the whole job
 
     @property
@@ -120,15 +120,15 @@ def make_workers(n: int, rng: random.Random, start: float, night: float,
 
 
 class FarmSim:
-    """One job on a farm of `workers` from `start` to `deadline` (see the module docstring).
+    """One job on a farm of `workers` from `start` to `ready_by` (see the module docstring).
 
     every: seconds between the head's recomputes; lease: seconds before a lost batch is queued
     again; seed: σ of every tile and the speed jitter a slot reports."""
 
-    def __init__(self, job: SimJob, workers, start: float, deadline: float, seed: int = 1,
+    def __init__(self, job: SimJob, workers, start: float, ready_by: float, seed: int = 1,
                  every: float = 60.0, lease: float = 120.0):
         self.job, self.workers = job, list(workers)
-        self.start, self.deadline = start, deadline
+        self.start, self.ready_by = start, ready_by
         self.every, self.lease = every, lease
         self.rng = random.Random(seed)
         self.tiles = [Tile(x, y, min(job.tile, job.width - x), min(job.tile, job.height - y))
@@ -172,7 +172,7 @@ class FarmSim:
         self.fc.update(now, hosts, self.speeds_seen, saturated=waiting)
         self.speeds_seen = []
         flying = sum(b.w * b.h * b.count for b, _w, _s in self.flying.values())
-        self.plan, fields = night_forecast(self.tile_states(), self.fc, now, self.deadline,
+        self.plan, fields = night_forecast(self.tile_states(), self.fc, now, self.ready_by,
                                            self.job.tile ** 2 * self.job.batch, flying)
         self.forecasts.append((now, fields))
         back = [b for b in self.deferred if self.plan.admits((b.frame, b.tile), b.first, b.count)]
@@ -215,18 +215,18 @@ class FarmSim:
     def run(self) -> SimResult:
         for w in self.workers:
             for t in (w.online[0], w.online[1], *[e for win in w.windows for e in win]):
-                if self.start <= t < self.deadline:
+                if self.start <= t < self.ready_by:
                     self.push(t, "edge", w)
         t = self.start
-        while t < self.deadline:
+        while t < self.ready_by:
             self.push(t, "tick")
             t += self.every
-        self.push(self.deadline, "deadline")
+        self.push(self.ready_by, "ready_by")
         self.recompute(self.start)
         self.fill(self.start)
         while self.events:
             now, _, kind, data = heapq.heappop(self.events)
-            if kind == "deadline" or reached(now, self.deadline):
+            if kind == "ready_by" or reached(now, self.ready_by):
                 break
             if kind == "tick":
                 self.recompute(now)
@@ -241,7 +241,7 @@ class FarmSim:
         work = sum(self.tiles[i].w * self.tiles[i].h for _, i in self.held) * self.job.samples
         noise = {k: self.sigma[k] / math.sqrt(n) if n else math.inf for k, n in self.held.items()}
         return SimResult(dict(self.held), self.job.samples, self.first, self.job.batch, noise,
-                         self.forecasts, self.finished_at, self.start, self.deadline, work)
+                         self.forecasts, self.finished_at, self.start, self.ready_by, work)
 
     def done(self, now: float, w: SimWorker, s: int, b) -> None:
         if w.busy.get(s, (None,))[0] is not b:

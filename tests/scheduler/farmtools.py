@@ -11,9 +11,9 @@ LAYOUT = ("--tile", 8, "--batch", 3)  # 16 × 12 px → 4 tiles; 8 spp → range
 
 
 def wait_for(cond, timeout=60, what="condition"):
-    deadline = time.monotonic() + timeout
+    give_up_at = time.monotonic() + timeout
     while not (value := cond()):
-        if time.monotonic() > deadline:
+        if time.monotonic() > give_up_at:
             raise AssertionError(f"timed out waiting for {what}")
         time.sleep(0.05)
     return value

@@ -40,12 +40,12 @@ def test_a_host_without_windows_is_always_available():
     assert available_seconds((), 100.0, 160.0) == 60.0
 
 
-def test_a_host_counts_only_inside_its_windows_before_the_deadline():
+def test_a_host_counts_only_inside_its_windows_before_the_ready_by_time():
     always = HostView("server", slots=2, speed=100.0)
     evening = HostView("pc", slots=4, speed=50.0, windows=((500.0, 900.0),))
     morning = HostView("late", slots=8, speed=50.0, windows=((1200.0, 2000.0),))
     got = capacity([always, evening, morning], now=0.0, until=1000.0)
-    # 2 × 100 × 1000 + 4 × 50 × 400; the morning host works only after the deadline
+    # 2 × 100 × 1000 + 4 × 50 × 400; the morning host works only after the ready-by time
     assert got == pytest.approx(200_000 + 80_000)
 
 

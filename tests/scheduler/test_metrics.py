@@ -100,12 +100,12 @@ def scrape(url: str) -> dict:
 
 
 def wait_metric(url: str, name: str, test, timeout: float = 60) -> dict:
-    deadline = time.monotonic() + timeout
+    give_up_at = time.monotonic() + timeout
     while True:
         got = scrape(url)
         if test(got.get((name, frozenset()), 0.0)):
             return got
-        if time.monotonic() > deadline:
+        if time.monotonic() > give_up_at:
             raise AssertionError(f"{name} never satisfied the test: {got}")
         time.sleep(0.2)
 
@@ -144,9 +144,9 @@ def test_a_worker_switched_off_mid_batch_shows_as_a_lease_expiry(farm, tiny_shot
     slow = farm.start_worker("slow", env={"LAMPYR_TEST_CHUNK_DELAY": "0.5"})
     farm.submit(tiny_shot)
     r = redis.Redis.from_url(farm.url)
-    deadline = time.monotonic() + 60
+    give_up_at = time.monotonic() + 60
     while not any(True for _ in r.scan_iter(match=P.key("lease", "*"))):
-        assert time.monotonic() < deadline, farm.logs()
+        assert time.monotonic() < give_up_at, farm.logs()
         time.sleep(0.05)
     os.killpg(slow.pid, signal.SIGKILL)
     wait_metric(url, "lampyr_lease_expiries_total", lambda v: v >= 1)

@@ -79,8 +79,8 @@ def test_the_embedded_redis_dies_with_a_head_killed_outright(tmp_path):
     pid = int(head.stdout.readline())
     os.kill(head.pid, signal.SIGKILL)
     head.wait()
-    deadline = time.monotonic() + 10
-    while time.monotonic() < deadline:
+    give_up_at = time.monotonic() + 10
+    while time.monotonic() < give_up_at:
         try:
             os.kill(pid, 0)
         except ProcessLookupError:

@@ -73,7 +73,7 @@ def work_off(head, job: str, timeout: float = 120.0) -> dict:
     from lampyr.worker.tasks import Context, run_batch
 
     ctx = Context(head.url, "test-worker")
-    deadline = time.monotonic() + timeout
+    give_up_at = time.monotonic() + timeout
     while True:
         head.step()
         raw = head.r.rpop(P.QUEUE)
@@ -85,7 +85,7 @@ def work_off(head, job: str, timeout: float = 120.0) -> dict:
         if st["state"] in ("done", "failed", "cancelled") and not head.leases.table:
             head.publish(every=0)
             return job_status(head.r, job)
-        assert time.monotonic() < deadline, f"job {job} still {st['state']}"
+        assert time.monotonic() < give_up_at, f"job {job} still {st['state']}"
 
 
 @pytest.fixture

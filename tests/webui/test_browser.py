@@ -44,13 +44,13 @@ def web_head(farm):
     """A real head with its page on a free port: (farm, page URL); no worker yet."""
     farm.head_proc = farm._spawn(["head", "--state", farm.state, "--redis", farm.url, "--lease",
                                   10, "--attempts", 1, "--web-port", 0], "head.log")
-    deadline = time.monotonic() + 60
+    give_up_at = time.monotonic() + 60
     while True:
         log = (farm.tmp / "head.log").read_text(errors="replace")
         m = re.search(r"Web page: (http://\S+)", log)
         if m and "Workers join with:" in log:
             break
-        assert farm.head_proc.poll() is None and time.monotonic() < deadline, log
+        assert farm.head_proc.poll() is None and time.monotonic() < give_up_at, log
         time.sleep(0.1)
     return farm, m.group(1)
 
@@ -220,9 +220,9 @@ def test_a_viewer_login_sees_the_farm_without_its_controls(web_head, browser, tm
     (farm.tmp / "head.log").write_text("")
     farm.head_proc = farm._spawn(["head", "--state", farm.state, "--redis", farm.url,
                                   "--web-port", 0], "head.log")
-    deadline = time.monotonic() + 60
+    give_up_at = time.monotonic() + 60
     while not (m := re.search(r"Web page: (http://\S+)", (farm.tmp / "head.log").read_text())):
-        assert time.monotonic() < deadline
+        assert time.monotonic() < give_up_at
         time.sleep(0.1)
     page = browser.new_page(viewport=LAPTOP)
     page.goto(m.group(1))

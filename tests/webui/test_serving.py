@@ -14,12 +14,12 @@ from tests.conftest import lampyr_cmd
 def start_head(farm, *web_args):
     farm.head_proc = farm._spawn(["head", "--state", farm.state, "--redis", farm.url,
                                   *web_args], "head.log")
-    deadline = time.monotonic() + 60
+    give_up_at = time.monotonic() + 60
     while True:
         log = (farm.tmp / "head.log").read_text(errors="replace")
         if "Workers join with:" in log and ("Web page:" in log or "--no-web" in web_args):
             return log
-        assert farm.head_proc.poll() is None and time.monotonic() < deadline, log
+        assert farm.head_proc.poll() is None and time.monotonic() < give_up_at, log
         time.sleep(0.1)
 
 

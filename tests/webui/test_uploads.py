@@ -205,7 +205,7 @@ def test_an_override_the_shot_refuses_is_refused_naming_the_field_not_the_head_s
     assert "uploads" not in err and "/state/" not in err
 
 
-def test_an_upload_with_a_ready_by_time_gets_that_deadline(user, head):
+def test_an_upload_with_a_ready_by_time_gets_that_time(user, head):
     import time
 
     until = time.strftime("%Y-%m-%dT%H:%M", time.localtime(time.time() + 3 * 3600))
@@ -213,7 +213,7 @@ def test_an_upload_with_a_ready_by_time_gets_that_deadline(user, head):
     job = resp.get_json()["job"]
     head.take_commands()
     want = time.mktime(time.strptime(until, "%Y-%m-%dT%H:%M"))  # local time, like --until
-    assert head.jobs[job].rec.deadline == pytest.approx(want)
+    assert head.jobs[job].rec.ready_by == pytest.approx(want)
 
 
 def test_a_ready_by_time_in_the_past_is_refused_naming_the_field(user):

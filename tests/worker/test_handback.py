@@ -46,8 +46,8 @@ def raise_after_first_chunk(r, flag, worker="w"):
     """Raise `flag` (a gate method) once the worker's slot reports speed, i.e. after its first
     chunk; runs in a thread."""
     def watch():
-        deadline = time.monotonic() + 60
-        while time.monotonic() < deadline:
+        give_up_at = time.monotonic() + 60
+        while time.monotonic() < give_up_at:
             for k in r.scan_iter(match=f"lampyr:slot:{worker}:*"):
                 raw = r.get(k)
                 if raw and json.loads(raw)["pixel_samples_per_second"] > 0:
@@ -145,9 +145,9 @@ def drive(head, job, ctx, interrupt=None, timeout=120):
     every queued message; `interrupt(batch)` → True renders that one with a stop after its first
     chunk. Returns the raw notices of the hand-backs."""
     partials = []
-    deadline = time.monotonic() + timeout
+    give_up_at = time.monotonic() + timeout
     while head.job_state(head.jobs[job]) != "done":
-        assert time.monotonic() < deadline, "the job did not finish"
+        assert time.monotonic() < give_up_at, "the job did not finish"
         head.take_results()
         head.dispatch()
         payload = take_message(head.r)

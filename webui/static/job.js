@@ -41,20 +41,20 @@
     retry.disabled = nf === 0;
     retry.textContent = nf ? "Retry failed work (" + nf + ")" : "Nothing failed";
     document.getElementById("act-cancel").hidden = ["done", "cancelled"].includes(j.state);
-    renderDeadline(j);
+    renderReadyBy(j);
     const err = document.getElementById("job-error");
     err.hidden = !j.error;
     if (j.error) err.replaceChildren(L.icon("failed"), " The head could not run this shot: " + j.error);
   }
 
-  function renderDeadline(j) {
-    const box = document.getElementById("deadline");
-    if (j.deadline === undefined || j.deadline === null) { box.hidden = true; return; }
+  function renderReadyBy(j) {
+    const box = document.getElementById("ready-by");
+    if (j.ready_by === undefined || j.ready_by === null) { box.hidden = true; return; }
     box.hidden = false;
-    const parts = [el("strong", {text: "Ready by " + L.clock(j.deadline)})];
-    const f = j.forecast;  // fields of scheduler/deadline.py forecast_fields
-    if (j.deadline_reached) {
-      parts.push(el("span", {}, L.icon("paused"), " deadline reached: the head stopped" +
+    const parts = [el("strong", {text: "Ready by " + L.clock(j.ready_by)})];
+    const f = j.forecast;  // fields of scheduler/ready_by.py forecast_fields
+    if (j.ready_by_reached) {
+      parts.push(el("span", {}, L.icon("paused"), " ready-by time reached: the head stopped" +
                     (f ? " at " + Math.round(f.spp_expected) + " of " + j.samples + " samples per pixel" : "")));
     } else if (j.state === "done") {
       parts.push(el("span", {class: "good"}, L.icon("done"), " finished before it"));

@@ -1,5 +1,5 @@
-"""Deadlines: the spending policy, `--until`, the farm simulation of a night, and a real farm
-that stops a job at its deadline."""
+"""Ready by a time: the spending policy, `--until`, the farm simulation of a night, and a real farm
+that stops a job at its ready-by time."""
 
 from __future__ import annotations
 
@@ -14,7 +14,7 @@ from datetime import datetime
 import pytest
 
 from lampyr.errors import UsageError
-from lampyr.scheduler.deadline import (TileState, deadline_line, forecast_fields, parse_until,
+from lampyr.scheduler.ready_by import (TileState, ready_by_line, forecast_fields, parse_until,
                                        plan_night, predicted_noise, work_to)
 
 from .farmsim import FarmSim, SimJob, make_workers
@@ -114,7 +114,7 @@ def test_submit_refuses_a_past_until_with_exit_status_2(tiny_shot):
     assert res.stderr.strip().count("\n") == 0 and "--until" in res.stderr
 
 
-def test_a_job_record_written_before_deadlines_still_loads():
+def test_a_job_record_written_before_ready_by_times_still_loads():
     from lampyr.scheduler.jobs import JobRecord
 
     old = {"id": "j", "name": "n", "bundle": "b", "shot": "s.toml", "overrides": {}, "out": "o",
@@ -122,7 +122,17 @@ def test_a_job_record_written_before_deadlines_still_loads():
            "ranges": [[0, 1], [1, 3]], "paused": False, "cancelled": False, "failed": {},
            "extra": {}}
     rec = JobRecord.from_json(json.dumps(old))
-    assert rec.deadline is None and rec.deadline_reached is False
+    assert rec.ready_by is None and rec.ready_by_reached is False
+
+
+def test_a_job_record_with_the_earlier_key_names_keeps_its_ready_by_time():
+    from lampyr.scheduler.jobs import JobRecord
+
+    old = {"id": "j", "name": "n", "bundle": "b", "shot": "s.toml", "overrides": {}, "out": "o",
+           "priority": 0, "submitted": 1.0, "tile_size": 8, "batch_samples": 3, "samples": 8,
+           "ranges": [[0, 1]], "deadline": 1234.5, "deadline_reached": True}
+    rec = JobRecord.from_json(json.dumps(old))
+    assert (rec.ready_by, rec.ready_by_reached) == (1234.5, True)
 
 
 @pytest.mark.parametrize("feasible, words", [(True, "will finish"),
@@ -130,10 +140,10 @@ def test_a_job_record_written_before_deadlines_still_loads():
 def test_status_line_says_whether_the_job_will_finish(feasible, words):
     plan = plan_night(tiles(), capacity=4 * 100 * 16)
     plan.feasible, plan.spp_expected = feasible, (256.0 if feasible else 96.0)
-    st = {"deadline": time.time() + 3600, "samples": 256, "deadline_reached": False,
+    st = {"ready_by": time.time() + 3600, "samples": 256, "ready_by_reached": False,
           "forecast": forecast_fields(plan, time.time(), time.time() + 1800)}
-    line = deadline_line(st)
-    assert line.startswith("deadline ") and words in line and "noise" in line
+    line = ready_by_line(st)
+    assert line.startswith("ready by ") and words in line and "noise" in line
 
 
 # -- the simulated night ----------------------------------------------------------------------
@@ -157,21 +167,21 @@ def frame_levels(res):
 
 
 @pytest.mark.parametrize("seed", [1, 2, 3])
-def test_a_feasible_deadline_finishes_every_frame_before_it(seed):
+def test_a_feasible_ready_by_time_finishes_every_frame_before_it(seed):
     _, res = night(NIGHT_LONG, seed)
-    assert res.finished_at is not None and res.finished_at <= res.deadline
+    assert res.finished_at is not None and res.finished_at <= res.ready_by
     assert set(res.held.values()) == {res.target}
 
 
 @pytest.mark.parametrize("seed", [1, 2, 3])
-def test_a_feasible_deadline_is_forecast_feasible_after_the_first_tenth(seed):
+def test_a_feasible_ready_by_time_is_forecast_feasible_after_the_first_tenth(seed):
     _, res = night(NIGHT_LONG, seed)
     late = [f["feasible"] for t, f in res.forecasts if t >= 0.1 * NIGHT_LONG]
     assert late and all(late)
 
 
 @pytest.mark.parametrize("seed", [1, 2, 3, 4])
-def test_an_infeasible_deadline_leaves_every_frame_at_the_same_best_level(seed):
+def test_an_infeasible_ready_by_time_leaves_every_frame_at_the_same_best_level(seed):
     _, res = night(NIGHT_SHORT, seed)
     assert res.finished_at is None
     assert min(res.held.values()) >= res.first_pass  # every frame exists, whole
@@ -185,7 +195,7 @@ def test_an_infeasible_deadline_leaves_every_frame_at_the_same_best_level(seed):
 
 
 @pytest.mark.parametrize("seed", [1, 2, 3, 4])
-def test_an_infeasible_deadline_is_forecast_within_the_first_tenth(seed):
+def test_an_infeasible_ready_by_time_is_forecast_within_the_first_tenth(seed):
     _, res = night(NIGHT_SHORT, seed)
     first = res.first_infeasible()
     assert first is not None and first <= 0.1 * NIGHT_SHORT
@@ -203,7 +213,7 @@ def test_the_night_spends_its_leftover_on_the_noisiest_tiles(seed):
 
 # -- a real farm ------------------------------------------------------------------------------
 
-def test_a_real_job_stops_at_its_deadline_done_with_every_frame(farm, tiny_shot, tmp_path):
+def test_a_real_job_stops_at_its_ready_by_time_done_with_every_frame(farm, tiny_shot, tmp_path):
     farm.start_head()
     farm.start_worker("slow", env={"LAMPYR_TEST_CHUNK_DELAY": "0.3"})
     until = datetime.fromtimestamp(time.time() + 8).isoformat(timespec="seconds")
@@ -215,13 +225,13 @@ def test_a_real_job_stops_at_its_deadline_done_with_every_frame(farm, tiny_shot,
         running = farm.cli("status", job, "--head", farm.url).stdout
     assert "cannot finish: expect" in running and "of 8 spp" in running  # said before the end
     st = farm.wait(job, timeout=90)
-    assert st["state"] == "done" and st["deadline_reached"] is True
-    assert st["deadline"] == pytest.approx(datetime.fromisoformat(until).timestamp())
+    assert st["state"] == "done" and st["ready_by_reached"] is True
+    assert st["ready_by"] == pytest.approx(datetime.fromisoformat(until).timestamp())
     assert st["forecast"]["feasible"] is False and st["forecast"]["spp_expected"] < 8
     for f in (1, 2):
         assert (tmp_path / "out" / f"tiny.{f:04d}.exr").exists()
     text = farm.cli("status", job, "--head", farm.url).stdout
-    assert "deadline" in text and "reached" in text
+    assert "ready by" in text and "reached" in text
 
 
 def held_matches_frames(state, job, out):
@@ -242,14 +252,14 @@ def held_matches_frames(state, job, out):
     return True
 
 
-def test_a_real_job_with_time_to_spare_finishes_before_its_deadline(farm, tiny_shot, tmp_path):
+def test_a_real_job_with_time_to_spare_finishes_before_its_ready_by_time(farm, tiny_shot, tmp_path):
     farm.start_head()
     farm.start_worker("a")
     until = datetime.fromtimestamp(time.time() + 600).isoformat(timespec="seconds")
     job = farm.submit(tiny_shot, "--out", tmp_path / "out", "--tile", 8, "--batch", 3,
                       "--until", until)
     st = farm.wait(job, timeout=90)
-    assert (st["state"], st["frames_done"], st["deadline_reached"]) == ("done", 2, False)
+    assert (st["state"], st["frames_done"], st["ready_by_reached"]) == ("done", 2, False)
     assert st["forecast"]["feasible"] is True
     assert "finished before it" in farm.cli("status", job, "--head", farm.url).stdout
 
@@ -268,11 +278,11 @@ def head(redis_url, tmp_path):
     return h
 
 
-def submit_with_deadline(head, shot, seconds):
+def submit_ready_by(head, shot, seconds):
     from lampyr.scheduler.submit import submit_request
 
     job = submit_request(head.r, shot, {}, None, 0, tile_size=8, batch_samples=3,
-                         deadline=time.time() + seconds)
+                         ready_by=time.time() + seconds)
     head.take_commands()
     return job
 
@@ -284,54 +294,54 @@ def queued(head):
 
 
 def test_what_the_night_cannot_afford_is_not_queued(head, tiny_shot):
-    job = submit_with_deadline(head, tiny_shot, 3.0)  # far less than one batch of any host
-    head.deadlines.tick()
+    job = submit_ready_by(head, tiny_shot, 3.0)  # far less than one batch of any host
+    head.ready_by.tick()
     head.dispatch()
     assert {(b.first, b.count) for b in queued(head)} == {(0, 1)}  # the first pass only
     assert len(queued(head)) == 2 * 4
     assert head.job_state(head.jobs[job]) != "done"  # the rest waits for a better forecast
 
 
-def test_at_the_deadline_every_frame_is_written_and_the_job_is_done(head, tiny_shot, tmp_path):
+def test_at_the_ready_by_time_every_frame_is_written_and_the_job_is_done(head, tiny_shot, tmp_path):
     from lampyr.scheduler.store import job_status
 
-    job = submit_with_deadline(head, tiny_shot, 0.5)
-    head.deadlines.tick()
+    job = submit_ready_by(head, tiny_shot, 0.5)
+    head.ready_by.tick()
     head.dispatch()
     time.sleep(0.6)
     head.step()
     st = job_status(head.r, job)
-    assert (st["state"], st["deadline_reached"]) == ("done", True)
+    assert (st["state"], st["ready_by_reached"]) == ("done", True)
     out = head.state / "jobs" / job / "frames"
     assert sorted(p.name for p in out.glob("*.exr")) == ["tiny.0001.exr", "tiny.0002.exr"]
     assert not head.r.hlen("lampyr:inflight")  # its queued batches were dropped
 
 
-def test_a_restarted_head_keeps_a_job_stopped_at_its_deadline(head, tiny_shot, redis_url, tmp_path):
+def test_a_restarted_head_keeps_a_job_stopped_at_its_ready_by_time(head, tiny_shot, redis_url, tmp_path):
     from lampyr.scheduler.head import Head
 
-    job = submit_with_deadline(head, tiny_shot, 0.2)
+    job = submit_ready_by(head, tiny_shot, 0.2)
     time.sleep(0.3)
     head.step()
     again = Head(tmp_path / "state", redis_url, lease_seconds=5)
     again.start()
     again.step()
     assert again.job_state(again.jobs[job]) == "done" and not again.jobs[job].pending
-    assert again.jobs[job].rec.deadline_reached
+    assert again.jobs[job].rec.ready_by_reached
 
 
-def test_a_head_killed_while_writing_the_deadline_s_frames_writes_them_after_restart(
+def test_a_head_killed_while_writing_the_ready_by_frames_writes_them_after_restart(
         head, tiny_shot, redis_url, tmp_path, monkeypatch):
-    from lampyr.scheduler import deadline_keeper
+    from lampyr.scheduler import ready_by_keeper
     from lampyr.scheduler.head import Head
 
-    job = submit_with_deadline(head, tiny_shot, 0.2)
+    job = submit_ready_by(head, tiny_shot, 0.2)
     time.sleep(0.3)
 
     def killed(run, frame):
         raise SystemExit("the head dies here")
 
-    monkeypatch.setattr(deadline_keeper, "write_held_frame", killed)
+    monkeypatch.setattr(ready_by_keeper, "write_held_frame", killed)
     with pytest.raises(SystemExit):
         head.step()
     monkeypatch.undo()
@@ -340,30 +350,30 @@ def test_a_head_killed_while_writing_the_deadline_s_frames_writes_them_after_res
     again.step()
     out = tmp_path / "state" / "jobs" / job / "frames"
     assert sorted(p.name for p in out.glob("*.exr")) == ["tiny.0001.exr", "tiny.0002.exr"]
-    assert again.jobs[job].rec.deadline_reached
+    assert again.jobs[job].rec.ready_by_reached
 
 
-def test_refine_after_the_deadline_lifts_it(head, tiny_shot):
-    job = submit_with_deadline(head, tiny_shot, 0.2)
+def test_refine_after_the_ready_by_time_lifts_it(head, tiny_shot):
+    job = submit_ready_by(head, tiny_shot, 0.2)
     time.sleep(0.3)
     head.step()
     head.cmd_refine(job, samples=12)
     head.step()
     run = head.jobs[job]
-    assert run.rec.deadline is None and not run.rec.deadline_reached
+    assert run.rec.ready_by is None and not run.rec.ready_by_reached
     assert run.pending or head.leases.table  # the refine's batches go out
 
 
 def capacity_now(head, job, now=None):
-    head.deadlines.recompute(now)
-    fc = head.deadlines.fields[job]
+    head.ready_by.recompute(now)
+    fc = head.ready_by.fields[job]
     return fc["capacity_pixel_samples"], fc["hosts"]
 
 
 def test_the_forecast_counts_a_joining_worker_only_inside_its_windows(head, tiny_shot):
     from lampyr.scheduler import protocol as P
 
-    job = submit_with_deadline(head, tiny_shot, 600.0)
+    job = submit_ready_by(head, tiny_shot, 600.0)
     alone, n = capacity_now(head, job)
     assert n == 1 and alone > 0
     now = time.time()
@@ -377,7 +387,7 @@ def test_the_forecast_counts_a_joining_worker_only_inside_its_windows(head, tiny
 def test_a_job_queued_before_takes_its_work_out_of_the_capacity(head, tiny_shot):
     from lampyr.scheduler.submit import submit_request
 
-    job = submit_with_deadline(head, tiny_shot, 600.0)
+    job = submit_ready_by(head, tiny_shot, 600.0)
     now = time.time()
     alone, _ = capacity_now(head, job, now)
     first = submit_request(head.r, tiny_shot, {}, None, 5, tile_size=8, batch_samples=3)
@@ -391,7 +401,7 @@ def test_a_job_ahead_with_all_its_work_in_flight_still_takes_it_out_of_the_capac
         head, tiny_shot):
     from lampyr.scheduler.submit import submit_request
 
-    job = submit_with_deadline(head, tiny_shot, 600.0)
+    job = submit_ready_by(head, tiny_shot, 600.0)
     now = time.time()
     alone, _ = capacity_now(head, job, now)
     first = submit_request(head.r, tiny_shot, {}, None, 5, tile_size=8, batch_samples=3)
@@ -412,18 +422,18 @@ def test_the_simulated_forecast_follows_workers_coming_and_going():
     assert len(set(present)) > 1  # some joined or left during the night
 
 
-def test_a_batch_delivered_after_the_deadline_is_kept_in_the_frame(head, tiny_shot,
+def test_a_batch_delivered_after_the_ready_by_time_is_kept_in_the_frame(head, tiny_shot,
                                                                     compiled_kernels):
     from lampyr.engine.film import to_bytes
     from lampyr.engine.render import FrameRenderer, Tile
     from lampyr.engine.shot import load_shot
 
-    job = submit_with_deadline(head, tiny_shot, 0.3)
+    job = submit_ready_by(head, tiny_shot, 0.3)
     head.dispatch()
-    late = queued(head)[0]  # a worker had taken it and renders on past the deadline
+    late = queued(head)[0]  # a worker had taken it and renders on past the ready-by time
     time.sleep(0.4)
     head.step()
-    assert head.jobs[job].rec.deadline_reached
+    assert head.jobs[job].rec.ready_by_reached
     film = FrameRenderer(load_shot(tiny_shot), late.frame).render(
         Tile(late.x0, late.y0, late.w, late.h), late.first, late.count)
     head.r.set(f"lampyr:result:{late.id}:1", to_bytes(film))

@@ -1,13 +1,13 @@
-"""Deadlines on the simulated farm: for nights of several lengths, what the forecast said early,
+"""Ready by a time on the simulated farm: for nights of several lengths, what the forecast said early,
 what it said last, and what the farm reached.
 
-    python bench/deadline.py [--seeds N]
+    python bench/ready_by.py [--seeds N]
 
 The farm is tests/scheduler/farmsim.py (50 workers of different speeds on their own windows,
 some leaving without notice, some joining unannounced; no rendering), running the head's own
 planner, forecast and spending policy. Columns: the night's length; `fc@10%` the forecast spp at
 a tenth of the night and whether it said feasible; `fc end` the last forecast; `reached` the
-pixel-weighted mean spp at the deadline, the lowest and highest frame level; `done at` when the
+pixel-weighted mean spp at the ready-by time, the lowest and highest frame level; `done at` when the
 whole job finished (a fraction of the night), or `-`.
 """
 

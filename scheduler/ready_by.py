@@ -1,6 +1,6 @@
-"""Spending a night's samples: which sample counts every tile should reach by a deadline.
+"""Spending a night's samples: which sample counts every tile should reach by a ready-by time.
 
-Pure functions of plain data, so the head (deadline_keeper.py) and the farm simulation
+Pure functions of plain data, so the head (ready_by_keeper.py) and the farm simulation
 (tests/scheduler/farmsim.py) run the same policy:
 
 1. the first pass over the whole sequence always goes first (the planner orders it so);
@@ -164,17 +164,17 @@ def _finish(tiles, targets, level, feasible, work, capacity, full_spp, extra) ->
                      float(spp), noise, float(full_spp), extra)
 
 
-def reached(now: float, deadline: float | None) -> bool:
-    return deadline is not None and now >= deadline
+def reached(now: float, ready_by: float | None) -> bool:
+    return ready_by is not None and now >= ready_by
 
 
-def usable_until(deadline: float, batch_pixel_samples: float, speed: float) -> float:
-    """The end of the time the plan may count on: a batch still rendering when the deadline
+def usable_until(ready_by: float, batch_pixel_samples: float, speed: float) -> float:
+    """The end of the time the plan may count on: a batch still rendering when the ready-by time
     comes is lost, so the capacity is counted until one batch (at `speed`) before it."""
-    return deadline - (batch_pixel_samples / speed if speed > 0 else 0.0)
+    return ready_by - (batch_pixel_samples / speed if speed > 0 else 0.0)
 
 
-def night_forecast(tiles, fc, now: float, deadline: float, batch_pixel_samples: float,
+def night_forecast(tiles, fc, now: float, ready_by: float, batch_pixel_samples: float,
                    spent_before: float = 0.0, horizon: float = 36 * 3600.0):
     """(plan, forecast fields) for one job from a `forecast.Forecaster`-like `fc`.
 
@@ -182,7 +182,7 @@ def night_forecast(tiles, fc, now: float, deadline: float, batch_pixel_samples: 
     this job's batches in flight, which `tiles` count as held)."""
     tiles = list(tiles)
     speed = fc.default_speed(now)
-    cap = fc.capacity(now, usable_until(deadline, batch_pixel_samples, speed))
+    cap = fc.capacity(now, usable_until(ready_by, batch_pixel_samples, speed))
     plan = plan_night(tiles, max(0.0, cap - spent_before))
     finish = fc.finish_time(now, spent_before + work_to(tiles, lambda t: t.target), horizon)
     fields = forecast_fields(plan, now, finish)
@@ -236,14 +236,14 @@ def _clock(epoch: float, now: float) -> str:
     return when.strftime("%Y-%m-%d %H:%M")
 
 
-def deadline_line(st: dict, now: float | None = None) -> str:
-    """One readable line from a job status' `deadline`, `deadline_reached` and `forecast`:
-    "deadline 07:00 — forecast 212 spp, noise 1.8 %, will finish about 05:40"."""
+def ready_by_line(st: dict, now: float | None = None) -> str:
+    """One readable line from a job status' `ready_by`, `ready_by_reached` and `forecast`:
+    "ready by 07:00 — forecast 212 spp, noise 1.8 %, will finish about 05:40"."""
     now = time.time() if now is None else now
-    head = f"deadline {_clock(st['deadline'], now)}"
+    head = f"ready by {_clock(st['ready_by'], now)}"
     fc = st.get("forecast")
     full = st.get("samples")
-    if st.get("deadline_reached"):
+    if st.get("ready_by_reached"):
         tail = f"reached: stopped at {fc['spp_expected']:.0f} of {full} spp" if fc else "reached"
         return f"{head} {tail}"
     if st.get("state") == "done":

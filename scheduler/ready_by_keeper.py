@@ -1,17 +1,17 @@
-"""The head's side of deadlines: forecast the farm, hold back what the night cannot afford,
-stop a job at its deadline with every frame written.
+"""The head's side of ready-by times: forecast the farm, hold back what the night cannot afford,
+stop a job at its ready-by time with every frame written.
 
 `Head` calls three hooks:
-- `tick()` every step: a job whose deadline has come is stopped (queued batches dropped, every
-  frame file written with what its tiles hold, `deadline_reached` set; the job ends "done");
-  every EVERY seconds the forecast and each deadline job's plan are recomputed;
+- `tick()` every step: a job whose ready-by time has come is stopped (queued batches dropped, every
+  frame file written with what its tiles hold, `ready_by_reached` set; the job ends "done");
+  every EVERY seconds the forecast and each ready-by job's plan are recomputed;
 - `admit(run, b)` in dispatch: False (and the batch is kept aside) when the batch goes beyond
   its tile's target in the current plan; a later plan that affords it puts it back in order;
-- `waiting(run)`: batches kept aside, so a job with a deadline still to come is not "done"
+- `waiting(run)`: batches kept aside, so a job with a ready-by time still to come is not "done"
   just because the plan is reached early (a better forecast may afford more).
 
-The policy itself is `deadline.plan_night`; the throughput is `forecast.Forecaster`. Jobs share
-the farm in dispatch order: a deadline job gets the capacity left after the remaining work of
+The policy itself is `ready_by.plan_night`; the throughput is `forecast.Forecaster`. Jobs share
+the farm in dispatch order: a ready-by job gets the capacity left after the remaining work of
 the jobs queued before it. Tile noise is the mean relative standard error of the tile's
 luminance (`Film.rel_noise`, as `refine --noise` judges it), which the head keeps per tile as
 it merges (`JobRun.noise`, see progress.py); no accumulator is read for it.
@@ -25,7 +25,7 @@ import time
 
 from . import protocol as P
 from .accumulator import TileAccumulator, samples_held
-from .deadline import TileState, night_forecast, reached
+from .ready_by import TileState, night_forecast, reached
 from .forecast import Forecaster, read_hosts
 from .planner import TARGET_SECONDS
 
@@ -36,7 +36,7 @@ LOOK_EVERY = 0.5  # seconds between looks at the slots' speeds (a slot record li
 HORIZON = 36 * 3600.0  # how far ahead the working windows reach
 
 
-class DeadlineKeeper:
+class ReadyByKeeper:
     def __init__(self, head, every: float = EVERY):
         self.head = head
         self.every = every
@@ -57,14 +57,14 @@ class DeadlineKeeper:
 
     def active(self, run) -> bool:
         rec = run.rec
-        return rec.deadline is not None and not rec.deadline_reached and not rec.cancelled
+        return rec.ready_by is not None and not rec.ready_by_reached and not rec.cancelled
 
     def tick(self, now: float | None = None) -> None:
         now = time.time() if now is None else now
         for run in list(self.head.jobs.values()):
-            if run.rec.deadline_reached:
+            if run.rec.ready_by_reached:
                 self._keep_stopped(run)
-            elif self.active(run) and reached(now, run.rec.deadline):
+            elif self.active(run) and reached(now, run.rec.ready_by):
                 self.stop(run)
         if time.monotonic() - self._looked >= LOOK_EVERY:
             self.look()
@@ -88,14 +88,14 @@ class DeadlineKeeper:
         return self.active(run) and bool(self.deferred.get(run.rec.id))
 
     def status(self, run) -> dict:
-        fc = self.fields.get(run.rec.id) if run.rec.deadline is not None else None
-        return {"deadline": run.rec.deadline, "deadline_reached": bool(run.rec.deadline_reached),
+        fc = self.fields.get(run.rec.id) if run.rec.ready_by is not None else None
+        return {"ready_by": run.rec.ready_by, "ready_by_reached": bool(run.rec.ready_by_reached),
                 "forecast": fc}
 
     # -- the forecast -------------------------------------------------------------------------
 
     def look(self) -> None:
-        """Read the heartbeats and the slots' speeds (only while a deadline job runs)."""
+        """Read the heartbeats and the slots' speeds (only while a ready-by time job runs)."""
         self._looked = time.monotonic()
         if any(self.active(run) for run in self.head.jobs.values()):
             self._hosts, speeds = read_hosts(self.head.r, P.key("host", ""), P.key("slot", ""))
@@ -127,11 +127,11 @@ class DeadlineKeeper:
             fc.prior = _prior_speed(run)
             spent_before = ahead + sum(inflight.values())
             t0 = run.tiles[0]
-            plan, f = night_forecast(self.tile_states(run, inflight), fc, now, run.rec.deadline,
+            plan, f = night_forecast(self.tile_states(run, inflight), fc, now, run.rec.ready_by,
                                      t0.w * t0.h * run.rec.batch_samples, spent_before, HORIZON)
             self.plans[run.rec.id] = plan
             if self.fields.get(run.rec.id, {}).get("feasible") != f["feasible"]:
-                log.info("job %s: forecast %s (%.0f of %.0f spp by the deadline)", run.rec.id,
+                log.info("job %s: forecast %s (%.0f of %.0f spp by the ready-by time)", run.rec.id,
                          "feasible" if f["feasible"] else "infeasible", plan.spp_expected,
                          plan.full_spp)
             self.fields[run.rec.id] = f
@@ -178,13 +178,13 @@ class DeadlineKeeper:
             run.pending.clear()
             run.pending.extend(merged)
 
-    # -- the deadline -------------------------------------------------------------------------
+    # -- the ready-by time -------------------------------------------------------------------------
 
     def stop(self, run) -> None:
         """Stop queueing `run`, drop its queued batches, write every frame with what is held."""
         head = self.head
         job = run.rec.id
-        run.rec.deadline_reached = True
+        run.rec.ready_by_reached = True
         run.pending.clear()
         self.deferred.pop(job, None)
         gone = [bid for bid, e in head.leases.table.items() if e.batch.job == job]
@@ -201,14 +201,14 @@ class DeadlineKeeper:
         self._late[job] = (id(run), run.samples_merged)
         if job in self.fields:
             self.fields[job]["updated"] = round(time.time(), 1)
-        log.info("job %s reached its deadline: %d frame(s) written with the samples held", job,
+        log.info("job %s reached its ready-by time: %d frame(s) written with the samples held", job,
                  len(run.frames))
 
     def _write_late(self) -> None:
-        """A batch that was rendering at the deadline may still deliver: it is merged (work is
+        """A batch that was rendering at the ready-by time may still deliver: it is merged (work is
         never thrown away) and the frame file rewritten to hold it, as at the stop."""
         for job, run in self.head.jobs.items():
-            if not run.rec.deadline_reached:
+            if not run.rec.ready_by_reached:
                 continue
             seen = self._late.setdefault(job, (id(run), run.samples_merged))
             if seen != (id(run), run.samples_merged):
@@ -218,7 +218,7 @@ class DeadlineKeeper:
 
     def _keep_stopped(self, run) -> None:
         """After a restart the replanned job stays stopped; a refine (a changed sample plan)
-        lifts the deadline and lets it run. Looked at again only when the job's runtime view or
+        lifts the ready-by time and lets it run. Looked at again only when the job's runtime view or
         the head's lease table was rebuilt (refine, restart, reconcile) or work was queued."""
         job = run.rec.id
         stamp = (id(run), id(self.head.leases))
@@ -228,8 +228,8 @@ class DeadlineKeeper:
         plan = _sample_plan(run.rec)
         seen = self.stopped.setdefault(job, plan)
         if plan != seen:
-            run.rec.deadline_reached = False
-            run.rec.deadline = None
+            run.rec.ready_by_reached = False
+            run.rec.ready_by = None
             self.head._save(run)
             self.stopped.pop(job)
             return
@@ -257,7 +257,7 @@ def write_held_frame(run, frame: int) -> None:
         if acc.film is not None:
             film.add_into(acc.film, t.y0, t.x0)
     write_frame_files(Path(run.rec.out), run.shot, frame, film, run.seconds.get(frame, 0.0),
-                      final=True)  # the deadline: as final as the frame gets, so denoised
+                      final=True)  # the ready-by time: as final as the frame gets, so denoised
     run.written[frame] = run.frame_level(frame)
     run.written_sum[frame] = total
 
