@@ -1,4 +1,4 @@
-"""Frame files: an OpenEXR image that is also its own checkpoint (docs/farm.md, `lampyr refine`).
+"""Frame files: an OpenEXR image that is also its own checkpoint (docs/design.md, invariant 10).
 
 One scanline part, ZIP compression (lossless; float32 survives bit for bit), per pixel:
 

@@ -1,6 +1,6 @@
 """The engine's front door: render a batch — (frame, tile, first sample, sample count) — to a Film.
 
-A batch's result depends on nothing but its five numbers and the shot (docs/farm.md: batches are deterministic), so a
+A batch's result depends on nothing but its five numbers and the shot (docs/design.md, invariant 1), so a
 `FrameRenderer` may be built anywhere: on the head, on a worker, in a test.
 """
 

@@ -1,7 +1,7 @@
 """Counter-based sample values: each depends only on (seed, frame, pixel, sample index, dimension).
 
 No state is carried from one sample to the next, so any split of a pixel's samples over batches
-and machines draws exactly the same numbers (docs/farm.md: batches are deterministic).
+and machines draws exactly the same numbers (docs/design.md, invariant 1).
 
 Two modes:
   * SOBOL (0): Owen-scrambled Sobol points with hash-based nested uniform scrambling and index

@@ -1,6 +1,6 @@
 """More samples for a frame file alone (plus its shot file), with no job and no farm.
 
-A frame EXR holds per pixel the mean, the sample count and the variance (docs/farm.md: a frame file is its own checkpoint), so
+A frame EXR holds per pixel the mean, the sample count and the variance (docs/design.md, invariant 10), so
 samples [held, target) can be rendered here and merged in without re-rendering what is there.
 The sample range already held must be [0, held) for every pixel of a tile — true of every frame
 lampyr writes, whose tiles each hold whole batches from sample 0.

@@ -119,7 +119,7 @@ def test_read_returns_the_attributes_without_prefix(written):
 
 
 def test_refining_from_the_file_equals_merging_in_memory(tmp_path):
-    # docs/farm.md, a frame file is its own checkpoint: samples 0..24 written to a file, then samples 24..64 merged into what
+    # docs/design.md, invariant 10: samples 0..24 written to a file, then samples 24..64 merged into what
     # the file gives back, agree with all 64 merged in memory to float32 rounding (the file holds
     # float32 means and variances: 2^-24 relative each, a few such terms per statistic)
     rng = np.random.default_rng(22)

@@ -105,7 +105,7 @@ def error_of(tmp_path, text: str) -> ShotError:
 # what parses
 
 
-def test_design_core_example_parses(tmp_path):
+def test_readme_core_example_parses(tmp_path):
     # source: README.md, "The shot file" (the core format that must keep working)
     shot = load_shot(write_shot(tmp_path, README_CORE))
     assert (shot.name, shot.first_frame, shot.last_frame, shot.fps) == ("courtyard", 1, 48, 24.0)

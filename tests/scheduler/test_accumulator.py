@@ -25,7 +25,7 @@ def test_two_ranges_merged_equal_one_range_rendered(renderer, tmp_path):
     assert acc.add(renderer.render(TILE, 0, 3), 0, 3)
     assert acc.add(renderer.render(TILE, 3, 5), 3, 5)
     whole = renderer.render(TILE, 0, 8)
-    # batches merge to the same sums (docs/farm.md): to float32 rounding, 2**-24 relative per addition
+    # batches merge to the same sums (docs/design.md, invariant 2): to float32 rounding, 2**-24 relative per addition
     np.testing.assert_allclose(acc.film.mean(), whole.mean(), rtol=1e-5, atol=1e-7)
 
 
