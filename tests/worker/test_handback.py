@@ -2,7 +2,7 @@
 object in this process (the farm-level test with real worker processes is in test_polite.py).
 
 A batch [a, b) stopped after k samples delivers [a, a + k) — a valid result on its own, because
-samples are deterministic (docs/farm.md) — and the head queues [a + k, b) again; the
+samples are deterministic (docs/design.md, invariant 9) — and the head queues [a + k, b) again; the
 frames then equal an uninterrupted render, and nothing is counted twice.
 """
 
@@ -77,7 +77,7 @@ def test_a_stop_between_chunks_hands_back_the_finished_samples(one_batch, gate, 
     note = json.loads(r.lpop(P.K_RESULTS))
     assert (note["kind"], note["done"], note["ticket"]) == ("partial", out["done"], 1)
     film = from_bytes(r.get(P.k_result(task.batch.id, 1)))
-    # samples [2, 2 + done) of the batch, exactly as rendered alone (invariant 1)
+    # samples [2, 2 + done) of the batch, exactly as rendered alone (docs/design.md, invariant 1)
     np.testing.assert_array_equal(film.mean(), direct(tiny_shot, 1, (0, 0, 8, 8), 2, out["done"]).mean())
     assert not r.exists(P.k_lease(task.batch.id))
 

@@ -31,7 +31,7 @@ def test_a_batch_renders_into_its_result_key(setup, tiny_shot):
     assert run_batch(ctx, task.to_json())["outcome"] == "done"
     film = from_bytes(r.get(P.k_result(task.batch.id, 1)))
     direct = FrameRenderer(load_shot(tiny_shot), 1).render(Tile(0, 0, 8, 8), 2, 3)
-    np.testing.assert_array_equal(film.mean(), direct.mean())  # invariant 1: same five numbers
+    np.testing.assert_array_equal(film.mean(), direct.mean())  # docs/design.md, invariant 1: same five numbers
     note = json.loads(r.lpop(P.K_RESULTS))
     assert (note["kind"], note["batch"], note["ticket"]) == ("result", task.batch.id, 1)
     assert not r.exists(P.k_lease(task.batch.id))
