@@ -193,7 +193,7 @@ class MetricsServer:
 
         self.server = create_server(metrics_app(url), host=host, port=port, threads=2,
                                     ident="lampyr")
-        self.port = self.server.effective_port
+        self.port = int(self.server.effective_port)  # waitress gives it as text; 0 asks for a free one
         self.thread = threading.Thread(target=self.server.run, name="lampyr-metrics",
                                        daemon=True)
         self.thread.start()

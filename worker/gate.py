@@ -11,15 +11,17 @@ worker's pool processes) on every platform.
 from __future__ import annotations
 
 import os
-import tempfile
 from pathlib import Path
+
+from ..scratch import OWNER, scratch_folder
 
 
 class Gate:
     """Flags under `folder` (made if missing); a new private folder when `folder` is None."""
 
     def __init__(self, folder: str | os.PathLike | None = None):
-        self.folder = Path(folder) if folder else Path(tempfile.mkdtemp(prefix="lampyr-gate-"))
+        # a new folder records its owner, and sweeps the ones killed workers left (lampyr/scratch.py)
+        self.folder = Path(folder) if folder else scratch_folder("lampyr-gate-")
         self.folder.mkdir(parents=True, exist_ok=True)
 
     def _set(self, name: str, on: bool) -> None:
@@ -42,7 +44,7 @@ class Gate:
         return (self.folder / "pause").exists()
 
     def remove(self) -> None:
-        for name in ("stop", "pause"):
+        for name in ("stop", "pause", OWNER):
             (self.folder / name).unlink(missing_ok=True)
         try:
             self.folder.rmdir()
