@@ -7,19 +7,23 @@ import signal
 import threading
 from pathlib import Path
 
-from .redis_server import LOOPBACK, EmbeddedRedis
+from .address import record_head
+from .redis_server import LOOPBACK, EmbeddedRedis, private_folder
 
 
 def run_head(state: Path, redis_url: str | None = None, listen: str = "127.0.0.1",
              port: int = 0, lease_seconds: float = 120.0, max_attempts: int = 3,
              on_ready=None, stop: threading.Event | None = None,
              metrics: tuple[str, int] | None = None,
-             web: tuple[str, int | None] | None = None, on_web=None) -> None:
+             web: tuple[str, int | None] | None = None, on_web=None,
+             maxmemory: int | None = None) -> None:
     """Run a head until SIGTERM/SIGINT (or `stop` is set).
 
     redis_url: an existing Redis to use; otherwise an embedded one is started under
     `<state>/redis`, bound to `listen` (password-protected beyond loopback).
-    on_ready(address): called once the head serves, with the address workers need.
+    on_ready(workers, commands): called once the head serves, with the addresses workers and the
+    artists' commands need (the same one when `redis_url` is given).
+    maxmemory: bytes the embedded Redis may hold (default: redis_server.default_memory()).
     metrics: (host, port) to serve the Prometheus endpoint on (metrics.py); None: not served.
     web: (host, port) of the web page (lampyr.webui; port None: its default); None: not served.
     on_web(url, password_file): called once the web page serves.
@@ -28,13 +32,18 @@ def run_head(state: Path, redis_url: str | None = None, listen: str = "127.0.0.1
 
     logging.basicConfig(level=logging.INFO, format="%(asctime)s %(name)s %(message)s")
     state = Path(state)
-    state.mkdir(parents=True, exist_ok=True)
+    private_folder(state)
     server = None
     exporter = None
     page = None
     if redis_url is None:
-        server = EmbeddedRedis(state / "redis", bind=listen, port=port).start()
+        server = EmbeddedRedis(state / "redis", bind=listen, port=port,
+                               maxmemory=maxmemory).start()
         redis_url = server.url
+        workers, commands = server.worker_url, server.artist_url
+    else:
+        workers = commands = redis_url
+    record_head(state, commands, workers)
     stop = stop or threading.Event()
 
     def on_signal(signum, frame):
@@ -54,7 +63,7 @@ def run_head(state: Path, redis_url: str | None = None, listen: str = "127.0.0.1
             logging.getLogger("lampyr.head").info(
                 "metrics: http://%s:%d/metrics", metrics[0], exporter.port)
         if on_ready:
-            on_ready(redis_url)
+            on_ready(workers, commands)
         if web is not None:
             from ..webui.serve import WebServer
 

@@ -61,6 +61,40 @@ class TransferError(LampyrError):
     exit_code = 2
 
 
+class FarmFull(LampyrError):
+    """The farm's Redis has no room for a scene's files now (its `maxmemory`)."""
+
+    exit_code = 1
+
+
+ROOM_SHARE = 0.8  # scenes may fill Redis to this share of maxmemory; the rest is for the queue
+#                   and the workers' results (rule of thumb), which must never be refused
+
+
+def _full(used: int, cap: int, need: int) -> FarmFull:
+    gib = 1 << 30
+    return FarmFull(f"the farm is full: its Redis holds {used / gib:.2f} GiB of "
+                    f"{cap / gib:.2f} GiB and this shot needs {need / gib:.2f} GiB more; wait for "
+                    f"jobs to finish (their files leave {P.FILE_TTL // 3600} h after), or give the "
+                    "head more memory (`lampyr head --redis-memory`)")
+
+
+def check_room(r, need: int) -> None:
+    """Refuse (FarmFull) when `need` more bytes would take Redis past ROOM_SHARE of its cap."""
+    info = r.info("memory")
+    cap, used = int(info.get("maxmemory") or 0), int(info.get("used_memory") or 0)
+    if cap and used + need > ROOM_SHARE * cap:
+        raise _full(used, cap, need)
+
+
+def _refused_for_memory(r, err, need: int):
+    """An OOM answer from Redis (past maxmemory, noeviction) as FarmFull; anything else as is."""
+    if not str(err).startswith("OOM"):
+        return err
+    info = r.info("memory")
+    return _full(int(info.get("used_memory") or 0), int(info.get("maxmemory") or 0), need)
+
+
 def check_sha(sha, what: str = "hash") -> str:
     """`sha` if it is 64 lowercase hex digits (it names files and keys); TransferError otherwise."""
     if not isinstance(sha, str) or not _HEX.fullmatch(sha):
@@ -252,13 +286,19 @@ class _Sender:
         for sha, _ in self.waiting:
             pipe.expire(P.k_blob(sha), self.ttl)  # 1: held (and renewed), 0: absent
         held = pipe.execute()
+        new = [(sha, data) for (sha, data), there in zip(self.waiting, held) if not there]
+        need = sum(len(data) for _, data in new)
+        if need:
+            check_room(self.r, need)
         pipe = self.r.pipeline(transaction=False)
-        for (sha, data), there in zip(self.waiting, held):
-            if not there:
-                pipe.set(P.k_blob(sha), data, ex=self.ttl)
-                self.sent.new_chunks += 1
-                self.sent.new_bytes += len(data)
-        pipe.execute()
+        for sha, data in new:
+            pipe.set(P.k_blob(sha), data, ex=self.ttl)
+            self.sent.new_chunks += 1
+            self.sent.new_bytes += len(data)
+        try:
+            pipe.execute()
+        except redis_errors().ResponseError as err:
+            raise _refused_for_memory(self.r, err, need) from None
         self.waiting, self.size = [], 0
 
 
@@ -300,8 +340,17 @@ def upload_shot(r, shot, chunk_bytes: int = CHUNK_BYTES, ttl: int = P.FILE_TTL,
                             "together")
     data = Manifest(shot_rel, chunk_bytes, tuple(entries)).to_bytes()
     sha = hashlib.sha256(data).hexdigest()
-    r.set(P.k_scene(sha), data, ex=int(ttl))
+    try:
+        r.set(P.k_scene(sha), data, ex=int(ttl))
+    except redis_errors().ResponseError as err:
+        raise _refused_for_memory(r, err, len(data)) from None
     return sha, shot_rel, sent
+
+
+def redis_errors():
+    import redis
+
+    return redis.exceptions
 
 
 # ---------------------------------------------------------------------------------------------

@@ -53,6 +53,9 @@ def make_app(url: str, name: str, settings: dict | None = None, gate_folder: str
     # a pool process loads (or, the first time, compiles) the kernels before it reports up:
     # Celery's default of 4 s would kill it in the middle of that
     app.conf.worker_proc_alive_timeout = 900
+    # no remote control: no pidbox queues or pub/sub channels, which the farm's `worker` Redis
+    # user is not given (scheduler/acl.py)
+    app.conf.worker_enable_remote_control = False
     if settings:
         app.conf.update(settings)
 
@@ -152,4 +155,6 @@ def _stop_with_supervisor(every: float = 0.5) -> None:
 
 
 if __name__ == "__main__":
-    run_celery(**json.loads(sys.argv[1]))
+    # the farm's address comes from the environment (the supervisor sets LAMPYR_HEAD), so its
+    # password is not on this process's command line
+    run_celery(url=os.environ["LAMPYR_HEAD"], **json.loads(sys.argv[1]))

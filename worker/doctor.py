@@ -95,9 +95,13 @@ def _password_and_protocol(url: str) -> list[Check]:
     elif int(theirs) != P.PROTOCOL_VERSION:
         out.append(Check("protocol", PROBLEM, str(P.ProtocolSkew(int(theirs)))))
     else:
-        live = sum(1 for _ in r.scan_iter(match=P.key("host", "*"), count=500))
+        try:
+            live = sum(1 for _ in r.scan_iter(match=P.key("host", "*"), count=500))
+            others = f"; {live} worker(s) on the farm now"
+        except redis.exceptions.NoPermissionError:  # the `worker` user may not list keys
+            others = ""
         out.append(Check("protocol", OK, f"the head speaks wire protocol {P.PROTOCOL_VERSION}, as "
-                         f"this lampyr does; {live} worker(s) on the farm now"))
+                         f"this lampyr does{others}"))
     return out
 
 

@@ -102,9 +102,8 @@ class Supervisor:
             return "outside working hours"
         if self.user_busy or self.busy_too_long:
             return "paused: user busy"
-        if self.child is not None:
-            for _ in r.scan_iter(match=P.key("slot", self.opts.name, "*"), count=100):
-                return "rendering"
+        if self.child is not None and _slots_live(r, self.opts.name):
+            return "rendering"
         return "idle"
 
     def host_info(self, r) -> dict:
@@ -162,12 +161,15 @@ class Supervisor:
         from ..scheduler.redis_server import die_with_parent
 
         self.gate.set_stop(False)
-        config = {"url": self.opts.url, "cores": self.opts.cores, "pool": self.opts.pool,
+        config = {"cores": self.opts.cores, "pool": self.opts.pool,
                   "name": self.opts.name, "gate_folder": str(self.gate.folder),
                   "normal_priority": self.opts.normal_priority, "loglevel": self.opts.loglevel}
         self.child_since = time.monotonic()
+        # the address (with its password) travels in the environment, never on a command line
+        env = dict(os.environ, LAMPYR_HEAD=self.opts.url)
         self.child = subprocess.Popen([sys.executable, "-m", "lampyr.worker.app", json.dumps(config)],
-                                      stdin=subprocess.DEVNULL, preexec_fn=die_with_parent())
+                                      stdin=subprocess.DEVNULL, env=env,
+                                      preexec_fn=die_with_parent())
         self.wake.set()
 
     def stop_child(self, why: str) -> None:
@@ -261,9 +263,16 @@ def _client(url: str):
     return connect(url, check=False)
 
 
+def _slots_live(r, name: str) -> bool:
+    """Whether a process of this worker renders a batch now: the slots of the pool processes
+    in `warm:<name>` (no SCAN: the farm's `worker` Redis user may not list keys)."""
+    pids = r.smembers(P.key("warm", name))
+    return bool(pids) and r.exists(*(P.k_slot(name, int(p)) for p in pids)) > 0
+
+
 def _has_slots(r, name: str) -> bool:
     try:
-        return any(True for _ in r.scan_iter(match=P.key("slot", name, "*"), count=100))
+        return _slots_live(r, name)
     except Exception:
         return False
 
