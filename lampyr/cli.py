@@ -133,11 +133,12 @@ _HEAD_HELP = ("The farm's address (redis://…); it shows in `ps`, so prefer $LA
 
 
 def _farm(head, state):
-    from .scheduler.address import find
+    from .scheduler.address import COMMANDS, check_role, find
     from .scheduler.store import check_protocol, connect
 
     r = connect(find(head, state))
     check_protocol(r)
+    check_role(r, COMMANDS)
     return r
 
 

@@ -135,6 +135,22 @@ def find(head: str | None = None, state: Path | None = None, role: str = COMMAND
     return found
 
 
+def check_role(r, role: str) -> None:
+    """Fail with one line when the address is the other role's (a worker given the artists'
+    address, or a command given the workers'): each user may touch one key the other may not."""
+    import redis
+
+    from . import protocol as P
+
+    try:
+        r.exists(P.K_JOBS if role == COMMANDS else P.K_INFLIGHT)
+    except redis.exceptions.NoPermissionError:
+        other = "workers'" if role == COMMANDS else "artists' commands'"
+        want = "commands" if role == COMMANDS else "workers"
+        raise NoFarm(f"this is the {other} address; use the one `lampyr head` printed for "
+                     f"{want}") from None
+
+
 def where_from(head: str | None = None, state: Path | None = None) -> str:
     """Which of the places above gives the address now, in words (`lampyr farm` alone)."""
     if head:

@@ -65,6 +65,12 @@ def probe(url: str):
         raise NotYet("Redis answers, but no lampyr head has set it up yet")
     if int(theirs) != P.PROTOCOL_VERSION:
         raise P.ProtocolSkew(int(theirs))
+    from ..scheduler.address import WORKERS, check_role
+
+    try:
+        check_role(r, WORKERS)  # the artists' address would fail later, inside Celery
+    except (redis.exceptions.ConnectionError, redis.exceptions.TimeoutError, OSError) as err:
+        raise NotYet(reason(err)) from None
     return r
 
 

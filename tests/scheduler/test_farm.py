@@ -298,10 +298,14 @@ def test_a_client_without_the_password_is_refused(embedded_farm, tmp_path):
                    what="the head")
     assert "@" in url  # the printed address carries the password
     assert (farm.state / "head.json").stat().st_mode & 0o077 == 0  # and so does head.json
-    bare = "redis://" + url.split("@", 1)[1]
+    # the commands' address, printed beside the workers' one
+    commands = (tmp_path / "head.log").read_text().split("give it ", 1)[1].split()[0]
+    bare = "redis://" + commands.split("@", 1)[1]
     res = farm.cli("status", "--head", bare, check=False)
     assert res.returncode != 0 and "requires a password" in res.stderr
-    assert farm.cli("status", "--head", url).returncode == 0
+    assert farm.cli("status", "--head", commands).returncode == 0
+    res = farm.cli("status", "--head", url, check=False)  # the workers' address: not for commands
+    assert res.returncode != 0 and "the workers' address" in res.stderr
 
 
 def test_a_redis_that_lost_its_data_is_rebuilt_from_the_heads_disk(farm, tiny_shot, tmp_path):
