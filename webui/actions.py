@@ -214,7 +214,11 @@ def submit():
         except UsageError as err:  # its message names the command-line option
             raise UsageError(str(err).replace("--until:", "until:", 1)) from None
     uploads = Path(current_app.config["STATE"]) / "web" / "uploads"
-    job = submit_upload(redis(), uploads, shot.filename, shot_bytes,
-                        assets.filename if archive is not None else None, archive, overrides,
-                        prio, tile, ready_by)
+    try:
+        job = submit_upload(redis(), uploads, shot.filename, shot_bytes,
+                            assets.filename if archive is not None else None, archive, overrides,
+                            prio, tile, ready_by)
+    except RecursionError:  # a TOML nested deeper than the interpreter's stack
+        raise UsageError(f"shot: {shot.filename!r} is nested too deeply to read; expected a "
+                         "shot file (tables and arrays a few levels deep)") from None
     return jsonify(ok=True, job=job, message=f"{job} is queued"), 202

@@ -3,8 +3,15 @@
 The password is the farm's: the embedded Redis's (`<state>/redis/password`, made when the head
 listens beyond loopback), or else the page's own, generated at first start into
 `<state>/web/password` (mode 0600). The session is Flask's signed cookie (HttpOnly,
-SameSite=Strict) keyed by `<state>/web/secret`, so logins survive a head restart; it holds a
-fingerprint of the password, so changing the password file logs everybody out.
+SameSite=Strict) keyed by `<state>/web/secret`, so logins survive a head restart.
+
+A login opens a session on the server too (`SessionBook`, kept in `<state>/web/sessions.json`,
+mode 0600): the cookie carries a random session id and a check value, HMAC-SHA256 keyed by the
+server secret over the role, the session id and the password (RFC 2104). The cookie therefore
+says nothing about the password without the secret. A session counts only while the book holds
+it and its check value matches the current password: logging out strikes it from the book, and
+a change of either password file (noticed by `Passwords` on the next request, by the file's
+inode, size and time) ends every session and stops the old password at once.
 
 A read-only viewer login is optional: when `<state>/web/viewer-password` exists (the farm's
 keeper writes it), that password opens the page for looking only; every action answers 403.
@@ -12,6 +19,8 @@ keeper writes it), that password opens the page for looking only; every action a
 Every POST / PUT / PATCH / DELETE must carry the session's token (header `X-Lampyr-Token` or
 form field `token`) and, when the browser sends an Origin, come from this page's own origin. The
 login form has a token too (given with the form), so another site cannot log a browser in.
+`role_of_cookie` answers the same question from a raw Cookie header, outside any request: the
+server asks it before it reads a request's body (`doorway.py`).
 """
 
 from __future__ import annotations
@@ -74,8 +83,12 @@ def session_secret(state: Path) -> str:
     return _private_file(Path(state) / "web" / "secret", lambda: secrets.token_hex(32))
 
 
-def _fingerprint(password: str) -> str:
-    return hashlib.sha256(b"lampyr-web:" + password.encode()).hexdigest()[:24]
+def check_value(app, who: str, sid: str, password: str) -> str:
+    """The cookie's check value: HMAC-SHA256 (RFC 2104) keyed by the server secret over the
+    role, the session id and the password, as hex, cut to 128 bits."""
+    key = hashlib.sha256(b"lampyr-session-check:" + str(app.config["SECRET_KEY"]).encode())
+    msg = "\0".join((who, sid, password)).encode()
+    return hmac.new(key.digest(), msg, hashlib.sha256).hexdigest()[:32]
 
 
 def csrf_token() -> str:
@@ -85,20 +98,44 @@ def csrf_token() -> str:
     return session["csrf"]
 
 
-def _passwords() -> dict:
-    """Role → its password, for the roles this page has."""
-    out = {"farm": current_app.config["PASSWORD"]}
-    if current_app.config.get("VIEWER_PASSWORD"):
-        out["viewer"] = current_app.config["VIEWER_PASSWORD"]
-    return out
+def _passwords(app=None) -> dict:
+    """Role → its password, for the roles this page has (files re-read when they changed)."""
+    return (app or current_app).extensions["lampyr.passwords"].current()
+
+
+def role_of(app, data) -> str | None:
+    """"farm" (may act), "viewer" (may look) or None, for a session's contents: an open session
+    of the book whose check value matches its role's current password."""
+    who, sid, check = data.get("who"), data.get("sid"), data.get("check")
+    if not (isinstance(who, str) and isinstance(sid, str) and isinstance(check, str)):
+        return None
+    pw = _passwords(app).get(who)
+    if not pw or not hmac.compare_digest(check.encode(), check_value(app, who, sid, pw).encode()):
+        return None
+    return who if app.extensions["lampyr.sessions"].alive(sid, who) else None
 
 
 def role() -> str | None:
-    """"farm" (may act), "viewer" (may look) or None (not logged in, or the password changed)."""
-    pw = _passwords().get(session.get("who", ""))
-    if pw and hmac.compare_digest(str(session.get("pw", "")).encode(), _fingerprint(pw).encode()):
-        return session["who"]
-    return None
+    """The role of this request's session (None: not logged in, logged out, or the password
+    changed)."""
+    return role_of(current_app, session)
+
+
+def role_of_cookie(app, cookie_header: str | None) -> str | None:
+    """The same answer from a raw Cookie header, with no request context (the server's check
+    before it reads a body)."""
+    from itsdangerous import BadSignature
+    from werkzeug.http import parse_cookie
+
+    value = parse_cookie(cookie_header or "").get(app.config["SESSION_COOKIE_NAME"])
+    serializer = app.session_interface.get_signing_serializer(app)
+    if not value or serializer is None:
+        return None
+    try:
+        data = serializer.loads(value, max_age=int(app.permanent_session_lifetime.total_seconds()))
+    except (BadSignature, ValueError, TypeError):
+        return None
+    return role_of(app, data) if isinstance(data, dict) else None
 
 
 def logged_in() -> bool:
@@ -190,8 +227,8 @@ def login():
             if hmac.compare_digest(given.encode(), pw.encode()):
                 session.clear()
                 session.permanent = True
-                session["who"] = who_is
-                session["pw"] = _fingerprint(pw)
+                sid = current_app.extensions["lampyr.sessions"].open(who_is)
+                session.update(who=who_is, sid=sid, check=check_value(current_app, who_is, sid, pw))
                 csrf_token()
                 return redirect(nxt)
         throttle.failed(who)
@@ -202,6 +239,8 @@ def login():
 
 @bp.route("/logout", methods=["POST"])
 def logout():
+    if isinstance(session.get("sid"), str):
+        current_app.extensions["lampyr.sessions"].end(session["sid"])
     session.clear()
     return redirect(url_for("auth.login"))
 
@@ -211,7 +250,15 @@ def health():
     return jsonify(ok=True)
 
 
-def install(app) -> None:
+def install(app, watch: dict) -> None:
+    """Login, sessions and checks on `app`; `watch`: the password files to follow (see
+    sessions.Passwords)."""
+    from .sessions import Passwords, SessionBook
+
+    lifetime = app.permanent_session_lifetime.total_seconds()
+    book = SessionBook(Path(app.config["STATE"]) / "web" / "sessions.json", lifetime)
+    app.extensions["lampyr.sessions"] = book
+    app.extensions["lampyr.passwords"] = Passwords(app.config, watch, book)
     app.extensions["lampyr.throttle"] = LoginThrottle()
     app.before_request(check_request)
     app.register_blueprint(bp)

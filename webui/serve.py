@@ -17,9 +17,6 @@ from ..errors import UsageError
 
 DEFAULT_PORT = 7361
 THREADS = 8  # waitress worker threads: polling clients are short requests
-# waitress buffers a whole body (to disk past a point) before the app sees the request; it is
-# told to refuse at once a body the app would refuse anyway (the app's 413 names the limit)
-BODY_SLACK = 1024 * 1024
 
 log = logging.getLogger("lampyr.web")
 
@@ -42,12 +39,11 @@ class WebServer:
         self.thread = None
 
     def start(self) -> "WebServer":
-        from waitress.server import create_server
+        from .doorway import make_server
 
-        opts = {"threads": THREADS, "ident": "lampyr", "channel_timeout": 60,
-                "max_request_body_size": self.app.config["MAX_CONTENT_LENGTH"] + BODY_SLACK}
-        try:
-            self.server = create_server(self.app, host=self.listen, port=self.port, **opts)
+        limit = self.app.config["MAX_CONTENT_LENGTH"]
+        try:  # waitress with the checks on headers and connections of doorway.py
+            self.server = make_server(self.app, self.listen, self.port, THREADS, limit)
         except OSError as err:
             if err.errno != errno.EADDRINUSE:
                 raise
@@ -55,8 +51,8 @@ class WebServer:
                 raise UsageError(f"--web-port: port {self.port} on {self.listen} is in use; "
                                  "choose another or 0 for any free port") from None
             log.warning("web port %d is in use; using a free one", self.port)
-            self.server = create_server(self.app, host=self.listen, port=0, **opts)
-        self.port = self.server.effective_port
+            self.server = make_server(self.app, self.listen, 0, THREADS, limit)
+        self.port = int(self.server.effective_port)
         self.thread = threading.Thread(target=self._run, name="lampyr-web", daemon=True)
         self.thread.start()
         return self

@@ -57,17 +57,4 @@ def test_the_page_listens_where_the_head_is_told(farm):
     log = start_head(farm, "--web-port", 0, "--web-listen", "localhost")
     assert "Web page: http://localhost:" in log
 
-
-def test_a_body_far_over_the_upload_limit_is_refused_before_it_is_sent(redis_url, tmp_path):
-    from lampyr.webui.serve import WebServer
-
-    web = WebServer(tmp_path / "state", redis_url, port=0, max_upload_bytes=1024 * 1024).start()
-    try:
-        with socket.create_connection(("127.0.0.1", web.port), timeout=10) as s:
-            s.sendall(b"POST /api/submit HTTP/1.1\r\nHost: x\r\n"
-                      b"Content-Type: multipart/form-data; boundary=B\r\n"
-                      b"Content-Length: 104857600\r\n\r\n")  # 100 MiB announced, none sent
-            head = s.recv(200)
-        assert head.startswith(b"HTTP/1.1 413")  # RFC 9110 15.5.14 Content Too Large
-    finally:
-        web.stop()
+# refusals on headers alone (before any body is stored): tests/webui/test_doorway.py
