@@ -224,3 +224,127 @@ def test_what_the_login_page_needs_is_open_to_everyone(client, url):
 def test_a_token_that_is_not_ascii_is_refused_not_a_crash(user):
     resp = user.post("/api/jobs/x/pause", data={"token": "jeton-\u00e9t\u00e9"})
     assert resp.status_code == 403
+
+
+# --- sessions the server ends (issue 13, item 2) ----------------------------------------------
+
+def cookie_of(c) -> str:
+    return c.get_cookie("lampyr_session").value
+
+
+def replay(app, cookie: str):
+    """A fresh client presenting a saved session cookie."""
+    c = app.test_client()
+    c.set_cookie("lampyr_session", cookie)
+    return c
+
+
+def test_a_cookie_saved_before_logging_out_no_longer_opens_the_page(app, user):
+    saved = cookie_of(user)
+    assert replay(app, saved).get("/api/farm").status_code == 200
+    assert post_logout(user).status_code == 302
+    assert replay(app, saved).get("/api/farm").status_code == 401
+
+
+def test_logging_out_one_session_leaves_the_others_open(app, user):
+    other = app.test_client()
+    log_in(other)
+    post_logout(user)
+    assert other.get("/api/farm").status_code == 200
+
+
+@pytest.fixture
+def file_app(redis_url, tmp_path):
+    """An app that reads its passwords from the state folder's files, as the head's does."""
+    from lampyr.webui.app import create_app
+
+    state = tmp_path / "state"
+    (state / "web").mkdir(parents=True)
+    (state / "web" / "password").write_text("first word\n")
+    return create_app({"STATE": state, "REDIS_URL": redis_url, "SECRET_KEY": "test-secret",
+                       "TESTING": True})
+
+
+def log_in_with(app, word: str):
+    c = app.test_client()
+    c.get("/login")
+    resp = c.post("/login", data={"password": word, "token": token_of(c)})
+    return c, resp.status_code
+
+
+def test_changing_the_password_file_ends_every_session_and_the_old_password_at_once(file_app):
+    state = file_app.config["STATE"]
+    a, code_a = log_in_with(file_app, "first word")
+    b, code_b = log_in_with(file_app, "first word")
+    assert code_a == code_b == 302 and a.get("/api/farm").status_code == 200
+    (state / "web" / "password").write_text("second word\n")
+    assert a.get("/api/farm").status_code == 401 and b.get("/api/farm").status_code == 401
+    assert log_in_with(file_app, "first word")[1] == 401
+    c, code = log_in_with(file_app, "second word")
+    assert code == 302 and c.get("/api/farm").status_code == 200
+
+
+def test_a_viewer_password_file_appearing_or_changing_ends_every_session(file_app):
+    state = file_app.config["STATE"]
+    farm, _ = log_in_with(file_app, "first word")
+    (state / "web" / "viewer-password").write_text("just looking\n")
+    assert farm.get("/api/farm").status_code == 401  # a new role: everyone logs in again
+    viewer, code = log_in_with(file_app, "just looking")
+    assert code == 302 and viewer.get("/api/farm").status_code == 200
+    (state / "web" / "viewer-password").write_text("looking harder\n")
+    assert viewer.get("/api/farm").status_code == 401
+    assert log_in_with(file_app, "just looking")[1] == 401
+
+
+def test_touching_a_password_file_without_changing_it_keeps_the_sessions(file_app):
+    state = file_app.config["STATE"]
+    a, _ = log_in_with(file_app, "first word")
+    (state / "web" / "password").write_text("first word\n")
+    assert a.get("/api/farm").status_code == 200
+
+
+def test_an_empty_password_file_lets_nobody_in(file_app):
+    (file_app.config["STATE"] / "web" / "password").write_text("\n")
+    assert log_in_with(file_app, "")[1] in (401, 400)
+
+
+def test_the_cookie_s_check_value_is_an_hmac_keyed_by_the_server_secret(app, user):
+    """The check value is HMAC-SHA256 (RFC 2104; Python's hmac module as the reference) keyed
+    by a hash of the server secret, over role, session id and password: no unsalted hash of the
+    password is in the cookie (which is signed, not encrypted: anyone holding it can read it)."""
+    import hashlib
+    import hmac
+
+    data = app.session_interface.get_signing_serializer(app).loads(cookie_of(user))
+    key = hashlib.sha256(b"lampyr-session-check:" + b"test-secret").digest()
+    want = hmac.new(key, f"farm\0{data['sid']}\0{PASSWORD}".encode(), hashlib.sha256)
+    assert data["check"] == want.hexdigest()[:32]
+    text = repr(data)
+    for name in ("sha256", "sha1", "md5", "sha512"):
+        for salt in (b"", b"lampyr-web:"):
+            assert hashlib.new(name, salt + PASSWORD.encode()).hexdigest()[:16] not in text
+    assert PASSWORD not in text
+
+
+def test_a_cookie_signed_and_checked_with_another_secret_is_refused(app, user, redis_url, state):
+    """The same password and session book, another secret: the cookie opens nothing."""
+    from lampyr.webui.app import create_app
+
+    other = create_app({"STATE": state, "REDIS_URL": redis_url, "PASSWORD": PASSWORD,
+                        "SECRET_KEY": "another-secret", "TESTING": True})
+    assert replay(other, cookie_of(user)).get("/api/farm").status_code == 401
+
+
+def test_the_session_book_is_private_and_holds_no_session_id(app, user, state):
+    data = app.session_interface.get_signing_serializer(app).loads(cookie_of(user))
+    book = state / "web" / "sessions.json"
+    assert stat.S_IMODE(os.stat(book).st_mode) == 0o600
+    assert data["sid"] not in book.read_text()
+
+
+def test_sessions_survive_a_restart_of_the_page(app, user, redis_url, state):
+    from lampyr.webui.app import create_app
+
+    again = create_app({"STATE": state, "REDIS_URL": redis_url, "PASSWORD": PASSWORD,
+                        "SECRET_KEY": "test-secret", "TESTING": True})
+    assert replay(again, cookie_of(user)).get("/api/farm").status_code == 200
