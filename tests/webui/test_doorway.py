@@ -188,3 +188,102 @@ def test_a_hundred_idle_connections_do_not_shut_out_a_logged_in_page(web, browse
     finally:
         for s in crowd:
             s.close()
+
+
+def status_of(answer: bytes) -> int:
+    return int(answer.split(b" ", 2)[1]) if answer.startswith(b"HTTP/") else 0
+
+
+def test_uploads_are_capped_and_a_place_frees_when_one_ends(web, browser):
+    from lampyr.webui.doorway import MAX_UPLOADS
+
+    token = f"X-Lampyr-Token: {browser.token}\r\n".encode()
+    arriving = [post_head(web.port, 50 * MIB, cookie=browser.cookie, extra=token)
+                for _ in range(MAX_UPLOADS)]
+    for s in arriving:
+        s.sendall(b"x" * 65536)  # part of each body: they are arriving
+    time.sleep(0.3)
+    extra = post_head(web.port, 50 * MIB, cookie=browser.cookie, extra=token)
+    a = answer_of(extra)
+    extra.close()
+    assert status_of(a) == 503 and b"Retry-After: 30" in a
+    assert f"{MAX_UPLOADS} uploads are already arriving".encode() in a
+    assert browser.get("/api/farm")[0] == 200  # the page still answers
+    arriving.pop().close()  # one upload given up: its place is free again
+    time.sleep(0.5)
+    again = post_head(web.port, 50 * MIB, cookie=browser.cookie, extra=token)
+    again.sendall(b"x" * 65536)
+    assert answer_of(again, timeout=1.0) == b""  # taken: the server waits for its body
+    for s in arriving + [again]:
+        s.close()
+
+
+@pytest.mark.parametrize("who", ["forged", "logged-out", "viewer"])
+def test_a_big_body_with_a_cookie_that_is_no_farm_login_is_refused_on_its_headers(
+        web, browser, who):
+    cookie = browser.cookie
+    if who == "forged":
+        cookie = cookie[:-4] + ("AAAA" if not cookie.endswith("AAAA") else "BBBB")
+    elif who == "logged-out":
+        browser.opener.open(urllib.request.Request(
+            browser.base + "logout", data=b"", headers={"X-Lampyr-Token": browser.token}),
+            timeout=10).read()
+    else:
+        state = web.app.config["STATE"]
+        (state / "web" / "viewer-password").write_text("just looking\n")
+        cookie = Browser(web.base, "just looking").cookie
+    before = spooled_bytes()
+    s = post_head(web.port, 100 * MIB, cookie=cookie)
+    a = answer_of(s)
+    send_some(s, 8 * MIB)
+    s.close()
+    assert status_of(a) == (403 if who == "viewer" else 401), a[:300]
+    assert spooled_bytes() - before < MIB
+
+
+def test_a_small_post_without_a_login_still_reaches_the_page(web):
+    """The login form is a body too: up to ANON_BODY_BYTES it is read, and the page decides."""
+    s = post_head(web.port, 20, path="/api/jobs/x/pause")
+    s.sendall(b"--B--\r\n" + b" " * 13)
+    a = answer_of(s)
+    s.close()
+    assert status_of(a) == 401 and a.endswith(b'{"error":"log in first"}\n')
+
+
+def test_a_body_that_stops_arriving_is_cut_off(web, browser, monkeypatch):
+    from lampyr.webui import doorway
+
+    monkeypatch.setattr(doorway, "BODY_IDLE_SECONDS", 1.0)
+    token = f"X-Lampyr-Token: {browser.token}\r\n".encode()
+    s = post_head(web.port, 10 * MIB, cookie=browser.cookie, extra=token)
+    s.sendall(b"x" * 1000)
+    t0 = time.monotonic()
+    s.settimeout(10)
+    assert s.recv(100) == b""  # closed by the server, nothing answered
+    took = time.monotonic() - t0
+    s.close()
+    assert 1.0 <= took < 4.0  # BODY_IDLE_SECONDS plus at most two maintenance passes (1 s)
+    assert web.server.door.uploads == 0  # its upload place is free
+
+
+def test_a_slow_trickle_of_headers_is_cut_off(web, monkeypatch):
+    from lampyr.webui import doorway
+
+    monkeypatch.setattr(doorway, "HEADER_SECONDS", 2.0)
+    s = socket.create_connection(("127.0.0.1", int(web.port)), timeout=10)
+    t0 = time.monotonic()
+    closed_after = None
+    try:
+        for _ in range(20):  # one header byte every 0.5 s keeps it "active" but never done
+            s.sendall(b"X")
+            time.sleep(0.5)
+    except OSError:
+        closed_after = time.monotonic() - t0
+    if closed_after is None:
+        s.settimeout(0.1)
+        try:
+            closed_after = time.monotonic() - t0 if s.recv(10) == b"" else None
+        except OSError:
+            closed_after = time.monotonic() - t0
+    s.close()
+    assert closed_after is not None and closed_after < 6.0
