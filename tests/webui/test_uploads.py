@@ -219,3 +219,56 @@ def test_an_upload_with_a_ready_by_time_gets_that_time(user, head):
 def test_a_ready_by_time_in_the_past_is_refused_naming_the_field(user):
     resp = upload(user, archive=zip_of({"assets/floor.obj": FLOOR_OBJ}), until="2001-01-01T07:00")
     assert resp.status_code == 400 and resp.get_json()["error"].startswith("until:")
+
+
+# --- every 413 names the limit it hit; deep nesting is a 400 (issue 13) -----------------------
+
+def multipart(parts: list[tuple[str, bytes, str | None]], boundary: str = "B0und") -> bytes:
+    out = b""
+    for name, body, filename in parts:
+        disp = f'form-data; name="{name}"' + (f'; filename="{filename}"' if filename else "")
+        out += f"--{boundary}\r\nContent-Disposition: {disp}\r\n\r\n".encode() + body + b"\r\n"
+    return out + f"--{boundary}--\r\n".encode()
+
+
+def post_raw(user, body: bytes, boundary: str = "B0und"):
+    return user.post("/api/submit", data=body, headers={"X-Lampyr-Token": user.token},
+                     content_type=f"multipart/form-data; boundary={boundary}")
+
+
+def test_a_form_of_five_thousand_parts_is_refused_naming_the_part_limit(user):
+    from lampyr.webui.app import FORM_PARTS
+
+    parts = [("token", user.token.encode(), None)] + [(f"f{i}", b"1", None) for i in range(5000)]
+    resp = post_raw(user, multipart(parts))
+    assert resp.status_code == 413
+    assert resp.get_json() == {"error": f"form: more than this page's limit of {FORM_PARTS} parts"}
+
+
+def test_a_form_of_as_many_parts_as_allowed_is_read(user):
+    from lampyr.webui.app import FORM_PARTS
+
+    parts = [("token", user.token.encode(), None)] + [(f"f{i}", b"1", None)
+                                                      for i in range(FORM_PARTS - 1)]
+    resp = post_raw(user, multipart(parts))
+    assert resp.status_code == 400  # read, then refused for what it is: no shot file
+    assert resp.get_json()["error"].startswith("shot:")
+
+
+def test_a_huge_text_field_is_refused_naming_the_field_limit(user):
+    from lampyr.webui.app import FORM_FIELD_BYTES
+
+    parts = [("token", user.token.encode(), None), ("frames", b"1" * (FORM_FIELD_BYTES + 1), None)]
+    resp = post_raw(user, multipart(parts))
+    assert resp.status_code == 413
+    assert resp.get_json() == {"error": "form: a field other than a file is larger than this "
+                                        f"page's limit of {FORM_FIELD_BYTES / 1000:g} kB"}
+
+
+def test_a_shot_nested_twenty_thousand_deep_is_a_400_naming_the_shot(user):
+    deep = b"x = " + b"[" * 20000 + b"]" * 20000 + b"\n"
+    resp = upload(user, shot=deep, archive=None)
+    assert resp.status_code == 400
+    msg = resp.get_json()["error"]
+    assert msg.startswith("shot:") and "nested too deeply" in msg and "\n" not in msg
+
