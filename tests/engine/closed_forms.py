@@ -68,6 +68,32 @@ def pixel_average(values):
     return values.mean(axis=(2, 3))
 
 
+def sphere_view_expected(size, eye, fov, le, first, within, n):
+    """What a size × size pinhole camera at `eye`, looking at the origin with +y up, sees of a unit
+    sphere there in a uniform environment of radiance le: per pixel the expected radiance
+    (h, w, 3) on a 32 × 32 sub-pixel grid, that grid's error (its change from a 16 × 16 grid),
+    and the standard error of an n-sample pixel mean predicted from the model.
+
+    One sample's value is le · X where its ray meets the sphere at cos θ, with E[X] = first(cos θ)
+    and Var[X] = within(cos θ) ((..., 1) or (..., 3) arrays), and le where it sees the
+    environment. The variance of a sample is the mean of `within` plus the variance of E[X] over
+    the pixel (the law of total variance), computed from deviations so that it keeps its
+    precision when it is tiny."""
+    out = []
+    for sub in (16, 32):
+        d = pinhole_rays(size, size, eye, (0.0, 0.0, 0.0), (0.0, 1.0, 0.0), fov, sub)
+        cos = sphere_hit_cosine(eye, d, (0.0, 0.0, 0.0), 1.0)
+        miss = np.isnan(cos)[..., None]
+        c = np.nan_to_num(cos, nan=1.0)
+        value = np.where(miss, le, le * first(c))
+        mean = pixel_average(value)
+        var = pixel_average(np.where(miss, 0.0, le * le * within(c)))
+        var = var + pixel_average((value - mean[:, :, None, None]) ** 2)
+        out.append((mean, var))
+    (coarse, _), (fine, fine_var) = out
+    return fine, np.abs(fine - coarse), np.sqrt(fine_var / n)
+
+
 # ------------------------------------------------------------------------------- Fresnel
 
 def fresnel_hecht(cos_i, n1, n2):

@@ -18,7 +18,7 @@ import numpy as np
 
 from .closed_forms import (
     assert_within, fresnel_hecht, fresnel_hecht_sp, pinhole_rays, pixel_average, render, schlick,
-    sphere_hit_cosine,
+    sphere_hit_cosine, sphere_view_expected,
 )
 from .scenes import load, shot_text
 
@@ -42,25 +42,7 @@ sphere = {{ center = [0, 0, 0], radius = 1.0 }}
 
 
 def _expected(first, within, n):
-    """Per-pixel expected radiance (h, w, 3) on the 32 × 32 sub-pixel grid, the grid's error, and
-    the standard error of an n-sample pixel mean predicted from the model. One sample's value is
-    Le · X where its ray meets the unit sphere at cos θ, with E[X] = first(cos θ) and
-    Var[X] = within(cos θ), and Le where it sees the environment. The variance of a sample is
-    the mean of `within` plus the variance of E[X] over the pixel (the law of total variance),
-    computed from deviations so that it keeps its precision when it is tiny."""
-    out = []
-    for sub in (16, 32):
-        d = pinhole_rays(SIZE, SIZE, EYE, TARGET, (0, 1, 0), FOV, sub)
-        cos = sphere_hit_cosine(EYE, d, TARGET, 1.0)
-        miss = np.isnan(cos)[..., None]
-        c = np.nan_to_num(cos, nan=1.0)
-        value = np.where(miss, LE, LE * first(c))
-        mean = pixel_average(value)
-        var = pixel_average(np.where(miss, 0.0, LE * LE * within(c)))
-        var = var + pixel_average((value - mean[:, :, None, None]) ** 2)
-        out.append((mean, var))
-    (coarse, _), (fine, fine_var) = out
-    return fine, np.abs(fine - coarse), np.sqrt(fine_var / n)
+    return sphere_view_expected(SIZE, EYE, FOV, LE, first, within, n)
 
 
 def _se(render_se, model_se):
