@@ -16,7 +16,10 @@ artist (the workers run Celery without remote control, events or gossip).
   a real worker under this user): the queue `lampyr` and its priority lists
   `lampyr\\x06\\x16<n>` (BRPOP, LPUSH to requeue), the bindings `_kombu.binding*` (SMEMBERS,
   SADD), and the unacked store `unacked`, `unacked_index`, `unacked_mutex` (HSET, HGET, HDEL,
-  ZADD, ZREM, ZRANGE/ZREVRANGEBYSCORE, SET NX and its lock-release script; WATCH/MULTI/EXEC).
+  ZADD, ZREM, ZRANGE BYSCORE REV, SET NX and its lock-release script; WATCH/MULTI/EXEC).
+  Seen in a real run (MONITOR) of a worker rendering a job: BRPOP, LPUSH, LLEN, SADD,
+  SMEMBERS, HSET, HDEL, ZADD, ZREM, ZRANGE, EVALSHA, SCRIPT LOAD, MULTI/EXEC. redis-py's
+  CLIENT SETINFO at connect is refused (not in any list; redis-py ignores the refusal).
 - No SCAN or KEYS: a worker cannot list keys, so it reads a scene only when a message it took
   names its manifest's sha256. Any worker may be given any job's batch, so a worker that wanted
   to could still drain the queue and read every queued job's scene; finer than that would need
@@ -40,18 +43,20 @@ HEAD, WORKER, ARTIST = "head", "worker", "artist"
 
 P = "lampyr:"  # protocol.PREFIX
 
-# every user: talk, authenticate, transactions, scripts (their commands are checked again)
-_COMMON = ["ping", "echo", "auth", "hello", "select", "reset", "client|setname",
-           "client|getname", "client|id", "exists", "type", "ttl", "pttl", "multi", "exec",
-           "discard", "watch", "unwatch"]
+# every user: log in, choose the database, transactions (WATCH for kombu's restore)
+_COMMON = ["ping", "auth", "hello", "select", "exists", "multi", "exec", "discard", "watch",
+           "unwatch"]
 
 WORKER_COMMANDS = _COMMON + [
-    # lampyr: tasks.py, supervisor.py, app.py, connect.py, doctor.py, transfer.py (reading)
-    "get", "mget", "set", "del", "unlink", "expire", "pexpire", "hget", "hgetall", "hincrby",
-    "rpush", "sadd", "smembers", "srem", "eval", "evalsha", "script|load", "script|exists",
-    # kombu's Redis transport
-    "brpop", "rpop", "lpush", "llen", "hset", "hdel", "zadd", "zrem", "zrange",
-    "zrevrangebyscore", "zrangebyscore",
+    # lampyr: tasks.py, supervisor.py, app.py, connect.py, doctor.py, transfer.py (reading);
+    # EVAL runs the lease scripts (protocol.py), whose keys Redis checks like any other
+    "get", "set", "del", "expire", "pexpire", "hget", "hgetall", "hincrby", "rpush", "sadd",
+    "smembers", "eval",
+    # kombu's Redis transport: BRPOP (RPOP when polling), LPUSH to requeue, LLEN, the unacked
+    # store (HSET/HGET/HDEL, ZADD/ZREM, ZRANGE … BYSCORE REV to restore), its mutex released by
+    # a redis-py Lock script (EVALSHA, SCRIPT LOAD when the server lacks it)
+    "brpop", "rpop", "lpush", "llen", "hset", "hdel", "zadd", "zrem", "zrange", "evalsha",
+    "script|load",
 ]
 WORKER_KEYS = [P + k for k in (
     "protocol", "config", "inflight", "attempts", "results", "lease:*", "result:*", "slot:*",

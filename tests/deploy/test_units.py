@@ -13,6 +13,7 @@ import shlex
 import shutil
 import subprocess
 import sys
+import tempfile
 import time
 from pathlib import Path
 
@@ -99,32 +100,36 @@ def test_sysusers_file_makes_a_system_user_without_login(tmp_path):
     assert int(uid) < 1000  # a system user (rule of thumb: Debian's SYS_UID_MAX is 999)
 
 
+LAN_PASSWORDS = {"head": "head-horse-battery-staple", "worker": "worker-horse-battery-staple",
+                 "artist": "artist-horse-battery-staple"}
+
+
 @pytest.fixture
 def lan_redis(tmp_path):
-    """redis-server started with deploy/redis-lan.conf, moved to loopback, a scratch folder and a
-    free port, with the template's password replaced."""
+    """redis-server started with deploy/redis-lan.conf as its only argument, moved to loopback,
+    a scratch folder and a free port, with the template's three passwords replaced."""
     from lampyr.scheduler.redis_server import free_port, server_binary
 
-    password = "correct-horse-battery-staple"
     conf = (DEPLOY / "redis-lan.conf").read_text()
-    template = re.search(r"^requirepass (\S+)", conf, re.M).group(1)
-    conf = conf.replace(template, password)
-    # redis changes into `dir` as it reads the line, before command-line overrides apply
-    conf = re.sub(r"^dir .*$", f"dir {tmp_path}", conf, flags=re.M)
-    (tmp_path / "redis.conf").write_text(conf)
+    for user, word in LAN_PASSWORDS.items():
+        assert f">CHANGE-ME-{user}-password" in conf
+        conf = conf.replace(f">CHANGE-ME-{user}-password", f">{word}")
     port = free_port()
-    proc = subprocess.Popen([str(server_binary()), str(tmp_path / "redis.conf"), "--port",
-                             str(port), "--bind", "127.0.0.1"],
+    conf = re.sub(r"^dir .*$", f"dir {tmp_path}", conf, flags=re.M)
+    conf = re.sub(r"^port .*$", f"port {port}", conf, flags=re.M)
+    conf = re.sub(r"^bind .*$", "bind 127.0.0.1", conf, flags=re.M)
+    (tmp_path / "redis.conf").write_text(conf)
+    proc = subprocess.Popen([str(server_binary()), str(tmp_path / "redis.conf")],
                             stdout=subprocess.DEVNULL, stderr=subprocess.STDOUT)
-    yield port, password
+    yield port
     proc.kill()
     proc.wait(10)
 
 
-def _client(port, password=None):
+def _client(port, password=None, username=None):
     import redis
 
-    r = redis.Redis(port=port, password=password, socket_timeout=5)
+    r = redis.Redis(port=port, username=username, password=password, socket_timeout=5)
     give_up_at = time.monotonic() + 20
     while True:
         try:
@@ -134,16 +139,15 @@ def _client(port, password=None):
             if time.monotonic() > give_up_at:
                 raise
             time.sleep(0.05)
-        except redis.exceptions.AuthenticationError:
+        except (redis.exceptions.AuthenticationError, redis.exceptions.ResponseError):
             return r
 
 
 def test_lan_redis_refuses_a_client_without_the_password(lan_redis):
     import redis
 
-    port, _ = lan_redis
     with pytest.raises((redis.exceptions.AuthenticationError, redis.exceptions.ResponseError)):
-        _client(port).set("x", 1)
+        _client(lan_redis).set("x", 1)
 
 
 @pytest.mark.parametrize("setting, value", [
@@ -153,15 +157,63 @@ def test_lan_redis_refuses_a_client_without_the_password(lan_redis):
     ("protected-mode", "yes"),
 ])
 def test_lan_redis_keeps_the_settings_the_farm_relies_on(lan_redis, setting, value):
-    port, password = lan_redis
-    r = _client(port, password)
+    r = _client(lan_redis, LAN_PASSWORDS["head"], "head")
     assert r.config_get(setting)[setting] == value
+
+
+def test_lan_redis_has_the_users_of_the_embedded_server(lan_redis):
+    """The template's users are the ones scheduler/acl.py gives the embedded server: the same
+    rules, as Redis itself lists them (ACL LIST), whatever the passwords."""
+    from lampyr.scheduler import acl
+    from lampyr.scheduler.redis_server import EmbeddedRedis
+
+    def rules(r):
+        # Redis lists a user's rules in no fixed order: compare them as sets of words
+        return sorted(tuple(sorted(re.sub(r" #[0-9a-f]{64}", "", line).split())) for line in
+                      (x.decode() if isinstance(x, bytes) else x for x in r.acl_list()))
+
+    embedded = EmbeddedRedis(Path(lan_redis_tmp := tempfile.mkdtemp()) / "redis").start()
+    try:
+        import redis
+
+        mine = rules(redis.Redis.from_url(embedded.url))
+    finally:
+        embedded.stop()
+        shutil.rmtree(lan_redis_tmp, ignore_errors=True)
+    assert rules(_client(lan_redis, LAN_PASSWORDS["head"], "head")) == mine
+    import redis
+
+    w = _client(lan_redis, LAN_PASSWORDS["worker"], "worker")
+    with pytest.raises(redis.exceptions.NoPermissionError):
+        w.config_set("dir", "/tmp")
+    assert acl.WORKER == "worker"
 
 
 def test_worker_env_template_is_the_format_systemd_reads():
     env = env_file(DEPLOY / "worker.env")
     assert set(env) == {"LAMPYR_HEAD", "LAMPYR_WORKER_ARGS"}
-    assert env["LAMPYR_HEAD"].startswith("redis://")
+    assert env["LAMPYR_HEAD"].startswith("redis://worker:")
+
+
+@pytest.mark.parametrize("unit", UNITS)
+def test_no_address_or_password_on_a_command_line(unit):
+    """The address reaches the worker in its environment (EnvironmentFile), never in ExecStart:
+    a command line is readable by every user of the machine (/proc/PID/cmdline)."""
+    text = (DEPLOY / unit).read_text()
+    line = next(l for l in text.splitlines() if l.startswith("ExecStart="))
+    assert "LAMPYR_HEAD" not in line and "redis://" not in line and "PASSWORD" not in line
+    if unit == "lampyr-worker.service":
+        assert "EnvironmentFile=/etc/lampyr/worker.env" in text
+
+
+def test_launchd_job_carries_no_address():
+    words = launchd_arguments()
+    assert not any("redis://" in w for w in words)
+
+
+def test_head_unit_keeps_its_state_folder_to_itself():
+    text = (DEPLOY / "lampyr-head.service").read_text()
+    assert "StateDirectoryMode=0700" in text
 
 
 def test_compose_head_runs_a_command_lampyr_has():
