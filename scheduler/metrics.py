@@ -5,8 +5,8 @@ with every status publish, writes a snapshot of its counters and queue to the `m
 Redis. The endpoint reads that snapshot plus the live worker heartbeats, so it can run in any
 process that reaches the farm's Redis (the head serves it with `--metrics-port`).
 
-Output follows the Prometheus text exposition format, version 0.0.4: `# HELP` and `# TYPE`
-lines, then `name{label="value"} number` samples; counters end in `_total`.
+The text (Prometheus exposition format 0.0.4) is written by the prometheus_client library from
+metric families built for each request; the metric names are lampyr's, counters end in `_total`.
 """
 
 from __future__ import annotations
@@ -19,6 +19,7 @@ from dataclasses import asdict, dataclass, field
 
 from . import protocol as P
 
+CONTENT_TYPE = "text/plain; version=0.0.4; charset=utf-8"  # what generate_latest writes
 RATE_WINDOW = 60.0  # seconds over which batches/s and samples/s gauges are averaged
 
 
@@ -88,10 +89,10 @@ def read_snapshot(r) -> dict | None:
 
 
 # ---------------------------------------------------------------------------------------------
-# the text format
+# the text format, written by prometheus_client from metric families built per request
 
 _FAMILIES = (
-    # name, type, help, snapshot key
+    # name, kind, help, snapshot key
     ("lampyr_batches_pending", "gauge", "Batches planned but not yet queued.", "batches_pending"),
     ("lampyr_batches_queued", "gauge", "Batches queued that no worker has picked up yet.",
      "batches_queued"),
@@ -112,54 +113,56 @@ _FAMILIES = (
     ("lampyr_lease_expiries_total", "counter", "Leases that lapsed: a worker went silent.",
      "lease_expiries"),
 )
+JOB_STATES = ("queued", "running", "paused", "done", "failed", "cancelled")
+HEAD_SILENT_AFTER = 10.0  # s; the head publishes several times a second, so older is a dead head
 
 
-def _escape(value: str) -> str:
-    return str(value).replace("\\", "\\\\").replace("\n", "\\n").replace('"', '\\"')
+def families(snap: dict | None, workers: list[dict], now: float | None = None) -> list:
+    """The metric families for a snapshot (None: no head has published yet) and live workers
+    (as `store.workers` returns them), as prometheus_client metric family objects."""
+    from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 
-
-def _number(x) -> str:
-    if isinstance(x, bool):
-        return "1" if x else "0"
-    if isinstance(x, int):
-        return str(x)
-    return repr(float(x))
+    now = time.time() if now is None else now
+    age = (now - snap["updated"]) if snap else float("inf")
+    out = [GaugeMetricFamily("lampyr_head_up", "1 while the head publishes its numbers.",
+                             value=float(age < HEAD_SILENT_AFTER))]
+    if snap:
+        for name, kind, text, key in _FAMILIES:
+            cls = CounterMetricFamily if kind == "counter" else GaugeMetricFamily
+            out.append(cls(name, text, value=float(snap.get(key, 0))))
+        jobs = GaugeMetricFamily("lampyr_jobs", "Jobs by state.", labels=["state"])
+        for s in JOB_STATES:
+            jobs.add_metric([s], float(snap.get("jobs", {}).get(s, 0)))
+        out.append(jobs)
+    hosts = [w for w in workers if "host" in w]
+    out.append(GaugeMetricFamily("lampyr_workers_online", "Worker hosts whose heartbeat is live.",
+                                 value=float(len(hosts))))
+    out.append(GaugeMetricFamily("lampyr_worker_cores_online", "Cores offered by live workers.",
+                                 value=float(sum(int(w.get("cores", 1)) for w in hosts))))
+    speed = GaugeMetricFamily("lampyr_worker_pixel_samples_per_second",
+                              "Speed of each worker host's batches in flight.", labels=["worker"])
+    for w in workers:
+        speed.add_metric([str(w["name"])], sum(float(s.get("pixel_samples_per_second", 0.0))
+                                               for s in w.get("slots", [])))
+    out.append(speed)
+    return out
 
 
 def exposition(snap: dict | None, workers: list[dict], now: float | None = None) -> str:
-    """Prometheus text for a snapshot (None: no head has published yet) and live workers
-    (as `store.workers` returns them)."""
-    now = time.time() if now is None else now
-    lines = []
+    """Prometheus text (exposition format 0.0.4, written by prometheus_client) for a snapshot
+    and live workers; see `families`."""
+    from prometheus_client.exposition import generate_latest
+    from prometheus_client.registry import CollectorRegistry
 
-    def family(name, kind, text, samples):
-        lines.append(f"# HELP {name} {text}")
-        lines.append(f"# TYPE {name} {kind}")
-        for labels, value in samples:
-            lab = ",".join(f'{k}="{_escape(v)}"' for k, v in labels.items())
-            lines.append(f"{name}{{{lab}}} {_number(value)}" if lab else f"{name} {_number(value)}")
+    fams = families(snap, workers, now)
 
-    age = (now - snap["updated"]) if snap else float("inf")
-    # the head publishes four times a second; a snapshot older than a few seconds is a dead head
-    family("lampyr_head_up", "gauge", "1 while the head publishes its numbers.",
-           [({}, age < 10.0)])
-    if snap:
-        for name, kind, text, key in _FAMILIES:
-            family(name, kind, text, [({}, snap.get(key, 0))])
-        family("lampyr_jobs", "gauge", "Jobs by state.",
-               [({"state": s}, snap.get("jobs", {}).get(s, 0))
-                for s in ("queued", "running", "paused", "done", "failed", "cancelled")])
-    hosts = [w for w in workers if "host" in w]
-    family("lampyr_workers_online", "gauge", "Worker hosts whose heartbeat is live.",
-           [({}, len(hosts))])
-    family("lampyr_worker_cores_online", "gauge", "Cores offered by live workers.",
-           [({}, sum(int(w.get("cores", 1)) for w in hosts))])
-    family("lampyr_worker_pixel_samples_per_second", "gauge",
-           "Speed of each worker host's batches in flight.",
-           [({"worker": w["name"]},
-             sum(float(s.get("pixel_samples_per_second", 0.0)) for s in w.get("slots", [])))
-            for w in workers])
-    return "\n".join(lines) + "\n"
+    class _Once:
+        def collect(self):
+            return fams
+
+    registry = CollectorRegistry(auto_describe=False)
+    registry.register(_Once())
+    return generate_latest(registry).decode()
 
 
 def metrics_app(url: str):
@@ -178,7 +181,7 @@ def metrics_app(url: str):
             start_response("503 Service Unavailable",
                            [("Content-Type", "text/plain; charset=utf-8")])
             return [f"the farm's Redis cannot be read: {err}\n".encode()]
-        start_response("200 OK", [("Content-Type", "text/plain; version=0.0.4; charset=utf-8"),
+        start_response("200 OK", [("Content-Type", CONTENT_TYPE),
                                   ("Content-Length", str(len(body)))])
         return [body]
 
