@@ -6,12 +6,15 @@ renamed), so after a crash it holds either the ranges before a merge or after it
 A batch whose range the file already holds — or overlaps — is dropped: every batch counts once.
 
 File layout: 8 bytes magic `LAMPACC1`, 4 bytes little-endian header length n, n bytes JSON header
-`{"ranges": [[first, count], ...], "w": w, "h": h}`, then `engine.film.to_bytes(film)`.
+`{"ranges": [[first, count], ...], "w": w, "h": h, "noise": e}`, then `engine.film.to_bytes(film)`.
+`noise` (the tile's mean relative noise, see `tile_noise`; absent in files written before it
+existed) lets a head start read only the headers (`read_header`), never the films.
 """
 
 from __future__ import annotations
 
 import json
+import math
 import os
 import struct
 from pathlib import Path
@@ -65,6 +68,44 @@ def write_atomic(path: Path, data: bytes, sync_folder: bool = True, mode: int = 
         fsync_folder(path.parent)
 
 
+def tile_noise(film) -> float | None:
+    """Mean over a tile's pixels of the relative standard error of its luminance
+    (`Film.rel_noise`, what `refine --noise` compares with); None when unknown."""
+    if film is None:
+        return None
+    import numpy as np
+
+    value = float(np.mean(film.rel_noise()))
+    return round(value, 6) if math.isfinite(value) else None
+
+
+_UNKNOWN = object()
+
+
+def read_header(path: Path):
+    """(ranges, noise) of a tile file from its header alone; ([], None) when it does not exist.
+    noise is `_UNKNOWN` for a file written before headers carried it (the caller reads the film)."""
+    try:
+        with open(path, "rb") as f:
+            start = f.read(12)
+            if not start:
+                return [], None
+            if start[:8] != MAGIC or len(start) < 12:
+                raise AccumulatorError(f"{path}: not a lampyr tile accumulator")
+            (n,) = struct.unpack("<I", start[8:12])
+            head = json.loads(f.read(n))
+    except FileNotFoundError:
+        return [], None
+    except (ValueError, OSError) as err:
+        raise AccumulatorError(f"{path}: unreadable tile accumulator ({err})") from None
+    ranges = sorted((int(a), int(c)) for a, c in head["ranges"])
+    return ranges, head.get("noise", _UNKNOWN)
+
+
+def header_noise_known(noise) -> bool:
+    return noise is not _UNKNOWN
+
+
 class TileAccumulator:
     """The merged film of one tile and the sample ranges (first, count) it holds."""
 
@@ -95,10 +136,13 @@ class TileAccumulator:
         film = from_bytes(data[12 + n:])
         return cls(path, head["w"], head["h"], film, head["ranges"])
 
-    def to_bytes(self) -> bytes:
+    def to_bytes(self, noise=_UNKNOWN) -> bytes:
+        """noise: the film's `tile_noise` when the caller has it (else computed here)."""
         from ..engine.film import to_bytes
 
-        head = json.dumps({"ranges": self.ranges, "w": self.w, "h": self.h}).encode()
+        noise = tile_noise(self.film) if noise is _UNKNOWN else noise
+        head = json.dumps({"ranges": self.ranges, "w": self.w, "h": self.h,
+                           "noise": noise}).encode()
         return MAGIC + struct.pack("<I", len(head)) + head + to_bytes(self.film)
 
     def holds(self, first: int, count: int) -> bool:
@@ -118,5 +162,5 @@ class TileAccumulator:
         self.ranges = sorted(self.ranges + [(int(first), int(count))])
         return True
 
-    def save(self, sync_folder: bool = True) -> None:
-        write_atomic(self.path, self.to_bytes(), sync_folder)
+    def save(self, sync_folder: bool = True, noise=_UNKNOWN) -> None:
+        write_atomic(self.path, self.to_bytes(noise), sync_folder)

@@ -1,22 +1,31 @@
-"""Merging batch results into tile accumulators and assembling frame files from them.
+"""The job run: a job's tile accumulators and the single writer of its frame files.
 
-A job's runtime view (`JobRun`) keeps the sample ranges of every tile in memory (read from the
-accumulators at start-up); tile films stay on disk and are read only to merge or to assemble a
-frame. A frame file is rewritten whenever the fewest samples any of its tiles holds grows, so
-the first pass already gives a complete frame and the last batch the final one.
+A job's runtime view (`JobRun`) keeps the sample ranges and noise of every tile in memory, read
+from the accumulators' headers at start-up (films are not read); tile films stay on disk and are
+read only to merge or to assemble a frame. A frame file is rewritten whenever the fewest samples
+any of its tiles holds grows, so the first pass already gives a complete frame and the last batch
+the final one. At start-up a frame file newer than every tile file of its frame counts as
+written (`settle_written`), so a restart does not rewrite old jobs' frames.
+
+Every frame file is written by `write_frame` alone. A frame that cannot be written (an `--out`
+that cannot be made, a full disk) does not stop the head: `write_frames` records the reason as
+the job's error (the job shows `failed`, queues nothing, and `retry` tries again); the tiles on
+disk keep everything merged.
 """
 
 from __future__ import annotations
 
+import logging
 import time
 from collections import deque
 from pathlib import Path
 
-from .accumulator import TileAccumulator, samples_held
+from .accumulator import TileAccumulator, header_noise_known, read_header, samples_held, tile_noise
 from .jobs import JobFolder, JobRecord
 from .planner import plan_batches
-from .progress import tile_noise
 from .protocol import Batch, parse_batch_id
+
+log = logging.getLogger("lampyr.head")
 
 
 class JobRun:
@@ -37,9 +46,12 @@ class JobRun:
         self.noise: dict[tuple[int, int], float | None] = {}  # see progress.py
         for f in self.frames:
             for i, t in enumerate(self.tiles):
-                acc = TileAccumulator.load(self.folder.tile(f, i), t.w, t.h)
-                self.held[(f, i)] = acc.ranges
-                self.noise[(f, i)] = tile_noise(acc.film)
+                path = self.folder.tile(f, i)
+                ranges, noise = read_header(path)
+                if not header_noise_known(noise):  # written before headers kept the noise
+                    noise = tile_noise(TileAccumulator.load(path, t.w, t.h).film)
+                self.held[(f, i)] = ranges
+                self.noise[(f, i)] = noise
         self.dirty: set[int] = set(self.frames)  # frames merged into since progress was published
         self.written: dict[int, int] = {}  # frame → its lowest tile sample count when written
         self.written_sum: dict[int, int] = {}  # frame → samples of all its tiles when written
@@ -63,6 +75,23 @@ class JobRun:
             if part.id not in self.rec.failed
         )
 
+    def save(self) -> None:
+        self.folder.save(self.rec)
+
+    def fail_batch(self, bid: str, text: str) -> None:
+        """Mark a batch failed for good (retry queues it again) and write its frame without it."""
+        self.rec.failed[bid] = text
+        self.save()
+        self.write_frames([parse_batch_id(bid)[1]])
+        log.warning("batch %s failed: %s", bid, text)
+
+    def stop_with_error(self, text: str) -> None:
+        """The whole job stops (nothing more is queued) with `text` as its reason."""
+        if self.rec.error != text:
+            self.rec.error = text
+            self.save()
+            log.error("job %s stopped: %s", self.rec.id, text)
+
     def tile_target(self, frame: int, tile: int) -> int:
         return self.rec.samples + samples_held(self.rec.extra.get(f"{frame}/{tile}", ()))
 
@@ -77,11 +106,12 @@ class JobRun:
         if not acc.add(film, b.first, b.count):
             self.held[(b.frame, b.tile)] = acc.ranges
             return False
-        acc.save(sync_folder)
+        noise = tile_noise(acc.film)  # the film in memory, no reread
+        acc.save(sync_folder, noise)
         self.held[(b.frame, b.tile)] = acc.ranges
         self.seconds[b.frame] = self.seconds.get(b.frame, 0.0) + seconds
         self.samples_merged += t.w * t.h * b.count
-        self.noise[(b.frame, b.tile)] = tile_noise(acc.film)  # the film in memory, no reread
+        self.noise[(b.frame, b.tile)] = noise
         self.dirty.add(b.frame)
         return True
 
@@ -106,31 +136,83 @@ class JobRun:
         return all(samples_held(self.held[(frame, i)]) >= self.tile_target(frame, i)
                    for i in range(len(self.tiles)))
 
+    def frame_totals(self, frame: int) -> tuple[int, int]:
+        """(lowest tile level as `frame_level`, samples of all its tiles)."""
+        return (self.frame_level(frame),
+                sum(samples_held(self.held[(frame, i)]) for i in range(len(self.tiles))))
+
+    def grown(self, frame: int) -> bool:
+        level, total = self.frame_totals(frame)
+        return level > self.written.get(frame, 0) or (
+            self.frame_complete(frame) and total > self.written_sum.get(frame, 0))
+
     def write_frame_if_grown(self, frame: int, force: bool = False) -> Path | None:
         """Rewrite the frame file when its lowest tile sample count grew (or `force`)."""
-        level = self.frame_level(frame)
-        total = sum(samples_held(self.held[(frame, i)]) for i in range(len(self.tiles)))
-        complete = self.frame_complete(frame)
-        grown = level > self.written.get(frame, 0) or (
-            complete and total > self.written_sum.get(frame, 0))
-        if level == 0 or not (force or grown):
+        if self.frame_level(frame) == 0 or not (force or self.grown(frame)):
             return None
+        complete = self.frame_complete(frame)
         if not self.partial_frames and not complete:
             return None
+        # denoised only when complete (its pass done): the intermediate rewrites stay cheap
+        return self.write_frame(frame, final=complete)
+
+    def write_held_frame(self, frame: int) -> Path | None:
+        """The frame with everything its tiles hold, as final (a ready-by time was reached)."""
+        level, total = self.frame_totals(frame)
+        if frame in self.written and self.written_sum.get(frame) == total:
+            return None  # the file already holds all of it
+        return self.write_frame(frame, final=True)
+
+    def write_frame(self, frame: int, final: bool) -> Path:
+        """The one writer of frame files: the tiles' films assembled (missing tiles empty)."""
         from ..engine.film import Film
         from ..frames import write_frame_files
 
+        level, total = self.frame_totals(frame)
         film = Film.zeros(self.shot.height, self.shot.width)
         for i, t in enumerate(self.tiles):
             acc = TileAccumulator.load(self.folder.tile(frame, i), t.w, t.h)
             if acc.film is not None:
                 film.add_into(acc.film, t.y0, t.x0)
-        # denoised only when complete (its pass done): the intermediate rewrites stay cheap
         path = write_frame_files(Path(self.rec.out), self.shot, frame, film,
-                                 self.seconds.get(frame, 0.0), final=complete)
+                                 self.seconds.get(frame, 0.0), final=final)
         self.written[frame] = level
         self.written_sum[frame] = total
         return path
+
+    def write_frames(self, frames, held: bool = False, force: bool = False) -> bool:
+        """Write the frames that grew (held: as `write_held_frame`); an error stops the job with
+        its reason instead of reaching the head's loop. False when a frame could not be written."""
+        for f in frames:
+            try:
+                if held:
+                    self.write_held_frame(f)
+                else:
+                    self.write_frame_if_grown(f, force)
+            except Exception as err:  # noqa: BLE001 — any failure is this job's, not the head's
+                self.stop_with_error(f"cannot write frame {f} into {self.rec.out}: "
+                                     f"{_one_line(err)}")
+                return False
+        return True
+
+    def settle_written(self) -> None:
+        """At start-up: a frame file at least as new as every tile file of its frame holds what
+        they hold, so it is not written again (a tile merged after it was written is newer)."""
+        from ..frames import frame_path
+
+        for f in self.frames:
+            try:
+                at = frame_path(Path(self.rec.out), self.shot.name, f).stat().st_mtime_ns
+            except OSError:
+                continue
+            newest = 0
+            for i in range(len(self.tiles)):
+                try:
+                    newest = max(newest, self.folder.tile(f, i).stat().st_mtime_ns)
+                except FileNotFoundError:
+                    pass
+            if newest and at >= newest:
+                self.written[f], self.written_sum[f] = self.frame_totals(f)
 
     def frames_done(self) -> int:
         return sum(1 for f in self.frames if self.frame_complete(f) and f in self.written)
@@ -180,3 +262,8 @@ def _overrides(rec: JobRecord) -> dict:
         o["frames"] = tuple(o["frames"])
     o["samples"] = rec.samples
     return o
+
+
+def _one_line(err: BaseException) -> str:
+    text = str(err).strip().splitlines()
+    return f"{type(err).__name__}: {text[0]}" if text else type(err).__name__

@@ -1,13 +1,29 @@
 """The head's commands (from `control`): submit, retry, pause, resume, cancel, refine, priority.
 
-A mix-in of `Head`: each `cmd_<op>(**args)` carries out one JSON command a client queued.
+Each command is a plain function `op(ctx, **args)` registered in COMMANDS under its name; the
+JSON a client queues (`store.send_command`) is `{"op": name, **args}`. Adding a command is adding
+one function here.
+
+Durability: `take()` moves a command from `control` to `control:processing` (LMOVE), carries it
+out, and only then removes it; a head killed in between finds it again at start-up (`replay()`
+puts it back in front of `control`). So every command is idempotent: carried out twice, it
+leaves the farm as once (submit skips a job it knows, refine raises to an absolute sample count,
+retry and the others set states).
+
+Errors: a command that fails is logged and recorded under `command-errors` (job → op, error,
+time); the head publishes it in the job's status (`command_error`) until a later command on that
+job succeeds. A submit that fails leaves the job's status `failed` with the reason.
 """
 
 from __future__ import annotations
 
+import json
 import logging
 import time
+from dataclasses import dataclass
+from pathlib import Path
 
+from ..errors import LampyrError
 from . import protocol as P
 from .accumulator import write_atomic
 from .assembler import JobRun
@@ -15,129 +31,268 @@ from .jobs import JobFolder, JobRecord
 
 log = logging.getLogger("lampyr.head")
 
+# seconds per sample per pixel assumed for a submit that came without a layout (an old client):
+# the probe render belongs to the submitter (submit.py), never to the head's loop (rule of thumb:
+# a simple scene on one core of a desktop PC)
+FALLBACK_COST = 2e-6
 
-class JobCommands:
-    """Needs from the host class: state, r, jobs, leases, partial_frames."""
 
-    def cmd_submit(self, job: str, bundle: str, shot: str, overrides: dict, out: str | None,
-                   priority: int = 0, tile_size: int | None = None,
-                   batch_samples: int | None = None, submitted: float | None = None,
-                   ready_by: float | None = None) -> None:
-        from ..engine.shot import load_shot
-        from ..worker.cache import FileCache
-        from .planner import choose_layout, first_pass_samples, probe_cost, sample_ranges
-        from .transfer import read_manifest, safe_name
+class CommandError(LampyrError):
+    """A command the head cannot carry out (an unknown job, a bad argument, an --out it cannot
+    make)."""
 
-        if job in self.jobs:
+
+@dataclass
+class Context:
+    """What commands may touch: the state folder, Redis, the job table (job id → JobRun), the
+    dispatcher (to drop or skip a job's work) and how frames are written."""
+
+    state: Path
+    r: object
+    runs: dict
+    dispatch: object
+    partial_frames: bool = True
+
+
+COMMANDS: dict = {}
+
+
+def command(fn):
+    COMMANDS[fn.__name__.rstrip("_")] = fn
+    return fn
+
+
+def _run(ctx: Context, job: str) -> JobRun:
+    run = ctx.runs.get(job)
+    if run is None:
+        raise CommandError(f"no job {job} on this head")
+    return run
+
+
+# -- the commands ------------------------------------------------------------------------------
+
+@command
+def submit(ctx: Context, job: str, bundle: str, shot: str, overrides: dict, out: str | None,
+           priority: int = 0, tile_size: int | None = None, batch_samples: int | None = None,
+           submitted: float | None = None, ready_by: float | None = None) -> None:
+    from ..engine.shot import load_shot
+    from ..worker.cache import FileCache
+    from .planner import choose_layout, first_pass_samples, sample_ranges
+    from .transfer import read_manifest, safe_name
+
+    if job in ctx.runs:
+        return
+    folder = JobFolder(ctx.state, job)
+    if out is not None:
+        check_out(out)
+    if not (folder.root / "scene.json").exists():
+        # the scene's files, linked from the head's file cache; the manifest beside them
+        # lets the head put back into Redis whatever it loses (Head.hold_files)
+        folder.root.mkdir(parents=True, exist_ok=True)
+        _, raw = read_manifest(ctx.r, bundle)
+        FileCache().materialise(ctx.r, bundle, dest=folder.bundle)
+        write_atomic(folder.root / "scene.json", raw)
+    spec = load_shot(folder.bundle.joinpath(*safe_name(shot).parts))
+    o = dict(overrides)
+    if "frames" in o:
+        o["frames"] = tuple(o["frames"])
+    if o:
+        spec = spec.with_overrides(**o)
+    if tile_size is None or batch_samples is None:
+        layout = choose_layout(spec.width, spec.height, spec.samples, FALLBACK_COST)
+        tile_size = tile_size or layout.tile_size
+        batch_samples = batch_samples or layout.batch_samples
+    ranges = sample_ranges(0, spec.samples, batch_samples,
+                           first_pass_samples(spec.samples, batch_samples))
+    rec = JobRecord(id=job, name=spec.name, bundle=bundle, shot=shot, overrides=overrides,
+                    out=out or str(folder.root / "frames"), priority=int(priority),
+                    submitted=submitted or time.time(), tile_size=int(tile_size),
+                    batch_samples=int(batch_samples), samples=int(spec.samples), ranges=ranges,
+                    ready_by=None if ready_by is None else float(ready_by))
+    folder.save(rec)
+    ctx.runs[job] = JobRun(ctx.state, rec, ctx.partial_frames)
+    ctx.r.zadd(P.K_JOBS, {job: rec.submitted})
+    log.info("job %s: %d batches, tiles %d px, %d samples per batch", job,
+             len(ctx.runs[job].pending), tile_size, batch_samples)
+
+
+def check_out(out: str) -> None:
+    """The frames folder exists or can be made, here; CommandError naming it otherwise."""
+    try:
+        Path(out).mkdir(parents=True, exist_ok=True)
+    except OSError as err:
+        raise CommandError(f"--out {out}: the head cannot make this folder "
+                           f"({err.strerror or err}); expected a folder it can write") from None
+
+
+@command
+def retry(ctx: Context, job: str, frames: list | None = None, tile: int | None = None) -> None:
+    """Queue failed batches again: all of the job, of frames [lo, hi], or (with `tile`) of that
+    tile of those frames only; a job stopped by an error tries again."""
+    run = _run(ctx, job)
+    lo, hi = (int(frames[0]), int(frames[1])) if frames else (-1, 1 << 30)
+    again = [bid for bid in run.rec.failed if lo <= P.parse_batch_id(bid)[1] <= hi
+             and (tile is None or P.parse_batch_id(bid)[2] == int(tile))]
+    for bid in again:
+        del run.rec.failed[bid]
+    if again:
+        ctx.r.hdel(P.K_ATTEMPTS, *again)
+    stopped = run.rec.error is not None
+    run.rec.error = None
+    run.rec.ended = None
+    run.save()
+    if stopped:
+        run.write_frames(run.frames)  # the frames that could not be written before
+    run.replan()
+    ctx.dispatch.skip_in_flight(run)
+
+
+@command
+def pause(ctx: Context, job: str) -> None:
+    run = _run(ctx, job)
+    run.rec.paused = True
+    run.save()
+
+
+@command
+def resume(ctx: Context, job: str) -> None:
+    run = _run(ctx, job)
+    run.rec.paused = False
+    run.save()
+
+
+@command
+def priority(ctx: Context, job: str, priority: int) -> None:
+    run = _run(ctx, job)
+    try:
+        run.rec.priority = int(priority)
+    except (TypeError, ValueError):
+        raise CommandError(f"priority: {priority!r} is not a whole number") from None
+    run.save()
+
+
+@command
+def cancel(ctx: Context, job: str) -> None:
+    run = _run(ctx, job)
+    run.rec.cancelled = True
+    run.save()
+    ctx.dispatch.drop_job(run)
+
+
+@command
+def refine(ctx: Context, job: str, samples: int, noise: float | None = None,
+           frames: list | None = None) -> None:
+    """Add samples up to `samples` per pixel, in the job's batch size: to every tile, or with a
+    `noise` goal only to tiles whose relative standard error is above it; with `frames` (a list
+    of frame numbers) only to the tiles of those frames."""
+    from .planner import sample_ranges
+
+    run = _run(ctx, job)
+    samples = int(samples)
+    if noise is None and frames is None:
+        if samples <= run.rec.samples:
             return
-        folder = JobFolder(self.state, job)
-        if not (folder.root / "scene.json").exists():
-            # the scene's files, linked from the head's file cache; the manifest beside them
-            # lets the head put back into Redis whatever it loses (Head._hold_files)
-            folder.root.mkdir(parents=True, exist_ok=True)
-            _, raw = read_manifest(self.r, bundle)
-            FileCache().materialise(self.r, bundle, dest=folder.bundle)
-            write_atomic(folder.root / "scene.json", raw)
-        spec = load_shot(folder.bundle.joinpath(*safe_name(shot).parts))
-        o = dict(overrides)
-        if "frames" in o:
-            o["frames"] = tuple(o["frames"])
-        if o:
-            spec = spec.with_overrides(**o)
-        if tile_size is None or batch_samples is None:
-            layout = choose_layout(spec.width, spec.height, spec.samples, probe_cost(spec))
-            tile_size = tile_size or layout.tile_size
-            batch_samples = batch_samples or layout.batch_samples
-        ranges = sample_ranges(0, spec.samples, batch_samples,
-                               first_pass_samples(spec.samples, batch_samples))
-        rec = JobRecord(id=job, name=spec.name, bundle=bundle, shot=shot, overrides=overrides,
-                        out=out or str(folder.root / "frames"), priority=int(priority),
-                        submitted=submitted or time.time(), tile_size=int(tile_size),
-                        batch_samples=int(batch_samples), samples=int(spec.samples),
-                        ranges=ranges,
-                        ready_by=None if ready_by is None else float(ready_by))
-        folder.save(rec)
-        self.jobs[job] = JobRun(self.state, rec, self.partial_frames)
-        self.r.zadd(P.K_JOBS, {job: rec.submitted})
-        log.info("job %s: %d batches, tiles %d px, %d samples per batch", job,
-                 len(self.jobs[job].pending), tile_size, batch_samples)
-
-    def _save(self, run: JobRun) -> None:
-        run.folder.save(run.rec)
-
-    def cmd_retry(self, job: str, frames: list | None = None, tile: int | None = None) -> None:
-        """Queue failed batches again: all of the job, of frames [lo, hi], or (with `tile`)
-        of that tile of those frames only."""
-        run = self.jobs[job]
-        lo, hi = frames if frames else (-1, 1 << 30)
-        again = [bid for bid in run.rec.failed if lo <= P.parse_batch_id(bid)[1] <= hi
-                 and (tile is None or P.parse_batch_id(bid)[2] == int(tile))]
-        for bid in again:
-            del run.rec.failed[bid]
-        if again:
-            self.r.hdel(P.K_ATTEMPTS, *again)
-        self._save(run)
-        run.replan()
-        self._drop_inflight_from_pending(run)
-
-    def cmd_pause(self, job: str) -> None:
-        self.jobs[job].rec.paused = True
-        self._save(self.jobs[job])
-
-    def cmd_resume(self, job: str) -> None:
-        self.jobs[job].rec.paused = False
-        self._save(self.jobs[job])
-
-    def cmd_priority(self, job: str, priority: int) -> None:
-        self.jobs[job].rec.priority = int(priority)
-        self._save(self.jobs[job])
-
-    def cmd_cancel(self, job: str) -> None:
-        run = self.jobs[job]
-        run.rec.cancelled = True
-        self._save(run)
-        run.pending.clear()
-        gone = [bid for bid, e in self.leases.table.items() if e.batch.job == job]
-        for bid in gone:
-            self.leases.pop(bid)
-        if gone:
-            self.r.hdel(P.K_INFLIGHT, *gone)
-
-    def cmd_refine(self, job: str, samples: int, noise: float | None = None,
-                   frames: list | None = None) -> None:
-        """Add samples up to `samples` per pixel, in the job's batch size: to every tile, or
-        with a `noise` goal only to tiles whose relative standard error is above it; with
-        `frames` (a list of frame numbers) only to the tiles of those frames."""
-        from .planner import sample_ranges
-
-        run = self.jobs[job]
-        if noise is None and frames is None:
-            if samples <= run.rec.samples:
-                return
-            run.rec.ranges = list(run.rec.ranges) + sample_ranges(run.rec.samples, samples,
-                                                                  run.rec.batch_samples)
-            run.rec.samples = int(samples)
+        run.rec.ranges = list(run.rec.ranges) + sample_ranges(run.rec.samples, samples,
+                                                              run.rec.batch_samples)
+        run.rec.samples = samples
+    else:
+        if noise is not None:
+            tiles = run.noisy_tiles(float(noise))
         else:
-            if noise is not None:
-                tiles = run.noisy_tiles(noise)
-            else:
-                tiles = [(f, i) for f in run.frames for i in range(len(run.tiles))]
-            if frames is not None:
-                chosen = {int(f) for f in frames}
-                tiles = [(f, i) for f, i in tiles if f in chosen]
-            for f, i in tiles:
-                key = f"{f}/{i}"
-                have = run.tile_target(f, i)
-                if samples > have:
-                    run.rec.extra[key] = list(run.rec.extra.get(key, [])) + sample_ranges(
-                        have, samples, run.rec.batch_samples)
-        self._save(run)
-        self.jobs[job] = JobRun(self.state, run.rec, self.partial_frames)
-        self.jobs[job].written = dict(run.written)
-        self.jobs[job].written_sum = dict(run.written_sum)
-        self._drop_inflight_from_pending(self.jobs[job])
+            tiles = [(f, i) for f in run.frames for i in range(len(run.tiles))]
+        if frames is not None:
+            chosen = {int(f) for f in frames}
+            tiles = [(f, i) for f, i in tiles if f in chosen]
+        for f, i in tiles:
+            key = f"{f}/{i}"
+            have = run.tile_target(f, i)
+            if samples > have:
+                run.rec.extra[key] = list(run.rec.extra.get(key, [])) + sample_ranges(
+                    have, samples, run.rec.batch_samples)
+    run.rec.ended = None
+    run.save()
+    again = JobRun(ctx.state, run.rec, ctx.partial_frames)
+    again.written = dict(run.written)
+    again.written_sum = dict(run.written_sum)
+    ctx.runs[job] = again
+    ctx.dispatch.skip_in_flight(again)
 
-    def _drop_inflight_from_pending(self, run: JobRun) -> None:
-        keep = [b for b in run.pending if b.id not in self.leases]
-        run.pending.clear()
-        run.pending.extend(keep)
+
+# -- taking commands ---------------------------------------------------------------------------
+
+def replay(r) -> int:
+    """Start-up: commands a killed head was carrying out go back in front of `control`, in
+    their order."""
+    n = 0
+    while r.lmove(P.K_CONTROL_PROCESSING, P.K_CONTROL, "RIGHT", "LEFT") is not None:
+        n += 1
+    if n:
+        log.info("carrying out again %d command(s) a stopped head had taken", n)
+    return n
+
+
+def take(ctx: Context, limit: int = 100) -> bool:
+    """Carry out up to `limit` queued commands, each taken durably (see the module docstring)."""
+    r = ctx.r
+    n = 0
+    while n < limit:
+        raw = r.lmove(P.K_CONTROL, P.K_CONTROL_PROCESSING, "LEFT", "RIGHT")
+        if raw is None:
+            break
+        n += 1
+        handle(ctx, raw)
+        r.lrem(P.K_CONTROL_PROCESSING, 1, raw)
+    return n > 0
+
+
+def handle(ctx: Context, raw: bytes) -> None:
+    """Carry out one command; its error is recorded, never raised."""
+    try:
+        cmd = json.loads(raw)
+        op = cmd.pop("op")
+        job = cmd.get("job")
+    except (ValueError, KeyError, AttributeError, TypeError):
+        log.error("command not understood, dropped: %r", raw[:200])
+        return
+    fn = COMMANDS.get(op)
+    try:
+        if fn is None:
+            raise CommandError(f"unknown command {op!r}")
+        fn(ctx, **cmd)
+    except Exception as err:  # noqa: BLE001 — no command may stop the head
+        text = _one_line(err)
+        log.error("command %s failed: %s", raw[:200], text)
+        if isinstance(job, str):
+            record_error(ctx, job, str(op), text)
+        return
+    if isinstance(job, str):
+        ctx.r.hdel(P.K_COMMAND_ERRORS, job)
+
+
+def record_error(ctx: Context, job: str, op: str, text: str) -> None:
+    entry = {"op": op, "error": text, "at": round(time.time(), 1)}
+    ctx.r.hset(P.K_COMMAND_ERRORS, job, json.dumps(entry))
+    if job not in ctx.runs and ctx.r.exists(P.k_job(job)):
+        # a submit that failed: the status its client wrote says so (the head publishes no
+        # status for a job it does not run, so this one stays)
+        ctx.r.hset(P.k_job(job), mapping={"state": json.dumps("failed"),
+                                           "error": json.dumps(f"{op}: {text}"),
+                                           "command_error": json.dumps(entry)})
+
+
+def errors(r) -> dict[str, dict]:
+    """job → its recorded command error."""
+    out = {}
+    for k, v in r.hgetall(P.K_COMMAND_ERRORS).items():
+        try:
+            out[k.decode()] = json.loads(v)
+        except ValueError:
+            continue
+    return out
+
+
+def _one_line(err: BaseException) -> str:
+    if isinstance(err, LampyrError):
+        return str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__
+    text = str(err).strip().splitlines()
+    return f"{type(err).__name__}: {text[0]}" if text else type(err).__name__

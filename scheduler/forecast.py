@@ -18,7 +18,6 @@ touches Redis.
 
 from __future__ import annotations
 
-import json
 from collections import deque
 from dataclasses import dataclass, field
 
@@ -203,21 +202,15 @@ class Forecaster:
                            self.default_speed(now))
 
 
-def read_hosts(r, prefix_host: str, prefix_slot: str):
+def read_hosts(r):
     """([(name, cores, windows)], [(host, speed)]) from the live heartbeats and slot records."""
-    hosts, speeds = [], []
-    host_keys = list(r.scan_iter(match=prefix_host + "*", count=500))
-    slot_keys = list(r.scan_iter(match=prefix_slot + "*", count=500))
-    # one MGET each: the head looks twice a second, and a farm has hundreds of slots
-    for k, raw in zip(host_keys, r.mget(host_keys) if host_keys else []):
-        if raw:
-            info = json.loads(raw)
-            hosts.append((info.get("name", k.decode()[len(prefix_host):]),
-                          int(info.get("cores") or 1), info.get("windows") or ()))
-    for raw in r.mget(slot_keys) if slot_keys else []:
-        if raw:
-            slot = json.loads(raw)
-            speed = float(slot.get("pixel_samples_per_second") or 0.0)
-            if speed > 0:
-                speeds.append((slot["worker"], speed))
+    from . import heartbeats
+
+    hosts = [(info["name"], int(info.get("cores") or 1), info.get("windows") or ())
+             for info in heartbeats.hosts(r)]
+    speeds = []
+    for slot in heartbeats.slots(r):
+        speed = float(slot.get("pixel_samples_per_second") or 0.0)
+        if speed > 0:
+            speeds.append((slot["worker"], speed))
     return hosts, speeds

@@ -1,18 +1,33 @@
-"""The head: one loop that takes commands, merges results, keeps leases and queues batches.
+"""The head: start-up, reconcile, the loop, and publishing status. The work is done by owners:
+
+| module | owns |
+|---|---|
+| `commands.py` | the commands from `control`, taken durably (plain functions, one per command) |
+| `results.py` | the workers' notices: take, guard, merge, take back a part |
+| `dispatch.py` | queueing batches, tickets, leases, reaping, dropping a job's work |
+| `assembler.py` | a job run: its tile accumulators and the single writer of its frames |
+| `ready_by_keeper.py` | ready-by times: forecast, hold back, stop |
+| `scenes.py` | the scenes' files in Redis: held while needed, deleted when not |
+| `progress.py`, `history.py`, `metrics.py` | what is published besides the job status |
 
 Each turn of `Head.step()`:
-1. carry out commands from `control` (submit, retry, pause, resume, cancel, refine);
-2. merge batch results: a notice is moved to `results:processing`, its film folded into the tile
-   accumulator on disk, and only then removed — a head killed mid-merge finds it again;
-3. queue again the batches whose lease expired, or that raised (up to the attempt limit);
-4. queue batches, by job priority then age, keeping only a few more queued than there are
-   worker cores (Redis has no real priorities, so the head holds the order itself);
-5. publish each job's status.
+1. carry out commands (commands.take);
+2. merge results (results.take);
+3. queue again the batches whose lease expired (dispatch.reap);
+4. the ready-by keeper's turn;
+5. queue batches (dispatch.fill), by job priority then age;
+6. keep the scenes' files alive; publish each job's status.
 
 At start-up (and after Redis comes back from a restart) `reconcile()` makes Redis agree with the
 disk: what the accumulators hold is done; every other batch is pending, and any batch Redis still
 lists as queued but not leased is queued again under a new ticket (the old message, if it still
-exists, is then skipped by its worker).
+exists, is then skipped by its worker). Commands and notices a killed head was handling are taken
+again; notices it cannot read are set aside with the reason; a job that cannot be loaded shows as
+`failed` with the reason. Nothing a client or a worker sends can stop the loop.
+
+Finished jobs fold away after `archive_after` seconds: their record becomes `archived.json` (their
+frames and tiles stay on disk), the head stops loading and publishing them, and their last status
+stays in Redis with `archived: true`.
 """
 
 from __future__ import annotations
@@ -23,41 +38,39 @@ import secrets
 import time
 from pathlib import Path
 
+from . import commands
 from . import protocol as P
 from .accumulator import write_atomic
 from .assembler import JobRun
-from .commands import JobCommands
-from .ready_by_keeper import ReadyByKeeper
+from .dispatch import Dispatcher, make_sender
 from .history import HistoryRecorder
 from .jobs import JobFolder, list_jobs
-from .leases import LeaseKeeper
 from .metrics import HeadCounters
 from .metrics import publish as publish_metrics
 from .metrics import snapshot as metrics_snapshot
 from .progress import ProgressPublisher
-from .submit import submit_request  # noqa: F401  (the client side of `cmd_submit`)
+from .ready_by_keeper import ReadyByKeeper
+from .results import Results, set_aside_undecodable
+from .scenes import SceneKeeper
+from .submit import submit_request  # noqa: F401  (the client side of `commands.submit`)
 
 log = logging.getLogger("lampyr.head")
 
-
-def make_sender(url: str):
-    """A Celery app used only to send TASK_RENDER messages (no result backend)."""
-    from celery import Celery
-
-    app = Celery("lampyr-head", set_as_current=False)
-    app.conf.update(P.celery_settings(url))
-    return app
+ENDED = ("done", "failed", "cancelled")
+ARCHIVE_AFTER = 30 * 24 * 3600.0  # seconds after its end a job folds into the archive
 
 
-class Head(JobCommands):
+class Head:
     """Runs a farm whose state lives under `state`; `url` is the Redis to use.
 
     lease_seconds: how long a silent worker keeps its batches; max_attempts: starts of a batch
-    (crashes, lost leases, errors) before it is marked failed.
+    (crashes, lost leases, errors) before it is marked failed; archive_after: seconds after its
+    end a job folds away (None: never).
     """
 
     def __init__(self, state: Path, url: str, lease_seconds: float = 120.0, max_attempts: int = 3,
-                 redis_server=None, partial_frames: bool = True):
+                 redis_server=None, partial_frames: bool = True,
+                 archive_after: float | None = ARCHIVE_AFTER):
         from .store import connect
 
         self.state = Path(state)
@@ -66,22 +79,24 @@ class Head(JobCommands):
         self.max_attempts = int(max_attempts)
         self.redis_server = redis_server
         self.partial_frames = partial_frames  # False: a frame file appears only when complete
+        self.archive_after = archive_after
         self.r = connect(url)
-        self.sender = make_sender(url)
         self.jobs: dict[str, JobRun] = {}
-        self.leases = LeaseKeeper()
-        self.tickets: dict[str, int] = {}
-        self.epoch = None
-        self._status_at = 0.0
-        self._reap_at = 0.0
-        self._epoch_at = 0.0
-        self._cores = (0.0, 0)
+        self.broken: dict[str, str] = {}  # job → why it could not be loaded at start
         self.metrics = HeadCounters()
-        self.ready_by = ReadyByKeeper(self)  # forecasts, holds back, stops at ready-by times
+        self.scenes = SceneKeeper(self.r, self.jobs, self._busy_jobs)
+        self.dispatcher = Dispatcher(self.r, make_sender(url), self.jobs, max_attempts,
+                                     self.metrics, self.scenes.hold)
+        self.results = Results(self.r, self.jobs, self.dispatcher, self.metrics)
+        self.commands = commands.Context(self.state, self.r, self.jobs, self.dispatcher,
+                                         partial_frames)
+        self.ready_by = ReadyByKeeper(self.jobs, self.dispatcher, self.r)
         self.progress = ProgressPublisher()  # per-frame / per-tile summary for the web page
         self.history = HistoryRecorder()  # throughput per minute, workers last seen
-        self._held: dict[str, float] = {}  # job → when its scene's files were last held
-        self._hold_at = 0.0
+        self.epoch = None
+        self._status_at = 0.0
+        self._epoch_at = 0.0
+        self._fold_at = 0.0
 
     # -- start-up ---------------------------------------------------------------------------
 
@@ -92,12 +107,17 @@ class Head(JobCommands):
         for job in list_jobs(self.state):
             try:
                 self.jobs[job] = JobRun(self.state, JobFolder(self.state, job).load(),
-                                      self.partial_frames)
+                                        self.partial_frames)
             except Exception as err:  # a broken job must not keep the farm down
-                log.error("job %s cannot be resumed: %s", job, err)
+                reason = str(err).strip().splitlines()
+                self.broken[job] = (f"cannot be resumed: {type(err).__name__}: "
+                                    f"{reason[0] if reason else ''}")
+                log.error("job %s %s", job, self.broken[job])
         for run in self.jobs.values():
-            for f in run.frames:
-                run.write_frame_if_grown(f)
+            run.settle_written()  # frames already on disk are not written again
+            run.write_frames(run.frames)
+        set_aside_undecodable(self.r)
+        commands.replay(self.r)
         self.reconcile()
 
     def reconcile(self) -> None:
@@ -112,35 +132,15 @@ class Head(JobCommands):
         r.hset(P.K_CONFIG, mapping={"lease_seconds": self.lease_seconds,
                                     "max_attempts": self.max_attempts})
         # notices a killed head was merging go back in front of the queue
-        while r.lmove(P.K_PROCESSING, P.K_RESULTS, "RIGHT", "RIGHT") is not None:
+        while r.lmove(P.K_PROCESSING, P.K_RESULTS, "RIGHT", "LEFT") is not None:
             pass
-        queued = {k.decode(): int(v) for k, v in r.hgetall(P.K_INFLIGHT).items()}
-        for bid, ticket in queued.items():
-            self.tickets[bid] = max(self.tickets.get(bid, 0), ticket)
-        self.leases = LeaseKeeper(self.leases.backstop)
         for run in self.jobs.values():
             run.replan()
             r.zadd(P.K_JOBS, {run.rec.id: run.rec.submitted})
-        pipe = r.pipeline(transaction=False)
-        for bid in queued:
-            pipe.exists(P.k_lease(bid))
-        live = {bid for bid, alive in zip(queued, pipe.execute()) if alive}
         # a Redis that lost its data lost the scenes' files too: held again (and put back from
         # the job folders) before the next batch of each job is queued
-        self._held.clear()
-        for run in self.jobs.values():
-            keep = []
-            for b in run.pending:
-                if b.id in live and not run.rec.cancelled:
-                    self.leases.add(b, queued[b.id])
-                    self.leases.get(b.id).leased = True
-                else:
-                    keep.append(b)
-            run.pending.clear()
-            run.pending.extend(keep)
-        stale = [bid for bid in queued if bid not in self.leases]
-        if stale:
-            r.hdel(P.K_INFLIGHT, *stale)
+        self.scenes.held.clear()
+        self.dispatcher.restore()
         self.publish(force=True)
 
     # -- the loop ---------------------------------------------------------------------------
@@ -167,6 +167,10 @@ class Head(JobCommands):
                 down = True
                 time.sleep(0.5)
                 continue
+            except Exception:  # noqa: BLE001 — a fault of the head's own: logged, never a loop
+                log.exception("the head's turn failed; going on")
+                time.sleep(1.0)
+                continue
             if not busy:
                 time.sleep(idle)
 
@@ -186,250 +190,45 @@ class Head(JobCommands):
         self.publish()
         return busy
 
-    # -- scene files ------------------------------------------------------------------------
-
-    def hold_files(self, every: float = 60.0) -> None:
-        """Keep alive in Redis the files of every job with work left (transfer.py: keys live
-        P.FILE_TTL after their last renewal, so a finished job's files leave by themselves)."""
-        now = time.monotonic()
-        if now - self._hold_at < every:
-            return
-        self._hold_at = now
-        busy = {e.batch.job for e in self.leases.table.values()}
-        for run in list(self.jobs.values()):
-            if not run.rec.cancelled and (run.pending or run.rec.id in busy):
-                self._hold_files(run)
-
-    def _hold_files(self, run: JobRun) -> None:
-        """Renew the job's scene keys at most every P.FILE_REFRESH seconds, putting back from
-        the job folder any that Redis lost; a failure is logged (its batches then fail with the
-        worker's message) and never stops the head."""
-        from .transfer import TransferError, hold
-
-        now = time.monotonic()
-        if now - self._held.get(run.rec.id, -1e18) < P.FILE_REFRESH:
-            return
-        self._held[run.rec.id] = now
-        try:
-            back = hold(self.r, (run.folder.root / "scene.json").read_bytes(), run.folder.bundle)
-        except (OSError, TransferError) as err:
-            log.error("job %s: cannot keep its scene's files in Redis: %s", run.rec.id, err)
-            return
-        if back:
-            log.warning("job %s: put back %d bytes of its scene Redis had lost", run.rec.id, back)
-
-    # -- commands ---------------------------------------------------------------------------
+    # -- the owners' entry points (also what tests drive) -------------------------------------
 
     def take_commands(self, limit: int = 100) -> bool:
-        n = 0
-        while n < limit:
-            raw = self.r.lpop(P.K_CONTROL)
-            if raw is None:
-                break
-            n += 1
-            cmd = json.loads(raw)
-            try:
-                getattr(self, "cmd_" + cmd.pop("op"))(**cmd)
-            except Exception as err:
-                log.error("command %s failed: %s", raw[:200], err)
-                job = cmd.get("job")
-                if job:
-                    self.r.hset(P.k_job(job), mapping={"state": json.dumps("failed"),
-                                                       "error": json.dumps(str(err))})
-                    self.r.zadd(P.K_JOBS, {job: time.time()})
-        return n > 0
+        return commands.take(self.commands, limit)
 
-    # -- results ----------------------------------------------------------------------------
+    def command(self, op: str, **args) -> None:
+        """Carry out one command now (as if taken from `control`); errors are raised."""
+        commands.COMMANDS[op](self.commands, **args)
 
     def take_results(self, limit: int = 256) -> int:
-        """Merge up to `limit` notices as one group commit: every tile file is written and
-        fsynced, their folders fsynced once, frames rewritten, and only then are the notices
-        removed from `results:processing` (a crash before that replays them; replays drop)."""
-        from ..engine.film import from_bytes
-        from .accumulator import fsync_folder
-
-        r = self.r
-        pipe = r.pipeline(transaction=False)
-        for _ in range(limit):
-            pipe.lmove(P.K_RESULTS, P.K_PROCESSING, "LEFT", "RIGHT")
-        raws = [raw for raw in pipe.execute() if raw is not None]
-        if not raws:
-            return 0
-        notes = [json.loads(raw) for raw in raws]
-        pipe = r.pipeline(transaction=False)
-        for note in notes:
-            pipe.get(P.k_result(note["batch"], int(note["ticket"])))
-        blobs = pipe.execute()
-        folders, frames, finished = set(), set(), []
-        for note, data in zip(notes, blobs):
-            bid, ticket = note["batch"], int(note["ticket"])
-            job, frame = P.parse_batch_id(bid)[:2]
-            run = self.jobs.get(job)
-            if run is None or run.rec.cancelled:
-                continue
-            entry = self.leases.get(bid)
-            if note["kind"] == "partial":
-                taken, merged = self._take_back(run, entry, ticket, note, data)
-                if merged:
-                    folders.add(run.folder.tile(entry.batch.frame, entry.batch.tile).parent)
-                    frames.add((job, frame))
-                if taken:
-                    finished.append(bid)
-                continue
-            if note["kind"] != "result":
-                self._on_error(run, bid, ticket, note["error"])
-                continue
-            b = entry.batch if entry else _batch_of(run, bid)
-            if data is not None and b is not None:
-                if run.merge(b, from_bytes(data), note.get("seconds", 0.0), sync_folder=False):
-                    self.metrics.merged(b.w * b.h * b.count)
-                    folders.add(run.folder.tile(b.frame, b.tile).parent)
-                    frames.add((job, frame))
-                self.leases.pop(bid)
-                finished.append(bid)
-            elif data is None and entry is not None and entry.ticket == ticket:
-                self._requeue(entry.batch)  # the result expired or was lost
-        for folder in folders:
-            fsync_folder(folder)
-        for job, frame in sorted(frames):
-            self.jobs[job].write_frame_if_grown(frame)
-        pipe = r.pipeline(transaction=False)
-        if finished:
-            pipe.hdel(P.K_INFLIGHT, *finished)
-        for raw, note in zip(raws, notes):
-            pipe.lrem(P.K_PROCESSING, 1, raw)
-            pipe.delete(P.k_result(note["batch"], int(note["ticket"])))
-        pipe.execute()
-        return len(raws)
-
-    def _take_back(self, run: JobRun, entry, ticket: int, note: dict, data) -> tuple[bool, bool]:
-        """A batch handed back part-way: merge the samples [first, first + done) it holds and
-        queue the rest first. Returns (taken, merged). The notice of a dispatch the head has
-        replaced is skipped whole: the newer dispatch renders the whole batch."""
-        from dataclasses import replace
-
-        from ..engine.film import from_bytes
-
-        if entry is None or entry.ticket != ticket:
-            return False, False
-        b = entry.batch
-        done = max(0, min(int(note.get("done", 0)), b.count))
-        if done and data is None:  # the part expired or was lost: the whole batch again
-            self._requeue(b)
-            return False, False
-        part = replace(b, count=done)
-        merged = bool(done) and run.merge(part, from_bytes(data), note.get("seconds", 0.0),
-                                          sync_folder=False)
-        if merged:
-            self.metrics.merged(b.w * b.h * done)
-        self.leases.pop(b.id)
-        if done < b.count:
-            run.pending.appendleft(replace(b, first=b.first + done, count=b.count - done))
-        log.info("batch %s handed back by %s with %d of %d samples", b.id,
-                 note.get("worker", "?"), done, b.count)
-        return True, merged
-
-    def _finish(self, bid: str) -> None:
-        self.leases.pop(bid)
-        self.r.hdel(P.K_INFLIGHT, bid)
-
-    def _on_error(self, run: JobRun, bid: str, ticket: int, error: str) -> None:
-        entry = self.leases.get(bid)
-        if entry is None or entry.ticket != ticket or run.is_done(entry.batch):
-            return  # a message the head had already replaced
-        self.metrics.batch_errors += 1
-        attempts = int(self.r.hget(P.K_ATTEMPTS, bid) or 0)
-        if attempts >= self.max_attempts:
-            self._finish(bid)
-            self.metrics.batches_failed += 1
-            run.rec.failed[bid] = f"{error} (after {attempts} attempt(s))"
-            self._save(run)
-            run.write_frame_if_grown(P.parse_batch_id(bid)[1])  # without that tile, if need be
-            log.warning("batch %s failed: %s", bid, error)
-        else:
-            self._requeue(entry.batch)
-
-    # -- leases and dispatch ----------------------------------------------------------------
+        return self.results.take(limit)
 
     def reap(self, every: float = 0.2) -> None:
-        now = time.monotonic()
-        if now - self._reap_at < every:
-            return
-        self._reap_at = now
-        for entry in self.leases.expired(self.r):
-            run = self.jobs.get(entry.batch.job)
-            if run is None or run.is_done(entry.batch):
-                self._finish(entry.batch.id)
-                continue
-            self.metrics.lease_expiries += 1
-            attempts = int(self.r.hget(P.K_ATTEMPTS, entry.batch.id) or 0)
-            if attempts >= self.max_attempts:
-                self._finish(entry.batch.id)
-                self.metrics.batches_failed += 1
-                run.rec.failed[entry.batch.id] = (f"its worker stopped answering {attempts} "
-                                                  "time(s) (lease expired)")
-                self._save(run)
-                run.write_frame_if_grown(entry.batch.frame)
-            else:
-                log.info("lease of %s expired; queueing it again", entry.batch.id)
-                self._requeue(entry.batch)
-
-    def _requeue(self, b: P.Batch) -> None:
-        self.leases.pop(b.id)
-        self._send(b)
-
-    def worker_cores(self) -> int:
-        """Cores of the live workers that can take work now (from their heartbeats; re-read
-        once a second): a worker outside its working hours or paused for its user takes none,
-        and batches queued for it would only wait, in an order frozen at queueing."""
-        at, cores = self._cores
-        if time.monotonic() - at < 1.0:
-            return cores
-        total = 0
-        for k in self.r.scan_iter(match=P.key("host", "*"), count=500):
-            raw = self.r.get(k)
-            if raw:
-                info = json.loads(raw)
-                if info.get("state") not in ("outside working hours", "paused: user busy"):
-                    total += int(info.get("cores", 1))
-        self._cores = (time.monotonic(), total)
-        return total
+        self.dispatcher.reap(every)
 
     def dispatch(self) -> int:
-        """Queue pending batches while fewer than `cores + 2` wait unclaimed in the queue."""
-        room = max(2, self.worker_cores() + 2) - self.leases.waiting()
-        sent = 0
-        order = sorted((run for run in self.jobs.values()
-                        if run.pending and not run.rec.paused and not run.rec.cancelled),
-                       key=lambda run: (-run.rec.priority, run.rec.submitted))
-        for run in order:
-            while run.pending and sent < room:
-                b = run.pending.popleft()
-                if run.is_done(b) or b.id in self.leases:
-                    continue
-                if not self.ready_by.admit(run, b):  # beyond what the night affords
-                    continue
-                self._send(b)
-                sent += 1
-        return sent
+        return self.dispatcher.fill(self.ready_by.admit)
 
-    def _send(self, b: P.Batch) -> None:
-        run = self.jobs[b.job]
-        self._hold_files(run)
-        ticket = self.tickets.get(b.id, 0) + 1
-        self.tickets[b.id] = ticket
-        self.r.hset(P.K_INFLIGHT, b.id, ticket)
-        task = P.RenderTask(P.PROTOCOL_VERSION, b, ticket, run.rec.bundle, run.rec.shot,
-                            run.rec.overrides)
-        self.sender.send_task(P.TASK_RENDER, args=[task.to_json()], queue=P.QUEUE)
-        self.leases.add(b, ticket)
+    def worker_cores(self) -> int:
+        return self.dispatcher.free_cores()
+
+    def hold_files(self, every: float = 60.0) -> None:
+        self.scenes.hold_all(every)
+
+    @property
+    def leases(self):
+        return self.dispatcher.leases
+
+    def _busy_jobs(self) -> set:
+        return {e.batch.job for e in self.dispatcher.leases.table.values()}
 
     # -- status -----------------------------------------------------------------------------
 
     def job_state(self, run: JobRun) -> str:
         if run.rec.cancelled:
             return "cancelled"
-        queued = [e for e in self.leases.table.values() if e.batch.job == run.rec.id]
+        if run.rec.error:
+            return "failed"
+        queued = self.dispatcher.inflight(run.rec.id)
         if not run.pending and not queued and not self.ready_by.waiting(run):
             return "failed" if run.rec.failed else "done"
         if run.rec.paused:
@@ -437,39 +236,90 @@ class Head(JobCommands):
         held, _ = run.pixel_samples()
         return "running" if held or any(e.leased for e in queued) else "queued"
 
+    def status(self, run: JobRun, state: str, errors: dict) -> dict:
+        held, total = run.pixel_samples()
+        elapsed = max(time.time() - run.started, 1e-6)
+        rate = run.samples_merged / elapsed
+        st = {
+            "job": run.rec.id, "name": run.rec.name, "state": state,
+            "frames": len(run.frames), "frames_done": run.frames_done(),
+            "samples": run.rec.samples, "pixel_samples_done": held,
+            "pixel_samples_total": total, "samples_per_second": round(rate, 1),
+            "eta_seconds": round((total - held) / rate, 1) if rate > 0 else None,
+            "priority": run.rec.priority, "out": run.rec.out,
+            "failed": [{"batch": k, "error": v} for k, v in sorted(run.rec.failed.items())],
+            "submitted": run.rec.submitted,
+            "tile_size": run.rec.tile_size, "batch_samples": run.rec.batch_samples,
+            "error": run.rec.error, "command_error": errors.get(run.rec.id),
+        }
+        st.update(self.ready_by.status(run))  # ready_by, ready_by_reached, forecast
+        return st
+
     def publish(self, force: bool = False, every: float = 0.25) -> None:
+        """Every job's status, replaced whole in one transaction (a reader sees the old status
+        or the new one, never none), with the progress, metrics and history of this turn."""
         now = time.monotonic()
         if not force and now - self._status_at < every:
             return
         self._status_at = now
-        pipe = self.r.pipeline(transaction=False)
-        for run in self.jobs.values():
-            held, total = run.pixel_samples()
-            elapsed = max(time.time() - run.started, 1e-6)
-            rate = run.samples_merged / elapsed
-            st = {
-                "job": run.rec.id, "name": run.rec.name, "state": self.job_state(run),
-                "frames": len(run.frames), "frames_done": run.frames_done(),
-                "samples": run.rec.samples, "pixel_samples_done": held,
-                "pixel_samples_total": total, "samples_per_second": round(rate, 1),
-                "eta_seconds": round((total - held) / rate, 1) if rate > 0 else None,
-                "priority": run.rec.priority, "out": run.rec.out,
-                "failed": [{"batch": k, "error": v} for k, v in sorted(run.rec.failed.items())],
-                "submitted": run.rec.submitted,
-                "tile_size": run.rec.tile_size, "batch_samples": run.rec.batch_samples,
-            }
-            st.update(self.ready_by.status(run))  # ready_by, ready_by_reached, forecast
-            pipe.delete(P.k_job(run.rec.id))
-            pipe.hset(P.k_job(run.rec.id), mapping={k: json.dumps(v) for k, v in st.items()})
+        errors = commands.errors(self.r)
+        states = {job: self.job_state(run) for job, run in self.jobs.items()}
+        self._note_ends(states)
+        pipe = self.r.pipeline(transaction=True)  # MULTI … EXEC
+        for job, run in self.jobs.items():
+            _replace_hash(pipe, P.k_job(job), self.status(run, states[job], errors))
+        if force:
+            for job, reason in self.broken.items():
+                _replace_hash(pipe, P.k_job(job), {"job": job, "name": job, "state": "failed",
+                                                   "error": reason, "failed": [],
+                                                   "frames": 0, "frames_done": 0})
+                pipe.zadd(P.K_JOBS, {job: 0}, nx=True)
         publish_metrics(pipe, metrics_snapshot(self))
-        self.progress.publish(self, pipe, force)
+        self.progress.publish(self.jobs, self.dispatcher.leased_tiles(), pipe, force)
         self.history.record(self, pipe)
         pipe.execute()
+        self._fold()
+
+    # -- ends of jobs -------------------------------------------------------------------------
+
+    def _note_ends(self, states: dict) -> None:
+        """A job that has just ended: its time noted, its attempt counts cleared, its scene's
+        files deleted from Redis when no unfinished job needs them."""
+        ended = [run for job, run in self.jobs.items()
+                 if states[job] in ENDED and run.rec.ended is None]
+        if not ended:
+            return
+        unfinished = [run for job, run in self.jobs.items() if states[job] not in ENDED]
+        for run in ended:
+            run.rec.ended = time.time()
+            try:
+                run.save()
+            except OSError as err:
+                log.error("job %s: cannot save its record: %s", run.rec.id, err)
+            self.dispatcher.forget_attempts(run.rec.id)
+            self.scenes.release(run, unfinished)
+
+    def _fold(self, every: float = 60.0) -> None:
+        """Jobs ended more than `archive_after` seconds ago leave the head's table."""
+        now = time.monotonic()
+        if self.archive_after is None or now - self._fold_at < every:
+            return
+        self._fold_at = now
+        old = [run for run in self.jobs.values() if run.rec.ended is not None
+               and time.time() - run.rec.ended > self.archive_after
+               and not self.dispatcher.inflight(run.rec.id)]
+        for run in old:
+            try:
+                run.folder.record.rename(run.folder.root / "archived.json")
+            except OSError as err:
+                log.error("job %s: cannot fold it into the archive: %s", run.rec.id, err)
+                continue
+            del self.jobs[run.rec.id]
+            self.r.hset(P.k_job(run.rec.id), "archived", json.dumps(True))
+            self.r.hdel(P.K_COMMAND_ERRORS, run.rec.id)
+            log.info("job %s folded into the archive", run.rec.id)
 
 
-def _batch_of(run: JobRun, bid: str) -> P.Batch | None:
-    job, frame, tile, first, count = P.parse_batch_id(bid)
-    if frame not in run.frames or not 0 <= tile < len(run.tiles):
-        return None
-    t = run.tiles[tile]
-    return P.Batch(job, frame, tile, first, count, t.x0, t.y0, t.w, t.h)
+def _replace_hash(pipe, key: str, fields: dict) -> None:
+    pipe.delete(key)
+    pipe.hset(key, mapping={k: json.dumps(v) for k, v in fields.items()})

@@ -53,15 +53,12 @@ class HistoryRecorder:
 
 def note_hosts(r, pipe, now: float) -> None:
     """Copy every live heartbeat into `seen` with its time; forget entries older than a week."""
-    keys = list(r.scan_iter(match=P.key("host", "*"), count=500))
-    beats = r.mget(keys) if keys else []
+    from . import heartbeats
+
     mapping = {}
-    for key, raw in zip(keys, beats):
-        if raw:
-            info = json.loads(raw)
-            info.setdefault("name", key.decode()[len(P.key("host", "")):])  # as its key does
-            info["last_seen"] = now
-            mapping[info["name"]] = json.dumps(info)
+    for info in heartbeats.hosts(r):
+        info["last_seen"] = now
+        mapping[info["name"]] = json.dumps(info)
     if mapping:
         pipe.hset(P.K_SEEN, mapping=mapping)
     stale = [name for name, raw in r.hgetall(P.K_SEEN).items()

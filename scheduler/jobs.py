@@ -54,6 +54,8 @@ class JobRecord:
     extra: dict = field(default_factory=dict)  # "frame/tile" → more ranges for that tile only
     ready_by: float | None = None  # epoch seconds the frames are wanted by (ready_by.py)
     ready_by_reached: bool = False  # stopped at the ready-by time with the samples it had
+    error: str | None = None  # why the whole job stopped (its frames cannot be written); retry clears
+    ended: float | None = None  # epoch seconds it was first seen done, failed or cancelled
 
     def to_json(self) -> str:
         return json.dumps(asdict(self), indent=1, sort_keys=True)

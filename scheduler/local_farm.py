@@ -27,10 +27,13 @@ def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: in
     """Render every frame of `shot` through a local farm; returns the EXR paths written.
 
     on_progress(samples_done, samples_total) and
-    on_frame(path) are called from this thread.
+    on_frame(path) are called from this thread, which reads only what the head thread publishes
+    to Redis (a job's status and its frames' progress), never the head's own tables.
     """
     from ..frames import frame_path
     from .head import Head
+    from .progress import job_frames
+    from .store import connect, job_status
     from .submit import submit_request
     from .redis_server import EmbeddedRedis, die_with_parent
 
@@ -61,33 +64,40 @@ def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: in
             start_new_session=True, cwd=state, preexec_fn=die_with_parent())
         batch = batch_samples or max(1, shot.samples)
         # `lampyr render` read the shot's files before anything started
-        job = submit_request(head.r, Path(shot_path), overrides, str(out), 0, tile_size, batch, files_checked=True)
+        r = connect(server.url)
+        job = submit_request(r, Path(shot_path), overrides, str(out), 0, tile_size, batch, files_checked=True)
         written: list[Path] = []
         seen: set[int] = set()
         while True:
             if head_error:
-                raise head_error[0]
+                err = head_error[0]
+                raise RenderFailed(f"the head stopped: {type(err).__name__}: {err}; the frames "
+                                   f"written before are kept in {out}")
             if worker.poll() is not None:
                 err = (state / "worker.log").read_text(errors="replace").strip().splitlines()
                 raise RenderFailed("the local worker stopped: " + (err[-1] if err else "?"))
-            run = head.jobs.get(job)
-            if run is not None:
-                held, total = run.pixel_samples()
-                if on_progress:
-                    on_progress(held, total)
-                for f in run.frames:
-                    if f not in seen and f in run.written and run.frame_complete(f):
+            # what the head published (Redis), never its tables: they belong to its thread
+            st = job_status(r, job)
+            if st is not None and "tile_size" in st:  # published by the head, not the submit
+                if on_progress and st.get("pixel_samples_total"):
+                    on_progress(st["pixel_samples_done"], st["pixel_samples_total"])
+                for d in job_frames(r, job):  # a frame is "done" once written (complete only)
+                    f = d["frame"]
+                    if f not in seen and d["state"] == "done":
                         seen.add(f)
-                        path = frame_path(Path(run.rec.out), run.shot.name, f)
+                        path = frame_path(Path(st["out"]), st["name"], f)
                         written.append(path)
                         if on_frame:
                             on_frame(path)
-                state_now = head.job_state(run)
-                if state_now == "failed":
-                    msg = str(next(iter(run.rec.failed.values()))).strip().splitlines() or ["?"]
+                if st["state"] == "failed":
+                    if st.get("error"):  # the job stopped: e.g. its frames cannot be written
+                        raise RenderFailed(f"{st['error']}; the frames written before are "
+                                           f"kept in {out}")
+                    why = next((x["error"] for x in st.get("failed", [])), "?")
+                    msg = str(why).strip().splitlines() or ["?"]
                     raise RenderFailed(f"a batch failed for good: {msg[0]}; the frames written "
                                        f"before it are kept in {out}")
-                if state_now == "done" and len(seen) == len(run.frames):
+                if st["state"] == "done" and len(seen) == st["frames"]:
                     break
             time.sleep(0.05)
         return written

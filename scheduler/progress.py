@@ -20,23 +20,12 @@ its `noise` the pixel-weighted mean of its tiles' (None while any is unknown).
 from __future__ import annotations
 
 import json
-import math
 import weakref
 
 from . import protocol as P
-from .accumulator import samples_held
+from .accumulator import samples_held, tile_noise  # noqa: F401  (tile_noise: read here too)
 
 TILE_STATES = ("waiting", "rendering", "done", "failed")
-
-
-def tile_noise(film) -> float | None:
-    """Mean relative noise of a tile's film (see the module docstring); None when unknown."""
-    if film is None:
-        return None
-    import numpy as np
-
-    value = float(np.mean(film.rel_noise()))
-    return round(value, 6) if math.isfinite(value) else None
 
 
 def frame_summary(run, frame: int, rendering: set, failed: set) -> dict:
@@ -82,12 +71,10 @@ class ProgressPublisher:
     def __init__(self):
         self._seen = weakref.WeakKeyDictionary()  # JobRun → (leased set, failed set)
 
-    def publish(self, head, pipe, force: bool = False) -> None:
-        leased: dict[str, set] = {}
-        for e in head.leases.table.values():
-            if e.leased:
-                leased.setdefault(e.batch.job, set()).add((e.batch.frame, e.batch.tile))
-        for run in head.jobs.values():
+    def publish(self, runs: dict, leased: dict, pipe, force: bool = False) -> None:
+        """runs: job id → JobRun; leased: job id → {(frame, tile)} a worker holds a lease on
+        (`Dispatcher.leased_tiles`)."""
+        for run in runs.values():
             now_leased = leased.get(run.rec.id, set())
             now_failed = {P.parse_batch_id(bid)[1:3] for bid in run.rec.failed}
             seen = self._seen.get(run)

@@ -16,6 +16,8 @@ Redis keys (prefix `lampyr:`):
 | `epoch` | string | head | random token; a missing epoch means Redis lost its data |
 | `config` | hash | head | lease_seconds, max_attempts |
 | `control` | list | CLI, web page | JSON commands for the head (submit, retry, pause, resume, cancel, refine, priority) |
+| `control:processing` | list | head | commands being carried out (moved from `control`, removed once done; replayed after a crash) |
+| `command-errors` | hash | head | job id → JSON `{"op", "error", "at"}`: the last command on it that failed, shown in its status |
 | `scene:<sha256>` | string, TTL | CLI, web page, head | a scene's manifest (JSON, transfer.py): its files' shot-relative paths, sizes, sha256 and chunk hashes, and which one is the shot; named by the sha256 of its bytes |
 | `blob:<sha256>` | string, TTL | CLI, web page, head | one chunk of a scene file (at most `chunk_bytes` of the manifest, 16 MiB), named by the sha256 of its bytes; shared by every scene that holds the same bytes |
 | `job:<id>` | hash | head | live status of a job (JSON values), read by `status` |
@@ -26,6 +28,7 @@ Redis keys (prefix `lampyr:`):
 | `result:<batch>:<ticket>` | string, TTL | worker | the batch's film as bytes |
 | `results` | list | worker | JSON notices: a result is ready, a batch was handed back part-way (`partial`, with `done`), or it raised |
 | `results:processing` | list | head | notices being merged (kept until the merge is on disk) |
+| `results:aside` | list | head | JSON `{"notice", "reason", "at"}`: notices the head could not read, set aside |
 | `host:<name>` | string, TTL | worker | JSON heartbeat: host, cores, engine version, pid, `state`, `windows` (worker/supervisor.py) |
 | `slot:<name>:<pid>` | string, TTL | worker | JSON: the batch a worker process renders and its speed |
 | `warm:<name>` | set | worker | pids of a worker's pool processes whose kernels are loaded |
@@ -70,6 +73,9 @@ K_INFLIGHT = key("inflight")
 K_ATTEMPTS = key("attempts")
 K_RESULTS = key("results")
 K_PROCESSING = key("results", "processing")
+K_ASIDE = key("results", "aside")
+K_CONTROL_PROCESSING = key("control", "processing")
+K_COMMAND_ERRORS = key("command-errors")
 K_METRICS = key("metrics")
 K_THROUGHPUT = key("throughput")
 K_SEEN = key("seen")

@@ -1,6 +1,8 @@
 """The head's side of ready-by times: forecast the farm, hold back what the night cannot afford,
 stop a job at its ready-by time with every frame written.
 
+The keeper is given the parts it needs — the job table, the dispatcher (its lease table, to
+count what is in flight and to drop a stopped job's work) and Redis (the heartbeats) — and
 `Head` calls three hooks:
 - `tick()` every step: a job whose ready-by time has come is stopped (queued batches dropped, every
   frame file written with what its tiles hold, `ready_by_reached` set; the job ends "done");
@@ -23,8 +25,7 @@ import logging
 import math
 import time
 
-from . import protocol as P
-from .accumulator import TileAccumulator, samples_held
+from .accumulator import samples_held
 from .ready_by import TileState, night_forecast, reached
 from .forecast import Forecaster, read_hosts
 from .planner import TARGET_SECONDS
@@ -37,8 +38,10 @@ HORIZON = 36 * 3600.0  # how far ahead the working windows reach
 
 
 class ReadyByKeeper:
-    def __init__(self, head, every: float = EVERY):
-        self.head = head
+    def __init__(self, runs: dict, dispatch, r, every: float = EVERY):
+        self.runs = runs  # job id → JobRun (the head's table, read here)
+        self.dispatch = dispatch  # dispatch.Dispatcher
+        self.r = r
         self.every = every
         self.forecaster = Forecaster()
         self.plans: dict = {}  # job → NightPlan
@@ -61,7 +64,7 @@ class ReadyByKeeper:
 
     def tick(self, now: float | None = None) -> None:
         now = time.time() if now is None else now
-        for run in list(self.head.jobs.values()):
+        for run in list(self.runs.values()):
             if run.rec.ready_by_reached:
                 self._keep_stopped(run)
             elif self.active(run) and reached(now, run.rec.ready_by):
@@ -97,14 +100,14 @@ class ReadyByKeeper:
     def look(self) -> None:
         """Read the heartbeats and the slots' speeds (only while a ready-by time job runs)."""
         self._looked = time.monotonic()
-        if any(self.active(run) for run in self.head.jobs.values()):
-            self._hosts, speeds = read_hosts(self.head.r, P.key("host", ""), P.key("slot", ""))
+        if any(self.active(run) for run in self.runs.values()):
+            self._hosts, speeds = read_hosts(self.r)
             self._speeds.extend(speeds)
 
     def recompute(self, now: float | None = None) -> None:
         self._at = time.monotonic()
         now = time.time() if now is None else now
-        jobs = self.head.jobs
+        jobs = self.runs
         if not any(self.active(run) for run in jobs.values()):
             return
         self.look()
@@ -115,7 +118,7 @@ class ReadyByKeeper:
                 self.forecaster.merged(now, merged)
             self._merged[job] = run.samples_merged
         fc = self.forecaster
-        fc.update(now, hosts, speeds, saturated=self.head.leases.waiting() > 0)
+        fc.update(now, hosts, speeds, saturated=self.dispatch.leases.waiting() > 0)
         ahead = 0.0  # pixel-samples the jobs queued before this one still need
         for run in sorted(jobs.values(), key=lambda r: (-r.rec.priority, r.rec.submitted)):
             inflight = self._inflight(run)
@@ -141,10 +144,9 @@ class ReadyByKeeper:
     def _inflight(self, run) -> dict:
         """(frame, tile) → pixel-samples queued or rendering now."""
         out: dict = {}
-        for e in self.head.leases.table.values():
+        for e in self.dispatch.inflight(run.rec.id):
             b = e.batch
-            if b.job == run.rec.id:
-                out[(b.frame, b.tile)] = out.get((b.frame, b.tile), 0) + b.w * b.h * b.count
+            out[(b.frame, b.tile)] = out.get((b.frame, b.tile), 0) + b.w * b.h * b.count
         return out
 
     def tile_states(self, run, inflight: dict) -> list[TileState]:
@@ -168,7 +170,7 @@ class ReadyByKeeper:
             return
         back, still = [], []
         for b in kept:
-            if run.is_done(b) or b.id in self.head.leases:
+            if run.is_done(b) or b.id in self.dispatch.leases:
                 continue
             (back if plan.admits((b.frame, b.tile), b.first, b.count) else still).append(b)
         self.deferred[run.rec.id] = still
@@ -182,21 +184,15 @@ class ReadyByKeeper:
 
     def stop(self, run) -> None:
         """Stop queueing `run`, drop its queued batches, write every frame with what is held."""
-        head = self.head
         job = run.rec.id
         run.rec.ready_by_reached = True
-        run.pending.clear()
         self.deferred.pop(job, None)
-        gone = [bid for bid, e in head.leases.table.items() if e.batch.job == job]
-        for bid in gone:
-            head.leases.pop(bid)
-        if gone:
-            head.r.hdel(P.K_INFLIGHT, *gone)
+        self.dispatch.drop_job(run)
         for f in run.frames:
             write_held_frame(run, f)
         # saved only now: a head killed while writing stops the job again after its restart,
         # which writes the frames (a restarted head keeps a saved stop as it is)
-        head._save(run)
+        run.save()
         self.stopped[job] = _sample_plan(run.rec)
         self._late[job] = (id(run), run.samples_merged)
         if job in self.fields:
@@ -207,7 +203,7 @@ class ReadyByKeeper:
     def _write_late(self) -> None:
         """A batch that was rendering at the ready-by time may still deliver: it is merged (work is
         never thrown away) and the frame file rewritten to hold it, as at the stop."""
-        for job, run in self.head.jobs.items():
+        for job, run in self.runs.items():
             if not run.rec.ready_by_reached:
                 continue
             seen = self._late.setdefault(job, (id(run), run.samples_merged))
@@ -221,7 +217,7 @@ class ReadyByKeeper:
         lifts the ready-by time and lets it run. Looked at again only when the job's runtime view or
         the head's lease table was rebuilt (refine, restart, reconcile) or work was queued."""
         job = run.rec.id
-        stamp = (id(run), id(self.head.leases))
+        stamp = (id(run), id(self.dispatch.leases))
         if self._stamps.get(job) == stamp and not run.pending:
             return
         self._stamps[job] = stamp
@@ -230,36 +226,16 @@ class ReadyByKeeper:
         if plan != seen:
             run.rec.ready_by_reached = False
             run.rec.ready_by = None
-            self.head._save(run)
+            run.save()
             self.stopped.pop(job)
             return
-        if run.pending:
-            run.pending.clear()
-        gone = [bid for bid, e in self.head.leases.table.items() if e.batch.job == job]
-        for bid in gone:
-            self.head.leases.pop(bid)
-        if gone:
-            self.head.r.hdel(P.K_INFLIGHT, *gone)
+        self.dispatch.drop_job(run)
 
 
 def write_held_frame(run, frame: int) -> None:
-    """The frame file with everything its tiles hold (missing tiles stay empty, spp 0)."""
-    from ..engine.film import Film
-    from ..frames import write_frame_files
-    from pathlib import Path
-
-    total = sum(samples_held(run.held[(frame, i)]) for i in range(len(run.tiles)))
-    if frame in run.written and run.written_sum.get(frame) == total:
-        return  # the file already holds all of it
-    film = Film.zeros(run.shot.height, run.shot.width)
-    for i, t in enumerate(run.tiles):
-        acc = TileAccumulator.load(run.folder.tile(frame, i), t.w, t.h)
-        if acc.film is not None:
-            film.add_into(acc.film, t.y0, t.x0)
-    write_frame_files(Path(run.rec.out), run.shot, frame, film, run.seconds.get(frame, 0.0),
-                      final=True)  # the ready-by time: as final as the frame gets, so denoised
-    run.written[frame] = run.frame_level(frame)
-    run.written_sum[frame] = total
+    """The frame file with everything its tiles hold (missing tiles stay empty, spp 0), as final:
+    the ready-by time is as final as the frame gets, so it is denoised."""
+    run.write_frames([frame], held=True)
 
 
 def _sample_plan(rec) -> tuple:

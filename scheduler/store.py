@@ -103,24 +103,16 @@ def list_jobs(r) -> list[dict]:
     return [{k.decode(): json.loads(v) for k, v in raw.items()} for raw in pipe.execute() if raw]
 
 
-def _values(r, pattern: str) -> list[tuple[str, dict]]:
-    """(key suffix, JSON value) of every live key matching `pattern`, read with one MGET."""
-    keys = list(r.scan_iter(match=pattern, count=500))
-    if not keys:
-        return []
-    return [(k.decode().split(":", 2)[2], json.loads(raw))
-            for k, raw in zip(keys, r.mget(keys)) if raw]
-
-
 def workers(r) -> list[dict]:
     """Live worker hosts with the batches their processes render now."""
+    from . import heartbeats
+
     hosts = {}
-    for name, info in _values(r, P.key("host", "*")):
-        info.setdefault("name", name)  # a heartbeat names its host; its key does too
+    for info in heartbeats.hosts(r):
         info["slots"] = []
         hosts[info["name"]] = info
-    for suffix, slot in _values(r, P.key("slot", "*")):
-        worker = slot.get("worker") or suffix.rsplit(":", 1)[0]
+    for slot in heartbeats.slots(r):
+        worker = slot["worker"]
         hosts.setdefault(worker, {"name": worker, "slots": []})["slots"].append(slot)
     return sorted(hosts.values(), key=lambda h: h["name"])
 

@@ -1,14 +1,39 @@
-"""Submitting a shot: validate it with the engine, send its files (transfer.py), queue a `submit`
-command."""
+"""Submitting a shot: validate it with the engine, measure its layout, send its files
+(transfer.py), queue a `submit` command.
+
+The probe render that sizes tiles and batches (planner.probe_cost) runs here, in the submitter's
+process, never in the head's loop. An `--out` folder that cannot be made (a regular file on its
+path, no permission) is refused here when this machine can tell (one line, exit status 2); the
+head checks it again when it takes the job.
+"""
 
 from __future__ import annotations
 
 import json
+import os
 import time
 from pathlib import Path
 
+from ..errors import UsageError
 from . import protocol as P
 from .jobs import new_job_id
+
+
+def check_out(out: str) -> None:
+    """Refuse an `--out` that cannot be a folder: a regular file on its path, or an existing
+    folder above it that cannot be written. A path whose folders do not exist here may be the
+    head's (another machine), so it passes."""
+    path = Path(out).absolute()
+    for p in (path, *path.parents):
+        if p.exists():
+            if not p.is_dir():
+                what = "is" if p == path else f"lies under {p}, which is"
+                raise UsageError(f"--out {out}: {what} a file, not a folder; expected a folder "
+                                 "for the frames")
+            if p != path and not os.access(p, os.W_OK | os.X_OK):
+                raise UsageError(f"--out {out}: cannot make it inside {p} (no permission); "
+                                 "expected a folder lampyr can write")
+            return
 
 
 def submit_request(r, shot_path: Path, overrides: dict, out: str | None, priority: int = 0,
@@ -26,6 +51,8 @@ def submit_request(r, shot_path: Path, overrides: dict, out: str | None, priorit
     from .store import send_command
     from .transfer import upload_shot
 
+    if out is not None:
+        check_out(out)
     spec = load_shot(shot_path)
     if overrides:
         o = dict(overrides)
@@ -34,6 +61,12 @@ def submit_request(r, shot_path: Path, overrides: dict, out: str | None, priorit
     notes = [] if files_checked else check_shot_files(spec)
     if warnings is not None:
         warnings.extend(notes)
+    if tile_size is None or batch_samples is None:
+        from .planner import choose_layout, probe_cost
+
+        layout = choose_layout(spec.width, spec.height, spec.samples, probe_cost(spec))
+        tile_size = tile_size or layout.tile_size
+        batch_samples = batch_samples or layout.batch_samples
     sha, member, stats = upload_shot(r, spec)
     if sent is not None:
         sent.append(stats)

@@ -107,7 +107,7 @@ def test_efficiency_measured_before_the_queue_ran_dry_is_kept():
 def test_a_heartbeat_without_cores_counts_one_slot(redis_url):
     r = redis.Redis.from_url(redis_url)
     r.set(P.k_host("odd"), json.dumps({"name": "odd", "cores": None}))
-    hosts, _ = read_hosts(r, P.key("host", ""), P.key("slot", ""))
+    hosts, _ = read_hosts(r)
     assert hosts == [("odd", 1, ())]
 
 
@@ -126,6 +126,6 @@ def test_hosts_and_slot_speeds_are_read_from_the_heartbeats(redis_url):
     r.set(P.k_host("server"), json.dumps({"name": "server", "cores": 16}))
     r.set(P.k_slot("pc", 11), json.dumps({"worker": "pc", "pid": 11, "batch": "j/1/0/0/1",
                                           "pixel_samples_per_second": 2500.0}))
-    hosts, speeds = read_hosts(r, P.key("host", ""), P.key("slot", ""))
+    hosts, speeds = read_hosts(r)
     assert sorted(hosts) == [("pc", 4, [[100.0, 200.0], [300.0, 400.0]]), ("server", 16, ())]
     assert speeds == [("pc", 2500.0)]

@@ -357,7 +357,7 @@ def test_refine_after_the_ready_by_time_lifts_it(head, tiny_shot):
     job = submit_ready_by(head, tiny_shot, 0.2)
     time.sleep(0.3)
     head.step()
-    head.cmd_refine(job, samples=12)
+    head.command("refine", job=job, samples=12)
     head.step()
     run = head.jobs[job]
     assert run.rec.ready_by is None and not run.rec.ready_by_reached

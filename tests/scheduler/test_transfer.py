@@ -420,11 +420,11 @@ def test_the_head_puts_back_the_files_redis_lost_before_queueing(head, scene):
 def test_the_head_renews_the_files_of_unfinished_jobs_only(head, scene, cancelled):
     job = _submit(head, scene)
     if cancelled:
-        head.cmd_cancel(job)
+        head.command("cancel", job=job)
     for k in head.r.scan_iter(match=P.key("*")):
         if k.startswith(P.key("blob").encode()) or k.startswith(P.key("scene").encode()):
             head.r.expire(k, 100)
-    head._held.clear()
+    head.scenes.held.clear()
     head.hold_files(every=0)
     ttls = [head.r.ttl(k) for k in head.r.scan_iter(match=P.key("blob", "*"))]
     assert ttls and all(t <= 100 if cancelled else t > 100 for t in ttls)

@@ -53,7 +53,7 @@ def test_a_merge_republishes_only_its_frame(head, tiny_shot, compiled_kernels):
     job = submitted(head, tiny_shot)
     work_off(head, job)
     head.r.delete(P.k_progress(job))
-    head.cmd_refine(job, 12, frames=[2])
+    head.command("refine", job=job, samples=12, frames=[2])
     head.publish(every=0)  # the refined job's runs are new: every frame once
     head.r.delete(P.k_progress(job), P.k_tiles(job))
     work_off(head, job)

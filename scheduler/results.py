@@ -1,0 +1,220 @@
+"""Results: taking the workers' notices, guarding each one, merging, taking back a part.
+
+`Results.take()` moves up to `limit` notices from `results` to `results:processing`, merges them
+as one group commit (every tile file written and fsynced, their folders fsynced once, frames
+rewritten) and only then removes them: a head killed mid-merge finds them again, and a replayed
+result is dropped because its tile already holds that sample range.
+
+No notice can stop the head. Each is handled inside a guard:
+- a notice that cannot be decoded (not JSON, no batch id the head can read) is set aside in
+  `results:aside` with the reason, and logged;
+- a result whose film cannot be decoded or merged fails its batch with the reason (the error
+  shows in `status` and on the page; `retry` queues the batch again);
+- a frame that cannot be written stops its job with the reason (`JobRun.write_frames`).
+At start-up `set_aside_undecodable()` goes through the notices a killed head left behind first.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import time
+from dataclasses import replace
+
+from . import protocol as P
+
+log = logging.getLogger("lampyr.head")
+
+KINDS = ("result", "partial", "error")
+
+
+class NoticeError(ValueError):
+    """A notice the head cannot read."""
+
+
+def decode(raw: bytes) -> dict:
+    """A notice as a dict with a readable batch id and ticket; NoticeError otherwise."""
+    try:
+        note = json.loads(raw)
+    except ValueError as err:
+        raise NoticeError(f"not JSON ({err})") from None
+    if not isinstance(note, dict) or note.get("kind") not in KINDS:
+        raise NoticeError(f"not a notice of a known kind ({', '.join(KINDS)})")
+    try:
+        P.parse_batch_id(str(note["batch"]))
+        note["ticket"] = int(note["ticket"])
+    except (KeyError, TypeError, ValueError):
+        raise NoticeError("no readable batch id and ticket") from None
+    return note
+
+
+def set_aside(r, raw: bytes, reason: str, source: str) -> None:
+    """Move one notice from the list `source` to `results:aside`, with its reason."""
+    entry = json.dumps({"notice": raw.decode("utf-8", "replace")[:2000], "reason": reason,
+                        "at": round(time.time(), 1)})
+    pipe = r.pipeline(transaction=True)
+    pipe.rpush(P.K_ASIDE, entry)
+    pipe.lrem(source, 1, raw)
+    pipe.execute()
+    log.error("result notice set aside (%s): %r", reason, raw[:200])
+
+
+def set_aside_undecodable(r) -> int:
+    """Start-up: set aside every notice waiting or being merged that cannot be decoded."""
+    n = 0
+    for source in (P.K_PROCESSING, P.K_RESULTS):
+        for raw in r.lrange(source, 0, -1):
+            try:
+                decode(raw)
+            except NoticeError as err:
+                set_aside(r, raw, str(err), source)
+                n += 1
+    return n
+
+
+class Results:
+    """runs: the head's job table; dispatch: the `Dispatcher` (leases, requeue, fail);
+    metrics: the head's counters."""
+
+    def __init__(self, r, runs: dict, dispatch, metrics):
+        self.r = r
+        self.runs = runs
+        self.dispatch = dispatch
+        self.metrics = metrics
+
+    def take(self, limit: int = 256) -> int:
+        from .accumulator import fsync_folder
+
+        r = self.r
+        pipe = r.pipeline(transaction=False)
+        for _ in range(limit):
+            pipe.lmove(P.K_RESULTS, P.K_PROCESSING, "LEFT", "RIGHT")
+        raws = [raw for raw in pipe.execute() if raw is not None]
+        if not raws:
+            return 0
+        notes = []
+        for raw in raws:
+            try:
+                notes.append((raw, decode(raw)))
+            except NoticeError as err:
+                set_aside(r, raw, str(err), P.K_PROCESSING)
+        pipe = r.pipeline(transaction=False)
+        for _, note in notes:
+            pipe.get(P.k_result(note["batch"], note["ticket"]))
+        blobs = pipe.execute() if notes else []
+        folders, frames, finished = set(), set(), []
+        for (raw, note), data in zip(notes, blobs):
+            try:
+                self._one(note, data, folders, frames, finished)
+            except Exception as err:  # noqa: BLE001 — a bad result fails its batch, not the head
+                self._bad(note, err, finished)
+        for folder in folders:
+            fsync_folder(folder)
+        by_job: dict[str, list] = {}
+        for job, frame in sorted(frames):
+            by_job.setdefault(job, []).append(frame)
+        for job, fs in by_job.items():
+            run = self.runs.get(job)
+            if run is not None:
+                run.write_frames(fs)
+        pipe = r.pipeline(transaction=False)
+        if finished:
+            pipe.hdel(P.K_INFLIGHT, *finished)
+        for raw, note in notes:
+            pipe.lrem(P.K_PROCESSING, 1, raw)
+            pipe.delete(P.k_result(note["batch"], note["ticket"]))
+        pipe.execute()
+        return len(raws)
+
+    def _one(self, note: dict, data, folders: set, frames: set, finished: list) -> None:
+        from ..engine.film import from_bytes
+
+        bid, ticket = note["batch"], note["ticket"]
+        job, frame = P.parse_batch_id(bid)[:2]
+        run = self.runs.get(job)
+        if run is None or run.rec.cancelled:
+            return
+        entry = self.dispatch.leases.get(bid)
+        if note["kind"] == "partial":
+            taken, merged = self._take_back(run, entry, ticket, note, data)
+            if merged:
+                folders.add(run.folder.tile(entry.batch.frame, entry.batch.tile).parent)
+                frames.add((job, frame))
+            if taken:
+                finished.append(bid)
+            return
+        if note["kind"] == "error":
+            self._on_error(run, bid, ticket, str(note.get("error", "?")))
+            return
+        b = entry.batch if entry else batch_of(run, bid)
+        if data is not None and b is not None:
+            if run.merge(b, from_bytes(data), float(note.get("seconds", 0.0)), sync_folder=False):
+                self.metrics.merged(b.w * b.h * b.count)
+                folders.add(run.folder.tile(b.frame, b.tile).parent)
+                frames.add((job, frame))
+            self.dispatch.leases.pop(bid)
+            finished.append(bid)
+        elif data is None and entry is not None and entry.ticket == ticket:
+            self.dispatch.requeue(entry.batch)  # the result expired or was lost
+
+    def _bad(self, note: dict, err: Exception, finished: list) -> None:
+        """A result that could not be decoded or merged: its batch fails with the reason."""
+        bid = note["batch"]
+        run = self.runs.get(P.parse_batch_id(bid)[0])
+        text = str(err).strip().splitlines()
+        reason = f"its result could not be merged: {type(err).__name__}: {text[0] if text else ''}"
+        log.error("batch %s: %s", bid, reason)
+        if run is None:
+            return
+        b = batch_of(run, bid)
+        if b is None or run.is_done(b):
+            self.dispatch.leases.pop(bid)
+            finished.append(bid)
+            return
+        try:
+            self.dispatch.fail(run, bid, reason)
+        except Exception as again:  # noqa: BLE001 — e.g. the job's folder is not writable
+            log.error("batch %s: cannot record its failure: %s", bid, again)
+            self.dispatch.leases.pop(bid)
+        finished.append(bid)
+
+    def _take_back(self, run, entry, ticket: int, note: dict, data) -> tuple[bool, bool]:
+        """A batch handed back part-way: merge the samples [first, first + done) it holds and
+        queue the rest first. Returns (taken, merged). The notice of a dispatch the head has
+        replaced is skipped whole: the newer dispatch renders the whole batch."""
+        from ..engine.film import from_bytes
+
+        if entry is None or entry.ticket != ticket:
+            return False, False
+        b = entry.batch
+        done = max(0, min(int(note.get("done", 0)), b.count))
+        if done and data is None:  # the part expired or was lost: the whole batch again
+            self.dispatch.requeue(b)
+            return False, False
+        part = replace(b, count=done)
+        merged = bool(done) and run.merge(part, from_bytes(data), float(note.get("seconds", 0.0)),
+                                          sync_folder=False)
+        if merged:
+            self.metrics.merged(b.w * b.h * done)
+        self.dispatch.leases.pop(b.id)
+        if done < b.count:
+            run.pending.appendleft(replace(b, first=b.first + done, count=b.count - done))
+        log.info("batch %s handed back by %s with %d of %d samples", b.id,
+                 note.get("worker", "?"), done, b.count)
+        return True, merged
+
+    def _on_error(self, run, bid: str, ticket: int, error: str) -> None:
+        entry = self.dispatch.leases.get(bid)
+        if entry is None or entry.ticket != ticket or run.is_done(entry.batch):
+            return  # a message the head had already replaced
+        self.metrics.batch_errors += 1
+        self.dispatch.give_up_or_requeue(run, entry.batch, error)
+
+
+def batch_of(run, bid: str) -> P.Batch | None:
+    """The batch `bid` of `run` rebuilt from its id (a result of a dispatch the head forgot)."""
+    job, frame, tile, first, count = P.parse_batch_id(bid)
+    if frame not in run.frames or not 0 <= tile < len(run.tiles):
+        return None
+    t = run.tiles[tile]
+    return P.Batch(job, frame, tile, first, count, t.x0, t.y0, t.w, t.h)
