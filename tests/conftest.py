@@ -126,21 +126,26 @@ class Farm:
         self.head_proc = None
         self.workers: dict[str, subprocess.Popen] = {}
 
-    def _spawn(self, args, log: str, env=None) -> subprocess.Popen:
+    def _spawn(self, args, log: str, env=None, fakes=None) -> subprocess.Popen:
+        """fakes: test-only behaviour installed by tests/harness.py (None: plain lampyr)."""
+        from .harness import command
+
         full_env = dict(os.environ, PYTHONUNBUFFERED="1", **(env or {}))
         out = open(self.tmp / log, "ab")
-        proc = subprocess.Popen(lampyr_cmd(*args), stdout=out, stderr=subprocess.STDOUT,
+        cmd = lampyr_cmd(*args) if fakes is None else command(fakes, *args)
+        proc = subprocess.Popen(cmd, stdout=out, stderr=subprocess.STDOUT,
                                 env=full_env, start_new_session=True, cwd=self.tmp)
         self.procs.append(proc)
         return proc
 
     def start_head(self, lease: float = 3.0, attempts: int = 3, embedded: bool = False,
-                   extra=()) -> str:
-        """Start `lampyr head` (extra: more command-line arguments); returns the farm's URL."""
+                   extra=(), fakes=None) -> str:
+        """Start `lampyr head` (extra: more command-line arguments; fakes: see
+        tests/harness.py); returns the farm's URL."""
         args = ["head", "--state", self.state, "--lease", lease, "--attempts", attempts, *extra]
         if not embedded:
             args += ["--redis", self.url]
-        self.head_proc = self._spawn(args, "head.log")
+        self.head_proc = self._spawn(args, "head.log", fakes=fakes)
         give_up_at = time.monotonic() + 60
         while True:
             log = (self.tmp / "head.log").read_text(errors="replace")
@@ -153,10 +158,12 @@ class Farm:
                 raise RuntimeError(f"head did not start:\n{log}")
             time.sleep(0.05)
 
-    def start_worker(self, name: str, env=None, wait: bool = True, args=()) -> subprocess.Popen:
-        """args: more `lampyr worker` options (--hours …)."""
+    def start_worker(self, name: str, env=None, wait: bool = True, args=(),
+                     fakes=None) -> subprocess.Popen:
+        """args: more `lampyr worker` options (--hours …); fakes: test-only behaviour
+        (poison, sample delay, chunk log, clock, user pids), see tests/harness.py."""
         proc = self._spawn(["worker", self.url, "--cores", 1, "--name", name, *args],
-                           f"worker-{name}.log", env)
+                           f"worker-{name}.log", env, fakes)
         self.workers[name] = proc
         if wait:
             self.wait_worker(name)

@@ -6,11 +6,8 @@ Load is measured as a fraction of the whole machine (all cores): the busy CPU se
 machine (psutil's `cpu_times`: everything but idle and iowait, guest time not counted twice, as
 psutil's own `cpu_percent` does) minus the CPU seconds of this worker's process tree (the
 supervisor, the Celery worker and its pool processes), over the wall seconds between two samples
-times the number of cores.
-
-Test hook: `LAMPYR_TEST_USER_PIDS=pid,pid` makes the meter count only those processes (and their
-children) as the user's load, so that a test can play the user with a real CPU hog on a machine
-whose other load it does not control.
+times the number of cores. `LoadMeter(user_pids=...)` counts only the given processes (and their
+children) as the user's load instead.
 """
 
 from __future__ import annotations
@@ -71,14 +68,12 @@ def _tree_seconds(roots, seen: dict) -> float:
 class LoadMeter:
     """The machine's CPU load that is not the worker's own, as a fraction 0..1 of all cores.
 
-    own_root: pid at the top of the worker's process tree; user_pids: when given (the test
-    hook), only these processes count as the user's load.
+    own_root: pid at the top of the worker's process tree; user_pids: when given, only these
+    processes (and their children) count as the user's load.
     """
 
     def __init__(self, own_root: int | None = None, user_pids=None):
         self.own = psutil.Process(own_root or os.getpid())
-        if user_pids is None and os.environ.get("LAMPYR_TEST_USER_PIDS"):
-            user_pids = [int(p) for p in os.environ["LAMPYR_TEST_USER_PIDS"].split(",") if p]
         self.user = [psutil.Process(p) for p in user_pids] if user_pids else None
         self.cores = psutil.cpu_count() or 1
         self._own_seen: dict = {}

@@ -17,9 +17,8 @@ started, plus `state` — "rendering", "idle", "paused: user busy" or "outside w
 and `windows`, [[start, end], ...] epoch seconds of the next 36 hours (absent when always
 available).
 
-Test hook: `LAMPYR_TEST_CLOCK_FILE=path` — the supervisor's clock is time.time() plus the number
-of seconds written in that file (re-read at every look), so a test can move a real worker's
-clock to the end of its working hours.
+`Supervisor` takes its clock as an argument; `child_command` and `load_meter` are the two places
+that say how the Celery worker is started and how the user's load is measured.
 """
 
 from __future__ import annotations
@@ -63,28 +62,12 @@ def say(line: str) -> None:
     print(f"lampyr worker: {line}", file=sys.stderr, flush=True)
 
 
-def hooked_clock():
-    """time.time, or with LAMPYR_TEST_CLOCK_FILE the real clock moved by the file's seconds."""
-    path = os.environ.get("LAMPYR_TEST_CLOCK_FILE")
-    if not path:
-        return time.time
-
-    def clock() -> float:
-        try:
-            with open(path) as f:
-                return time.time() + float(f.read().strip() or 0)
-        except (OSError, ValueError):
-            return time.time()
-
-    return clock
-
-
 class Supervisor:
     """Runs one `lampyr worker` until stopped; `clock` gives epoch seconds (injectable)."""
 
     def __init__(self, opts: WorkerOptions, clock=None, say=say):
         self.opts = opts
-        self.clock = clock or hooked_clock()
+        self.clock = clock or time.time
         self.say = say
         self.gate = Gate()
         self.stopping = threading.Event()
@@ -136,9 +119,9 @@ class Supervisor:
     # -- the user's load --------------------------------------------------------------------
 
     def watch_user(self) -> None:
-        from .politeness import BusyWatch, LoadMeter
+        from .politeness import BusyWatch
 
-        meter = LoadMeter(os.getpid())
+        meter = self.load_meter()
         watch = BusyWatch(self.opts.busy_percent / 100.0, self.opts.busy_seconds)
         while not self.stopping.wait(1.0):
             busy = watch.update(time.monotonic(), meter.sample())
@@ -155,7 +138,17 @@ class Supervisor:
                 self.busy_too_long = too_long
                 self.wake.set()
 
+    def load_meter(self):
+        """The meter of the CPU load that is not this worker's (worker/politeness.py)."""
+        from .politeness import LoadMeter
+
+        return LoadMeter(os.getpid())
+
     # -- the Celery worker ------------------------------------------------------------------
+
+    def child_command(self, config: dict) -> list[str]:
+        """The command line of the Celery worker process (worker/app.py)."""
+        return [sys.executable, "-m", "lampyr.worker.app", json.dumps(config)]
 
     def start_child(self) -> None:
         from ..scheduler.redis_server import die_with_parent
@@ -167,9 +160,8 @@ class Supervisor:
         self.child_since = time.monotonic()
         # the address (with its password) travels in the environment, never on a command line
         env = dict(os.environ, LAMPYR_HEAD=self.opts.url)
-        self.child = subprocess.Popen([sys.executable, "-m", "lampyr.worker.app", json.dumps(config)],
-                                      stdin=subprocess.DEVNULL, env=env,
-                                      preexec_fn=die_with_parent())
+        self.child = subprocess.Popen(self.child_command(config), stdin=subprocess.DEVNULL,
+                                      env=env, preexec_fn=die_with_parent())
         self.wake.set()
 
     def stop_child(self, why: str) -> None:

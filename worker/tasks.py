@@ -13,9 +13,9 @@ back the samples it has finished — [first, first + done) is a valid result on 
 being deterministic — with a `partial` notice, and the head queues [first + done, first + count)
 again. A message that arrives while `stop` is raised goes back untouched (done = 0).
 
-Test hooks (environment of the worker process, never set in production):
-`LAMPYR_TEST_POISON=frame/tile` makes that tile's batches raise; `LAMPYR_TEST_CHUNK_DELAY=s`
-sleeps s seconds after every one-sample chunk, so a fault can land in the middle of a batch.
+Chunks: the first is one sample; each next one is sized from the last one's speed to take about
+`min(CHUNK_SECONDS, lease / 4)` seconds, so the lease is renewed at least four times per lease
+period however slow the machine or heavy the shot.
 """
 
 from __future__ import annotations
@@ -159,10 +159,6 @@ def _render(ctx: Context, task: P.RenderTask, lease: float):
     from ..engine.render import Tile
 
     b = task.batch
-    poison = os.environ.get("LAMPYR_TEST_POISON")
-    if poison and poison == f"{b.frame}/{b.tile}":
-        raise RuntimeError(f"poisoned batch {b.id} (LAMPYR_TEST_POISON)")
-    delay = float(os.environ.get("LAMPYR_TEST_CHUNK_DELAY", "0") or 0)
     t_prep = time.perf_counter()
     renderer = ctx.cache.renderer(task.bundle, task.shot, task.overrides, b.frame)
     ctx.prepare_seconds = time.perf_counter() - t_prep
@@ -182,10 +178,7 @@ def _render(ctx: Context, task: P.RenderTask, lease: float):
         film = renderer.render(tile, b.first + done, n, film)
         took = time.perf_counter() - t0
         done += n
-        if delay:
-            time.sleep(delay)
-        else:
-            step = max(1, int(n * budget / max(took, 1e-6)))
+        step = max(1, int(n * budget / max(took, 1e-6)))
         if done < b.count and not P.lease_renew(ctx.r, b.id, ctx.holder, lease):
             raise LeaseLost(b.id)
         speed = b.w * b.h * done / max(time.perf_counter() - start - waited, 1e-9)

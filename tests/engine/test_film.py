@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from lampyr.engine.film import (FIELDS, LUMA_709, RGB_FIELDS, Film, FilmDataError, add_into,
+from lampyr.engine.film import (FIELDS, RGB_FIELDS, Film, FilmDataError, add_into,
                                 from_bytes, merge, to_bytes)
 from lampyr.errors import LampyrError
 
@@ -106,16 +106,27 @@ def test_rounding_never_makes_the_variance_negative():
     assert (film.variance() >= 0).all()
 
 
+# Rec. 709 luma weights, ITU-R BT.709-6 item 3.2: E'Y = 0.2126 E'R + 0.7152 E'G + 0.0722 E'B
+# (written out here, not taken from the code under test)
+REC709 = np.array([0.2126, 0.7152, 0.0722])
+
+
+def test_the_luminance_weights_are_rec_709():
+    from lampyr.engine.film import LUMA_709
+
+    np.testing.assert_array_equal(LUMA_709, REC709)
+
+
 def test_rel_noise_is_exact_for_grey_pixels(rng):
     # grey: the channels' noise is perfectly correlated, so the bound Σ w_c se_c is se_Y itself
     smp = make_samples(rng, 30, grey=True)
-    y = smp["rgb"] @ LUMA_709
+    y = smp["rgb"] @ REC709
     expected = stats.sem(y, axis=2) / y.mean(axis=2)
     np.testing.assert_allclose(accumulate(smp).rel_noise(eps=1e-9), expected, rtol=1e-9)
 
 
 def test_rel_noise_bounds_the_luminance_error_from_above(smp):
-    y = smp["rgb"] @ LUMA_709  # Rec. 709 luminance (ITU-R BT.709-6)
+    y = smp["rgb"] @ REC709
     true = stats.sem(y, axis=2) / y.mean(axis=2)
     assert np.all(accumulate(smp).rel_noise(eps=1e-9) >= true * (1 - 1e-12))
 

@@ -60,7 +60,7 @@ def test_frames_default_to_a_folder_per_job_under_the_state(farm, tiny_shot):
 @pytest.mark.parametrize("victim", ["process", "whole worker"])
 def test_sigkill_mid_batch_job_completes_with_equal_frames(farm, tiny_shot, tmp_path, victim):
     farm.start_head(lease=3)
-    slow = farm.start_worker("slow", env={"LAMPYR_TEST_CHUNK_DELAY": "0.4"})
+    slow = farm.start_worker("slow", fakes={"sample_delay": 0.4})
     job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
     slot = wait_for(lambda: busy_slot(farm.url, "slow"), what="a batch on the slow worker")
     if victim == "process":
@@ -75,7 +75,7 @@ def test_sigkill_mid_batch_job_completes_with_equal_frames(farm, tiny_shot, tmp_
 
 def test_sigstop_lease_expires_and_late_result_changes_nothing(farm, tiny_shot, tmp_path):
     farm.start_head(lease=2)
-    frozen = farm.start_worker("frozen", env={"LAMPYR_TEST_CHUNK_DELAY": "0.3"})
+    frozen = farm.start_worker("frozen", fakes={"sample_delay": 0.3})
     job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
     slot = wait_for(lambda: busy_slot(farm.url, "frozen"), what="a batch on the worker")
     os.killpg(frozen.pid, signal.SIGSTOP)
@@ -133,7 +133,7 @@ def test_a_message_delivered_twice_counts_once(farm, tiny_shot, tmp_path):
 
 def test_poison_batch_fails_after_the_limit_and_retry_requeues_it(farm, tiny_shot, tmp_path):
     farm.start_head(attempts=2)
-    poisoned = farm.start_worker("p", env={"LAMPYR_TEST_POISON": "1/0"})
+    poisoned = farm.start_worker("p", fakes={"poison": "1/0"})
     job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
     st = farm.wait(job)
     assert st["state"] == "failed"
@@ -155,7 +155,7 @@ def test_a_frame_whose_tile_failed_is_written_with_that_tile_empty(farm, tiny_sh
     import OpenEXR
 
     farm.start_head(attempts=1)
-    farm.start_worker("p", env={"LAMPYR_TEST_POISON": "1/0"})
+    farm.start_worker("p", fakes={"poison": "1/0"})
     job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
     assert farm.wait(job)["state"] == "failed"
     with OpenEXR.File(str(tmp_path / "out" / "tiny.0001.exr"), separate_channels=True) as f:
@@ -168,7 +168,7 @@ def test_a_frame_whose_tile_failed_is_written_with_that_tile_empty(farm, tiny_sh
 
 def test_head_killed_and_restarted_completes_with_equal_frames(farm, tiny_shot, tmp_path):
     farm.start_head()
-    farm.start_worker("a", env={"LAMPYR_TEST_CHUNK_DELAY": "0.02"})
+    farm.start_worker("a", fakes={"sample_delay": 0.02})
     job = farm.submit(tiny_shot, "--out", tmp_path / "out", "--tile", 4, "--batch", 2)
     wait_for(lambda: farm.status(job)["pixel_samples_done"] > 0, what="merging to start")
     os.kill(farm.head_proc.pid, signal.SIGKILL)
@@ -182,7 +182,7 @@ def test_head_killed_and_restarted_completes_with_equal_frames(farm, tiny_shot, 
 def test_redis_restart_during_a_job_resumes(embedded_farm, tiny_shot, tmp_path):
     farm = embedded_farm
     farm.start_head(embedded=True)
-    farm.start_worker("a", env={"LAMPYR_TEST_CHUNK_DELAY": "0.05"})
+    farm.start_worker("a", fakes={"sample_delay": 0.05})
     job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
     r = redis.Redis.from_url(farm.url)
     wait_for(lambda: farm.status(job)["pixel_samples_done"] > 0, what="progress")
@@ -310,7 +310,7 @@ def test_a_client_without_the_password_is_refused(embedded_farm, tmp_path):
 
 def test_a_redis_that_lost_its_data_is_rebuilt_from_the_heads_disk(farm, tiny_shot, tmp_path):
     farm.start_head()
-    farm.start_worker("a", env={"LAMPYR_TEST_CHUNK_DELAY": "0.05"})
+    farm.start_worker("a", fakes={"sample_delay": 0.05})
     job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
     wait_for(lambda: farm.status(job)["pixel_samples_done"] > 0, what="progress")
     redis.Redis.from_url(farm.url).flushdb()  # queue, scene files, leases, status: all gone

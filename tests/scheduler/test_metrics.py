@@ -18,6 +18,8 @@ from lampyr.scheduler import protocol as P
 from lampyr.scheduler.metrics import RATE_WINDOW, HeadCounters, exposition
 from lampyr.scheduler.redis_server import free_port
 
+from .farmtools import LAYOUT
+
 
 def parse(text: str) -> dict:
     """{(sample name, frozenset(labels)): value} as the reference parser reads the text."""
@@ -80,9 +82,12 @@ def test_rates_average_over_the_last_window_only():
     c = HeadCounters(born=0.0)
     for t in range(0, 120):  # one 10-pixel-sample batch a second for two minutes
         c.merged(10, now=float(t))
-    batches, samples = c.rates(now=120.0)  # the batches at t = 60 … 119 remain
-    assert batches == pytest.approx(60 / RATE_WINDOW)
-    assert samples == pytest.approx(600 / RATE_WINDOW)
+    # the gauges average over the last minute (as their HELP text says): the 60 batches
+    # at t = 60 … 119 remain, one a second, 10 pixel-samples each
+    assert RATE_WINDOW == 60.0
+    batches, samples = c.rates(now=120.0)
+    assert batches == pytest.approx(1.0)
+    assert samples == pytest.approx(10.0)
     assert c.batches_merged == 120 and c.pixel_samples_merged == 1200
 
 
@@ -111,25 +116,19 @@ def wait_metric(url: str, name: str, test, timeout: float = 60) -> dict:
 
 
 def test_a_real_head_counts_every_batch_of_a_job(farm, tiny_shot):
-    from lampyr.engine.render import tiles_for
-    from lampyr.engine.shot import load_shot
-    from lampyr.scheduler.planner import first_pass_samples, sample_ranges
-
     port = free_port()
     farm.start_head(extra=["--metrics-port", port])
     url = f"http://127.0.0.1:{port}/metrics"
     farm.start_worker("a")
-    job = farm.submit(tiny_shot)
-    st = farm.wait(job)
-    shot = load_shot(tiny_shot)
-    ranges = sample_ranges(0, shot.samples, st["batch_samples"],
-                           first_pass_samples(shot.samples, st["batch_samples"]))
-    planned = (len(list(shot.frames())) * len(tiles_for(shot.width, shot.height, st["tile_size"]))
-               * len(ranges))
-    got = wait_metric(url, "lampyr_batches_merged_total", lambda v: v >= planned)
-    assert got[("lampyr_batches_merged_total", frozenset())] == planned
-    assert got[("lampyr_pixel_samples_merged_total", frozenset())] == (
-        shot.width * shot.height * shot.samples * len(list(shot.frames())))
+    job = farm.submit(tiny_shot, *LAYOUT)
+    farm.wait(job)
+    # the plan written out from docs/farm.md ("What happens to a job", step 2): 16 × 12 px in
+    # 8 px tiles is 2 × 2 = 4 tiles; 8 spp in batches of 3 after a first pass of 1/16 of the
+    # samples (at least 1) is the ranges [0, 1), [1, 4), [4, 7), [7, 8): 4 batches a tile;
+    # 2 frames → 2 × 4 × 4 = 32 batches and 2 × 16 × 12 × 8 = 3072 pixel-samples
+    got = wait_metric(url, "lampyr_batches_merged_total", lambda v: v >= 32)
+    assert got[("lampyr_batches_merged_total", frozenset())] == 32
+    assert got[("lampyr_pixel_samples_merged_total", frozenset())] == 3072
     assert got[("lampyr_workers_online", frozenset())] == 1
     assert got[("lampyr_jobs", frozenset({("state", "done")}))] == 1
     assert got[("lampyr_lease_expiries_total", frozenset())] == 0
@@ -141,7 +140,7 @@ def test_a_worker_switched_off_mid_batch_shows_as_a_lease_expiry(farm, tiny_shot
     port = free_port()
     farm.start_head(lease=2.0, extra=["--metrics-port", port])
     url = f"http://127.0.0.1:{port}/metrics"
-    slow = farm.start_worker("slow", env={"LAMPYR_TEST_CHUNK_DELAY": "0.5"})
+    slow = farm.start_worker("slow", fakes={"sample_delay": 0.5})
     farm.submit(tiny_shot)
     r = redis.Redis.from_url(farm.url)
     give_up_at = time.monotonic() + 60

@@ -215,7 +215,7 @@ def test_the_night_spends_its_leftover_on_the_noisiest_tiles(seed):
 
 def test_a_real_job_stops_at_its_ready_by_time_done_with_every_frame(farm, tiny_shot, tmp_path):
     farm.start_head()
-    farm.start_worker("slow", env={"LAMPYR_TEST_CHUNK_DELAY": "0.3"})
+    farm.start_worker("slow", fakes={"sample_delay": 0.3})
     until = datetime.fromtimestamp(time.time() + 8).isoformat(timespec="seconds")
     # 8 tiles × 8 samples at ≥ 0.3 s a sample need about 20 s: more than the night
     job = farm.submit(tiny_shot, "--out", tmp_path / "out", "--tile", 8, "--batch", 3,

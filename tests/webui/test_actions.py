@@ -78,15 +78,17 @@ def test_an_action_on_an_unknown_job_is_a_404(user, op):
 
 
 @pytest.fixture
-def failed_tile_job(head, tiny_shot, compiled_kernels, monkeypatch):
-    """A job whose tile 2 of frame 1 raised on every attempt (the worker's test hook)."""
+def failed_tile_job(head, tiny_shot, compiled_kernels):
+    """A job whose tile 2 of frame 1 raised on every attempt (tests/harness.py's poison)."""
     from lampyr.scheduler.submit import submit_request
 
-    monkeypatch.setenv("LAMPYR_TEST_POISON", "1/2")
-    job = submit_request(head.r, tiny_shot, {}, None, 0, tile_size=8, batch_samples=4)
-    head.take_commands()
-    st = work_off(head, job)
-    monkeypatch.delenv("LAMPYR_TEST_POISON")
+    from ..harness import install_task_fakes
+
+    with pytest.MonkeyPatch.context() as mp:  # poisoned only while the job is worked off
+        install_task_fakes({"poison": "1/2"}, mp.setattr)
+        job = submit_request(head.r, tiny_shot, {}, None, 0, tile_size=8, batch_samples=4)
+        head.take_commands()
+        st = work_off(head, job)
     assert st["state"] == "failed"
     return job
 

@@ -60,7 +60,7 @@ def web_farm(web_head):
     """The head and one real worker: (farm, page URL)."""
     farm, url = web_head
     # a short sleep after every sample (the worker's test hook), so the page sees it rendering
-    farm.start_worker("w1", env={"LAMPYR_TEST_CHUNK_DELAY": "0.05"})
+    farm.start_worker("w1", fakes={"sample_delay": 0.05})
     return farm, url
 
 
@@ -177,7 +177,7 @@ def test_a_failed_tile_shows_its_error_and_renders_when_retried(web_head, small_
     shot, archive = small_courtyard
     shots = Shots(tmp_path / "screenshots")
     # tile 1 of frame 2 raises on this worker (its test hook); one attempt (--attempts 1)
-    farm.start_worker("poisoned", env={"LAMPYR_TEST_POISON": "2/1"})
+    farm.start_worker("poisoned", fakes={"poison": "2/1"})
     page = log_in(browser, farm, url)
     upload(page, shot, archive)
     page.wait_for_selector("a.shot")

@@ -34,7 +34,7 @@ def gate(tmp_path):
 
 
 @pytest.fixture
-def one_batch(redis_url, tiny_shot, tmp_path, monkeypatch, gate):
+def one_batch(redis_url, tiny_shot, tmp_path, monkeypatch, gate, compiled_kernels):
     """The shot's files in Redis, a queued batch of 3 samples (ticket 1) and a worker context with a
     gate; returns (r, ctx, task)."""
     monkeypatch.setenv("LAMPYR_CACHE", str(tmp_path / "cache"))
@@ -42,22 +42,34 @@ def one_batch(redis_url, tiny_shot, tmp_path, monkeypatch, gate):
     return r, Context(redis_url, "w", gate), task
 
 
-def raise_after_first_chunk(r, flag, worker="w"):
-    """Raise `flag` (a gate method) once the worker's slot reports speed, i.e. after its first
-    chunk; runs in a thread."""
-    def watch():
-        give_up_at = time.monotonic() + 60
-        while time.monotonic() < give_up_at:
-            for k in r.scan_iter(match=f"lampyr:slot:{worker}:*"):
-                raw = r.get(k)
-                if raw and json.loads(raw)["pixel_samples_per_second"] > 0:
-                    flag(True)
-                    return
-            time.sleep(0.01)
+class ChunkWatch:
+    """Every render call of the task in this process (first, count, start, end on the monotonic
+    clock); `then`, when a test sets it, is called once as the next call returns — at a sample
+    boundary, before the task looks at its gate again."""
 
-    t = threading.Thread(target=watch, daemon=True)
-    t.start()
-    return t
+    def __init__(self, monkeypatch):
+        from lampyr.worker import cache
+
+        self.calls: list = []
+        self.then = None
+        real = cache.SceneCache.renderer
+        watch = self
+
+        class Watched:
+            def __init__(self, inner):
+                self.inner = inner
+
+            def render(self, tile, first, count, film=None):
+                t0 = time.monotonic()
+                out = self.inner.render(tile, first, count, film)
+                watch.calls.append((first, count, t0, time.monotonic()))
+                then, watch.then = watch.then, None
+                if then is not None:
+                    then()
+                return out
+
+        monkeypatch.setattr(cache.SceneCache, "renderer",
+                            lambda self, *a, **kw: Watched(real(self, *a, **kw)))
 
 
 def direct(shot, frame, tile, first, count):
@@ -70,15 +82,16 @@ def test_a_stop_between_chunks_hands_back_the_finished_samples(one_batch, gate, 
     from lampyr.engine.film import from_bytes
 
     r, ctx, task = one_batch
-    monkeypatch.setenv("LAMPYR_TEST_CHUNK_DELAY", "0.3")  # one-sample chunks, 0.3 s apart
-    raise_after_first_chunk(r, gate.set_stop)
+    watch = ChunkWatch(monkeypatch)  # production chunking: the first chunk is one sample
+    watch.then = lambda: gate.set_stop(True)  # the stop comes while that chunk renders
     out = run_batch(ctx, task.to_json())
-    assert out["outcome"] == "handed back" and 0 < out["done"] < 3
+    assert out["outcome"] == "handed back" and out["done"] == 1
+    assert [(f, c) for f, c, *_ in watch.calls] == [(2, 1)]  # nothing rendered after the stop
     note = json.loads(r.lpop(P.K_RESULTS))
-    assert (note["kind"], note["done"], note["ticket"]) == ("partial", out["done"], 1)
+    assert (note["kind"], note["done"], note["ticket"]) == ("partial", 1, 1)
     film = from_bytes(r.get(P.k_result(task.batch.id, 1)))
-    # samples [2, 2 + done) of the batch, exactly as rendered alone (docs/design.md, invariant 1)
-    np.testing.assert_array_equal(film.mean(), direct(tiny_shot, 1, (0, 0, 8, 8), 2, out["done"]).mean())
+    # sample [2, 3) of the batch, exactly as rendered alone (invariant 1)
+    np.testing.assert_array_equal(film.mean(), direct(tiny_shot, 1, (0, 0, 8, 8), 2, 1).mean())
     assert not r.exists(P.k_lease(task.batch.id))
 
 
@@ -91,22 +104,29 @@ def test_a_message_taken_while_stopping_goes_back_untouched(one_batch, gate):
     assert not r.exists(P.k_result(task.batch.id, 1)) and not r.hexists(P.K_ATTEMPTS, task.batch.id)
 
 
-def test_a_paused_batch_keeps_its_lease_and_finishes_after_resume(one_batch, gate, tiny_shot,
-                                                                   monkeypatch):
+def test_a_paused_batch_renders_nothing_keeps_its_lease_and_finishes_after_resume(
+        one_batch, gate, tiny_shot, monkeypatch):
     from lampyr.engine.film import from_bytes
 
     r, ctx, task = one_batch
-    monkeypatch.setenv("LAMPYR_TEST_CHUNK_DELAY", "0.1")
-    raise_after_first_chunk(r, gate.set_pause)
+    watch = ChunkWatch(monkeypatch)  # production chunking, no delay
+    paused_at = {}
+
+    def pause():
+        gate.set_pause(True)
+        paused_at["t"] = time.monotonic()
+
+    watch.then = pause  # raised while the first chunk (one sample) renders
     seen = {}
 
     def resume_later():
-        time.sleep(0.2)
-        while not gate.paused():
-            time.sleep(0.05)
+        while "t" not in paused_at:
+            time.sleep(0.01)
         time.sleep(3.0)  # longer than the 2 s lease: only renewals keep it
-        seen["lease"] = r.exists(P.k_lease(task.batch.id))
+        seen["lease"] = r.get(P.k_lease(task.batch.id))
         seen["slot"] = [json.loads(r.get(k)) for k in r.scan_iter(match="lampyr:slot:w:*")]
+        seen["calls"] = list(watch.calls)
+        seen["resumed"] = time.monotonic()
         gate.set_pause(False)
 
     t = threading.Thread(target=resume_later)
@@ -114,7 +134,11 @@ def test_a_paused_batch_keeps_its_lease_and_finishes_after_resume(one_batch, gat
     out = run_batch(ctx, task.to_json())
     t.join()
     assert out["outcome"] == "done"
-    assert seen["lease"] and seen["slot"][0]["paused"] is True
+    # while paused: one sample rendered (the chunk the pause came in), nothing more
+    assert [(f, c) for f, c, *_ in seen["calls"]] == [(2, 1)]
+    assert all(start > seen["resumed"] for _, _, start, _ in watch.calls[1:])
+    assert sum(c for _, c, *_ in watch.calls) == 3
+    assert seen["lease"] == ctx.holder.encode() and seen["slot"][0]["paused"] is True
     film = from_bytes(r.get(P.k_result(task.batch.id, 1)))
     np.testing.assert_array_equal(film.mean(), direct(tiny_shot, 1, (0, 0, 8, 8), 2, 3).mean())
 
@@ -130,7 +154,7 @@ def take_message(r) -> str | None:
 
 
 @pytest.fixture
-def head_and_job(redis_url, tiny_shot, tmp_path, monkeypatch):
+def head_and_job(redis_url, tiny_shot, tmp_path, monkeypatch, compiled_kernels):
     monkeypatch.setenv("LAMPYR_CACHE", str(tmp_path / "cache"))
     head = Head(tmp_path / "state", redis_url, lease_seconds=5)
     head.start()
@@ -140,10 +164,10 @@ def head_and_job(redis_url, tiny_shot, tmp_path, monkeypatch):
     return head, job
 
 
-def drive(head, job, ctx, interrupt=None, timeout=120):
+def drive(head, job, ctx, watch, interrupt=None, timeout=120):
     """Run the farm in this process until the job is done: the head's loop, and `ctx` rendering
-    every queued message; `interrupt(batch)` → True renders that one with a stop after its first
-    chunk. Returns the raw notices of the hand-backs."""
+    every queued message; `interrupt(batch)` → True renders that one with a stop raised during
+    its first chunk (`watch`: the ChunkWatch). Returns the raw notices of the hand-backs."""
     partials = []
     give_up_at = time.monotonic() + timeout
     while head.job_state(head.jobs[job]) != "done":
@@ -156,10 +180,10 @@ def drive(head, job, ctx, interrupt=None, timeout=120):
         batch = P.RenderTask.from_json(payload).batch
         if interrupt and interrupt(batch):
             ctx.gate.set_stop(False)
-            raise_after_first_chunk(head.r, ctx.gate.set_stop, ctx.name)
+            watch.then = lambda: ctx.gate.set_stop(True)
             out = run_batch(ctx, payload)
             ctx.gate.set_stop(False)
-            assert out["outcome"] == "handed back"
+            assert out["outcome"] == "handed back" and out["done"] == 1
             partials.append(head.r.lindex(P.K_RESULTS, -1))
         else:
             run_batch(ctx, payload)
@@ -169,10 +193,10 @@ def drive(head, job, ctx, interrupt=None, timeout=120):
 def test_partial_results_and_their_remainders_equal_an_uninterrupted_render(
         head_and_job, redis_url, gate, tiny_shot, tmp_path, monkeypatch):
     head, job = head_and_job
-    monkeypatch.setenv("LAMPYR_TEST_CHUNK_DELAY", "0.05")
+    watch = ChunkWatch(monkeypatch)
     ctx = Context(redis_url, "w", gate)
     cut = lambda b: b.count == 3 and b.tile in (0, 3)  # noqa: E731  (full batches of two tiles)
-    partials = drive(head, job, ctx, interrupt=cut)
+    partials = drive(head, job, ctx, watch, interrupt=cut)
     assert len(partials) >= 4
     for f in (1, 2):
         assert_same_image(frame_mean(tmp_path / "out", "tiny", f), reference_mean(tiny_shot, f))
@@ -187,9 +211,8 @@ def test_a_redelivered_partial_notice_is_skipped(head_and_job, redis_url, gate, 
     from lampyr.engine.film import to_bytes
 
     head, job = head_and_job
-    monkeypatch.setenv("LAMPYR_TEST_CHUNK_DELAY", "0.05")
     ctx = Context(redis_url, "w", gate)
-    (raw, *_) = drive(head, job, ctx, interrupt=lambda b: b.count == 3 and b.frame == 1
+    (raw, *_) = drive(head, job, ctx, ChunkWatch(monkeypatch), interrupt=lambda b: b.count == 3 and b.frame == 1
                       and b.tile == 0 and b.first == 1)
     before = frame_mean(tmp_path / "out", "tiny", 1)
     note = json.loads(raw)

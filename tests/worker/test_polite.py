@@ -1,8 +1,9 @@
 """The polite worker with real parts: a real redis-server, a real `lampyr head`, real `lampyr
 worker` processes, a real CPU hog playing the machine's user, real signals.
 
-The worker's clock is moved with its test hook (`LAMPYR_TEST_CLOCK_FILE`: seconds added to the
-real clock), so the end of working hours comes when the test wants it.
+The worker's clock is moved through tests/harness.py (`clock_file`: seconds added to the real
+clock, installed in the supervisor by the test), so the end of working hours comes when the test
+wants it.
 """
 
 from __future__ import annotations
@@ -56,8 +57,7 @@ def test_at_the_end_of_its_hours_a_worker_hands_back_and_the_frames_equal_an_uni
     farm.start_head()
     # 1 s between one-sample chunks: the batch is still under way when the supervisor (which
     # looks at its clock every 0.5 s) raises the stop
-    farm.start_worker("night", env={"LAMPYR_TEST_CHUNK_DELAY": "1.0",
-                                    "LAMPYR_TEST_CLOCK_FILE": str(clock)},
+    farm.start_worker("night", fakes={"sample_delay": 1.0, "clock_file": str(clock)},
                       args=["--hours", "11:00-13:00", "--weekend", "same-hours",
                             "--time-zone", "UTC"])
     assert heartbeat(farm.url, "night")["windows"][0][1] == today.replace(hour=13).timestamp()
@@ -87,7 +87,7 @@ def test_outside_its_hours_a_worker_takes_nothing_and_says_when_it_opens(farm, t
     today = datetime.now(timezone.utc).replace(hour=9, minute=0, second=0, microsecond=0)
     set_clock(clock, today)
     farm.start_head()
-    proc = farm.start_worker("late", env={"LAMPYR_TEST_CLOCK_FILE": str(clock)}, wait=False,
+    proc = farm.start_worker("late", fakes={"clock_file": str(clock)}, wait=False,
                              args=["--hours", "19:00-07:30", "--weekend", "same-hours",
                                    "--time-zone", "UTC"])
     hb = wait_for(lambda: heartbeat(farm.url, "late"), what="the heartbeat")
@@ -120,8 +120,7 @@ def test_a_busy_user_pauses_rendering_and_a_quiet_one_resumes_it(farm, tiny_shot
     try:
         os.kill(hog.pid, signal.SIGSTOP)  # the user is away
         farm.start_head(lease=3)
-        farm.start_worker("desk", env={"LAMPYR_TEST_CHUNK_DELAY": "0.3",
-                                       "LAMPYR_TEST_USER_PIDS": str(hog.pid)},
+        farm.start_worker("desk", fakes={"sample_delay": 0.3, "user_pids": [hog.pid]},
                           args=["--pause-when-busy", "5", "--busy-seconds", "2"])
         job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
         wait_for(lambda: rendering_a_full_batch(farm.url, "desk"), what="a batch under way")
@@ -152,7 +151,7 @@ def test_a_worker_started_before_its_head_waits_in_one_line_and_joins(farm, tiny
 
     port = free_port("127.0.0.1")
     farm.url = f"redis://127.0.0.1:{port}/0"
-    farm.start_worker("early", wait=False, env={"LAMPYR_TEST_CHUNK_DELAY": "0.2"})
+    farm.start_worker("early", wait=False, fakes={"sample_delay": 0.2})
     log = tmp_path / "worker-early.log"
     wait_for(lambda: "retrying in 2 s" in log.read_text(), timeout=30, what="two tries")
     lines = log.read_text().splitlines()
@@ -182,8 +181,7 @@ def test_a_user_busy_for_long_gets_the_batches_handed_back(farm, tiny_shot, tmp_
     try:
         os.kill(hog.pid, signal.SIGSTOP)
         farm.start_head(lease=3)
-        farm.start_worker("desk", env={"LAMPYR_TEST_CHUNK_DELAY": "0.3",
-                                       "LAMPYR_TEST_USER_PIDS": str(hog.pid)},
+        farm.start_worker("desk", fakes={"sample_delay": 0.3, "user_pids": [hog.pid]},
                           args=["--pause-when-busy", "5", "--busy-seconds", "1",
                                 "--hand-back-after", "2"])
         job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
@@ -209,7 +207,7 @@ def test_a_user_busy_for_long_gets_the_batches_handed_back(farm, tiny_shot, tmp_
                                        ("SIGTERM to the worker", "solo")])
 def test_a_stopped_worker_hands_back_its_batch_and_exits(farm, tiny_shot, tmp_path, how, pool):
     farm.start_head()
-    proc = farm.start_worker("leaving", env={"LAMPYR_TEST_CHUNK_DELAY": "1.0"},
+    proc = farm.start_worker("leaving", fakes={"sample_delay": 1.0},
                              args=["--pool", pool])
     job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
     wait_for(lambda: rendering_a_full_batch(farm.url, "leaving"), what="a batch under way")
@@ -243,7 +241,7 @@ def test_the_head_queues_only_for_workers_that_can_take_work(redis_url, tmp_path
 def test_a_worker_killed_outright_leaves_nothing_running_and_its_batch_is_handed_back(
         farm, tiny_shot, tmp_path):
     farm.start_head()
-    proc = farm.start_worker("gone", env={"LAMPYR_TEST_CHUNK_DELAY": "1.0"})
+    proc = farm.start_worker("gone", fakes={"sample_delay": 1.0})
     job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
     wait_for(lambda: rendering_a_full_batch(farm.url, "gone"), what="a batch under way")
     tree = psutil.Process(proc.pid).children(recursive=True)

@@ -11,6 +11,7 @@ from lampyr.engine.shot import load_shot
 from lampyr.scheduler import protocol as P
 from lampyr.worker.tasks import Context, run_batch
 
+from ..harness import install_task_fakes
 from ..scheduler.farmtools import queue_one_batch
 
 
@@ -64,7 +65,7 @@ def test_past_the_attempt_limit_the_batch_is_reported_not_run(setup):
 
 def test_an_error_is_reported_with_its_message(setup, monkeypatch):
     r, ctx, task = setup
-    monkeypatch.setenv("LAMPYR_TEST_POISON", "1/0")
+    install_task_fakes({"poison": "1/0"}, monkeypatch.setattr)
     assert run_batch(ctx, task.to_json())["outcome"] == "error"
     note = json.loads(r.lpop(P.K_RESULTS))
     assert "RuntimeError: poisoned batch" in note["error"]
@@ -74,7 +75,8 @@ def test_an_error_is_reported_with_its_message(setup, monkeypatch):
 def test_a_lapsed_lease_stops_the_batch(setup, monkeypatch):
     r, ctx, task = setup
     r.hset(P.K_CONFIG, "lease_seconds", 0.3)
-    monkeypatch.setenv("LAMPYR_TEST_CHUNK_DELAY", "0.5")  # a chunk outlasts the lease
+    # 0.5 s a sample: the first chunk (one sample) outlasts the 0.3 s lease
+    install_task_fakes({"sample_delay": 0.5}, monkeypatch.setattr)
     assert run_batch(ctx, task.to_json())["outcome"] == "lease lost"
     assert r.llen(P.K_RESULTS) == 0
 
