@@ -362,6 +362,11 @@ def status(job, as_json, head_addr, state):
         _print_job(st)
         for f in st["failed"]:
             click.echo(f"  failed {f['batch']}: {f['error']}")
+        if st.get("error"):  # the job stopped (its frames cannot be written, it cannot load)
+            click.echo(f"  stopped: {st['error']}")
+        if st.get("command_error"):  # the last command on the job that failed
+            c = st["command_error"]
+            click.echo(f"  command {c.get('op', '?')} failed: {c.get('error', '?')}")
         return
     farm = {"jobs": list_jobs(r), "workers": workers(r)}
     if as_json:
