@@ -90,7 +90,7 @@ def test_a_stop_between_chunks_hands_back_the_finished_samples(one_batch, gate, 
     note = json.loads(r.lpop(P.K_RESULTS))
     assert (note["kind"], note["done"], note["ticket"]) == ("partial", 1, 1)
     film = from_bytes(r.get(P.k_result(task.batch.id, 1)))
-    # sample [2, 3) of the batch, exactly as rendered alone (invariant 1)
+    # sample [2, 3) of the batch, exactly as rendered alone (docs/design.md, invariant 1)
     np.testing.assert_array_equal(film.mean(), direct(tiny_shot, 1, (0, 0, 8, 8), 2, 1).mean())
     assert not r.exists(P.k_lease(task.batch.id))
 
