@@ -11,7 +11,9 @@ Scene lights are emissive triangles and spheres, and punctual lights (punctual.p
 delta lights, whose samples report the probability of their choice instead of a density.
 
 Environment maps are latitude-longitude: row 0 is straight up (+y), the middle row the horizon,
-the middle column looks towards -z, and `rotate` turns the map about +y. They are sampled with a
+the middle column looks towards -z, the column three quarters across towards +x, and `rotate`
+turns the map about +y by the right-hand rule, as an object's rotate does (90° brings what lay
+towards -z round to -x). They are sampled with a
 piecewise-constant 2D distribution over pixels weighted by luminance × sin θ (the marginal /
 conditional method, e.g. Pharr, Jakob & Humphreys, *Physically Based Rendering* 3rd ed. §13.6.7).
 """
@@ -55,7 +57,7 @@ def _env_pixel(S, dx, dy, dz):
     h = S.env_map.shape[0]
     w = S.env_map.shape[1]
     theta = math.acos(min(1.0, max(-1.0, dy)))
-    u = (math.atan2(dx, -dz) - S.env_params[2]) / (2.0 * math.pi) + 0.5
+    u = (math.atan2(dx, -dz) + S.env_params[2]) / (2.0 * math.pi) + 0.5
     u -= math.floor(u)
     col = min(w - 1, int(u * w))
     row = min(h - 1, int(theta / math.pi * h))
@@ -112,7 +114,7 @@ def env_sample(S, u1, u2):
     v = (row + min(fv, 0.999999)) / h
     u = (col + min(fu, 0.999999)) / w
     theta = v * math.pi
-    phi = (u - 0.5) * 2.0 * math.pi + S.env_params[2]
+    phi = (u - 0.5) * 2.0 * math.pi - S.env_params[2]
     sin_t = math.sin(theta)
     if sin_t <= 0.0:
         return 0.0, 1.0, 0.0, 0.0
