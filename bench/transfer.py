@@ -6,7 +6,7 @@ A scene of FILES random textures of MIB MiB each (12 × 256 MiB ≈ 3 GiB; rando
 nothing compresses or repeats) named by one OBJ's material file is:
 
 1. submitted (`transfer.upload_shot`, as `lampyr submit` does);
-2. fetched by the head into a job folder (`FileCache.materialise`, as `cmd_submit` does), then by
+2. fetched by the head into a job folder (`FileCache.materialise`, as the `submit` command does), then by
    two workers at once, each with its own cache folder (two machines' caches);
 3. submitted again unchanged, then again with one texture rewritten, and fetched again by the
    head and both workers.
