@@ -69,6 +69,22 @@ def resolve_asset(shot_root, rel_path, key: str, extensions=MESH_EXTENSIONS) -> 
     return path
 
 
+def check_inside(shot_root, path: Path, written: str, key: str) -> None:
+    """AssetError when `path` (a file under the shot's folder) is a symbolic link, or lies under
+    one, whose target is outside the shot's folder: only files inside the folder are packed
+    (checked with the shot's files, `compiler.check_shot_files`; the paths as written are
+    checked by `check_relative`)."""
+    root = Path(shot_root).resolve()
+    try:
+        target = Path(path).resolve()
+    except (OSError, RuntimeError):  # a loop of links
+        raise AssetError(key, f"expected a file inside the shot file's folder, got {_q(written)}, a link "
+                              f"that does not resolve") from None
+    if not target.is_relative_to(root):
+        raise AssetError(key, f"expected a file inside the shot file's folder, got {_q(written)}, a link to "
+                              f"{_q(str(target))} outside it (copy the file into the folder instead)")
+
+
 # --------------------------------------------------------------------------------------------
 # the files an asset pulls in, for submitting
 
@@ -78,8 +94,9 @@ def _obj_mtllibs(path: Path) -> list[str]:
     names = []
     with open(path, "r", encoding="utf-8", errors="replace") as fh:
         for line in fh:
-            if line.startswith("mtllib"):
-                names.extend(line.split()[1:])
+            words = line.split()
+            if words and words[0] == "mtllib":
+                names.extend(words[1:])
     return names
 
 
@@ -92,26 +109,29 @@ def _mtl_statements(path: Path):
                 yield parts[0].lower(), (parts[1] if len(parts) > 1 else "")
 
 
-def _referenced(path: Path) -> list[str]:
-    """Paths (relative to `path`'s folder) that the mesh file at `path` reads besides itself."""
+def _referenced(path: Path) -> list[tuple[str, str]]:
+    """(path, file it is written in) of every file the mesh file at `path` reads besides itself;
+    both relative to `path`'s folder (an MTL file's maps are relative to its OBJ's folder)."""
     ext = path.suffix.lower()
-    refs: list[str] = []
+    refs: list[tuple[str, str]] = []
     if ext == ".obj":
         for mtl in _obj_mtllibs(path):
-            refs.append(mtl)
+            refs.append((mtl, path.name))
             mtl_path = path.parent / mtl
             if mtl_path.is_file():
                 for word, rest in _mtl_statements(mtl_path):
                     if word in _MTL_MAPS and rest:
-                        refs.append(rest.split()[-1])  # options (-bm 1 ...) come before the file
+                        refs.append((rest.split()[-1], mtl))  # options (-bm 1 ...) come before the file
     elif ext in (".gltf", ".glb"):
         doc = _gltf_json(path)
         if not isinstance(doc, dict):
             return refs  # the reader reports the unreadable file
-        for item in doc.get("buffers", []) + doc.get("images", []):
+        items = [item for name in ("buffers", "images")
+                 if isinstance(doc.get(name), list) for item in doc[name]]  # else the reader refuses it
+        for item in items:
             uri = item.get("uri") if isinstance(item, dict) else None
             if isinstance(uri, str) and not uri.startswith("data:"):
-                refs.append(unquote(uri))  # glTF URIs are percent-encoded (RFC 3986)
+                refs.append((unquote(uri), path.name))  # glTF URIs are percent-encoded (RFC 3986)
     return refs
 
 
@@ -130,7 +150,7 @@ def _gltf_json(path: Path):
             if header[16:20] != b"JSON" or length > 256 * 1024**2:
                 return None
             return json.loads(fh.read(length).decode("utf-8"))
-    except (OSError, ValueError):
+    except (OSError, ValueError, RecursionError):  # RecursionError: JSON nested too deeply
         return None
 
 
@@ -142,9 +162,10 @@ def asset_files(shot_root, rel_path: str, key: str) -> list[str]:
     if shot_root is None:
         return out
     root = Path(shot_root)
-    for ref in _referenced(root / rel):
+    for ref, written_in in _referenced(root / rel):
+        source = str(rel.parent / written_in)
         outside = AssetError(key, f"expected every file {_q(rel_path)} uses to lie inside the shot "
-                                  f"file's folder, got a reference to {_q(ref)}")
+                                  f"file's folder, got a reference to {_q(ref)} in {_q(source)}")
         written = PurePosixPath(ref.replace("\\", "/"))
         if written.is_absolute() or (written.parts and ":" in written.parts[0]):
             raise outside

@@ -320,6 +320,9 @@ def intersect_mesh_at(node_lo, node_hi, node_a, node_count, node_axis, tris, tri
     base = np.uint64(node_base)
     tbase = np.uint64(tri_base)
     shift = np.int64(end_base) - np.int64(tri_base)
+    if node_base < 0 or node_base >= node_lo.shape[0]:  # an empty tree: nothing to hit
+        return best_t, best_k, best_u, best_v
+    room = stack.shape[0]
     node = base
     hit, tnear = ray_box_at(ox, oy, oz, idx, idy, idz, tmin, best_t, node_lo, node_hi, node)
     if not hit:
@@ -345,7 +348,7 @@ def intersect_mesh_at(node_lo, node_hi, node_a, node_count, node_axis, tris, tri
                 far = hr and (not hl or tr < tl)
                 node = right if far else left
                 stack[sp] = left if far else right
-                sp += 1 if (hl and hr) else 0
+                sp += 1 if (hl and hr and sp + 1 < room) else 0  # a full stack drops the far child
                 continue
         while True:  # pop the next subtree whose box still lies before the closest hit
             if sp == 0:
@@ -374,6 +377,9 @@ def occluded_mesh_at(node_lo, node_hi, node_a, node_count, node_axis, tris, tris
     base = np.uint64(node_base)
     tbase = np.uint64(tri_base)
     shift = np.int64(end_base) - np.int64(tri_base)
+    if node_base < 0 or node_base >= node_lo.shape[0]:  # an empty tree: nothing to hit
+        return False
+    room = stack.shape[0] - 2
     stack[0] = node_base
     sp = 1
     while sp > 0:
@@ -390,7 +396,7 @@ def occluded_mesh_at(node_lo, node_hi, node_a, node_count, node_axis, tris, tris
                                    sx, sy, sz, tmin, tmax)
                 if h:
                     return True
-        else:
+        elif sp <= room:  # a full stack (never, for trees build_bvh makes) drops the subtree
             stack[sp] = base + np.uint64(node_a[node])
             stack[sp + 1] = node + _U1
             sp += 2

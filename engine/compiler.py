@@ -19,7 +19,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .animation import object_transform
-from .assets import load_environment_map
+from .assets import asset_files, check_inside, load_environment_map
 from .camera import camera_rows, compile_camera
 from .gltf_animation import decompose_trs, world_matrices
 from .lights import build_env_distribution
@@ -29,7 +29,7 @@ from .punctual import PUNCT_SIZE, light_power, light_row
 from .scene import FLAG_COUNT, FLAG_PASSABLE, KIND_MESH, KIND_SPHERE, Scene
 from .scene_data import LIGHT_DIRECTIONAL, LIGHT_POINT, LIGHT_SPOT
 from .scene_import import (
-    Part, _mesh_arrays, assemble, check_has_area, read_scene_file, sheared_moving_nodes, shown_nodes,
+    MAX_COORD, Part, _mesh_arrays, assemble, check_has_area, read_scene_file, sheared_moving_nodes, shown_nodes,
 )
 from .skinning import SPACE_WORLD, deformed_vertices
 from .bvh import build_bvh
@@ -86,17 +86,52 @@ def read_shot_files(shot):
 
 def check_shot_files(shot) -> list[str]:
     """Read every file the shot renders, as a worker will, so that a bad file is refused before
-    anything is submitted (AssetError / ShotError); returns warning lines for the person."""
-    scene, files = read_shot_files(shot)
+    anything is submitted (AssetError / ShotError naming the shot file, the key and the asset);
+    returns warning lines for the person.
+
+    In order: the files the shot would send (`Shot.files()`: references that leave the shot's
+    folder, links to outside it), every mesh and scene file (the readers the worker runs, with
+    their textures and buffers) and the environment map."""
+    from lampyr.errors import ShotError
+
+    try:
+        _check_files_inside(shot)
+        scene, files = read_shot_files(shot)
+        if shot.environment.map is not None:
+            build_env_distribution(load_environment_map(shot.root, shot.environment.map, "environment.map"))
+    except ShotError as err:
+        if shot.path is not None and not err.file:
+            err.file = str(shot.path)
+        raise
+    except RecursionError:  # a reader handed a file nested deeper than Python recurses
+        raise ShotError("", "a file the shot uses is nested too deeply to read", str(shot.path or "")) from None
     warnings = []
     for sd in ([scene] if scene is not None else []) + list(files.values()):
         if sd.extensions_ignored:
             warnings.append(f"{sd.path}: lampyr does not read the optional extension(s) "
                             f"{', '.join(sd.extensions_ignored)}; the scene renders without them")
+    for sd in ([scene] if scene is not None else []) + list(files.values()):
+        big = max((float(np.abs(m.positions).max()) for m in sd.meshes if len(m.positions)), default=0.0)
+        if big > MAX_COORD:
+            warnings.append(f"{sd.path}: vertex coordinates reach {big:.3g}; lampyr clamps them to "
+                            f"±{MAX_COORD:g} scene units")
     for node in ([] if scene is None else sheared_moving_nodes(scene)):
         warnings.append(f"{scene.path}: nodes[{node}] ({scene.nodes[node].name}) is sheared and animated; "
                         f"lampyr renders it with the nearest rotation and scale")
     return warnings
+
+
+def _check_files_inside(shot) -> None:
+    """Every file the shot would send (`Shot.files()`, by the key that names it) lies inside the
+    shot's folder: no reference leaves it, and no link in it leads out of it."""
+    if shot.root is None:
+        return
+    named = ([("scene", shot.scene)] if shot.scene is not None else []) \
+        + [(f"object[{o.name}].mesh", o.mesh) for o in shot.objects if o.mesh is not None] \
+        + ([("environment.map", shot.environment.map)] if shot.environment.map is not None else [])
+    for key, rel in named:
+        for f in asset_files(shot.root, rel, key):
+            check_inside(shot.root, shot.root / f, f, key)
 
 
 def scene_camera_node(shot, scene) -> int:
@@ -279,10 +314,10 @@ def compile_frame(shot, geom: Geometry, frame: int):
     if k:
         tl = build_bvh(world_lo[:k], world_hi[:k], leaf_size=2)
         tl_arrays = (tl.lo, tl.hi, tl.a, tl.count, tl.axis, tl.order)
-    else:  # an empty scene: one leaf box that nothing can hit
+    else:  # an empty scene: a top level of no nodes, which the traversals answer with a miss
         tl_arrays = (
-            np.full((1, 3), np.inf, np.float32), np.full((1, 3), -np.inf, np.float32),
-            np.zeros(1, np.int32), np.zeros(1, np.int32), np.zeros(1, np.int8), np.zeros(1, np.int32),
+            np.zeros((0, 3), np.float32), np.zeros((0, 3), np.float32),
+            np.zeros(0, np.int32), np.zeros(0, np.int32), np.zeros(0, np.int8), np.zeros(0, np.int32),
         )
 
     light_inst, light_prim, power = [], [], []

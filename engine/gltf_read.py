@@ -43,7 +43,10 @@ def read_gltf(path, key: str, shown: str | None = None) -> SceneData:
     the file (default: its file name). Every problem is an AssetError of one line naming the
     file and the glTF path (`meshes[0].primitives[1].indices`)."""
     gf = GltfFile(path, key, shown)
-    gf.load()
+    try:
+        gf.load()
+    except RecursionError:  # JSON nested thousands deep: no glTF property goes so deep
+        gf.fail("", "expected a glTF document nested a few levels deep, got nesting too deep to read")
     doc = gf.doc
     ignored = _check_extensions(gf)
     mats = MaterialReader(gf)

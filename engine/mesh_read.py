@@ -25,6 +25,7 @@ Errors are one-line `AssetError`s naming the key, the file and the place in it.
 
 from __future__ import annotations
 
+import io
 from pathlib import Path, PurePosixPath
 
 import numpy as np
@@ -181,6 +182,16 @@ def _file_uvs(geom):
     return uv
 
 
+def _obj_text(path: Path) -> str:
+    """An OBJ file's text: UTF-8 when it is, else Latin-1 (every byte is a character there, so a
+    comment or name written in an older 8-bit encoding never stops the read)."""
+    raw = path.read_bytes()
+    try:
+        return raw.decode("utf-8-sig")
+    except UnicodeDecodeError:
+        return raw.decode("latin-1")
+
+
 def read_mesh_file(path, key: str, root=None) -> SceneData:
     """The `SceneData` of the OBJ, PLY or STL file at `path` (an existing file).
 
@@ -194,7 +205,15 @@ def read_mesh_file(path, key: str, root=None) -> SceneData:
     if ext not in MESH_FILE_EXTENSIONS:
         raise AssetError(key, f"expected a file ending in {', '.join(MESH_FILE_EXTENSIONS)}, got {_q(path.name)}")
     try:
-        scene = trimesh.load_scene(str(path), process=False)
+        if ext == ".obj":  # text: read here, so that any bytes decode (see _obj_text)
+            scene = trimesh.load_scene(io.BytesIO(_obj_text(path).encode("utf-8")), file_type="obj",
+                                       resolver=trimesh.resolvers.FilePathResolver(str(path)),
+                                       process=False)
+        else:
+            scene = trimesh.load_scene(str(path), process=False)
+    except RecursionError:
+        raise AssetError(key, f"expected a readable {ext[1:].upper()} mesh, got {_q(path.name)}, which is "
+                              f"nested too deeply to read") from None
     except Exception as exc:  # trimesh raises many kinds; the person needs one line
         first = (str(exc).strip().splitlines() or [type(exc).__name__])[0]
         raise AssetError(key, f"expected a readable {ext[1:].upper()} mesh, got {_q(path.name)}, which failed "

@@ -196,10 +196,13 @@ def intersect_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack, v
     best_k = -1
     best_u = 0.0
     best_v = 0.0
+    if S.tl_count.shape[0] == 0:  # an empty scene: no top-level node to enter
+        return best_t, best_i, best_k, best_u, best_v
     idx = 1.0 / dx if dx != 0.0 else math.copysign(math.inf, dx)
     idy = 1.0 / dy if dy != 0.0 else math.copysign(math.inf, dy)
     idz = 1.0 / dz if dz != 0.0 else math.copysign(math.inf, dz)
-    sp = 0
+    n_nodes = S.tl_count.shape[0]
+    room = stack_top.shape[0] - 2
     stack_top[0] = 0
     sp = 1
     while sp > 0:
@@ -218,7 +221,7 @@ def intersect_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack, v
                 t, k, u, v = intersect_instance(S, i, ox, oy, oz, dx, dy, dz, best_t, time_u, stack)
                 if k >= 0 and t < best_t:
                     best_t, best_i, best_k, best_u, best_v = t, i, k, u, v
-        else:
+        elif node + 1 < n_nodes and 0 <= S.tl_a[node] < n_nodes and sp <= room:  # never past the arrays
             left = node + 1
             right = S.tl_a[node]
             axis = S.tl_axis[node]
@@ -237,9 +240,13 @@ def intersect_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack, v
 def occluded_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack, visit=VISIT_ALL):
     """True if anything lies on the ray strictly before tmax (shadow rays; early exit);
     visit: which instances to test (VISIT_*)."""
+    n_nodes = S.tl_count.shape[0]
+    if n_nodes == 0:  # an empty scene
+        return False
     idx = 1.0 / dx if dx != 0.0 else math.copysign(math.inf, dx)
     idy = 1.0 / dy if dy != 0.0 else math.copysign(math.inf, dy)
     idz = 1.0 / dz if dz != 0.0 else math.copysign(math.inf, dz)
+    room = stack_top.shape[0] - 2
     stack_top[0] = 0
     sp = 1
     while sp > 0:
@@ -278,7 +285,7 @@ def occluded_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack, vi
                         lox, loy, loz, ldx, ldy, ldz, 0.0, tmax, stack,
                     ):
                         return True
-        else:
+        elif node + 1 < n_nodes and 0 <= S.tl_a[node] < n_nodes and sp <= room:  # never past the arrays
             stack_top[sp] = node + 1
             stack_top[sp + 1] = S.tl_a[node]
             sp += 2

@@ -39,6 +39,9 @@ MATERIAL_TYPES = {"diffuse": DIFFUSE, "metal": METAL, "glass": GLASS, "plastic":
 DEFAULT_GREY = (0.8, 0.8, 0.8)  # rule of thumb: a mid-light grey for meshes without a colour
 GLTF_EXTENSIONS = (".glb", ".gltf")
 SCENE_MESH_EXTENSIONS = (".glb", ".gltf", ".obj", ".ply", ".stl")
+# Vertex coordinates are clamped to +-MAX_COORD scene units: the kernels store vertices as
+# float32 (IEEE 754 binary32 ends at 3.4e38), and room is left for placements and bounds.
+MAX_COORD = 1e30
 
 
 def read_scene_file(root, rel_path: str, key: str) -> SceneData:
@@ -50,21 +53,36 @@ def read_scene_file(root, rel_path: str, key: str) -> SceneData:
         return read_gltf(path, key)
     from .mesh_read import read_mesh_file
 
-    return read_mesh_file(path, key)
+    return read_mesh_file(path, key, root)
 
 
 def check_has_area(sd: SceneData, rel_path: str, key: str) -> None:
-    """AssetError unless some triangle of the file has an area above float64 rounding of the
-    mesh's size squared (a file of only degenerate triangles shows nothing)."""
+    """AssetError unless some triangle of the file has non-zero area: the sine of the angle
+    between two of its edges above 1e-12, far above float64 rounding (a file of only degenerate
+    triangles shows nothing). Edges are scaled to at most 1 first, so that huge but finite
+    coordinates (1e308) cannot overflow the products."""
     for mesh in sd.meshes:
         p = np.asarray(mesh.positions, np.float64)
         f = np.asarray(mesh.faces, np.int64).reshape(-1, 3)
         if len(f) == 0 or len(p) == 0:
             continue
-        tri = p[f]
-        extent = float(np.ptp(p, axis=0).max())
-        cross = np.linalg.norm(np.cross(tri[:, 1] - tri[:, 0], tri[:, 2] - tri[:, 0]), axis=1)
-        if extent > 0.0 and float(cross.max()) > 1e-12 * extent * extent:
+        big = float(np.abs(p).max())
+        if not 0.0 < big < np.inf:
+            continue
+        with np.errstate(under="ignore"):  # tiny coordinates next to huge ones may flush to 0
+            tri = (p / big)[f]  # coordinates in [-1, 1]: edges at most 2 long
+            e1 = tri[:, 1] - tri[:, 0]
+            e2 = tri[:, 2] - tri[:, 0]
+            n1 = np.abs(e1).max(axis=1)
+            n2 = np.abs(e2).max(axis=1)
+            ok = (n1 > 0.0) & (n2 > 0.0)
+            if not ok.any():
+                continue
+            u1 = e1[ok] / n1[ok, None]  # each edge's largest component is now +-1
+            u2 = e2[ok] / n2[ok, None]
+            sine = (np.linalg.norm(np.cross(u1, u2), axis=1)
+                    / (np.linalg.norm(u1, axis=1) * np.linalg.norm(u2, axis=1)))
+        if float(sine.max()) > 1e-12:
             return
     raise AssetError(key, f"expected a mesh with at least one triangle of non-zero area, got {rel_path!r}, "
                           f"whose triangles are all degenerate")
@@ -170,6 +188,8 @@ def _mesh_arrays(mesh, mat_rows: np.ndarray, rows: list, texrefs: list, position
     computed (tangents.py) when a normal-mapped material needs them and there are none, from the
     UV set its normal texture reads (texrefs: the texture-reference rows so far)."""
     positions = mesh.positions if positions is None else positions
+    # huge but finite coordinates are clamped: the kernels keep vertices as float32 (see MAX_COORD)
+    positions = np.clip(np.asarray(positions, np.float64), -MAX_COORD, MAX_COORD)
     normals = mesh.normals if normals is None else normals
     tangents = mesh.tangents if tangents is _FILE else tangents
     faces = np.asarray(mesh.faces, np.int64)

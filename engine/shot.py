@@ -411,9 +411,9 @@ def _camera(t: _Table, scene_file: bool = False) -> Camera:
     if scene_camera is not None and not scene_file:
         _fail(t.key("scene_camera"), 'a shot with a scene file (scene = "assets/shot.glb") to take the camera from',
               scene_camera)
-    placeholder = None if scene_camera is None else _frozen([0, 0, 0])
-    position = t.get("position", _POINT, placeholder)
-    target = t.get("target", _POINT, None if scene_camera is None else _frozen([0, 0, -1]))
+    # required without a scene camera (_MISSING: the one-line "the key is required" error)
+    position = t.get("position", _POINT, _MISSING if scene_camera is None else _frozen([0, 0, 0]))
+    target = t.get("target", _POINT, _MISSING if scene_camera is None else _frozen([0, 0, -1]))
     keys = _keys(t, {"frame", "position", "target", "up", "fov", "focus"}, read_key)
     auto = not t.has("focus") and all(k.focus is None for k in keys)
     distance = float(np.linalg.norm(target - position))
@@ -628,9 +628,12 @@ def parse_shot_text(text: str, root=None, path=None) -> Shot:
     """Parse shot TOML text (for instance from a submitted scene's files); see parse_shot."""
     try:
         data = tomllib.loads(text)
+        return parse_shot(data, root=root, path=path)
     except tomllib.TOMLDecodeError as exc:
         raise _toml_error(exc) from None
-    return parse_shot(data, root=root, path=path)
+    except RecursionError:  # tables or arrays nested thousands deep: no shot key goes so deep
+        raise ShotError("", "expected a shot file whose tables and arrays nest a few levels deep, "
+                            "got nesting too deep to read") from None
 
 
 def load_shot(path) -> Shot:

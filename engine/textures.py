@@ -187,13 +187,17 @@ def tex_lookup(tex_pixels, tex_info, texrefs, srgb_lut, ref, u, v):
     tex_pixels (N,) uint8; tex_info (I, 4) int64; texrefs (R, TEXREF_SIZE) float64;
     srgb_lut (256,) float64. A negative ref gives (1, 1, 1, 1), the neutral factor.
     """
-    if ref < 0:
+    if ref < 0 or ref >= texrefs.shape[0]:  # no texture, or an empty table
         return 1.0, 1.0, 1.0, 1.0
     t = texrefs[ref]
     img = int(t[TR_IMAGE])
+    if img < 0 or img >= tex_info.shape[0]:  # no image behind the reference (an empty list)
+        return 1.0, 1.0, 1.0, 1.0
     offset = tex_info[img, TI_OFFSET]
     w = tex_info[img, TI_WIDTH]
     h = tex_info[img, TI_HEIGHT]
+    if w <= 0 or h <= 0 or offset < 0 or offset + 4 * w * h > tex_pixels.shape[0]:
+        return 1.0, 1.0, 1.0, 1.0
     mode_s = int(t[TR_WRAP_S])
     mode_t = int(t[TR_WRAP_T])
     srgb = t[TR_SRGB] > 0.5
