@@ -88,8 +88,9 @@ def check_room(r, need: int) -> None:
 
 
 def _refused_for_memory(r, err, need: int):
-    """An OOM answer from Redis (past maxmemory, noeviction) as FarmFull; anything else as is."""
-    if not str(err).startswith("OOM"):
+    """An OOM answer from Redis (past maxmemory, noeviction) as FarmFull; anything else as is.
+    redis-py raises OutOfMemoryError for it (the answer's "OOM" prefix removed)."""
+    if not (isinstance(err, redis_errors().OutOfMemoryError) or str(err).startswith("OOM")):
         return err
     info = r.info("memory")
     return _full(int(info.get("used_memory") or 0), int(info.get("maxmemory") or 0), need)

@@ -257,3 +257,59 @@ def test_the_embedded_redis_dies_with_a_head_killed_outright(tmp_path):
     else:
         os.kill(pid, signal.SIGKILL)
         raise AssertionError("redis-server outlived its head")
+
+
+# ---------------------------------------------------------------------------------------------
+# a full farm: the submitter is told, in one line, before Redis refuses the queue's writes
+
+
+@pytest.fixture
+def small_server(tmp_path):
+    s = EmbeddedRedis(tmp_path / "redis", maxmemory=16 << 20).start()
+    yield s
+    s.stop()
+
+
+def test_a_scene_that_would_fill_the_farm_is_refused_before_sending(small_server):
+    import hashlib
+    import os
+
+    from lampyr.scheduler import transfer
+
+    artist = as_user(small_server, "artist")
+    data = os.urandom(14 << 20)  # 14 MiB new bytes: past 80 % of a 16 MiB cap
+    sha = hashlib.sha256(data).hexdigest()
+    sender = transfer._Sender(artist, 60, 1 << 30, transfer.Sent(files=1))
+    sender.add(sha, data)
+    with pytest.raises(transfer.FarmFull) as err:
+        sender.flush()
+    text = str(err.value)
+    assert text.startswith("the farm is full: its Redis holds ") and "\n" not in text
+    assert "of 0.02 GiB" in text and "needs 0.01 GiB more" in text  # 16 MiB cap, 14 MiB asked
+    assert not artist.exists(f"lampyr:blob:{sha}")  # nothing sent
+    small = os.urandom(1 << 20)  # what fits still goes
+    sender.add(hashlib.sha256(small).hexdigest(), small)
+    sender.waiting = [(hashlib.sha256(small).hexdigest(), small)]
+    sender.flush()
+    assert artist.exists(f"lampyr:blob:{hashlib.sha256(small).hexdigest()}")
+
+
+def test_redis_refusing_a_write_for_memory_reads_as_the_farm_being_full(small_server):
+    import os
+
+    from lampyr.scheduler import transfer
+
+    head, artist = as_user(small_server, "head"), as_user(small_server, "artist")
+    # the head fills Redis past its cap (noeviction): Redis refuses a write once the memory in
+    # use is above maxmemory, so the last write that fits takes it over
+    for i in range(2000):
+        try:
+            head.set(f"lampyr:blob:{i:064x}", os.urandom(64 << 10))
+        except redis.exceptions.OutOfMemoryError:  # Redis's refusal past maxmemory ("OOM …")
+            break
+    else:
+        raise AssertionError("Redis took 125 MiB under a 16 MiB cap")
+    with pytest.raises(redis.exceptions.ResponseError) as err:
+        artist.set("lampyr:scene:" + "c" * 64, b"x" * 4096)
+    full = transfer._refused_for_memory(artist, err.value, 4096)
+    assert isinstance(full, transfer.FarmFull) and str(full).startswith("the farm is full")
