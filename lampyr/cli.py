@@ -175,8 +175,11 @@ def _job_or_fail(r, job):
 @click.option("--redis-memory", default=None, metavar="SIZE",
               help="Memory the embedded Redis may hold, e.g. 4G (default: half of this machine's); "
                    "a shot that does not fit is refused at submit.")
+@click.option("--archive-after", "archive_days", type=click.FloatRange(0, 36500), default=30.0,
+              show_default=True, metavar="DAYS",
+              help="Days after its end a job folds into the archive (no longer loaded or published).")
 def head(state, redis_url, listen, port, lease_seconds, max_attempts, metrics_port,
-         metrics_listen, web_port, web_listen, no_web, redis_memory):
+         metrics_listen, web_port, web_listen, no_web, redis_memory, archive_days):
     """Run the farm's head: Redis, planner, merger and lease keeper."""
     from .scheduler.redis_server import parse_size
     from .scheduler.service import run_head
@@ -200,7 +203,8 @@ def head(state, redis_url, listen, port, lease_seconds, max_attempts, metrics_po
     metrics = None if metrics_port is None else (metrics_listen, metrics_port)
     web = None if no_web else (web_listen or listen, web_port)
     run_head(state, redis_url, listen, port, lease_seconds, max_attempts, on_ready=ready,
-             metrics=metrics, web=web, on_web=web_ready, maxmemory=maxmemory)
+             metrics=metrics, web=web, on_web=web_ready, maxmemory=maxmemory,
+             archive_after=archive_days * 86400.0)
 
 
 @cli.command()

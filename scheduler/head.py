@@ -278,7 +278,7 @@ class Head:
         self.progress.publish(self.jobs, self.dispatcher.leased_tiles(), pipe, force)
         self.history.record(self, pipe)
         pipe.execute()
-        self._fold()
+        self._fold(force)
 
     # -- ends of jobs -------------------------------------------------------------------------
 
@@ -299,10 +299,11 @@ class Head:
             self.dispatcher.forget_attempts(run.rec.id)
             self.scenes.release(run, unfinished)
 
-    def _fold(self, every: float = 60.0) -> None:
-        """Jobs ended more than `archive_after` seconds ago leave the head's table."""
+    def _fold(self, force: bool = False, every: float = 60.0) -> None:
+        """Jobs ended more than `archive_after` seconds ago leave the head's table (looked at
+        once a minute, and at every forced publish)."""
         now = time.monotonic()
-        if self.archive_after is None or now - self._fold_at < every:
+        if self.archive_after is None or (not force and now - self._fold_at < every):
             return
         self._fold_at = now
         old = [run for run in self.jobs.values() if run.rec.ended is not None

@@ -16,7 +16,7 @@ def run_head(state: Path, redis_url: str | None = None, listen: str = "127.0.0.1
              on_ready=None, stop: threading.Event | None = None,
              metrics: tuple[str, int] | None = None,
              web: tuple[str, int | None] | None = None, on_web=None,
-             maxmemory: int | None = None) -> None:
+             maxmemory: int | None = None, archive_after: float | None = None) -> None:
     """Run a head until SIGTERM/SIGINT (or `stop` is set).
 
     redis_url: an existing Redis to use; otherwise an embedded one is started under
@@ -24,6 +24,7 @@ def run_head(state: Path, redis_url: str | None = None, listen: str = "127.0.0.1
     on_ready(workers, commands): called once the head serves, with the addresses workers and the
     artists' commands need (the same one when `redis_url` is given).
     maxmemory: bytes the embedded Redis may hold (default: redis_server.default_memory()).
+    archive_after: seconds after its end a job folds into the archive (None: head.ARCHIVE_AFTER).
     metrics: (host, port) to serve the Prometheus endpoint on (metrics.py); None: not served.
     web: (host, port) of the web page (lampyr.webui; port None: its default); None: not served.
     on_web(url, password_file): called once the web page serves.
@@ -53,7 +54,10 @@ def run_head(state: Path, redis_url: str | None = None, listen: str = "127.0.0.1
         signal.signal(signal.SIGTERM, on_signal)
         signal.signal(signal.SIGINT, on_signal)
     try:
+        from .head import ARCHIVE_AFTER
+
         head = Head(state, redis_url, lease_seconds=lease_seconds, max_attempts=max_attempts,
+                    archive_after=ARCHIVE_AFTER if archive_after is None else archive_after,
                     redis_server=server)
         head.start()
         if metrics is not None:

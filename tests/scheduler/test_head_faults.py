@@ -204,3 +204,19 @@ def test_a_restart_does_not_rewrite_frames_already_written(head, tiny_shot, redi
     again.start()
     assert frame.stat().st_mtime_ns == before
     assert again.jobs[job].written.get(1) == head.jobs[job].written.get(1)
+
+
+def test_an_ended_job_folds_into_the_archive_after_its_age(redis_url, tmp_path, tiny_shot):
+    head = Head(tmp_path / "state", redis_url, lease_seconds=5, archive_after=0.0)
+    head.start()
+    job = submit(head, tiny_shot)
+    head.command("cancel", job=job)
+    head.publish(force=True)  # the end is noted, and (older than 0 s) the job folds away
+    assert job not in head.jobs
+    folder = JobFolder(tmp_path / "state", job)
+    assert (folder.root / "archived.json").exists() and not folder.record.exists()
+    st = job_status(head.r, job)
+    assert st["state"] == "cancelled" and st["archived"] is True
+    again = Head(tmp_path / "state", redis_url, lease_seconds=5)
+    again.start()
+    assert job not in again.jobs and job_status(again.r, job)["archived"] is True
