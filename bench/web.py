@@ -148,7 +148,9 @@ def main() -> None:
         head = subprocess.Popen(lampyr("head", "--state", tmp / "state", "--web-port", 0),
                                 stdout=open(head_log, "wb"), stderr=subprocess.STDOUT, env=env)
         procs.append(head)
-        url = wait_for(head_log, r"lampyr worker (\S+)", head).group(1)
+        wait_for(head_log, r"lampyr worker (\S+)", head)
+        # the head's own address (Redis user `head`), good for the worker and the commands alike
+        url = json.loads((tmp / "state" / "head.json").read_text())["address"]
         m = wait_for(head_log, r"Web page: (\S+)\s+\(password in ([^)]+)\)", head)
         web, password = urlsplit(m.group(1)), Path(m.group(2)).read_text().strip()
         host, port = web.hostname, web.port
