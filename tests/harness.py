@@ -14,9 +14,10 @@ FAKES-JSON is an object with any of:
 - "poison": "frame/tile" — every batch of that tile raises RuntimeError("poisoned batch …");
 - "sample_delay": seconds — the renderer sleeps this long for every sample it renders (a slow
   machine; the production chunking sizes its chunks to it as to any renderer);
-- "chunk_log": path — every render call appends a JSON line {"pid", "tile": [x0, y0, w, h],
-  "first", "count", "end"} (end: time.time() when it returned), so a test can see which
-  samples a worker rendered and when;
+- "chunk_log": path — every render call appends a JSON line {"kind": "chunk", "pid",
+  "tile": [x0, y0, w, h], "first", "count", "start", "end"} (time.time() around the call), and
+  every batch the task ends one {"kind": "outcome", "pid", "batch", "outcome", "end"}, so a test
+  sees which samples a worker rendered, when, and how each batch ended;
 - "clock_file": path — the supervisor's clock is time.time() plus the seconds written in that
   file (re-read at every look);
 - "user_pids": [pid, …] — only these processes (and their children) count as the machine's
@@ -43,6 +44,11 @@ def command(fakes: dict, *args) -> list[str]:
 
 # -- the render task (in the pool processes, or in this process) ------------------------------
 
+def _log(path: str, record: dict) -> None:
+    with open(path, "a") as f:  # one short append per line: lines do not interleave
+        f.write(json.dumps(record) + "\n")
+
+
 class _Slowed:
     """A FrameRenderer that sleeps `delay` per sample after rendering and logs each call."""
 
@@ -50,14 +56,14 @@ class _Slowed:
         self.inner, self.delay, self.log = inner, delay, log
 
     def render(self, tile, first, count, film=None):
+        start = time.time()
         out = self.inner.render(tile, first, count, film)
         if self.delay:
             time.sleep(self.delay * count)
         if self.log:
-            line = json.dumps({"pid": os.getpid(), "tile": [tile.x0, tile.y0, tile.w, tile.h],
-                               "first": first, "count": count, "end": time.time()})
-            with open(self.log, "a") as f:  # one short append per line: lines do not interleave
-                f.write(line + "\n")
+            _log(self.log, {"kind": "chunk", "pid": os.getpid(),
+                            "tile": [tile.x0, tile.y0, tile.w, tile.h], "first": first,
+                            "count": count, "start": start, "end": time.time()})
         return out
 
     def __getattr__(self, name):
@@ -89,13 +95,25 @@ def install_task_fakes(fakes: dict, setattr=setattr) -> None:
             return _Slowed(real_renderer(self, *args, **kw), delay, log)
 
         setattr(cache.SceneCache, "renderer", renderer)
+    if log:
+        real_run = tasks.run_batch
+
+        def logged_run(ctx, payload):
+            out = real_run(ctx, payload)
+            _log(log, {"kind": "outcome", "pid": os.getpid(), "batch": out.get("batch"),
+                       "outcome": out.get("outcome"), "end": time.time()})
+            return out
+
+        setattr(tasks, "run_batch", logged_run)
 
 
-def read_chunk_log(path) -> list[dict]:
+def read_log(path, kind: str = "chunk") -> list[dict]:
+    """The records of one kind ("chunk" or "outcome") a chunk_log holds so far."""
     p = Path(path)
     if not p.exists():
         return []
-    return [json.loads(line) for line in p.read_text().splitlines() if line.strip()]
+    lines = p.read_text().splitlines()
+    return [d for line in lines if line.endswith("}") and (d := json.loads(line))["kind"] == kind]
 
 
 # -- the supervisor (`lampyr worker`) ----------------------------------------------------------

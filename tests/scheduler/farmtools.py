@@ -9,6 +9,32 @@ import numpy as np
 
 LAYOUT = ("--tile", 8, "--batch", 3)  # 16 × 12 px → 4 tiles; 8 spp → ranges 1, 3, 3, 1
 
+# The heavy shot (tests/conftest.py) on the production chunking, no delay: one 32 px tile holds
+# the whole 32 × 24 frame; 2048 spp in batches of 2048 after a first pass of 1/16 (docs/farm.md)
+# → [0, 128) and the big batch [128, 2048). With leases of 8 s a worker renders chunks of about
+# 2 s (lease / 4, worker/tasks.py), renewing its lease between them.
+HEAVY_LAYOUT = ("--tile", 32, "--batch", 2048)
+HEAVY_LEASE = 8.0
+BIG_FIRST, BIG_COUNT = 128, 1920
+
+
+def big_chunks(log, pid=None) -> list[dict]:
+    """The chunks of the heavy shot's big batch a chunk log holds (of one pool process)."""
+    from ..harness import read_log
+
+    return [c for c in read_log(log) if c["first"] >= BIG_FIRST and pid in (None, c["pid"])]
+
+
+def big_batch_under_way(log):
+    """Once a pool process has rendered two chunks of the big batch, the second of them a
+    production one (more than one sample, so sized to the lease): its pid; else None."""
+    chunks = big_chunks(log)
+    for pid in {c["pid"] for c in chunks}:
+        mine = [c for c in chunks if c["pid"] == pid]
+        if len(mine) >= 2 and mine[1]["count"] > 1 and sum(c["count"] for c in mine) < BIG_COUNT:
+            return pid
+    return None
+
 
 def wait_for(cond, timeout=60, what="condition"):
     give_up_at = time.monotonic() + timeout

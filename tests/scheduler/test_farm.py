@@ -14,7 +14,8 @@ import time
 import pytest
 import redis
 
-from .farmtools import LAYOUT, assert_same_image, frame_mean, reference_mean, wait_for
+from .farmtools import (BIG_COUNT, HEAVY_LAYOUT, HEAVY_LEASE, LAYOUT, assert_same_image,
+                        big_batch_under_way, big_chunks, frame_mean, reference_mean, wait_for)
 
 def busy_slot(url, worker):
     """The first batch `worker` renders now, as its slot record (batch, pid)."""
@@ -57,42 +58,62 @@ def test_frames_default_to_a_folder_per_job_under_the_state(farm, tiny_shot):
     assert (farm.state / "jobs" / job / "frames" / "tiny.0001.exr").exists()
 
 
+def assert_heavy_frame_matches_engine(out, shot):
+    assert_same_image(frame_mean(out, "heavy", 1), reference_mean(shot, 1))
+
+
 @pytest.mark.parametrize("victim", ["process", "whole worker"])
-def test_sigkill_mid_batch_job_completes_with_equal_frames(farm, tiny_shot, tmp_path, victim):
-    farm.start_head(lease=3)
-    slow = farm.start_worker("slow", fakes={"sample_delay": 0.4})
-    job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
-    slot = wait_for(lambda: busy_slot(farm.url, "slow"), what="a batch on the slow worker")
+def test_sigkill_mid_batch_job_completes_with_equal_frames(farm, heavy_shot, tmp_path, victim):
+    # production chunking (no delay) on the heavy shot: killed in the middle of a chunk of
+    # about 2 s, after at least one lease renewal
+    log = tmp_path / "chunks.jsonl"
+    farm.start_head(lease=HEAVY_LEASE)
+    slow = farm.start_worker("slow", fakes={"chunk_log": str(log)})
+    job = farm.submit(heavy_shot, "--out", tmp_path / "out", *HEAVY_LAYOUT)
+    pid = wait_for(lambda: big_batch_under_way(log), timeout=120, what="the big batch under way")
     if victim == "process":
-        os.kill(slot["pid"], signal.SIGKILL)  # the Celery pool process rendering the batch
+        os.kill(pid, signal.SIGKILL)  # the Celery pool process rendering the batch
     else:
         os.killpg(slow.pid, signal.SIGKILL)  # the machine is switched off
+    done_before = sum(c["count"] for c in big_chunks(log, pid))
+    assert 0 < done_before < BIG_COUNT
     farm.start_worker("b")
-    st = farm.wait(job, timeout=90)
+    st = farm.wait(job, timeout=240)
     assert st["state"] == "done" and not st["failed"]
-    assert_frames_match_engine(tmp_path / "out", tiny_shot)
+    assert big_chunks(log, pid)[-1]["count"] > 1  # it did render multi-sample chunks
+    assert_heavy_frame_matches_engine(tmp_path / "out", heavy_shot)
 
 
-def test_sigstop_lease_expires_and_late_result_changes_nothing(farm, tiny_shot, tmp_path):
-    farm.start_head(lease=2)
-    frozen = farm.start_worker("frozen", fakes={"sample_delay": 0.3})
-    job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
-    slot = wait_for(lambda: busy_slot(farm.url, "frozen"), what="a batch on the worker")
-    os.killpg(frozen.pid, signal.SIGSTOP)
+def test_sigstop_lease_expires_and_late_result_changes_nothing(farm, heavy_shot, tmp_path):
+    log = tmp_path / "chunks.jsonl"
+    farm.start_head(lease=HEAVY_LEASE)
+    frozen = farm.start_worker("frozen", fakes={"chunk_log": str(log)})
+    job = farm.submit(heavy_shot, "--out", tmp_path / "out", *HEAVY_LAYOUT)
+    pid = wait_for(lambda: big_batch_under_way(log), timeout=120, what="the big batch under way")
+    os.killpg(frozen.pid, signal.SIGSTOP)  # frozen in the middle of a chunk
+    slot = busy_slot(farm.url, "frozen")
     farm.start_worker("b")
-    st = farm.wait(job, timeout=90)
+    st = farm.wait(job, timeout=240)
     assert st["state"] == "done"
-    before = {f: frame_mean(tmp_path / "out", "tiny", f) for f in (1, 2)}
+    before = frame_mean(tmp_path / "out", "heavy", 1)
+    from ..harness import read_log
+
+    mine = lambda: [o for o in read_log(log, "outcome")  # noqa: E731
+                    if o["pid"] == pid and o["batch"] == slot["batch"]]
+    assert not mine()  # the frozen process has not finished that batch
+    thawed = time.time()
     os.killpg(frozen.pid, signal.SIGCONT)
+    # it finishes the chunk it was in, then finds its lease gone (or, if that was its last
+    # chunk, delivers a result under a ticket the head has replaced)
+    (late,) = wait_for(mine, what="the thawed process to end its batch")
+    assert late["end"] > thawed and late["outcome"] in ("lease lost", "done")
     r = redis.Redis.from_url(farm.url)
-    # the thawed worker finishes its chunk, finds its lease gone or its result a duplicate
-    wait_for(lambda: not r.exists(f"lampyr:lease:{slot['batch']}")
-             and r.llen("lampyr:results") == 0 and r.llen("lampyr:results:processing") == 0,
-             what="the late worker to let go")
+    wait_for(lambda: r.llen("lampyr:results") == 0 and r.llen("lampyr:results:processing") == 0,
+             what="the head to take any late notice")
+    assert not r.keys(f"lampyr:result:{slot['batch']}:*")  # a late film is dropped, not kept
     time.sleep(1.0)
-    for f in (1, 2):
-        assert (frame_mean(tmp_path / "out", "tiny", f) == before[f]).all()
-    assert_frames_match_engine(tmp_path / "out", tiny_shot)
+    assert (frame_mean(tmp_path / "out", "heavy", 1) == before).all()
+    assert_heavy_frame_matches_engine(tmp_path / "out", heavy_shot)
 
 
 def test_a_result_delivered_twice_counts_once(farm, tiny_shot, tmp_path):
@@ -263,11 +284,21 @@ def test_pause_holds_a_job_and_resume_finishes_it(farm, tiny_shot):
     farm.cli("pause", job, "--head", farm.url)
     wait_for(lambda: farm.status(job)["state"] == "paused", what="paused")
     farm.start_worker("a")
-    time.sleep(1.0)
-    # at most the batches queued before the pause ran (the head queues cores + 2 ahead)
-    assert farm.status(job)["state"] == "paused"
+    r = redis.Redis.from_url(farm.url)
+    # the batches queued before the pause (the head queues cores + 2 ahead) still run, and are
+    # merged; after that nothing is queued, so the samples stay where they are
+    wait_for(lambda: r.hlen("lampyr:inflight") == 0, what="the batches queued before the pause")
+    time.sleep(0.5)  # the head publishes status every 0.25 s
+    held = farm.status(job)["pixel_samples_done"]
+    # 5 s: the worker renders a 3-sample batch of 8 × 8 px in well under a second
+    time.sleep(5.0)
+    st = farm.status(job)
+    assert st["state"] == "paused" and st["pixel_samples_done"] == held
+    assert held < 2 * 16 * 12 * 8  # 2 frames of 16 × 12 px at 8 spp: most of it still to come
+    assert r.hlen("lampyr:inflight") == 0 and not busy_slot(farm.url, "a")
     farm.cli("resume", job, "--head", farm.url)
-    assert farm.wait(job)["state"] == "done"
+    st = farm.wait(job)
+    assert st["state"] == "done" and st["pixel_samples_done"] == 2 * 16 * 12 * 8
 
 
 def test_cancel_drops_the_remaining_work(farm, tiny_shot):
