@@ -150,15 +150,17 @@ def test_a_worker_started_before_its_head_waits_in_one_line_and_joins(farm, tiny
     from lampyr.scheduler.redis_server import EmbeddedRedis, free_port
 
     port = free_port("127.0.0.1")
-    farm.url = f"redis://127.0.0.1:{port}/0"
+    server = EmbeddedRedis(tmp_path / "redis", port=port)  # its passwords now, started later
+    farm.url = server.url
+    shown = f"redis://***@127.0.0.1:{port}/0"  # the password is never said
     farm.start_worker("early", wait=False, fakes={"sample_delay": 0.2})
     log = tmp_path / "worker-early.log"
     wait_for(lambda: "retrying in 2 s" in log.read_text(), timeout=30, what="two tries")
     lines = log.read_text().splitlines()
     assert lines[:2] == [
-        f"lampyr worker: waiting for the head at {farm.url} (connection refused); retrying in 1 s",
-        f"lampyr worker: waiting for the head at {farm.url} (connection refused); retrying in 2 s"]
-    server = EmbeddedRedis(tmp_path / "redis", port=port).start()
+        f"lampyr worker: waiting for the head at {shown} (connection refused); retrying in 1 s",
+        f"lampyr worker: waiting for the head at {shown} (connection refused); retrying in 2 s"]
+    server.start()
     try:
         farm.start_head()
         farm.wait_worker("early")
