@@ -254,11 +254,15 @@ def handle(ctx: Context, raw: bytes) -> None:
     except (ValueError, KeyError, AttributeError, TypeError):
         log.error("command not understood, dropped: %r", raw[:200])
         return
+    from .store import transient_errors
+
     fn = COMMANDS.get(op)
     try:
         if fn is None:
             raise CommandError(f"unknown command {op!r}")
         fn(ctx, **cmd)
+    except transient_errors():
+        raise  # Redis went away: the command stays in control:processing, replayed (reconcile)
     except Exception as err:  # noqa: BLE001 — no command may stop the head
         text = _one_line(err)
         log.error("command %s failed: %s", raw[:200], text)

@@ -117,7 +117,6 @@ class Head:
             run.settle_written()  # frames already on disk are not written again
             run.write_frames(run.frames)
         set_aside_undecodable(self.r)
-        commands.replay(self.r)
         self.reconcile()
 
     def reconcile(self) -> None:
@@ -131,9 +130,11 @@ class Head:
         r.set(P.K_PROTOCOL, P.PROTOCOL_VERSION)
         r.hset(P.K_CONFIG, mapping={"lease_seconds": self.lease_seconds,
                                     "max_attempts": self.max_attempts})
-        # notices a killed head was merging go back in front of the queue
+        # notices a killed head was merging, and commands it was carrying out (or that Redis
+        # errors interrupted), go back in front of their queues
         while r.lmove(P.K_PROCESSING, P.K_RESULTS, "RIGHT", "LEFT") is not None:
             pass
+        commands.replay(r)
         for run in self.jobs.values():
             run.replan()
             r.zadd(P.K_JOBS, {run.rec.id: run.rec.submitted})
@@ -146,9 +147,9 @@ class Head:
     # -- the loop ---------------------------------------------------------------------------
 
     def run(self, stop=lambda: False, idle: float = 0.05) -> None:
-        import redis
-        from kombu.exceptions import OperationalError
+        from .store import transient_errors
 
+        lost = transient_errors()
         down = False
         while not stop():
             try:
@@ -160,9 +161,7 @@ class Head:
                     self.reconcile()
                     down = False
                 busy = self.step()
-            except (redis.exceptions.ConnectionError, redis.exceptions.TimeoutError,
-                    redis.exceptions.BusyLoadingError, OperationalError) as err:
-                # OperationalError: Celery's sender (kombu) wraps the same lost connection
+            except lost as err:
                 log.warning("Redis unreachable (%s); retrying", err)
                 down = True
                 time.sleep(0.5)

@@ -102,10 +102,15 @@ class Results:
         for _, note in notes:
             pipe.get(P.k_result(note["batch"], note["ticket"]))
         blobs = pipe.execute() if notes else []
+        from .store import transient_errors
+
+        lost = transient_errors()
         folders, frames, finished = set(), set(), []
         for (raw, note), data in zip(notes, blobs):
             try:
                 self._one(note, data, folders, frames, finished)
+            except lost:
+                raise  # Redis went away: the notices stay in processing, taken again (reconcile)
             except Exception as err:  # noqa: BLE001 — a bad result fails its batch, not the head
                 self._bad(note, err, finished)
         for folder in folders:
@@ -151,7 +156,8 @@ class Results:
             if run.merge(b, from_bytes(data), float(note.get("seconds", 0.0)), sync_folder=False):
                 self.metrics.merged(b.w * b.h * b.count)
                 folders.add(run.folder.tile(b.frame, b.tile).parent)
-                frames.add((job, frame))
+            # also when held already (a replay): its frame may not have been written before
+            frames.add((job, frame))
             self.dispatch.leases.pop(bid)
             finished.append(bid)
         elif data is None and entry is not None and entry.ticket == ticket:

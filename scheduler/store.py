@@ -68,6 +68,17 @@ def connect(url: str, check: bool = True):
     return r
 
 
+def transient_errors() -> tuple:
+    """The exceptions of a lost or busy Redis (kombu's OperationalError wraps the same for
+    Celery's sender): the head waits them out and carries on where it was, so no guard may take
+    one for a fault of the command or result it was handling."""
+    import redis
+    from kombu.exceptions import OperationalError
+
+    return (redis.exceptions.ConnectionError, redis.exceptions.TimeoutError,
+            redis.exceptions.BusyLoadingError, OperationalError)
+
+
 def redact(url: str) -> str:
     if "@" not in url:
         return url
