@@ -138,7 +138,9 @@ def schlick(cos_i, f0):
 # ------------------------------------------------------------------------------- statistics
 
 def assert_within(got, expected, se, sigmas, extra=0.0, what=""):
-    """Every |got − expected| < sigmas · se + extra, with the worst offender in the message."""
+    """Every |got − expected| < sigmas · se + extra, with the worst offender in the message; and
+    the same for the sum over all values, whose standard error is sqrt(Σ se²) (independent
+    pixels), so that a small error shared by every pixel is caught too."""
     got, expected, se = np.broadcast_arrays(np.asarray(got, float), np.asarray(expected, float),
                                             np.asarray(se, float))
     extra = np.broadcast_to(np.asarray(extra, float), got.shape)
@@ -149,3 +151,7 @@ def assert_within(got, expected, se, sigmas, extra=0.0, what=""):
             f"{what}: {np.count_nonzero(excess > 0)} of {got.size} values outside {sigmas} sigma; "
             f"worst at {i}: got {got[i]:.6g}, expected {expected[i]:.6g}, se {se[i]:.3g}, "
             f"extra {extra[i]:.3g}")
+    total, total_se = np.sum(got - expected), math.sqrt(np.sum(se * se))
+    if abs(total) > sigmas * total_se + np.sum(extra):
+        raise AssertionError(f"{what}: the sum of the differences, {total:.6g}, is outside {sigmas} "
+                             f"sigma ({total_se:.3g}) plus {np.sum(extra):.3g}")

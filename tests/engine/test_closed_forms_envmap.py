@@ -5,7 +5,8 @@ The map is coloured by the axis a direction is closest to, with a different colo
 the six, so that a swapped pair of channels, a map mirrored left to right, turned the wrong way or
 upside down gives other numbers on some plane. A Lambertian plane of albedo ρ under it shows
 L = ρ/π ∫ L_env(ω) max(0, n·ω) dω (the reflected radiance of a Lambertian surface, e.g. Pharr,
-Jakob & Humphreys, PBRT 3rd ed. §5.6 and §8.3); one bounce, so nothing else reaches it.
+Jakob & Humphreys, PBRT 3rd ed. §5.6 and §8.3, section numbers from memory); one bounce, so
+nothing else reaches it.
 
 Tolerance: 4 standard errors of the image mean (the render's own per-pixel variance, independent
 sampler), plus the integral's own error (its change from 8 × 8 to 16 × 16 points per map pixel).

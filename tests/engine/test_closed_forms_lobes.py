@@ -36,11 +36,17 @@ def internal_diffuse_reflectance(n):
 
 
 def test_internal_diffuse_reflectance_of_glass_is_the_handbook_value():
-    # n = 1.5: F̄ ≈ 0.596 (e.g. the internal diffuse reflectance tabulated for index 1.5 in the
-    # optics of diffusing layers, Judd 1942; value from memory, to two digits)
+    # n = 1.5: F̄ ≈ 0.596 (the internal diffuse reflectance of a surface of index 1.5 in the
+    # optics of diffusing layers; from memory, to two digits) ...
     value, err = internal_diffuse_reflectance(1.5)
     assert value == pytest.approx(0.596, abs=0.005)
     assert err < 1e-9
+    # ... and for every n it obeys 1 − F̄_int = (1 − F̄_ext) / n², the outside diffuse
+    # reflectance integrated on its own (reciprocity with the n² law of radiance, e.g. Veach
+    # 1997, PhD thesis §5.2; from memory)
+    for n in (1.2, 1.5, 2.4):
+        ext, _ = integrate.quad(lambda mu: 2 * float(fresnel_hecht(mu, 1.0, n)) * mu, 0.0, 1.0, epsabs=1e-12)
+        assert 1 - internal_diffuse_reflectance(n)[0] == pytest.approx((1 - ext) / (n * n), abs=1e-9)
 
 
 def smooth_plastic_albedo(cos_o, rho, n):
@@ -106,7 +112,7 @@ def ggx_metal_albedo(cos_o, alpha, f0):
     Jacobian, Walter et al. eq. 14), and θh is mapped from u in [0, 1) by GGX's cumulative
     D cos θh, tan²θh = α² u / (1 − u) (Walter et al. eq. 35), which turns D cos θh dωh into
     du dφ / 2π and leaves a bounded integrand: F G2 (wo·h) / (cos θo cos θh).
-    Returns (albedo per channel (3,), quadrature error)."""
+    Equation numbers from memory. Returns (albedo per channel (3,), quadrature error)."""
     so = math.sqrt(1.0 - cos_o * cos_o)
     wo = np.array([so, 0.0, cos_o])
     lam_o = _ggx_lambda(cos_o, alpha)
