@@ -87,7 +87,7 @@ def check_value(app, who: str, sid: str, password: str) -> str:
     """The cookie's check value: HMAC-SHA256 (RFC 2104) keyed by the server secret over the
     role, the session id and the password, as hex, cut to 128 bits."""
     key = hashlib.sha256(b"lampyr-session-check:" + str(app.config["SECRET_KEY"]).encode())
-    msg = "\0".join((who, sid, password)).encode()
+    msg = "\0".join((who, sid, password)).encode("utf-8", "surrogatepass")
     return hmac.new(key.digest(), msg, hashlib.sha256).hexdigest()[:32]
 
 
@@ -110,7 +110,8 @@ def role_of(app, data) -> str | None:
     if not (isinstance(who, str) and isinstance(sid, str) and isinstance(check, str)):
         return None
     pw = _passwords(app).get(who)
-    if not pw or not hmac.compare_digest(check.encode(), check_value(app, who, sid, pw).encode()):
+    if not pw or not hmac.compare_digest(check.encode("utf-8", "surrogatepass"),
+                                         check_value(app, who, sid, pw).encode()):
         return None
     return who if app.extensions["lampyr.sessions"].alive(sid, who) else None
 
@@ -165,7 +166,7 @@ def check_request():
     if request.method in MUTATING:
         sent = request.headers.get(TOKEN_HEADER) or request.form.get("token", "")
         known = session.get("csrf", "")
-        if (not known or not hmac.compare_digest(sent.encode(), known.encode())
+        if (not known or not hmac.compare_digest(sent.encode("utf-8", "surrogatepass"), known.encode())
                 or not _same_origin()):
             return answer(403, "this request lacks the page's anti-forgery token or comes from "
                                "another site; reload the page and try again")
@@ -224,7 +225,7 @@ def login():
                                    error="Too many wrong passwords; wait a minute."), 429
         given = request.form.get("password", "")
         for who_is, pw in _passwords().items():
-            if hmac.compare_digest(given.encode(), pw.encode()):
+            if hmac.compare_digest(given.encode("utf-8", "surrogatepass"), pw.encode()):
                 session.clear()
                 session.permanent = True
                 sid = current_app.extensions["lampyr.sessions"].open(who_is)

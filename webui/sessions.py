@@ -35,7 +35,7 @@ def _signature(path: Path):
 
 
 def _key(sid: str) -> str:
-    return hashlib.sha256(sid.encode()).hexdigest()
+    return hashlib.sha256(sid.encode("utf-8", "surrogatepass")).hexdigest()
 
 
 class SessionBook:

@@ -26,6 +26,7 @@ SEED = 13  # the issue's number; any fixed seed makes the same cases every run
 JSON_CASES = 320
 UPLOAD_CASES = 240
 RAW_FORM_CASES = 60
+LOGIN_CASES = 60
 
 KEYS = ["priority", "frame", "tile", "samples", "frames", "noise", "until", "x"]
 JUNK = [None, True, False, 0, -1, 1, 7, 2**63, -2**63, 10**30, 1e308, -0.0, 0.5, 3.0, "",
@@ -276,7 +277,10 @@ def fuzz_site(head, redis_url, state, tmp_path, compiled_kernels):
     web.stop()
 
 
-def test_the_json_actions_answer_every_malformed_request_in_one_line(fuzz_site):
+def test_the_json_actions_answer_every_malformed_request_in_one_line(fuzz_site, monkeypatch):
+    from lampyr.webui import auth
+
+    monkeypatch.setattr(auth, "LOGIN_TRIES", 10**6)  # the login cases below get past the throttle
     web, client, job, browser = fuzz_site
     rng = random.Random(SEED)
     outcomes = collections.Counter()
@@ -308,6 +312,18 @@ def test_the_json_actions_answer_every_malformed_request_in_one_line(fuzz_site):
     print(f"\nJSON fuzz: {JSON_CASES} cases in {time.monotonic() - t0:.1f} s: "
           f"{dict(sorted(outcomes.items()))}")
     assert wrong_priority > 30  # the oracle above was exercised
+    logins = collections.Counter()
+    for i in range(LOGIN_CASES):  # the login form: a page, not JSON; never a 5xx or traceback
+        fields = {k: rng.choice(JUNK + ["%ED%A0%80", "%FF", "x" * 70000]) for k in
+                  rng.sample(["password", "token", "next"], rng.randint(0, 3))}
+        if rng.random() < 0.5 and "token" in fields:
+            fields["token"] = client.token
+        body = "&".join(f"{k}={v}" for k, v in fields.items()).encode("utf-8", "surrogatepass")
+        status, answer = client.send("POST", "/login", body, "application/x-www-form-urlencoded")
+        text = answer.decode("utf-8", "replace")
+        assert status < 500 and "Traceback" not in text, (i, fields, status, text[:300])
+        logins[status] += 1
+    print(f"login fuzz: {LOGIN_CASES} cases: {dict(sorted(logins.items()))}")
     assert browser.get("/api/farm")[0] == 200  # the page is still up
 
 
