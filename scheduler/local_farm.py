@@ -9,16 +9,24 @@ the worker run in their own sessions: Ctrl-C reaches this process alone, which s
 from __future__ import annotations
 
 import os
+import re
 import shutil
 import signal
 import subprocess
 import sys
-import tempfile
 import threading
 import time
 from pathlib import Path
 
 from ..errors import RenderFailed
+from ..scratch import scratch_folder
+
+
+def first_line(error) -> str:
+    """The first line of a worker's or the head's error text, without the exception's class
+    (`lampyr.errors.AssetError: object[pot].mesh: ...` -> `object[pot].mesh: ...`)."""
+    lines = str(error).strip().splitlines() or ["?"]
+    return re.sub(r"^lampyr(?:\.\w+)*\.[A-Z]\w*: ", "", lines[0], count=1)  # errors.py's classes
 
 
 def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: int,
@@ -37,7 +45,8 @@ def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: in
     from .submit import submit_request
     from .redis_server import EmbeddedRedis, die_with_parent
 
-    state = Path(tempfile.mkdtemp(prefix="lampyr-render-"))
+    # a folder owned by this process; the folders of renders that were killed are swept first
+    state = scratch_folder("lampyr-render-")
     server = EmbeddedRedis(state / "redis").start()
     stop = threading.Event()
     head_error: list[BaseException] = []
@@ -78,6 +87,9 @@ def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: in
                 raise RenderFailed("the local worker stopped: " + (err[-1] if err else "?"))
             # what the head published (Redis), never its tables: they belong to its thread
             st = job_status(r, job)
+            if st is not None and "tile_size" not in st and st.get("state") == "failed":
+                # the head would not take the job (its submit command failed)
+                raise RenderFailed(f"the farm refused the shot: {first_line(st.get('error') or '?')}")
             if st is not None and "tile_size" in st:  # published by the head, not the submit
                 if on_progress and st.get("pixel_samples_total"):
                     on_progress(st["pixel_samples_done"], st["pixel_samples_total"])
@@ -94,8 +106,7 @@ def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: in
                         raise RenderFailed(f"{st['error']}; the frames written before are "
                                            f"kept in {out}")
                     why = next((x["error"] for x in st.get("failed", [])), "?")
-                    msg = str(why).strip().splitlines() or ["?"]
-                    raise RenderFailed(f"a batch failed for good: {msg[0]}; the frames written "
+                    raise RenderFailed(f"a batch failed for good: {first_line(why)}; the frames written "
                                        f"before it are kept in {out}")
                 if st["state"] == "done" and len(seen) == st["frames"]:
                     break
