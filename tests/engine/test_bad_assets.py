@@ -215,3 +215,15 @@ def test_collinear_points_stay_degenerate_at_any_scale(tmp_path):
 
 def test_a_shot_with_nothing_in_it_checks(tmp_path):
     assert check(write_shot(tmp_path / "shot", "")) == []
+
+
+def test_an_obj_with_a_huge_finite_coordinate_renders_finite_pixels(tmp_path):
+    from lampyr.engine.render import render_frame
+
+    shot = write_shot(tmp_path / "shot", MESH_OBJECT.format(name="m.obj"),
+                      {"a/m.obj": b"v 0 0 0\nv 1e308 0 0\nv 0 1 0\nv 0 0 -1\nv 1 0 -1\nf 1 2 3\nf 1 4 5\n"})
+    spec = load_shot(shot)
+    assert any("clamps" in line for line in check_shot_files(spec))  # said once, at check time
+    film = render_frame(spec, 1, tile_size=4)
+    assert np.all(film.n == 2) and np.isfinite(film.rgb_sum).all()
+    assert film.alpha_sum.max() > 0  # the clamped sliver is still there to be seen
