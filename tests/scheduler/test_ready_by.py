@@ -6,6 +6,7 @@ from __future__ import annotations
 import functools
 import json
 import math
+import os
 import random
 import statistics
 import time
@@ -331,26 +332,30 @@ def test_a_restarted_head_keeps_a_job_stopped_at_its_ready_by_time(head, tiny_sh
 
 
 def test_a_head_killed_while_writing_the_ready_by_frames_writes_them_after_restart(
-        head, tiny_shot, redis_url, tmp_path, monkeypatch):
-    from lampyr.scheduler import ready_by_keeper
-    from lampyr.scheduler.head import Head
+        farm, tiny_shot, tmp_path):
+    import signal
 
-    job = submit_ready_by(head, tiny_shot, 0.2)
-    time.sleep(0.3)
+    from .farmtools import wait_for
 
-    def killed(run, frame):
-        raise SystemExit("the head dies here")
-
-    monkeypatch.setattr(ready_by_keeper, "write_held_frame", killed)
-    with pytest.raises(SystemExit):
-        head.step()
-    monkeypatch.undo()
-    again = Head(tmp_path / "state", redis_url, lease_seconds=5)
-    again.start()
-    again.step()
-    out = tmp_path / "state" / "jobs" / job / "frames"
-    assert sorted(p.name for p in out.glob("*.exr")) == ["tiny.0001.exr", "tiny.0002.exr"]
-    assert again.jobs[job].rec.ready_by_reached
+    marker = tmp_path / "holding"
+    out = tmp_path / "out"
+    # a real head that, at the ready-by stop, writes frame 1 and then waits before frame 2
+    # (tests/harness.py) — where the test kills it with a real SIGKILL
+    # (no worker: no frame file is written before the stop)
+    farm.start_head(fakes={"hold_frame_write": {"after": 1, "marker": str(marker)}})
+    until = datetime.fromtimestamp(time.time() + 3).isoformat(timespec="seconds")
+    job = farm.submit(tiny_shot, "--out", out, "--tile", 8, "--batch", 3, "--until", until)
+    wait_for(marker.exists, timeout=60, what="the head to stop the job and write frame 1")
+    assert (out / "tiny.0001.exr").exists() and not (out / "tiny.0002.exr").exists()
+    assert farm.status(job)["ready_by_reached"] is False  # the stop is not saved yet
+    os.kill(farm.head_proc.pid, signal.SIGKILL)
+    farm.head_proc.wait()
+    farm.start_head()  # the plain head, on the same state folder and Redis
+    st = wait_for(lambda: (s := farm.status(job))["state"] == "done" and s, timeout=60,
+                  what="the restarted head to stop the job again")
+    assert st["ready_by_reached"] is True
+    assert (out / "tiny.0002.exr").exists()
+    assert held_matches_frames(farm.state, job, out)  # both frames, tile by tile as held
 
 
 def test_refine_after_the_ready_by_time_lifts_it(head, tiny_shot):

@@ -197,7 +197,27 @@ def test_a_failed_tile_shows_its_error_and_renders_when_retried(web_head, small_
     assert page.locator(".failure").count() == 0
 
 
+def srgb_decode(code):
+    """8-bit sRGB code values → linear, the IEC 61966-2-1 transfer function (from memory:
+    c / 12.92 up to 0.04045, else ((c + 0.055) / 1.055) ** 2.4), written out here, not lampyr's."""
+    import numpy as np
+
+    c = np.clip(np.asarray(code, np.float64) / 255.0, 0.0, 1.0)
+    return np.where(c <= 0.04045, c / 12.92, ((c + 0.055) / 1.055) ** 2.4)
+
+
+def png_pixels(data: bytes):
+    import io
+
+    import numpy as np
+    from PIL import Image
+
+    return np.asarray(Image.open(io.BytesIO(data)).convert("RGB"), np.int64)
+
+
 def test_the_exposure_control_brightens_the_preview(web_farm, small_courtyard, browser):
+    import numpy as np
+
     farm, url = web_farm
     shot, archive = small_courtyard
     page = log_in(browser, farm, url)
@@ -205,9 +225,23 @@ def test_the_exposure_control_brightens_the_preview(web_farm, small_courtyard, b
     page.click("a.shot")
     page.wait_for_selector("#job-state .st-done", timeout=240_000)
     page.wait_for_selector("#preview[src*='exposure=0']")
-    page.fill("#exposure", "2")  # two stops: 4× the radiance before the sRGB curve
-    page.wait_for_selector("#preview[src*='exposure=2']")
+    # the image the browser is served for the preview once the slider says two stops
+    with page.expect_response(lambda resp: "preview.png" in resp.url
+                              and "exposure=2" in resp.url) as shown:
+        page.fill("#exposure", "2")
+    after_url = shown.value.url
+    assert shown.value.status == 200
+    after = png_pixels(shown.value.body())
+    before = png_pixels(page.request.get(after_url.replace("exposure=2", "exposure=0")).body())
     assert page.inner_text("#exposure-out") == "+2.0"
+    # two stops are 4× the radiance before the sRGB curve: every code that is not clipped
+    # decodes (within its half-step of 8-bit rounding) to 4× the code shown at 0 stops
+    lo0, hi0 = srgb_decode(before - 0.5), srgb_decode(before + 0.5)
+    lo2, hi2 = srgb_decode(after - 0.5), srgb_decode(after + 0.5)
+    free = (after < 255) & (before > 0)
+    assert free.mean() > 0.25  # enough of the frame unclipped at +2 for the check to bite
+    assert np.all(4 * lo0[free] <= hi2[free] + 1e-12) and np.all(4 * hi0[free] >= lo2[free] - 1e-12)
+    assert np.all(after >= before) and after.mean() > before.mean()
 
 
 def test_a_viewer_login_sees_the_farm_without_its_controls(web_head, browser, tmp_path):
