@@ -20,7 +20,9 @@ import psutil
 import pytest
 import redis
 
-from ..scheduler.farmtools import LAYOUT, assert_same_image, frame_mean, reference_mean, wait_for
+from ..scheduler.farmtools import (BIG_COUNT, HEAVY_LAYOUT, HEAVY_LEASE, LAYOUT, assert_same_image,
+                                   big_batch_under_way, big_chunks, frame_mean, reference_mean,
+                                   wait_for)
 
 def heartbeat(url, name):
     raw = redis.Redis.from_url(url).get(f"lampyr:host:{name}")
@@ -115,32 +117,45 @@ def test_render_processes_run_at_the_lowest_cpu_priority(farm, args, nice):
     assert pids and all(psutil.Process(p).nice() == nice for p in pids)
 
 
-def test_a_busy_user_pauses_rendering_and_a_quiet_one_resumes_it(farm, tiny_shot, tmp_path):
+def test_a_busy_user_pauses_rendering_and_a_quiet_one_resumes_it(farm, heavy_shot, tmp_path):
+    # production chunking (no delay) on the heavy shot: the pause lands in a chunk of ~2 s
+    log = tmp_path / "chunks.jsonl"
     hog = subprocess.Popen([sys.executable, "-c", "while True: pass"])
     try:
         os.kill(hog.pid, signal.SIGSTOP)  # the user is away
-        farm.start_head(lease=3)
-        farm.start_worker("desk", fakes={"sample_delay": 0.3, "user_pids": [hog.pid]},
-                          args=["--pause-when-busy", "5", "--busy-seconds", "2"])
-        job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
-        wait_for(lambda: rendering_a_full_batch(farm.url, "desk"), what="a batch under way")
+        farm.start_head(lease=HEAVY_LEASE)
+        # only the hog counts as the user's load (0 while stopped): the lowest threshold, 1 %,
+        # so that a hog starved by a busy test machine still counts as a busy user
+        farm.start_worker("desk", fakes={"chunk_log": str(log), "user_pids": [hog.pid]},
+                          args=["--pause-when-busy", "1", "--busy-seconds", "2"])
+        job = farm.submit(heavy_shot, "--out", tmp_path / "out", *HEAVY_LAYOUT)
+        wait_for(lambda: big_chunks(log), timeout=120, what="the big batch under way")
         os.kill(hog.pid, signal.SIGCONT)  # the user comes back and works
         wait_for(lambda: heartbeat(farm.url, "desk")["state"] == "paused: user busy",
-                 timeout=30, what="the pause")
-        wait_for(lambda: all(s["paused"] for s in slots(farm.url, "desk")), what="paused slots")
-        time.sleep(1.0)
+                 timeout=60, what="the pause")
+        # the chunk the pause came in ends, then the batch waits at that sample boundary
+        paused = wait_for(lambda: (s := slots(farm.url, "desk")) and all(x["paused"] for x in s)
+                          and s, what="the big batch paused")
+        chunks = big_chunks(log)
+        assert sum(c["count"] for c in chunks) < BIG_COUNT  # paused in the middle of the batch
         held = farm.status(job)["pixel_samples_done"]
-        time.sleep(4.0)  # longer than the 3 s lease: the paused batch keeps it
+        time.sleep(HEAVY_LEASE + 2.0)  # longer than the lease: only renewals keep it
+        assert big_chunks(log) == chunks, "samples were rendered while paused"
         assert farm.status(job)["pixel_samples_done"] == held
-        assert slots(farm.url, "desk"), "the paused batch let go of its slot"
+        r = redis.Redis.from_url(farm.url)
+        assert r.exists(f"lampyr:lease:{paused[0]['batch']}"), "the paused batch lost its lease"
+        assert [s["batch"] for s in slots(farm.url, "desk")] == [paused[0]["batch"]]
         os.kill(hog.pid, signal.SIGSTOP)  # quiet again
         wait_for(lambda: heartbeat(farm.url, "desk")["state"] in ("rendering", "idle"),
                  timeout=30, what="the resume")
-        st = farm.wait(job, timeout=120)
+        st = farm.wait(job, timeout=240)
         assert st["state"] == "done" and not st["failed"]
-        assert_frames_match_engine(tmp_path / "out", tiny_shot)
-        log = (tmp_path / "worker-desk.log").read_text()
-        assert "rendering paused" in log and "rendering resumes" in log
+        # the same process finished the batch after the pause: no sample twice, none lost
+        assert sum(c["count"] for c in big_chunks(log)) == BIG_COUNT
+        assert len({c["pid"] for c in big_chunks(log)}) == 1
+        assert_same_image(frame_mean(tmp_path / "out", "heavy", 1), reference_mean(heavy_shot, 1))
+        text = (tmp_path / "worker-desk.log").read_text()
+        assert "rendering paused" in text and "rendering resumes" in text
     finally:
         hog.kill()
         hog.wait()
@@ -184,7 +199,7 @@ def test_a_user_busy_for_long_gets_the_batches_handed_back(farm, tiny_shot, tmp_
         os.kill(hog.pid, signal.SIGSTOP)
         farm.start_head(lease=3)
         farm.start_worker("desk", fakes={"sample_delay": 0.3, "user_pids": [hog.pid]},
-                          args=["--pause-when-busy", "5", "--busy-seconds", "1",
+                          args=["--pause-when-busy", "1", "--busy-seconds", "1",
                                 "--hand-back-after", "2"])
         job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
         wait_for(lambda: rendering_a_full_batch(farm.url, "desk"), what="a batch under way")
@@ -207,12 +222,13 @@ def test_a_user_busy_for_long_gets_the_batches_handed_back(farm, tiny_shot, tmp_
 @pytest.mark.parametrize("how, pool", [("SIGTERM to the worker", "prefork"),
                                        ("Ctrl-C in its terminal", "prefork"),
                                        ("SIGTERM to the worker", "solo")])
-def test_a_stopped_worker_hands_back_its_batch_and_exits(farm, tiny_shot, tmp_path, how, pool):
-    farm.start_head()
-    proc = farm.start_worker("leaving", fakes={"sample_delay": 1.0},
-                             args=["--pool", pool])
-    job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
-    wait_for(lambda: rendering_a_full_batch(farm.url, "leaving"), what="a batch under way")
+def test_a_stopped_worker_hands_back_its_batch_and_exits(farm, heavy_shot, tmp_path, how, pool):
+    # production chunking (no delay) on the heavy shot: stopped in the middle of a ~2 s chunk
+    log = tmp_path / "chunks.jsonl"
+    farm.start_head(lease=HEAVY_LEASE)
+    proc = farm.start_worker("leaving", fakes={"chunk_log": str(log)}, args=["--pool", pool])
+    job = farm.submit(heavy_shot, "--out", tmp_path / "out", *HEAVY_LAYOUT)
+    pid = wait_for(lambda: big_batch_under_way(log), timeout=120, what="the big batch under way")
     if how == "SIGTERM to the worker":
         os.kill(proc.pid, signal.SIGTERM)
     else:
@@ -220,11 +236,14 @@ def test_a_stopped_worker_hands_back_its_batch_and_exits(farm, tiny_shot, tmp_pa
     assert proc.wait(60) == 0
     handed = wait_for(lambda: [line for line in (tmp_path / "head.log").read_text().splitlines()
                                if "handed back by leaving" in line], what="the hand-back")
-    assert any(f"with {k} of 3 samples" in line for line in handed for k in (1, 2))
+    # exactly the samples its chunks rendered: the chunk in progress was finished, no more
+    done = sum(c["count"] for c in big_chunks(log, pid))
+    assert 0 < done < BIG_COUNT
+    assert any(f"with {done} of {BIG_COUNT} samples" in line for line in handed), handed
     assert heartbeat(farm.url, "leaving") is None  # gone from the farm at once
     farm.start_worker("next")
-    assert farm.wait(job, timeout=120)["state"] == "done"
-    assert_frames_match_engine(tmp_path / "out", tiny_shot)
+    assert farm.wait(job, timeout=240)["state"] == "done"
+    assert_same_image(frame_mean(tmp_path / "out", "heavy", 1), reference_mean(heavy_shot, 1))
 
 
 @pytest.mark.parametrize("state, counted", [
