@@ -59,6 +59,9 @@ def test_a_restarted_head_queues_only_what_its_disk_lacks(head, tiny_shot, redis
 
     job = submit(head, tiny_shot)
     total = len(head.jobs[job].pending)
+    # docs/farm.md, "What happens to a job": 2 frames × 4 tiles of 8 px × ranges [0, 1), [1, 4),
+    # [4, 7), [7, 8) (a first pass of 1/16 of 8 spp, at least 1, then batches of 3)
+    assert total == 2 * 4 * 4
     # tile 0 of frame 1 holds its first pass on disk, as if merged before a crash
     acc = TileAccumulator(JobFolder(tmp_path / "state", job).tile(1, 0), 8, 8)
     acc.add(FrameRenderer(load_shot(tiny_shot), 1).render(Tile(0, 0, 8, 8), 0, 1), 0, 1)
