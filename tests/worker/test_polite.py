@@ -168,7 +168,8 @@ def test_a_worker_started_before_its_head_waits_in_one_line_and_joins(farm, tiny
     server = EmbeddedRedis(tmp_path / "redis", port=port)  # its passwords now, started later
     farm.url = server.url
     shown = f"redis://***@127.0.0.1:{port}/0"  # the password is never said
-    farm.start_worker("early", wait=False, fakes={"sample_delay": 0.2})
+    # 1 s a sample on a 3 s lease: one-sample chunks, so the head is lost in the middle of a batch
+    farm.start_worker("early", wait=False, fakes={"sample_delay": 1.0})
     log = tmp_path / "worker-early.log"
     wait_for(lambda: "retrying in 2 s" in log.read_text(), timeout=30, what="two tries")
     lines = log.read_text().splitlines()
