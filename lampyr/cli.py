@@ -247,7 +247,7 @@ def worker(address, cores, pool, name, hours, weekend, weekend_days, time_zone, 
 
     schedule = Schedule(parse_hours(hours) if hours else (), weekend, parse_days(weekend_days),
                         parse_zone(time_zone))
-    opts = WorkerOptions(find(address, role=WORKERS), cores or os.cpu_count() or 1, pool, name, schedule,
+    opts = WorkerOptions(find(address, role=WORKERS, given_as="ADDRESS"), cores or os.cpu_count() or 1, pool, name, schedule,
                          busy_percent, busy_seconds, hand_back_after, normal_priority)
     sys.exit(run_worker(opts))
 
@@ -262,8 +262,8 @@ def doctor(address, no_render):
     from .scheduler.address import WORKERS, NoFarm, find
     from .worker.doctor import PROBLEM, run_checks, summary
 
-    try:
-        address = find(address, role=WORKERS)
+    try:  # an address given is checked by the doctor itself, which says what is wrong with it
+        address = address or find(role=WORKERS)
     except NoFarm:
         address = ""
     checks = run_checks(address, render=not no_render)

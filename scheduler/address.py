@@ -108,12 +108,14 @@ def _from_state(state: Path, role: str) -> str | None:
     return None
 
 
-def find(head: str | None = None, state: Path | None = None, role: str = COMMANDS) -> str:
-    """The farm's address for `role` (COMMANDS or WORKERS), looked for in the module's order."""
+def find(head: str | None = None, state: Path | None = None, role: str = COMMANDS,
+         given_as: str = "--head") -> str:
+    """The farm's address for `role` (COMMANDS or WORKERS), looked for in the module's order;
+    given_as names `head` in an error (the option or argument it came from)."""
     from .store import default_state
 
     if head:
-        return check_address(head, "--head")
+        return check_address(head, given_as)
     if os.environ.get(ENV):
         return check_address(os.environ[ENV], ENV)
     if state is None and os.environ.get("LAMPYR_STATE"):
