@@ -90,7 +90,7 @@ def test_a_message_of_another_protocol_version_is_refused(setup):
     assert "protocol" in json.loads(r.lpop(P.K_RESULTS))["error"]
 
 
-def test_the_scene_is_fetched_once_and_kept_on_disk(setup):
+def test_the_scene_is_fetched_once_and_kept_on_disk(setup, redis_url):
     r, ctx, task = setup
     run_batch(ctx, task.to_json())
     other = P.Batch("job", 2, 1, 0, 1, 8, 0, 8, 8)
@@ -100,13 +100,9 @@ def test_the_scene_is_fetched_once_and_kept_on_disk(setup):
     for k in r.scan_iter(match=P.key("blob", "*")):  # a fresh process finds the files on disk
         r.delete(k)
     r.delete(P.k_scene(task.bundle))
-    fresh = Context(_url(r), "w2")
+    fresh = Context(redis_url, "w2")
     r.hset(P.K_INFLIGHT, other.id, 2)
     again = P.RenderTask(P.PROTOCOL_VERSION, other, 2, task.bundle, task.shot, {})
     assert run_batch(fresh, again.to_json())["outcome"] == "done"
     assert fresh.cache.fetches == 0
 
-
-def _url(r) -> str:
-    kw = r.get_connection_kwargs()
-    return f"redis://{kw['host']}:{kw['port']}/{kw['db']}"
