@@ -23,10 +23,10 @@ that a multi-GB texture set costs a few hundred keys and round trips, not tens o
 Life of the keys (bounded growth): every `scene:`/`blob:` key carries a TTL (`FILE_TTL`, 6 h).
 Whoever needs a key renews it: the submitter while it checks and sends, the head at submit and
 then every `FILE_REFRESH` for each job not yet finished (`hold`), restoring any key Redis lost
-from its own copy of the job's files. Nothing is ever deleted by hand, so no submitter can lose a
-blob it just found present to a job that finishes at the same moment; a finished or cancelled
-job's blobs leave Redis at most `FILE_TTL` after its last refresh. A job refined or retried later
-gets them back from the head's copy at the next refresh.
+from its own copy of the job's files. When a job ends, the head deletes the keys no unfinished job
+needs (scenes.py), except a key renewed since the head's own last renewal: a submitter may have
+just found it present, so it is left to expire `FILE_TTL` after that renewal. A job refined or
+retried later gets its keys back from the head's copy at the next refresh.
 
 Escape checks at submit: paths relative to the shot's folder (no absolute names, no `..`),
 regular files only, a link only when its target lies inside the shot's folder (sent under the
