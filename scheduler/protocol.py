@@ -47,7 +47,9 @@ from dataclasses import asdict, dataclass
 
 from ..errors import LampyrError
 
-PROTOCOL_VERSION = 3  # 2: `partial` result notices; 3: scenes as `scene:`/`blob:` keys, no bundles
+PROTOCOL_VERSION = 4  # 2: `partial` result notices; 3: scenes as `scene:`/`blob:` keys, no bundles;
+# 4: the environment map's `rotate` turns by the right-hand rule (a version-3 worker turns it the
+# other way, so its samples must not be merged with a version-4 worker's)
 TASK_RENDER = "lampyr.render_batch"
 QUEUE = "lampyr"
 PREFIX = "lampyr:"

@@ -165,7 +165,7 @@ def test_a_worker_reads_only_the_keys_its_work_needs(server):
     for key in ("lampyr:job:j1", "lampyr:progress:j1", "lampyr:tiles:j1", "lampyr:layout:j1"):
         head.hset(key, "1", "{}")
     head.rpush("lampyr:control", "{}")
-    assert w.get("lampyr:protocol") == b"3"
+    assert w.get("lampyr:protocol") == b"4"  # scheduler/protocol.py, PROTOCOL_VERSION
     # a scene named by a message it took: the sha256 is its only way in
     assert w.get("lampyr:scene:" + "a" * 64) == b"manifest"
     with pytest.raises(redis.exceptions.NoPermissionError):  # no listing of key names
