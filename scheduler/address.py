@@ -83,6 +83,17 @@ def record_head(state: Path, commands: str, workers: str) -> None:
         pass
 
 
+def forget_head() -> None:
+    """The head, at a clean exit: its record in the user's config folder removed if it is still
+    this process's (a head started since keeps its own); the state folder's stays."""
+    path = local_head_file()
+    try:
+        if json.loads(path.read_text()).get("pid") == os.getpid():
+            path.unlink()
+    except (OSError, ValueError, AttributeError):  # gone, unreadable or not a record: leave it
+        pass
+
+
 def save_farm(address: str) -> Path:
     """`lampyr farm ADDRESS`: remember the address for this user (0600)."""
     address = check_address(address, "the farm's address")

@@ -7,7 +7,7 @@ import signal
 import threading
 from pathlib import Path
 
-from .address import record_head
+from .address import forget_head, record_head
 from .redis_server import LOOPBACK, EmbeddedRedis, private_folder
 
 
@@ -82,6 +82,7 @@ def run_head(state: Path, redis_url: str | None = None, listen: str = "127.0.0.1
             exporter.close()
         if server is not None:
             server.stop()
+    forget_head()  # a clean exit only: after a crash the record stays, naming a dead pid
 
 
 def is_loopback(listen: str) -> bool:

@@ -18,6 +18,28 @@ def repo_root() -> Path:
     return ROOT
 
 
+@pytest.fixture(scope="session", autouse=True)
+def own_user_folders(tmp_path_factory):
+    """The suite as a user of its own: the config and data folders (where `lampyr head` leaves
+    local-head.json and `lampyr farm` its address, scheduler/address.py; where the default state
+    folder is, scheduler/store.py) in a scratch folder, and no LAMPYR_HEAD / LAMPYR_STATE of the
+    person running it. Set in os.environ, so the processes the tests start inherit it."""
+    base = tmp_path_factory.mktemp("user")
+    saved = {k: os.environ.get(k) for k in ("XDG_CONFIG_HOME", "XDG_DATA_HOME", "APPDATA",
+                                            "LAMPYR_HEAD", "LAMPYR_STATE")}
+    for k in ("LAMPYR_HEAD", "LAMPYR_STATE"):
+        os.environ.pop(k, None)
+    os.environ["XDG_CONFIG_HOME"] = str(base / "config")
+    os.environ["XDG_DATA_HOME"] = str(base / "data")
+    os.environ["APPDATA"] = str(base / "appdata")  # the config folder on Windows
+    yield base
+    for k, v in saved.items():
+        if v is None:
+            os.environ.pop(k, None)
+        else:
+            os.environ[k] = v
+
+
 # ---------------------------------------------------------------------------------------------
 # the farm with real parts: a real redis-server, real `lampyr head` and `lampyr worker` processes
 

@@ -4,8 +4,12 @@ files' modes, and `lampyr farm` reading the address from standard input, never a
 from __future__ import annotations
 
 import json
+import os
+import signal
 import subprocess
 import sys
+import time
+from pathlib import Path
 
 import pytest
 
@@ -80,3 +84,60 @@ def test_lampyr_farm_reads_standard_input_and_says_it_back_redacted(home):
     res = subprocess.run([sys.executable, "-m", "lampyr.cli", "farm", "--show"],
                          capture_output=True, text=True, env=env, timeout=60)
     assert "redis://***@10.0.0.5:6390/0" in res.stdout and "lampyr farm" in res.stdout
+
+
+# ---------------------------------------------------------------------------------------------
+# the suite never touches the real user's folders; a head tidies its record away
+
+
+def test_the_suite_runs_as_a_user_of_its_own(tmp_path_factory):
+    """tests/conftest.py: the config folder is a scratch one, for the test process and the
+    processes it starts, and no LAMPYR_HEAD / LAMPYR_STATE of the person running the suite
+    leaks in."""
+    base = tmp_path_factory.getbasetemp()
+    assert A.config_folder().is_relative_to(base)
+    res = subprocess.run([sys.executable, "-c", "import os; from lampyr.scheduler import address"
+                          " as A, store; print(A.config_folder()); print(store.default_state());"
+                          " print(os.environ.get('LAMPYR_HEAD'), os.environ.get('LAMPYR_STATE'))"],
+                         capture_output=True, text=True, timeout=60, check=True)
+    config, data, env = res.stdout.splitlines()
+    assert Path(config) == A.config_folder() and Path(data).is_relative_to(base)
+    assert env == "None None"
+
+
+def _start_head(home, *args):
+    """`lampyr head` in home (its config folder home/config through `home`); waits until it
+    serves. Returns (process, its log)."""
+    log = home / "head.log"
+    proc = subprocess.Popen([sys.executable, "-m", "lampyr.cli", "head", "--state",
+                             home / "state", "--no-web", *args], stdout=open(log, "wb"),
+                            stderr=subprocess.STDOUT, start_new_session=True,
+                            env=dict(os.environ, PYTHONUNBUFFERED="1"))
+    give_up_at = time.monotonic() + 60
+    while "Workers join with:" not in log.read_text():
+        if proc.poll() is not None or time.monotonic() > give_up_at:
+            proc.kill()
+            raise AssertionError(log.read_text())
+        time.sleep(0.05)
+    return proc, log
+
+
+def test_a_head_removes_its_record_in_the_config_folder_at_a_clean_exit(home):
+    proc, log = _start_head(home)
+    try:
+        assert json.loads(A.local_head_file().read_text())["pid"] == proc.pid
+    finally:
+        proc.send_signal(signal.SIGTERM)
+        assert proc.wait(30) == 0, log.read_text()
+    assert not A.local_head_file().exists()
+    assert A.state_file(home / "state").exists()  # the state folder keeps its own
+
+
+def test_a_head_leaves_a_record_another_head_wrote_since(home):
+    proc, log = _start_head(home)
+    try:  # another head started here since: the record is that one's now
+        A.record_head(home / "other", C, W)
+    finally:
+        proc.send_signal(signal.SIGTERM)
+        assert proc.wait(30) == 0, log.read_text()
+    assert json.loads(A.local_head_file().read_text())["state"].endswith("other")
