@@ -3,7 +3,9 @@
 The head keeps the order itself (Redis has no real priorities): `fill()` queues pending batches,
 by job priority then age, keeping only a few more queued than there are worker cores that take
 work now. Every dispatch of a batch gets a new ticket (`inflight` in Redis holds the current one),
-so a message the head has replaced is skipped by its worker.
+so a message the head has replaced is skipped by its worker. A send that fails (Redis at its
+memory cap, Redis gone) leaves the batch where it was — pending, or under its old lease — and
+raises: no batch is ever in neither.
 
 A batch that raised or whose worker went silent is queued again until it has been started
 `max_attempts` times (the workers count starts in `attempts`), then failed for good with the
@@ -90,8 +92,19 @@ class Dispatcher:
         self.leases.add(b, ticket)
 
     def requeue(self, b: P.Batch) -> None:
-        self.leases.pop(b.id)
-        self.send(b)
+        """Send `b` again under a new ticket. When the send fails (Redis full, gone) the batch
+        keeps its old lease entry (the next reap tries again), or, without one, goes back in
+        front of its job's pending list; the error is raised on."""
+        old = self.leases.pop(b.id)
+        try:
+            self.send(b)
+        except BaseException:
+            if b.id not in self.leases:
+                if old is not None:
+                    self.leases.table[b.id] = old
+                elif b.job in self.runs:
+                    self.runs[b.job].pending.appendleft(b)
+            raise
 
     def fill(self, admit=lambda run, b: True) -> int:
         """Queue pending batches while fewer than `cores + 2` wait unclaimed in the queue.
@@ -108,7 +121,12 @@ class Dispatcher:
                     continue
                 if not admit(run, b):
                     continue
-                self.send(b)
+                try:
+                    self.send(b)
+                except BaseException:  # e.g. Redis at its memory cap: the batch stays pending
+                    if b.id not in self.leases:
+                        run.pending.appendleft(b)
+                    raise
                 sent += 1
         return sent
 

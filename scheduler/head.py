@@ -229,7 +229,19 @@ class Head:
             return "failed"
         queued = self.dispatcher.inflight(run.rec.id)
         if not run.pending and not queued and not self.ready_by.waiting(run):
-            return "failed" if run.rec.failed else "done"
+            if run.rec.failed:
+                return "failed"
+            if run.rec.ready_by_reached or all(run.frame_complete(f) for f in run.frames):
+                return "done"
+            # samples missing with nothing pending or in flight: a batch was lost on the way
+            # (never to be read as done) — planned again from what the tiles hold
+            run.replan()
+            self.dispatcher.skip_in_flight(run)
+            log.warning("job %s: %d batch(es) lost on the way are queued again", run.rec.id,
+                        len(run.pending))
+            if not run.pending:
+                run.stop_with_error("its frames lack samples that no batch of its plan covers")
+                return "failed"
         if run.rec.paused:
             return "paused"
         held, _ = run.pixel_samples()
