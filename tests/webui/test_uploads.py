@@ -270,5 +270,6 @@ def test_a_shot_nested_twenty_thousand_deep_is_a_400_naming_the_shot(user):
     resp = upload(user, shot=deep, archive=None)
     assert resp.status_code == 400
     msg = resp.get_json()["error"]
-    assert msg.startswith("shot:") and "nested too deeply" in msg and "\n" not in msg
+    # the shot reader's own line (engine/shot.py), naming the uploaded shot file
+    assert msg.startswith("tiny.toml:") and "nesting too deep" in msg and "\n" not in msg
 
