@@ -187,6 +187,10 @@ def head(state, redis_url, listen, port, lease_seconds, max_attempts, metrics_po
 
     state = state or default_state()
     maxmemory = None if redis_memory is None else parse_size(redis_memory)
+    if redis_url is not None:
+        from .scheduler.address import check_address
+
+        redis_url = check_address(redis_url, "--redis")
 
     def ready(workers, commands):
         click.echo(f"lampyr head: state in {state}")

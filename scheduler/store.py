@@ -48,8 +48,12 @@ def connect(url: str, check: bool = True):
     """A redis client for `url`; with `check`, fail with one clear line when it cannot talk."""
     import redis
 
-    r = redis.Redis.from_url(url, socket_timeout=10, socket_connect_timeout=5,
-                             health_check_interval=15, retry_on_timeout=True)
+    try:
+        r = redis.Redis.from_url(url, socket_timeout=10, socket_connect_timeout=5,
+                                 health_check_interval=15, retry_on_timeout=True)
+    except ValueError as err:  # a scheme, host or port redis-py cannot read
+        shown = redact(url) if "://" in url else url
+        raise FarmError(f"not a farm address: {shown[:60]!r} ({err})") from None
     if check:
         try:
             r.ping()
