@@ -128,8 +128,8 @@ def render(shot, out, workers, samples, frames, width, height, tile_size, no_den
 
 _STATE_HELP = "The head's state folder (default: $LAMPYR_STATE or ~/.local/share/lampyr)."
 _HEAD_HELP = ("The farm's address (redis://…); it shows in `ps`, so prefer $LAMPYR_HEAD or "
-              "`lampyr farm`. Default: $LAMPYR_HEAD, --state, the address saved by `lampyr farm`, "
-              "or the head last started on this machine.")
+              "`lampyr farm`. Default: --state, $LAMPYR_HEAD, $LAMPYR_STATE, the address saved "
+              "by `lampyr farm`, or the head last started on this machine.")
 
 
 def _farm(head, state):

@@ -4,14 +4,16 @@ An address carries a password, so it never needs to be on a command line (where 
 the machine can read it in `ps`). In order, the first that gives one wins:
 
 1. `--head ADDRESS` (kept for scripts; it shows in `ps`), or `lampyr worker ADDRESS`;
-2. the environment variable `LAMPYR_HEAD` (what the systemd units set from their
+2. `--state DIR`: the addresses the head started with that state folder wrote into
+   `DIR/addresses.json` (options typed on the command line win over the environment);
+3. the environment variable `LAMPYR_HEAD` (what the systemd units set from their
    EnvironmentFile);
-3. `--state DIR`, or `LAMPYR_STATE`: the addresses the head started with that state folder wrote
-   into `DIR/addresses.json`;
-4. the address saved with `lampyr farm` (another PC), in `<config>/lampyr/farm` (0600);
-5. the head last started by this user on this machine, whatever its `--state`: it writes its
-   addresses to `<config>/lampyr/local-head.json` (0600) as it starts;
-6. the default state folder's `addresses.json`.
+4. the environment variable `LAMPYR_STATE`: a state folder, as `--state`;
+5. the address saved with `lampyr farm` (another PC), in `<config>/lampyr/farm` (0600);
+6. the head last started by this user on this machine, whatever its `--state`: it writes its
+   addresses to `<config>/lampyr/local-head.json` (0600) as it starts, and removes that file
+   when it stops cleanly;
+7. the default state folder's `addresses.json`.
 
 `<config>` is `$XDG_CONFIG_HOME`, else `~/.config` (`%APPDATA%` on Windows); the `lampyr`
 folder in it is 0700. Each record holds two addresses: `commands` (the Redis user `artist`)
@@ -167,7 +169,7 @@ def find(head: str | None = None, state: Path | None = None, role: str = COMMAND
 
     if head:
         return check_address(head, given_as)
-    if os.environ.get(ENV):
+    if state is None and os.environ.get(ENV):
         return check_address(os.environ[ENV], ENV)
     if state is None and os.environ.get("LAMPYR_STATE"):
         state = Path(os.environ["LAMPYR_STATE"])
@@ -209,10 +211,12 @@ def where_from(head: str | None = None, state: Path | None = None) -> str:
     """Which of the places above gives the address now, in words (`lampyr farm` alone)."""
     if head:
         return "--head"
+    if state is not None:
+        return f"the state folder {state} (--state)"
     if os.environ.get(ENV):
         return f"the environment variable {ENV}"
-    if state is not None or os.environ.get("LAMPYR_STATE"):
-        return f"the state folder {state or os.environ['LAMPYR_STATE']}"
+    if os.environ.get("LAMPYR_STATE"):
+        return f"the state folder {os.environ['LAMPYR_STATE']} (LAMPYR_STATE)"
     if _read(saved_file()) is not None:
         return f"{saved_file()} (saved with `lampyr farm`)"
     if _read(local_head_file()) is not None:

@@ -46,16 +46,23 @@ def test_a_head_on_this_machine_is_found_whatever_its_state(home):
     assert json.loads(A.local_head_file().read_text())["state"].endswith("else")
 
 
-def test_the_order_head_env_state_saved_local(home, monkeypatch):
+def test_the_order_head_state_env_saved_local(home, monkeypatch):
     A.record_head(home / "s1", "redis://artist:local@h:1/0", W)
     A.save_farm("redis://artist:saved@h:1/0")
     assert A.find() == "redis://artist:saved@h:1/0"  # saved beats the local head
     A.record_head(home / "s2", "redis://artist:state@h:1/0", W)
     assert A.find(state=home / "s2") == "redis://artist:state@h:1/0"  # --state beats saved
+    monkeypatch.setenv("LAMPYR_STATE", str(home / "s2"))
+    assert A.find() == "redis://artist:state@h:1/0"  # and so does LAMPYR_STATE
     monkeypatch.setenv("LAMPYR_HEAD", "redis://artist:env@h:1/0")
-    assert A.find(state=home / "s2") == "redis://artist:env@h:1/0"  # the environment beats it
+    assert A.find() == "redis://artist:env@h:1/0"  # LAMPYR_HEAD beats LAMPYR_STATE
+    assert A.where_from() == "the environment variable LAMPYR_HEAD"
+    # options typed on the command line beat the environment
+    assert A.find(state=home / "s2") == "redis://artist:state@h:1/0"
+    assert A.where_from(state=home / "s2") == f"the state folder {home / 's2'} (--state)"
     assert A.find("redis://artist:given@h:1/0") == "redis://artist:given@h:1/0"
     monkeypatch.delenv("LAMPYR_HEAD")
+    monkeypatch.delenv("LAMPYR_STATE")
     assert A.forget_farm()
     assert A.find() == "redis://artist:state@h:1/0"  # the head last started here
 
