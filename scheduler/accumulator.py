@@ -57,6 +57,8 @@ def write_atomic(path: Path, data: bytes, sync_folder: bool = True, mode: int = 
     fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, mode)
     try:
         with os.fdopen(fd, "wb") as f:
+            if os.name == "posix":  # os.open's mode is for a new file only, not a stale .tmp
+                os.fchmod(fd, mode)
             f.write(data)
             f.flush()
             os.fsync(f.fileno())

@@ -91,6 +91,8 @@ def write_private(path: Path, text: str) -> None:
     tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
     fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
     with os.fdopen(fd, "w") as f:
+        if os.name == "posix":  # os.open's mode is for a new file only, not a stale one
+            os.fchmod(fd, 0o600)
         f.write(text)
     os.replace(tmp, path)
 
