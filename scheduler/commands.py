@@ -256,10 +256,10 @@ def handle(ctx: Context, raw: bytes) -> None:
         return
     from .store import transient_errors
 
-    fn = COMMANDS.get(op)
     try:
+        fn = COMMANDS.get(op) if isinstance(op, str) else None
         if fn is None:
-            raise CommandError(f"unknown command {op!r}")
+            raise CommandError(f"unknown command {str(op)[:60]!r}")
         fn(ctx, **cmd)
     except transient_errors():
         raise  # Redis went away: the command stays in control:processing, replayed (reconcile)

@@ -56,7 +56,17 @@ class Dispatcher:
         """Take over what Redis lists as queued: a batch under a live lease stays in flight (and
         leaves its job's pending list); the others are pending again, under a new ticket."""
         r = self.r
-        queued = {k.decode(): int(v) for k, v in r.hgetall(P.K_INFLIGHT).items()}
+        queued, bad = {}, []
+        for k, v in r.hgetall(P.K_INFLIGHT).items():
+            ticket = _count(v)
+            if ticket is None:  # not a ticket the head wrote: its batch is pending again
+                log.warning("inflight %r: ticket %r is not a whole number; dropped", k[:200],
+                            v[:40])
+                bad.append(k)
+            else:
+                queued[k.decode("utf-8", "replace")] = ticket
+        if bad:
+            r.hdel(P.K_INFLIGHT, *bad)
         for bid, ticket in queued.items():
             self.tickets[bid] = max(self.tickets.get(bid, 0), ticket)
         self.leases = LeaseKeeper(self.leases.backstop)
@@ -155,7 +165,12 @@ class Dispatcher:
 
     def give_up_or_requeue(self, run, b: P.Batch, reason: str) -> None:
         """Queue `b` again, unless its starts reached the attempt limit: then it fails."""
-        attempts = int(self.r.hget(P.K_ATTEMPTS, b.id) or 0)
+        raw = self.r.hget(P.K_ATTEMPTS, b.id)
+        attempts = _count(raw or 0)
+        if attempts is None:  # not a count a worker wrote: counting starts again
+            log.warning("attempts of %s: %r is not a whole number; counted from 0", b.id, raw[:40])
+            self.r.hdel(P.K_ATTEMPTS, b.id)
+            attempts = 0
         if attempts >= self.max_attempts:
             self.fail(run, b.id, f"{reason} (after {attempts} attempt(s))")
         else:
@@ -212,3 +227,11 @@ class Dispatcher:
         ids = [k for k, _ in self.r.hscan_iter(P.K_ATTEMPTS, match=f"{job}/*", count=500)]
         if ids:
             self.r.hdel(P.K_ATTEMPTS, *ids)
+
+
+def _count(raw) -> int | None:
+    """A whole number Redis holds as text (a ticket, an attempt count); None when it is not one."""
+    try:
+        return int(raw)
+    except (TypeError, ValueError):
+        return None

@@ -73,3 +73,74 @@ def test_a_job_whose_batches_were_lost_is_not_done_but_planned_again(head, tiny_
     head.publish(force=True)
     assert job_status(head.r, job)["state"] == "queued"
     assert batches_held_by_head(head, job) == planned
+
+
+# -- 5. values workers and clients wrote ---------------------------------------------------------
+
+def test_malformed_heartbeats_and_slot_records_are_left_out_and_the_loop_goes_on(head, tiny_shot):
+    from lampyr.scheduler import heartbeats
+    from lampyr.scheduler.forecast import read_hosts
+    from lampyr.scheduler.history import note_hosts
+    from lampyr.scheduler.store import workers
+
+    job = submit(head, tiny_shot)
+    r = head.r
+    bad_beats = {"many": {"name": "many", "cores": "many"}, "zero": {"name": "zero", "cores": 0},
+                 "yes": {"name": "yes", "cores": True}, "num": {"name": 5, "cores": 2},
+                 "st": {"name": "st", "cores": 2, "state": ["idle"]},
+                 "win": {"name": "win", "cores": 2, "windows": [[1, "x"]]},
+                 "list": [1, 2]}
+    for key, info in bad_beats.items():
+        r.set(P.k_host(key), json.dumps(info), ex=30)
+    r.set(P.k_host("good"), json.dumps({"name": "good", "cores": 4, "state": "idle",
+                                        "windows": [[1.0, 2.5]]}), ex=30)
+    r.set(P.k_slot("good", 11), json.dumps({"worker": "good", "pid": 11, "batch": f"{job}/1/0/0/1",
+                                            "pixel_samples_per_second": 10.0}), ex=30)
+    r.set(P.k_slot("good", 12), json.dumps({"worker": 3, "batch": 7}), ex=30)
+    r.set(P.k_slot("good", 13), json.dumps({"worker": "good", "pixel_samples_per_second": "x"}),
+          ex=30)
+    assert [h["name"] for h in heartbeats.hosts(r)] == ["good"]
+    assert head.worker_cores() == 4
+    assert head.dispatch() == 4 + 2  # cores + 2 queued (dispatch.py)
+    head.step()
+    assert [(w["name"], [s["pid"] for s in w["slots"]]) for w in workers(r)] == [("good", [11])]
+    assert read_hosts(r) == ([("good", 4, [[1.0, 2.5]])], [("good", 10.0)])
+    pipe = r.pipeline()
+    note_hosts(r, pipe, 1000.0)
+    pipe.execute()
+    assert r.hkeys(P.K_SEEN) == [b"good"]
+
+
+def test_a_ticket_in_inflight_that_is_not_a_number_does_not_keep_the_head_down(
+        head, tiny_shot, redis_url, tmp_path):
+    from lampyr.scheduler.head import Head
+
+    job = submit(head, tiny_shot)
+    bid = next(b.id for b in head.jobs[job].pending)
+    head.r.hset(P.K_INFLIGHT, bid, "not a ticket")
+    again = Head(tmp_path / "state", redis_url, lease_seconds=5)
+    again.start()
+    assert not again.r.hexists(P.K_INFLIGHT, bid)
+    assert bid in batches_held_by_head(again, job)  # pending again
+
+
+def test_an_attempt_count_that_is_not_a_number_starts_counting_again(head, tiny_shot):
+    job = submit(head, tiny_shot)
+    head.dispatch()
+    entry = next(iter(head.leases.table.values()))
+    entry.leased = True  # its worker went silent
+    head.r.hset(P.K_ATTEMPTS, entry.batch.id, "lots")
+    head.reap(every=0)
+    assert head.leases.get(entry.batch.id).ticket > entry.ticket  # queued again
+    assert not head.r.hexists(P.K_ATTEMPTS, entry.batch.id)
+    assert not head.jobs[job].rec.failed
+
+
+@pytest.mark.parametrize("op", [[1], {"a": 1}])
+def test_a_command_whose_op_is_not_a_name_is_recorded_and_removed(head, op):
+    from lampyr.scheduler.commands import errors
+
+    head.r.rpush(P.K_CONTROL, json.dumps({"op": op, "job": "j"}))
+    assert head.take_commands()
+    assert head.r.llen(P.K_CONTROL) == head.r.llen(P.K_CONTROL_PROCESSING) == 0
+    assert "unknown command" in errors(head.r)["j"]["error"]
