@@ -173,8 +173,8 @@ def _job_or_fail(r, job):
               help="Address the web page binds to (default: the same as --listen).")
 @click.option("--no-web", is_flag=True, help="Do not serve the web page.")
 @click.option("--redis-memory", default=None, metavar="SIZE",
-              help="Memory the embedded Redis may hold, e.g. 4G (default: half of this machine's); "
-                   "a shot that does not fit is refused at submit.")
+              help="Memory the embedded Redis may hold, e.g. 4G, at least 64M (default: half of "
+                   "this machine's); a shot that does not fit is refused at submit.")
 @click.option("--archive-after", "archive_days", type=click.FloatRange(0, 36500), default=30.0,
               show_default=True, metavar="DAYS",
               help="Days after its end a job folds into the archive (no longer loaded or published).")

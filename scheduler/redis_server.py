@@ -31,7 +31,7 @@ import time
 from pathlib import Path
 from urllib.parse import quote
 
-from ..errors import LampyrError
+from ..errors import LampyrError, UsageError
 from . import acl
 
 LOOPBACK = {"127.0.0.1", "localhost", "::1"}
@@ -120,16 +120,22 @@ def default_memory() -> int:
     return max(256 << 20, psutil.virtual_memory().total // 2)
 
 
+MIN_MEMORY = 64 << 20  # below this a farm holds hardly one shot's files and tiles (rule of thumb)
+
+
 def parse_size(text: str) -> int:
-    """`512M`, `4G`, `1.5G` or plain bytes → bytes (binary units, as Redis reads them)."""
+    """`512M`, `4G`, `1.5G` or plain bytes → bytes (binary units, as Redis reads them); at
+    least MIN_MEMORY."""
     units = {"k": 1 << 10, "m": 1 << 20, "g": 1 << 30, "t": 1 << 40}
     t = str(text).strip().lower().removesuffix("b").removesuffix("i")
     try:
-        if t and t[-1] in units:
-            return int(float(t[:-1]) * units[t[-1]])
-        return int(t)
-    except ValueError:
-        raise LampyrError(f"--redis-memory: expected a size like 4G or 512M, got {text!r}") from None
+        size = int(float(t[:-1]) * units[t[-1]]) if t and t[-1] in units else int(t)
+    except (ValueError, OverflowError):  # OverflowError: inf
+        size = -1
+    if size < MIN_MEMORY:
+        raise UsageError(f"--redis-memory: expected a size of 64M or more, like 4G or 512M, "
+                         f"got {text!r}")
+    return size
 
 
 class EmbeddedRedis:

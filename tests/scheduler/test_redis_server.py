@@ -68,11 +68,26 @@ def test_the_memory_cap_is_set(tmp_path):
 
 
 @pytest.mark.parametrize("text, size", [("4G", 4 << 30), ("512M", 512 << 20), ("1.5GiB", 3 << 29),
-                                        ("1048576", 1 << 20)])
+                                        ("67108864", 64 << 20), ("64m", 64 << 20)])
 def test_redis_memory_sizes_read_in_binary_units(text, size):
     from lampyr.scheduler.redis_server import parse_size
 
     assert parse_size(text) == size
+
+
+@pytest.mark.parametrize("text", ["-1G", "0", "1048576", "63M", "0.06G", "infG", "nanM", "4X", ""])
+def test_a_redis_memory_below_64M_or_not_a_size_is_one_line_exit_2(tmp_path, text):
+    """The project's rule for bad input: one line naming the option, exit status 2, before the
+    head starts anything (the state folder is not even made)."""
+    import subprocess
+
+    res = subprocess.run([sys.executable, "-m", "lampyr.cli", "head", "--state",
+                          str(tmp_path / "state"), f"--redis-memory={text}"],
+                         capture_output=True, text=True, timeout=60)
+    assert res.returncode == 2, res.stderr
+    assert res.stderr.strip().splitlines() == [
+        f"lampyr: --redis-memory: expected a size of 64M or more, like 4G or 512M, got {text!r}"]
+    assert not (tmp_path / "state").exists()
 
 
 # ---------------------------------------------------------------------------------------------
