@@ -134,6 +134,7 @@ class Head:
         # errors interrupted), go back in front of their queues
         while r.lmove(P.K_PROCESSING, P.K_RESULTS, "RIGHT", "LEFT") is not None:
             pass
+        self.results.parked.clear()  # parked notices went back with the others
         commands.replay(r)
         for run in self.jobs.values():
             run.replan()

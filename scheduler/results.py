@@ -10,7 +10,12 @@ No notice can stop the head. Each is handled inside a guard:
   `results:aside` with the reason, and logged;
 - a result whose film cannot be decoded or merged fails its batch with the reason (the error
   shows in `status` and on the page; `retry` queues the batch again);
-- a frame that cannot be written stops its job with the reason (`JobRun.write_frames`).
+- a result the head's disk refuses (an OSError: a full disk, a read-only folder) stops its job
+  with the reason, as a frame that cannot be written does (`JobRun.write_frames`); the notice and
+  its result stay (parked in `results:processing`, the batch under its lease, no attempt
+  counted) and are taken again once `retry` has cleared the job's error;
+- a notice whose handling Redis refused (a write at its memory cap) is parked the same way and
+  taken again at the next turn.
 At start-up `set_aside_undecodable()` goes through the notices a killed head left behind first.
 """
 
@@ -81,11 +86,15 @@ class Results:
         self.runs = runs
         self.dispatch = dispatch
         self.metrics = metrics
+        self.parked: dict[bytes, str] = {}  # notice → its job (left in results:processing)
 
     def take(self, limit: int = 256) -> int:
+        import redis
+
         from .accumulator import fsync_folder
 
         r = self.r
+        self._unpark()
         pipe = r.pipeline(transaction=False)
         for _ in range(limit):
             pipe.lmove(P.K_RESULTS, P.K_PROCESSING, "LEFT", "RIGHT")
@@ -111,6 +120,8 @@ class Results:
                 self._one(note, data, folders, frames, finished)
             except lost:
                 raise  # Redis went away: the notices stay in processing, taken again (reconcile)
+            except (OSError, redis.exceptions.RedisError) as err:  # the disk or Redis, not it
+                self._park(raw, note, err)
             except Exception as err:  # noqa: BLE001 — a bad result fails its batch, not the head
                 self._bad(note, err, finished)
         for folder in folders:
@@ -126,10 +137,38 @@ class Results:
         if finished:
             pipe.hdel(P.K_INFLIGHT, *finished)
         for raw, note in notes:
-            pipe.lrem(P.K_PROCESSING, 1, raw)
-            pipe.delete(P.k_result(note["batch"], note["ticket"]))
+            if raw not in self.parked:
+                pipe.lrem(P.K_PROCESSING, 1, raw)
+                pipe.delete(P.k_result(note["batch"], note["ticket"]))
         pipe.execute()
         return len(raws)
+
+    def _park(self, raw: bytes, note: dict, err: Exception) -> None:
+        """Keep a notice (and its result) in processing for later: the head's disk refused it
+        (its job stops with the reason; `retry` clears it) or Redis refused a write (the next
+        turn tries again). Nothing is counted against its batch."""
+        bid = note["batch"]
+        job = P.parse_batch_id(bid)[0]
+        self.parked[raw] = job
+        run = self.runs.get(job)
+        if not isinstance(err, OSError) or run is None:
+            log.warning("batch %s: its notice is kept for the next turn: %s", bid, _one_line(err))
+            return
+        try:
+            run.stop_with_error(f"cannot merge batch {bid} into its tile file: {_one_line(err)}")
+        except OSError as again:  # the job's record cannot be saved either: kept in memory
+            log.error("job %s: cannot save its record: %s", job, _one_line(again))
+
+    def _unpark(self) -> None:
+        """Parked notices go back in front of `results` once their job has no error (retry),
+        has gone or was cancelled. Cleared at reconcile (which moves processing back whole)."""
+        for raw, job in list(self.parked.items()):
+            run = self.runs.get(job)
+            if run is not None and run.rec.error and not run.rec.cancelled:
+                continue
+            del self.parked[raw]
+            if self.r.lrem(P.K_PROCESSING, 1, raw):
+                self.r.lpush(P.K_RESULTS, raw)
 
     def _one(self, note: dict, data, folders: set, frames: set, finished: list) -> None:
         from ..engine.film import from_bytes
@@ -167,8 +206,7 @@ class Results:
         """A result that could not be decoded or merged: its batch fails with the reason."""
         bid = note["batch"]
         run = self.runs.get(P.parse_batch_id(bid)[0])
-        text = str(err).strip().splitlines()
-        reason = f"its result could not be merged: {type(err).__name__}: {text[0] if text else ''}"
+        reason = f"its result could not be merged: {_one_line(err)}"
         log.error("batch %s: %s", bid, reason)
         if run is None:
             return
@@ -224,3 +262,8 @@ def batch_of(run, bid: str) -> P.Batch | None:
         return None
     t = run.tiles[tile]
     return P.Batch(job, frame, tile, first, count, t.x0, t.y0, t.w, t.h)
+
+
+def _one_line(err: BaseException) -> str:
+    text = str(err).strip().splitlines()
+    return f"{type(err).__name__}: {text[0] if text else ''}"

@@ -144,3 +144,59 @@ def test_a_command_whose_op_is_not_a_name_is_recorded_and_removed(head, op):
     assert head.take_commands()
     assert head.r.llen(P.K_CONTROL) == head.r.llen(P.K_CONTROL_PROCESSING) == 0
     assert "unknown command" in errors(head.r)["j"]["error"]
+
+
+# -- 3. a disk that refuses a merge ------------------------------------------------------------
+
+def test_a_result_the_disk_refuses_stops_the_job_and_is_merged_after_retry(head, tiny_shot,
+                                                                           tmp_path):
+    from .test_head_faults import deliver, first_pass_of_frame_1, render
+
+    job = submit(head, tiny_shot, tmp_path / "out")
+    run = head.jobs[job]
+    b = first_pass_of_frame_1(head, job)[0]
+    folder = run.folder.tile(b.frame, b.tile).parent
+    folder.parent.mkdir(parents=True, exist_ok=True)
+    folder.write_text("the tiles' folder became a file")  # every write into it: OSError
+    deliver(head, b, render(tiny_shot, b))
+    ticket = head.leases.get(b.id).ticket
+    head.take_results()
+    head.publish(force=True)
+    st = job_status(head.r, job)
+    assert st["state"] == "failed" and "cannot merge batch" in st["error"]
+    assert st["failed"] == []  # the batch itself did not fail
+    assert head.r.llen(P.K_PROCESSING) == 1 and head.r.exists(P.k_result(b.id, ticket))
+    assert head.leases.get(b.id).ticket == ticket  # still its, with no attempt counted
+    assert not head.r.hexists(P.K_ATTEMPTS, b.id)
+    head.take_results()  # not taken again while the job is stopped
+    assert head.r.llen(P.K_PROCESSING) == 1
+    folder.unlink()
+    head.command("retry", job=job)
+    head.take_results()
+    assert run.is_done(b)  # the kept result merged: the samples were not rendered twice
+    assert head.r.llen(P.K_PROCESSING) == 0 and not head.r.exists(P.k_result(b.id, ticket))
+    head.publish(force=True)
+    assert job_status(head.r, job)["error"] is None
+
+
+def test_a_notice_whose_handling_redis_refuses_is_taken_again_at_the_next_turn(head, tiny_shot,
+                                                                               monkeypatch):
+    job = submit(head, tiny_shot)
+    head.dispatch()
+    b = next(iter(head.leases.table.values())).batch
+    ticket = head.leases.get(b.id).ticket
+    # a notice whose result is gone (expired): the head queues the batch again; Redis refuses
+    # that send once, as at its memory cap (the refusal itself: see redis_full above)
+    head.r.rpush(P.K_RESULTS, P.result_notice(b.id, ticket, "w", 0.1))
+    send = head.dispatcher.sender.send_task
+
+    def refuse_once(*a, **k):
+        monkeypatch.setattr(head.dispatcher.sender, "send_task", send)
+        raise redis.exceptions.OutOfMemoryError("OOM command not allowed")
+
+    monkeypatch.setattr(head.dispatcher.sender, "send_task", refuse_once)
+    head.take_results()
+    assert head.r.llen(P.K_PROCESSING) == 1 and head.leases.get(b.id).ticket == ticket
+    assert not head.jobs[job].rec.failed and head.jobs[job].rec.error is None
+    head.take_results()
+    assert head.r.llen(P.K_PROCESSING) == 0 and head.leases.get(b.id).ticket > ticket
