@@ -286,7 +286,7 @@ def doctor(address, no_render):
 @click.option("--frames", "frames", default=None, metavar="A-B", help="Only these frames.")
 @click.option("--width", type=click.IntRange(1, 16384), default=None, help="Override image.width.")
 @click.option("--height", type=click.IntRange(1, 16384), default=None, help="Override image.height.")
-@click.option("--tile", "tile_size", type=click.IntRange(1, 4096), default=None,
+@click.option("--tile", "tile_size", type=click.IntRange(8, 4096), default=None,
               help="Tile edge in pixels (default: chosen from a probe render).")
 @click.option("--batch", "batch_samples", type=click.IntRange(1, 1_048_576), default=None,
               help="Samples per batch (default: chosen from a probe render).")
