@@ -30,6 +30,7 @@ import hmac
 import os
 import re
 import secrets
+import threading
 import time
 from pathlib import Path
 
@@ -186,29 +187,33 @@ def answer(code: int, message: str, title: str = "Refused"):
 
 
 class LoginThrottle:
-    """Failed logins per client address within a sliding window."""
+    """Failed logins per client address within a sliding window; one per app, shared by
+    waitress's request threads (hence the lock)."""
 
     def __init__(self):
         self.fails: dict[str, list[float]] = {}
+        self.lock = threading.Lock()
 
     def blocked(self, who: str) -> bool:
-        now = time.monotonic()
-        recent = [t for t in self.fails.get(who, []) if now - t < LOGIN_WINDOW]
-        if recent:
-            self.fails[who] = recent
-        else:
-            self.fails.pop(who, None)  # the table holds only addresses failing now
-        return len(recent) >= LOGIN_TRIES
+        with self.lock:
+            now = time.monotonic()
+            recent = [t for t in self.fails.get(who, []) if now - t < LOGIN_WINDOW]
+            if recent:
+                self.fails[who] = recent
+            else:
+                self.fails.pop(who, None)  # the table holds only addresses failing now
+            return len(recent) >= LOGIN_TRIES
 
     def failed(self, who: str) -> None:
-        now = time.monotonic()
-        if who not in self.fails and len(self.fails) >= THROTTLE_ADDRESSES:
-            # forget addresses that stopped failing; if all fail now, the oldest
-            for k in [k for k, ts in self.fails.items() if now - ts[-1] >= LOGIN_WINDOW]:
-                del self.fails[k]
-            while len(self.fails) >= THROTTLE_ADDRESSES:
-                del self.fails[next(iter(self.fails))]
-        self.fails.setdefault(who, []).append(now)
+        with self.lock:
+            now = time.monotonic()
+            if who not in self.fails and len(self.fails) >= THROTTLE_ADDRESSES:
+                # forget addresses that stopped failing; if all fail now, the oldest
+                for k in [k for k, ts in self.fails.items() if now - ts[-1] >= LOGIN_WINDOW]:
+                    del self.fails[k]
+                while len(self.fails) >= THROTTLE_ADDRESSES:
+                    del self.fails[next(iter(self.fails))]
+            self.fails.setdefault(who, []).append(now)
 
 
 @bp.route("/login", methods=["GET", "POST"])
