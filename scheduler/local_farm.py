@@ -64,13 +64,13 @@ def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: in
 
         thread = threading.Thread(target=run_head, name="lampyr-head", daemon=True)
         thread.start()
-        log = open(state / "worker.log", "wb")
-        worker = subprocess.Popen(
-            [sys.executable, "-m", "lampyr.cli", "worker", "--cores", str(workers),
-             "--name", "local", "--normal-priority"],  # the artist asked for this render
-            env=dict(os.environ, LAMPYR_HEAD=server.worker_url),  # not on the command line
-            stdin=subprocess.DEVNULL, stdout=log, stderr=subprocess.STDOUT,
-            start_new_session=True, cwd=state, preexec_fn=die_with_parent())
+        with open(state / "worker.log", "wb") as log:  # the worker keeps its own copy
+            worker = subprocess.Popen(
+                [sys.executable, "-m", "lampyr.cli", "worker", "--cores", str(workers),
+                 "--name", "local", "--normal-priority"],  # the artist asked for this render
+                env=dict(os.environ, LAMPYR_HEAD=server.worker_url),  # not on the command line
+                stdin=subprocess.DEVNULL, stdout=log, stderr=subprocess.STDOUT,
+                start_new_session=True, cwd=state, preexec_fn=die_with_parent())
         batch = batch_samples or max(1, shot.samples)
         # `lampyr render` read the shot's files before anything started
         r = connect(server.url)
