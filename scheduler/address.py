@@ -106,7 +106,12 @@ def _address_in(path: Path, key: str) -> str | None:
     if text is None:
         return None
     try:
-        value = json.loads(text)[key]
+        rec = json.loads(text)
+        if isinstance(rec, dict) and key in (COMMANDS, WORKERS) and key not in rec and "pid" in rec:
+            raise NoFarm(f"{path}: the head there uses a Redis given with --redis; give that "
+                         f"Redis's {'artist' if key == COMMANDS else 'worker'} user's address "
+                         f"with {ENV} or `lampyr farm` (see deploy/redis-lan.conf)")
+        value = rec[key]
         if not isinstance(value, str):
             raise TypeError
     except (ValueError, KeyError, TypeError, IndexError):
@@ -115,11 +120,13 @@ def _address_in(path: Path, key: str) -> str | None:
     return check_address(value, f"{path}: {key}")
 
 
-def record_head(state: Path, commands: str, workers: str) -> None:
+def record_head(state: Path, commands: str | None, workers: str | None) -> None:
     """The head, as it starts: its addresses into its state folder and the user's config folder
-    (both 0600), so that commands on this machine find it with no option."""
-    rec = {COMMANDS: commands, WORKERS: workers, "state": str(Path(state).resolve()),
-           "pid": os.getpid(), "started": time.time()}
+    (both 0600), so that commands on this machine find it with no option. A head given
+    `--redis` records none (None): that Redis's users are its own."""
+    rec = {"state": str(Path(state).resolve()), "pid": os.getpid(), "started": time.time()}
+    if commands is not None and workers is not None:
+        rec.update({COMMANDS: commands, WORKERS: workers})
     text = json.dumps(rec, indent=1) + "\n"
     _write_private(state_file(state), text)
     try:

@@ -22,7 +22,8 @@ def run_head(state: Path, redis_url: str | None = None, listen: str = "127.0.0.1
     redis_url: an existing Redis to use; otherwise an embedded one is started under
     `<state>/redis`, bound to `listen` (password-protected beyond loopback).
     on_ready(workers, commands): called once the head serves, with the addresses workers and the
-    artists' commands need (the same one when `redis_url` is given).
+    artists' commands need; both None when `redis_url` is given (that Redis's own `worker` and
+    `artist` users' addresses, which the head does not know: deploy/redis-lan.conf).
     maxmemory: bytes the embedded Redis may hold (default: redis_server.default_memory()).
     archive_after: seconds after its end a job folds into the archive (None: head.ARCHIVE_AFTER).
     metrics: (host, port) to serve the Prometheus endpoint on (metrics.py); None: not served.
@@ -42,8 +43,8 @@ def run_head(state: Path, redis_url: str | None = None, listen: str = "127.0.0.1
                                maxmemory=maxmemory).start()
         redis_url = server.url
         workers, commands = server.worker_url, server.artist_url
-    else:
-        workers = commands = redis_url
+    else:  # the head's address has every right: never handed out nor recorded for others
+        workers = commands = None
     record_head(state, commands, workers)
     stop = stop or threading.Event()
 
