@@ -331,7 +331,8 @@ def submit(shot, out, priority, samples, frames, width, height, tile_size, batch
 def farm(forget, show):
     """Save the farm's address for this user (read from the terminal or standard input, never
     from the command line) in the user's config folder, mode 0600; the commands and
-    `lampyr worker` use it from then on."""
+    `lampyr worker` use it from then on. An artist gives it the commands' address; the account
+    a worker runs as (macOS, Windows: deploy/INSTALL.md), the workers' address."""
     from .scheduler import address as A
     from .scheduler.store import redact
 
@@ -342,7 +343,8 @@ def farm(forget, show):
         click.echo(f"{redact(A.find())}  (from {A.where_from()})")
         return
     if sys.stdin.isatty():
-        text = click.prompt("The address `lampyr head` printed for commands", hide_input=True)
+        text = click.prompt("The address `lampyr head` printed (the commands' one; for the "
+                            "account a worker runs as, the workers')", hide_input=True)
     else:
         text = sys.stdin.readline()
     path = A.save_farm(text)

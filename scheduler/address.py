@@ -17,7 +17,8 @@ the machine can read it in `ps`). In order, the first that gives one wins:
 
 `<config>` is `$XDG_CONFIG_HOME`, else `~/.config` (`%APPDATA%` on Windows); the `lampyr`
 folder in it is 0700. Each record holds two addresses: `commands` (the Redis user `artist`)
-and `workers` (the user `worker`); see scheduler/acl.py.
+and `workers` (the user `worker`); see scheduler/acl.py. A head given `--redis` records neither
+(that Redis's users are not the head's to hand out; deploy/redis-lan.conf).
 """
 
 from __future__ import annotations

@@ -2,8 +2,9 @@
 
 The head counts what happens to batches (merged, raised, failed for good, leases lapsed) and,
 with every status publish, writes a snapshot of its counters and queue to the `metrics` hash in
-Redis. The endpoint reads that snapshot plus the live worker heartbeats, so it can run in any
-process that reaches the farm's Redis (the head serves it with `--metrics-port`).
+Redis. The endpoint runs in the head (`--metrics-port`) and reads that snapshot plus the live
+worker heartbeats with the head's own address: neither the workers' nor the artists' Redis user
+may read `metrics` (scheduler/acl.py).
 
 The text (Prometheus exposition format 0.0.4) is written by the prometheus_client library from
 metric families built for each request; the metric names are lampyr's, counters end in `_total`.

@@ -28,22 +28,6 @@ def default_state() -> Path:
     return (Path(xdg) if xdg else Path.home() / ".local" / "share") / "lampyr"
 
 
-def head_file(state: Path) -> Path:
-    return Path(state) / "head.json"
-
-
-def resolve_address(head: str | None, state: Path | None) -> str:
-    """The Redis URL of a farm: given directly, or read from a head's state folder."""
-    if head:
-        return head
-    state = Path(state) if state else default_state()
-    path = head_file(state)
-    if not path.exists():
-        raise FarmError(f"no head has run with state folder {state} (no {path.name}); start one "
-                        "with `lampyr head --state DIR` or pass --head ADDRESS")
-    return json.loads(path.read_text())["address"]
-
-
 def connect(url: str, check: bool = True):
     """A redis client for `url`; with `check`, fail with one clear line when it cannot talk."""
     import redis

@@ -1,8 +1,8 @@
 """Login with the farm's password, the session, and the anti-forgery token of every action.
 
-The password is the farm's: the embedded Redis's (`<state>/redis/password`, made when the head
-listens beyond loopback), or else the page's own, generated at first start into
-`<state>/web/password` (mode 0600). The session is Flask's signed cookie (HttpOnly,
+The password is the artists' one: the embedded Redis's `artist` user's, made at its first start
+into `<state>/redis/password` (scheduler/redis_server.py), or, for a head given `--redis` (no
+such file), the page's own, generated at first start into `<state>/web/password` (mode 0600). The session is Flask's signed cookie (HttpOnly,
 SameSite=Strict) keyed by `<state>/web/secret`, so logins survive a head restart.
 
 A login opens a session on the server too (`SessionBook`, kept in `<state>/web/sessions.json`,
