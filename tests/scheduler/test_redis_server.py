@@ -175,7 +175,7 @@ def test_the_head_may_do_anything(server):
 
 def test_a_worker_reads_only_the_keys_its_work_needs(server):
     head, w = as_user(server, "head"), as_user(server, "worker")
-    head.set("lampyr:protocol", 3)
+    head.set("lampyr:protocol", 4)
     head.set("lampyr:scene:" + "a" * 64, b"manifest")
     for key in ("lampyr:job:j1", "lampyr:progress:j1", "lampyr:tiles:j1", "lampyr:layout:j1"):
         head.hset(key, "1", "{}")
