@@ -36,6 +36,16 @@ log = logging.getLogger("lampyr.head")
 # a simple scene on one core of a desktop PC)
 FALLBACK_COST = 2e-6
 
+TILE_SIZES = (8, 4096)  # the tile sizes a job may have, in pixels (smallest, largest)
+# the most batches one job may plan (frames × tiles × sample ranges): its pending list, its
+# progress and its status stay within the head's memory (rule of thumb: ~1 KiB each on the
+# head, so ~2 GiB at the cap)
+MAX_BATCHES = 2_000_000
+MAX_REPLAYS = 3  # start-ups a command may be carried out again at before it is set aside
+K_REPLAYS = P.key("control", "replays")  # sha256 of a command's text → start-ups replayed at
+K_CONTROL_ASIDE = P.key("control", "aside")  # {"command", "reason", "at"}: commands set aside
+ASIDE_KEEP = 1000  # entries kept in an aside list (the newest)
+
 
 class CommandError(LampyrError):
     """A command the head cannot carry out (an unknown job, a bad argument, an --out it cannot
@@ -83,6 +93,7 @@ def submit(ctx: Context, job: str, bundle: str, shot: str, overrides: dict, out:
     if job in ctx.runs:
         return
     folder = JobFolder(ctx.state, job)
+    check_layout(tile_size, batch_samples)
     if out is not None:
         check_out(out)
     if not (folder.root / "scene.json").exists():
@@ -102,8 +113,9 @@ def submit(ctx: Context, job: str, bundle: str, shot: str, overrides: dict, out:
         layout = choose_layout(spec.width, spec.height, spec.samples, FALLBACK_COST)
         tile_size = tile_size or layout.tile_size
         batch_samples = batch_samples or layout.batch_samples
-    ranges = sample_ranges(0, spec.samples, batch_samples,
-                           first_pass_samples(spec.samples, batch_samples))
+    first = first_pass_samples(spec.samples, batch_samples)
+    check_batch_count(spec, tile_size, batch_samples, first)
+    ranges = sample_ranges(0, spec.samples, batch_samples, first)
     rec = JobRecord(id=job, name=spec.name, bundle=bundle, shot=shot, overrides=overrides,
                     out=out or str(folder.root / "frames"), priority=int(priority),
                     submitted=submitted or time.time(), tile_size=int(tile_size),
@@ -114,6 +126,34 @@ def submit(ctx: Context, job: str, bundle: str, shot: str, overrides: dict, out:
     ctx.r.zadd(P.K_JOBS, {job: rec.submitted})
     log.info("job %s: %d batches, tiles %d px, %d samples per batch", job,
              len(ctx.runs[job].pending), tile_size, batch_samples)
+
+
+def check_layout(tile_size, batch_samples) -> None:
+    """tile_size a whole number of TILE_SIZES pixels and batch_samples one of 1 or more (each
+    may be None: chosen by the head); CommandError naming the field otherwise."""
+    lo, hi = TILE_SIZES
+    if tile_size is not None and not (_whole(tile_size) and lo <= tile_size <= hi):
+        raise CommandError(f"submit: tile_size {tile_size!r} is out of range; expected a whole "
+                           f"number of {lo} to {hi} pixels")
+    if batch_samples is not None and not (_whole(batch_samples) and batch_samples >= 1):
+        raise CommandError(f"submit: batch_samples {batch_samples!r} is out of range; expected a "
+                           "whole number of 1 or more")
+
+
+def check_batch_count(spec, tile_size: int, batch_samples: int, first_pass: int) -> None:
+    """frames × tiles × sample ranges at most MAX_BATCHES; CommandError with the count otherwise."""
+    tiles = -(-spec.width // tile_size) * -(-spec.height // tile_size)
+    s0 = first_pass if 0 < first_pass < spec.samples else 0
+    ranges = (1 if s0 else 0) + -(-(spec.samples - s0) // batch_samples)
+    n = len(spec.frames()) * tiles * ranges
+    if n > MAX_BATCHES:
+        raise CommandError(f"submit: {n} batches ({len(spec.frames())} frame(s) × {tiles} tiles "
+                           f"× {ranges} sample ranges) is more than the {MAX_BATCHES} a job may "
+                           "have; expected a larger tile_size or batch_samples")
+
+
+def _whole(x) -> bool:
+    return isinstance(x, int) and not isinstance(x, bool)
 
 
 def check_out(out: str) -> None:
@@ -220,11 +260,29 @@ def refine(ctx: Context, job: str, samples: int, noise: float | None = None,
 
 # -- taking commands ---------------------------------------------------------------------------
 
-def replay(r) -> int:
+def replay(r, count: bool = True) -> int:
     """Start-up: commands a killed head was carrying out go back in front of `control`, in
-    their order."""
+    their order. count: this is a start-up of the head (not Redis coming back), so each command
+    replayed has its replays counted (`control:replays`, by the sha256 of its text); one replayed
+    MAX_REPLAYS times already — it may be what stops the head — is set aside in `control:aside`
+    with the reason instead, and logged."""
     n = 0
-    while r.lmove(P.K_CONTROL_PROCESSING, P.K_CONTROL, "RIGHT", "LEFT") is not None:
+    while (raw := r.lindex(P.K_CONTROL_PROCESSING, -1)) is not None:
+        sha = _sha256(raw)
+        if count and r.hincrby(K_REPLAYS, sha, 1) > MAX_REPLAYS:
+            reason = (f"carried out again at {MAX_REPLAYS} start-ups of the head and not "
+                      "finished: set aside")
+            pipe = r.pipeline(transaction=True)
+            pipe.rpush(K_CONTROL_ASIDE, json.dumps({
+                "command": raw.decode("utf-8", "replace")[:2000], "reason": reason,
+                "at": round(time.time(), 1)}))
+            pipe.ltrim(K_CONTROL_ASIDE, -ASIDE_KEEP, -1)
+            pipe.rpop(P.K_CONTROL_PROCESSING)
+            pipe.hdel(K_REPLAYS, sha)
+            pipe.execute()
+            log.error("command %r %s", raw[:200], reason)
+            continue
+        r.lmove(P.K_CONTROL_PROCESSING, P.K_CONTROL, "RIGHT", "LEFT")
         n += 1
     if n:
         log.info("carrying out again %d command(s) a stopped head had taken", n)
@@ -241,8 +299,17 @@ def take(ctx: Context, limit: int = 100) -> bool:
             break
         n += 1
         handle(ctx, raw)
-        r.lrem(P.K_CONTROL_PROCESSING, 1, raw)
+        pipe = r.pipeline(transaction=False)
+        pipe.lrem(P.K_CONTROL_PROCESSING, 1, raw)
+        pipe.hdel(K_REPLAYS, _sha256(raw))  # done: its replays are no longer counted
+        pipe.execute()
     return n > 0
+
+
+def _sha256(raw: bytes) -> str:
+    import hashlib
+
+    return hashlib.sha256(raw).hexdigest()
 
 
 def handle(ctx: Context, raw: bytes) -> None:

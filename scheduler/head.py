@@ -22,7 +22,7 @@ At start-up (and after Redis comes back from a restart) `reconcile()` makes Redi
 disk: what the accumulators hold is done; every other batch is pending, and any batch Redis still
 lists as queued but not leased is queued again under a new ticket (the old message, if it still
 exists, is then skipped by its worker). Commands and notices a killed head was handling are taken
-again; notices it cannot read are set aside with the reason; a job that cannot be loaded shows as
+again (a command at 3 start-ups at most, then it is set aside: `commands.replay`); notices it cannot read are set aside with the reason; a job that cannot be loaded shows as
 `failed` with the reason. Nothing a client or a worker sends can stop the loop.
 
 Finished jobs fold away after `archive_after` seconds: their record becomes `archived.json` (their
@@ -117,10 +117,11 @@ class Head:
             run.settle_written()  # frames already on disk are not written again
             run.write_frames(run.frames)
         set_aside_undecodable(self.r)
-        self.reconcile()
+        self.reconcile(starting=True)
 
-    def reconcile(self) -> None:
-        """Make Redis agree with the disk (see the module docstring)."""
+    def reconcile(self, starting: bool = False) -> None:
+        """Make Redis agree with the disk (see the module docstring). starting: the head's
+        start-up (commands taken again count as replays, `commands.replay`)."""
         r = self.r
         epoch = r.get(P.K_EPOCH)
         if epoch is None:
@@ -135,7 +136,7 @@ class Head:
         while r.lmove(P.K_PROCESSING, P.K_RESULTS, "RIGHT", "LEFT") is not None:
             pass
         self.results.parked.clear()  # parked notices went back with the others
-        commands.replay(r)
+        commands.replay(r, count=starting)
         for run in self.jobs.values():
             run.replan()
             r.zadd(P.K_JOBS, {run.rec.id: run.rec.submitted})

@@ -190,7 +190,7 @@ def test_a_frame_whose_tile_failed_is_written_with_that_tile_empty(farm, tiny_sh
 def test_head_killed_and_restarted_completes_with_equal_frames(farm, tiny_shot, tmp_path):
     farm.start_head()
     farm.start_worker("a", fakes={"sample_delay": 0.02})
-    job = farm.submit(tiny_shot, "--out", tmp_path / "out", "--tile", 4, "--batch", 2)
+    job = farm.submit(tiny_shot, "--out", tmp_path / "out", "--tile", 8, "--batch", 2)
     wait_for(lambda: farm.status(job)["pixel_samples_done"] > 0, what="merging to start")
     os.kill(farm.head_proc.pid, signal.SIGKILL)
     farm.head_proc.wait()

@@ -200,3 +200,83 @@ def test_a_notice_whose_handling_redis_refuses_is_taken_again_at_the_next_turn(h
     assert not head.jobs[job].rec.failed and head.jobs[job].rec.error is None
     head.take_results()
     assert head.r.llen(P.K_PROCESSING) == 0 and head.leases.get(b.id).ticket > ticket
+
+
+# -- 2. a submit that plans too much, a command that stops the head -----------------------------
+
+def send_submit(head, tiny_shot, job, **layout):
+    from lampyr.engine.shot import load_shot
+    from lampyr.scheduler.store import send_command
+    from lampyr.scheduler.transfer import upload_shot
+
+    sha, member, _ = upload_shot(head.r, load_shot(tiny_shot))
+    head.r.hset(P.k_job(job), mapping={"job": json.dumps(job), "state": '"queued"'})
+    overrides = layout.pop("overrides", {})
+    send_command(head.r, "submit", job=job, bundle=sha, shot=member, overrides=overrides,
+                 out=None, **layout)
+    head.take_commands()
+    return job_status(head.r, job)
+
+
+@pytest.mark.parametrize("layout, field", [
+    ({"tile_size": 1, "batch_samples": 3}, "tile_size 1 "),
+    ({"tile_size": 4097, "batch_samples": 3}, "tile_size 4097 "),
+    ({"tile_size": "64", "batch_samples": 3}, "tile_size '64' "),
+    ({"tile_size": True, "batch_samples": 3}, "tile_size True "),
+    ({"tile_size": 8, "batch_samples": 0}, "batch_samples 0 "),
+    ({"tile_size": 8, "batch_samples": 2.5}, "batch_samples 2.5 "),
+])
+def test_a_submit_with_a_tile_or_batch_out_of_range_is_refused_in_one_line(head, tiny_shot,
+                                                                           layout, field):
+    st = send_submit(head, tiny_shot, "tiny-0a0b0c", **layout)
+    assert st["state"] == "failed" and field in st["error"] and "\n" not in st["error"]
+    assert "expected a whole number" in st["error"]
+    assert "tiny-0a0b0c" not in head.jobs
+
+
+def test_a_submit_planning_more_batches_than_the_cap_is_refused_before_planning(head,
+                                                                                 tiny_shot):
+    from lampyr.scheduler.commands import MAX_BATCHES
+
+    # 16 × 12 px in 8 px tiles: 4 tiles; 64 spp in batches of 1: 64 ranges; 10 000 frames (the
+    # most a shot may have) → 10 000 × 4 × 64 = 2 560 000 batches, past the cap of 2 000 000
+    st = send_submit(head, tiny_shot, "tiny-0a0b0d", tile_size=8, batch_samples=1,
+                     overrides={"frames": [0, 9999], "samples": 64})
+    assert MAX_BATCHES == 2_000_000
+    assert st["state"] == "failed" and "2560000 batches" in st["error"]
+    assert "\n" not in st["error"] and "tiny-0a0b0d" not in head.jobs
+    # at the cap exactly (50 spp: 10 000 × 4 × 50 = 2 000 000) the count passes; only the count
+    # is checked here (commands.check_batch_count), not two million batches planned
+    from lampyr.engine.shot import load_shot
+    from lampyr.scheduler.commands import check_batch_count
+
+    at_cap = load_shot(tiny_shot).with_overrides(frames=(0, 9999), samples=50)
+    check_batch_count(at_cap, 8, 1, 1)
+    with pytest.raises(Exception, match="2040000 batches"):  # one more range: 10 000 × 4 × 51
+        check_batch_count(at_cap.with_overrides(samples=51), 8, 1, 1)
+
+
+def test_a_command_that_stopped_the_head_at_three_starts_is_set_aside(head, tiny_shot,
+                                                                      redis_url, tmp_path):
+    from lampyr.scheduler.commands import K_CONTROL_ASIDE, K_REPLAYS
+    from lampyr.scheduler.head import Head
+
+    job = submit(head, tiny_shot)
+    raw = json.dumps({"op": "pause", "job": job}).encode()
+    head.r.rpush(P.K_CONTROL_PROCESSING, raw)  # taken by a head that was then killed
+    for start in (1, 2, 3):
+        Head(tmp_path / "state", redis_url, lease_seconds=5).start()
+        assert head.r.lrange(P.K_CONTROL, 0, -1) == [raw]  # carried out again …
+        head.r.lmove(P.K_CONTROL, P.K_CONTROL_PROCESSING, "LEFT", "RIGHT")  # … and killed again
+    again = Head(tmp_path / "state", redis_url, lease_seconds=5)
+    again.start()
+    assert again.r.llen(P.K_CONTROL) == again.r.llen(P.K_CONTROL_PROCESSING) == 0
+    aside = [json.loads(x) for x in again.r.lrange(K_CONTROL_ASIDE, 0, -1)]
+    assert [a["command"] for a in aside] == [raw.decode()] and "3 start-ups" in aside[0]["reason"]
+    assert not again.r.exists(K_REPLAYS)
+    # a command replayed once and then carried out leaves no count behind
+    again.r.rpush(P.K_CONTROL_PROCESSING, raw)
+    Head(tmp_path / "state", redis_url, lease_seconds=5).start()
+    assert again.r.hlen(K_REPLAYS) == 1
+    again.take_commands()
+    assert not again.r.exists(K_REPLAYS) and again.r.llen(P.K_CONTROL) == 0
