@@ -22,8 +22,9 @@ At start-up (and after Redis comes back from a restart) `reconcile()` makes Redi
 disk: what the accumulators hold is done; every other batch is pending, and any batch Redis still
 lists as queued but not leased is queued again under a new ticket (the old message, if it still
 exists, is then skipped by its worker). Commands and notices a killed head was handling are taken
-again (a command at 3 start-ups at most, then it is set aside: `commands.replay`); notices it cannot read are set aside with the reason; a job that cannot be loaded shows as
-`failed` with the reason. Nothing a client or a worker sends can stop the loop.
+again (a command at 3 start-ups at most, then it is set aside: `commands.replay`); notices it
+cannot read are set aside with the reason; a job that cannot be loaded shows as `failed` with the
+reason. Nothing a client or a worker sends can stop the loop.
 
 Finished jobs fold away after `archive_after` seconds: their record becomes `archived.json` (their
 frames and tiles stay on disk), the head stops loading and publishing them, and their last status
