@@ -27,7 +27,7 @@ from ..errors import LampyrError
 from . import protocol as P
 from .accumulator import write_atomic
 from .assembler import JobRun
-from .jobs import JobFolder, JobRecord
+from .jobs import JobFolder, JobRecord, is_job_id
 
 log = logging.getLogger("lampyr.head")
 
@@ -90,9 +90,15 @@ def submit(ctx: Context, job: str, bundle: str, shot: str, overrides: dict, out:
     from .planner import choose_layout, first_pass_samples, sample_ranges
     from .transfer import read_manifest, safe_name
 
+    if not is_job_id(job):
+        raise CommandError(f"submit: job id {str(job)[:60]!r} is not one lampyr makes; expected "
+                           "NAME-xxxxxx (up to 24 letters, digits, - or _, then 6 hex digits)")
     if job in ctx.runs:
         return
     folder = JobFolder(ctx.state, job)
+    if folder.taken():
+        raise CommandError(f"submit: job {job} already exists on this head (archived, or its "
+                           "record cannot be loaded); expected a new job id")
     check_layout(tile_size, batch_samples)
     if out is not None:
         check_out(out)

@@ -325,7 +325,7 @@ class Head:
                and not self.dispatcher.inflight(run.rec.id)]
         for run in old:
             try:
-                run.folder.record.rename(run.folder.root / "archived.json")
+                run.folder.record.rename(run.folder.archived)
             except OSError as err:
                 log.error("job %s: cannot fold it into the archive: %s", run.rec.id, err)
                 continue

@@ -13,6 +13,7 @@ with a noise goal, adds ranges to the noisy tiles only (`extra`).
 from __future__ import annotations
 
 import json
+import re
 import secrets
 import time
 from dataclasses import asdict, dataclass, field
@@ -23,9 +24,18 @@ from .accumulator import write_atomic
 STATES = ("queued", "running", "paused", "done", "failed", "cancelled")
 
 
+# a job id as new_job_id makes it: up to 24 ASCII letters, digits, "-" and "_", a "-" and 6 hex
+# digits; the head takes no other (an id names a folder under the state folder)
+JOB_ID = re.compile(r"[A-Za-z0-9_-]{1,24}-[0-9a-f]{6}")
+
+
 def new_job_id(name: str) -> str:
-    stem = "".join(c if c.isalnum() or c in "-_" else "-" for c in name)[:24] or "job"
-    return f"{stem}-{secrets.token_hex(3)}"
+    stem = "".join(c if c.isascii() and c.isalnum() or c in "-_" else "-" for c in name)[:24]
+    return f"{stem or 'job'}-{secrets.token_hex(3)}"
+
+
+def is_job_id(job) -> bool:
+    return isinstance(job, str) and JOB_ID.fullmatch(job) is not None
 
 
 @dataclass
@@ -83,6 +93,14 @@ class JobFolder:
     @property
     def record(self) -> Path:
         return self.root / "job.json"
+
+    @property
+    def archived(self) -> Path:
+        return self.root / "archived.json"
+
+    def taken(self) -> bool:
+        """A job lives (or lived) here: its record, loadable or not, or its archived record."""
+        return self.record.exists() or self.archived.exists()
 
     @property
     def bundle(self) -> Path:

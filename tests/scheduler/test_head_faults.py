@@ -92,12 +92,12 @@ def test_an_out_the_head_cannot_make_fails_the_job_with_the_reason(head, tiny_sh
     (tmp_path / "plain").write_text("a file")
     sha, member, _ = upload_shot(head.r, load_shot(tiny_shot))
     # as a client on another machine sends it: it could not tell
-    head.r.hset(P.k_job("j-1"), mapping={"job": '"j-1"', "state": '"queued"'})
-    send_command(head.r, "submit", job="j-1", bundle=sha, shot=member, overrides={},
+    head.r.hset(P.k_job("j-0a0b0c"), mapping={"job": '"j-0a0b0c"', "state": '"queued"'})
+    send_command(head.r, "submit", job="j-0a0b0c", bundle=sha, shot=member, overrides={},
                  out=str(tmp_path / "plain" / "frames"), tile_size=8, batch_samples=3)
     other = submit(head, tiny_shot)
     head.step()
-    st = job_status(head.r, "j-1")
+    st = job_status(head.r, "j-0a0b0c")
     assert st["state"] == "failed" and "--out" in st["error"] and "plain" in st["error"]
     assert head.jobs[other].pending or head.leases.table  # the head went on with the next job
 

@@ -280,3 +280,48 @@ def test_a_command_that_stopped_the_head_at_three_starts_is_set_aside(head, tiny
     assert again.r.hlen(K_REPLAYS) == 1
     again.take_commands()
     assert not again.r.exists(K_REPLAYS) and again.r.llen(P.K_CONTROL) == 0
+
+
+# -- 4. job ids ------------------------------------------------------------------------------------
+
+@pytest.mark.parametrize("job", ["../../x-0a0b0c", "../escape", "a/b-0a0b0c", "x-0A0B0C", "x-0a0b0",
+                                 "x" * 25 + "-0a0b0c", "-0a0b0c", ""])
+def test_a_submit_whose_job_id_is_not_one_lampyr_makes_is_refused(head, tiny_shot, tmp_path,
+                                                                  job):
+    st = send_submit(head, tiny_shot, job, tile_size=8, batch_samples=3)
+    assert st["state"] == "failed" and "is not one lampyr makes" in st["error"]
+    assert list(tmp_path.rglob("scene.json")) == []  # no job folder made, in or out of state
+
+
+def test_job_ids_new_job_id_makes_are_taken(head, tiny_shot):
+    from lampyr.scheduler.jobs import is_job_id, new_job_id
+
+    for name in ("tiny", "my shot/2 ..", "café", "x" * 40, ""):
+        assert is_job_id(new_job_id(name)), name
+    job = new_job_id("../../tiny")
+    assert send_submit(head, tiny_shot, job, tile_size=8, batch_samples=3)["state"] == "queued"
+    assert job in head.jobs
+
+
+def test_a_submit_cannot_take_the_id_of_an_archived_or_broken_job(redis_url, tmp_path, tiny_shot):
+    from lampyr.scheduler.head import Head
+    from lampyr.scheduler.jobs import JobFolder
+
+    head = Head(tmp_path / "state", redis_url, lease_seconds=5, archive_after=0.0)
+    head.start()
+    old = submit(head, tiny_shot)
+    broken = submit(head, tiny_shot)
+    head.command("cancel", job=old)
+    head.publish(force=True)  # folds `old` away
+    archived = JobFolder(tmp_path / "state", old).archived
+    before = archived.read_bytes()
+    torn = JobFolder(tmp_path / "state", broken).record
+    torn.write_text('{"id": ')
+    again = Head(tmp_path / "state", redis_url, lease_seconds=5)
+    again.start()
+    assert old not in again.jobs and broken in again.broken
+    for job in (old, broken):
+        st = send_submit(again, tiny_shot, job, tile_size=8, batch_samples=3)
+        assert "already exists on this head" in st["error"] and job not in again.jobs
+    assert archived.read_bytes() == before and not JobFolder(tmp_path / "state", old).record.exists()
+    assert torn.read_text() == '{"id": '
