@@ -27,8 +27,9 @@ cannot read are set aside with the reason; a job that cannot be loaded shows as 
 reason. Nothing a client or a worker sends can stop the loop.
 
 Finished jobs fold away after `archive_after` seconds: their record becomes `archived.json` (their
-frames and tiles stay on disk), the head stops loading and publishing them, and their last status
-stays in Redis with `archived: true`.
+frames and tiles stay on disk), the head stops loading and publishing them, their progress keys
+(`layout:`, `progress:`, `tiles:`) are deleted, and their last status stays in Redis with
+`archived: true`.
 """
 
 from __future__ import annotations
@@ -330,8 +331,13 @@ class Head:
                 log.error("job %s: cannot fold it into the archive: %s", run.rec.id, err)
                 continue
             del self.jobs[run.rec.id]
-            self.r.hset(P.k_job(run.rec.id), "archived", json.dumps(True))
-            self.r.hdel(P.K_COMMAND_ERRORS, run.rec.id)
+            job = run.rec.id
+            pipe = self.r.pipeline(transaction=True)
+            pipe.hset(P.k_job(job), "archived", json.dumps(True))
+            pipe.hdel(P.K_COMMAND_ERRORS, job)
+            # its per-frame and per-tile progress goes; the small status hash stays
+            pipe.delete(P.k_layout(job), P.k_progress(job), P.k_tiles(job))
+            pipe.execute()
             log.info("job %s folded into the archive", run.rec.id)
 
 

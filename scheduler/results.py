@@ -31,6 +31,7 @@ from . import protocol as P
 log = logging.getLogger("lampyr.head")
 
 KINDS = ("result", "partial", "error")
+ASIDE_KEEP = 1000  # notices kept in results:aside (the newest)
 
 
 class NoticeError(ValueError):
@@ -59,6 +60,7 @@ def set_aside(r, raw: bytes, reason: str, source: str) -> None:
                         "at": round(time.time(), 1)})
     pipe = r.pipeline(transaction=True)
     pipe.rpush(P.K_ASIDE, entry)
+    pipe.ltrim(P.K_ASIDE, -ASIDE_KEEP, -1)  # the newest only: no worker can fill Redis with them
     pipe.lrem(source, 1, raw)
     pipe.execute()
     log.error("result notice set aside (%s): %r", reason, raw[:200])

@@ -325,3 +325,32 @@ def test_a_submit_cannot_take_the_id_of_an_archived_or_broken_job(redis_url, tmp
         assert "already exists on this head" in st["error"] and job not in again.jobs
     assert archived.read_bytes() == before and not JobFolder(tmp_path / "state", old).record.exists()
     assert torn.read_text() == '{"id": '
+
+
+# -- 12. what folded jobs and bad notices leave in Redis ----------------------------------------
+
+def test_a_folded_job_leaves_only_its_status_in_redis(redis_url, tmp_path, tiny_shot):
+    from lampyr.scheduler.head import Head
+
+    head = Head(tmp_path / "state", redis_url, lease_seconds=5, archive_after=0.0)
+    head.start()
+    job = submit(head, tiny_shot)
+    head.publish(force=True)
+    progress = [P.k_layout(job), P.k_progress(job), P.k_tiles(job)]
+    assert head.r.exists(*progress) == 3
+    head.command("cancel", job=job)
+    head.publish(force=True)  # ended, and older than 0 s: folded
+    assert job not in head.jobs
+    assert head.r.exists(*progress) == 0
+    st = job_status(head.r, job)
+    assert st["archived"] is True and st["state"] == "cancelled"
+
+
+def test_results_aside_keeps_the_newest_thousand(head):
+    for i in range(1005):
+        head.r.rpush(P.K_RESULTS, f"bad notice {i}")
+    while head.take_results():
+        pass
+    aside = head.r.lrange(P.K_ASIDE, 0, -1)
+    assert len(aside) == 1000
+    assert [json.loads(aside[k])["notice"] for k in (0, -1)] == ["bad notice 5", "bad notice 1004"]
