@@ -147,7 +147,8 @@ def check_layout(tile_size, batch_samples) -> None:
 
 
 def check_batch_count(spec, tile_size: int, batch_samples: int, first_pass: int) -> None:
-    """frames × tiles × sample ranges at most MAX_BATCHES; CommandError with the count otherwise."""
+    """frames × tiles × sample ranges at most MAX_BATCHES; CommandError with the count
+    otherwise."""
     tiles = -(-spec.width // tile_size) * -(-spec.height // tile_size)
     s0 = first_pass if 0 < first_pass < spec.samples else 0
     ranges = (1 if s0 else 0) + -(-(spec.samples - s0) // batch_samples)
