@@ -32,6 +32,37 @@ def cache_root() -> Path:
 
 
 SOURCE_KEY = _source_key()
+
+
+def _install_checkout_free_locator() -> None:
+    """Make numba keep the engine's kernels in one folder per source key, whatever the checkout.
+
+    numba's own locator for a user-given cache folder adds a subfolder named by a hash of the
+    source file's absolute path, so a fresh clone of the same sources compiled everything again
+    (about three minutes). numba's freshness stamp is already a hash of the file's contents, and
+    the folder above is keyed on every engine source, so the path adds nothing but misses.
+    """
+    try:
+        from numba.core import caching, config
+    except ImportError:  # pragma: no cover - reported at first use
+        return
+
+    class EngineCacheLocator(caching.UserProvidedCacheLocator):
+        def __init__(self, py_func, py_file):
+            super().__init__(py_func, py_file)
+            self._cache_path = os.path.join(config.CACHE_DIR, "engine")
+
+        @classmethod
+        def from_function(cls, py_func, py_file):
+            if Path(py_file).resolve().parent != _HERE:
+                return None
+            return super().from_function(py_func, py_file)
+
+    classes = caching.CacheImpl._locator_classes
+    if not any(c.__name__ == "EngineCacheLocator" for c in classes):
+        classes.insert(0, EngineCacheLocator)
+
+
 NUMBA_CACHE_DIR = cache_root() / "numba" / SOURCE_KEY
 
 if "NUMBA_CACHE_DIR" not in os.environ:
@@ -45,3 +76,5 @@ if "NUMBA_CACHE_DIR" not in os.environ:
             _numba_config.reload_config()
     except Exception:  # pragma: no cover - numba not importable is reported at first use
         pass
+
+_install_checkout_free_locator()
