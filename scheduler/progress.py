@@ -5,7 +5,8 @@ film; the noise is computed when a batch is merged, from the film already in mem
 start-up, when the accumulators are read anyway), never by rereading accumulators to publish.
 `ProgressPublisher.publish` writes only the frames that changed since its last turn:
 
-    layout:<job>    string  {"width", "height", "frames": [f, ...], "tiles": [[x0, y0, w, h], ...]}
+    layout:<job>    string  {"width", "height", "fps", "frames": [f, ...],
+                             "tiles": [[x0, y0, w, h], ...]}
     progress:<job>  hash    frame → {"frame", "state", "held", "target", "noise"}
     tiles:<job>     hash    frame → [[held, target, noise, state], ...] (one row per tile)
 
@@ -102,7 +103,8 @@ class ProgressPublisher:
 
 
 def layout(run) -> dict:
-    return {"width": run.shot.width, "height": run.shot.height, "frames": list(run.frames),
+    return {"width": run.shot.width, "height": run.shot.height, "fps": run.shot.fps,
+            "frames": list(run.frames),
             "tiles": [[t.x0, t.y0, t.w, t.h] for t in run.tiles]}
 
 

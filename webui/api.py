@@ -1,8 +1,10 @@
 """The JSON the page reads (polled every couple of seconds), from the scheduler's state API only.
 
     GET /api/farm                       overview: jobs, workers online and offline, throughput
-    GET /api/jobs/<job>                 one job: status, layout, every frame's summary
-    GET /api/jobs/<job>/frames/<frame>  one frame: summary, its tiles, failed batches, files
+    GET /api/jobs/<job>                 one job: status, layout, every frame's summary (with
+                                        `exr`: its frame file's mtime, or null before it is written)
+    GET /api/jobs/<job>/frames/<frame>  one frame: summary, its tiles, failed batches, files,
+                                        the layers its frame file holds
     GET /api/jobs/<job>/frames/<frame>/tiles/<tile>   one tile and its failed batches
 
 `/api/farm` is what every open overview polls: it is built at most once a second and shared by
@@ -162,7 +164,33 @@ def job(job):
     their errors come with the frame they belong to."""
     st = job_or_404(job)
     lay = progress.job_layout(redis(), job)
-    return jsonify(job=_job_row(st), layout=lay, frames=progress.job_frames(redis(), job))
+    frames = progress.job_frames(redis(), job)
+    mtimes = _exr_mtimes(st, [f["frame"] for f in frames])
+    for f in frames:
+        f["exr"] = mtimes.get(f["frame"])
+    return jsonify(job=_job_row(st), layout=lay, frames=frames)
+
+
+def _exr_mtimes(st: dict, frames: list[int]) -> dict[int, float]:
+    """frame → its EXR's mtime, for the frames whose file exists in the job's frames folder (the
+    thumbnails' and playback's version)."""
+    from pathlib import Path
+
+    from ..frames import frame_path
+
+    if not st.get("out"):
+        return {}
+    folder = Path(st["out"]).resolve()
+    out = {}
+    for f in frames:
+        path = frame_path(folder, st["name"], int(f))
+        if path.parent.resolve() != folder:  # a name that would leave the folder
+            continue
+        try:
+            out[f] = path.stat().st_mtime
+        except OSError:
+            pass
+    return out
 
 
 @bp.route("/api/jobs/<job>/frames/<int:frame>")
@@ -181,6 +209,16 @@ def frame(job, frame):
             info = None
         files[ext] = None if info is None else {"bytes": info.st_size, "mtime": info.st_mtime}
     d["files"] = files
+    d["layers"] = []
+    if files["exr"] is not None:
+        from ..errors import FrameFileError
+
+        path = progress.frame_file(redis(), job, frame, "exr", st, lay)
+        try:
+            if path is not None:
+                d["layers"] = current_app.extensions["lampyr.previews"].layers(path)
+        except FrameFileError:  # caught between two writes of the head, or removed since
+            pass
     d["failed"] = [f for f in st.get("failed") or []
                    if P.parse_batch_id(f["batch"])[1] == frame]
     return jsonify(d)

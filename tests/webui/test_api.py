@@ -59,7 +59,8 @@ def test_the_throughput_history_holds_every_merged_pixel_sample(user, finished_j
 
 def test_the_job_json_has_its_layout_and_every_frame(user, finished_job):
     data = user.get(f"/api/jobs/{finished_job}").get_json()
-    assert data["layout"] == {"width": 16, "height": 12, "frames": [1, 2],
+    # fps: the tiny shot names none; 24 is the shot file's default (docs/shot-file.md)
+    assert data["layout"] == {"width": 16, "height": 12, "fps": 24.0, "frames": [1, 2],
                               "tiles": [[0, 0, 8, 8], [8, 0, 8, 8], [0, 8, 8, 4], [8, 8, 8, 4]]}
     assert [(f["frame"], f["state"], f["held"], f["target"]) for f in data["frames"]] == [
         (1, "done", 8, 8), (2, "done", 8, 8)]
