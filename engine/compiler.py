@@ -25,7 +25,8 @@ from .gltf_animation import decompose_trs, world_matrices
 from .lights import build_env_distribution
 from .material_table import M_EMISSION, MATERIAL_SIZE, is_passable
 from .mesh_table import MeshTable, MeshTableBuilder
-from .punctual import PUNCT_SIZE, light_power, light_row
+from .layers import ENV_GROUP
+from .punctual import L_GROUP, PUNCT_SIZE, light_power, light_row
 from .scene import FLAG_COUNT, FLAG_PASSABLE, KIND_MESH, KIND_SPHERE, Scene
 from .scene_data import LIGHT_DIRECTIONAL, LIGHT_POINT, LIGHT_SPOT
 from .scene_import import (
@@ -159,11 +160,12 @@ def compile_geometry(shot, texture_file=None) -> Geometry:
     if env.map is not None:
         env_map = load_environment_map(shot.root, env.map, "environment.map")
         row_cdf, col_cdf = build_env_distribution(env_map)
-        params = np.array([1.0, env.strength, np.radians(env.rotate), 0.0])
+        params = np.array([1.0, env.strength, np.radians(env.rotate), 0.0, 0.0])
     else:
         env_map = np.zeros((1, 1, 3))
         row_cdf, col_cdf = np.array([0.0, 1.0]), np.array([[0.0, 1.0]])
-        params = np.array([0.0, 1.0, 0.0, 0.0])
+        params = np.array([0.0, 1.0, 0.0, 0.0, 0.0])
+    params[ENV_GROUP] = shot.group_index(env.group)
     mats = asm.mats if len(asm.mats) else np.zeros((1, MATERIAL_SIZE))
     return Geometry(
         meshes=asm.meshes.build(), parts=tuple(asm.parts), mats=mats.reshape(-1, MATERIAL_SIZE),
@@ -256,6 +258,7 @@ def _punctual_rows(shot, geom: Geometry, worlds: _Worlds) -> list[np.ndarray]:
     for li in shot.lights:
         rows.append(light_row(SHOT_LIGHT_TYPES[li.type], li.color * li.intensity, li.position, li.position,
                               li.direction, li.direction, li.inner_cone, li.outer_cone))
+        rows[-1][L_GROUP] = shot.group_index(li.group)
     scene = geom.scene
     if scene is not None:
         for node in shown_nodes(scene):
@@ -268,6 +271,9 @@ def _punctual_rows(shot, geom: Geometry, worlds: _Worlds) -> list[np.ndarray]:
                 continue  # a light scaled to nothing
             rows.append(light_row(light.type, np.asarray(light.color) * light.intensity * shot.scene_light_scale,
                                   at[0][0], at[1][0], at[0][1], at[1][1], light.inner_cone, light.outer_cone))
+            # [output] groups names the file's light, or the node that carries it
+            group = shot.scene_groups.get(light.name, shot.scene_groups.get(spec.name))
+            rows[-1][L_GROUP] = shot.group_index(group)
     return rows
 
 

@@ -13,6 +13,9 @@ One scanline part, ZIP compression (lossless; float32 survives bit for bit), per
                       channel name, from memory); 0 where nothing was hit
   hits         UINT   samples whose camera ray hit geometry (the count behind N and Z)
   dropped      UINT   NaN / inf samples thrown away
+  <layer>.R/G/B FLOAT  optional, one per layer the shot keeps (light-path layers such as
+                      diffuse_direct, light groups group_<NAME>): the layer's mean, its sum / spp;
+                      the header attribute `lampyr.layers` lists them in order
   denoised.R/G/B FLOAT  optional: the mean through the denoiser (engine/denoise.py), written
                       when a frame is complete; NOT an unbiased estimate, so `read_frame`
                       ignores it (merging and refining never see it); `read_denoised` reads it
@@ -106,7 +109,20 @@ def frame_channels(film: Film) -> dict[str, np.ndarray]:
     planes["spp"] = _counts(film.n, "n")
     planes["hits"] = _counts(film.hits, "hits")
     planes["dropped"] = _counts(film.dropped, "dropped")
+    for i, name in enumerate(film.layer_names):
+        put(layer_channels(name), _mean_of(film.layers[:, :, i], film.n))
     return planes
+
+
+def layer_channels(name: str) -> tuple[str, str, str]:
+    """The channels of a layer: `<name>.R`, `<name>.G`, `<name>.B`."""
+    return (f"{name}.R", f"{name}.G", f"{name}.B")
+
+
+def _mean_of(total: np.ndarray, n: np.ndarray) -> np.ndarray:
+    out = np.zeros_like(total)
+    np.divide(total, n[..., None], out=out, where=np.broadcast_to(n[..., None] != 0, out.shape))
+    return out
 
 
 def _attr_text(key, value) -> str:
@@ -132,6 +148,9 @@ def write_frame(path, film: Film, attrs: dict[str, str | int | float],
     """
     header = {PREFIX + k: _attr_text(k, v) for k, v in attrs.items()}
     header[PREFIX + "format"] = FORMAT
+    header.pop(PREFIX + "layers", None)
+    if film.layer_names:
+        header[PREFIX + "layers"] = ",".join(film.layer_names)
     header["compression"] = OpenEXR.ZIP_COMPRESSION
     header["type"] = OpenEXR.scanlineimage
     channels = frame_channels(film)
@@ -177,8 +196,11 @@ def read_frame(path) -> tuple[Film, dict[str, str]]:
     try:
         with OpenEXR.File(str(path), separate_channels=True) as exr:
             header = dict(exr.header())
+            names = str(header.get(PREFIX + "layers", "") or "")
+            layer_names = tuple(x for x in names.split(",") if x)
+            wanted = set(CHANNELS) | {c for x in layer_names for c in layer_channels(x)}
             planes = {name: (ch.type(), np.array(ch.pixels))  # other channels (denoised) ignored
-                      for name, ch in exr.channels().items() if name in CHANNELS}
+                      for name, ch in exr.channels().items() if name in wanted}
     except Exception as err:  # the bindings raise RuntimeError or ValueError on damaged files
         raise FrameFileError(f"{path}: not a readable OpenEXR file ({err})") from None
 
@@ -188,7 +210,8 @@ def read_frame(path) -> tuple[Film, dict[str, str]]:
     if attrs["format"] != FORMAT:
         raise FrameFileError(f"{path}: lampyr frame format {attrs['format']!r}; "
                              f"this lampyr reads format {FORMAT!r}")
-    missing = [c for c in CHANNELS if c not in planes]
+    missing = [c for c in CHANNELS + tuple(c for x in layer_names for c in layer_channels(x))
+               if c not in planes]
     if missing:
         raise FrameFileError(f"{path}: lampyr frame without channel(s) {', '.join(missing)}")
     shapes = {planes[c][1].shape for c in CHANNELS}
@@ -202,7 +225,8 @@ def read_frame(path) -> tuple[Film, dict[str, str]]:
         return np.stack([planes[c][1].astype(np.float64) for c in names], axis=-1)
 
     floats = get(FLOAT_CHANNELS)
-    if not np.isfinite(floats).all():
+    lay = np.stack([get(layer_channels(x)) for x in layer_names], axis=2) if layer_names else None
+    if not np.isfinite(floats).all() or (lay is not None and not np.isfinite(lay).all()):
         raise FrameFileError(f"{path}: non-finite values in the frame's float channels")
     n = planes["spp"][1].astype(np.float64)
     hits = planes["hits"][1].astype(np.float64)
@@ -219,5 +243,7 @@ def read_frame(path) -> tuple[Film, dict[str, str]]:
         depth_sum=planes["Z"][1].astype(np.float64) * hits,
         hits=hits,
         dropped=planes["dropped"][1].astype(np.float64),
+        layers=None if lay is None else np.ascontiguousarray(lay * n3[..., None]),
+        layer_names=layer_names,
     )
     return film, attrs

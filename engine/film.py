@@ -8,6 +8,10 @@ Conventions per pixel (n = samples kept, hits = samples whose camera ray hit geo
   beauty mean = rgb_sum / n; alpha = alpha_sum / n; albedo = albedo_sum / n (a miss adds 0,
   like the beauty's coverage); normal = normal_sum normalised; depth = depth_sum / hits.
 Samples whose radiance was NaN or infinite are not in any sum; `dropped` counts them.
+
+Layers (light-path layers and light groups, engine/layers.py): `layers` (h, w, K, 3) holds one
+Σ L per name of `layer_names`, merged like every other sum; a layer's mean is its sum / n. A film
+of a shot that keeps no layers has K = 0.
 """
 
 from __future__ import annotations
@@ -24,9 +28,10 @@ from lampyr.errors import LampyrError
 # 0.0722 B), the same as IEC 61966-2-1's Y row for linear sRGB (from memory).
 LUMA_709 = np.array([0.2126, 0.7152, 0.0722])
 
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2  # 2: layers and 32-bit transport; version 1 (float64, no layers) is still read
 _MAGIC = b"LMPFILM\x00"
 _HEAD = struct.Struct("<8sHHII")  # magic, version, field count, h, w
+_HEAD2 = struct.Struct("<BH")  # version 2: bits per value (32 or 64), layer count
 _CRC = struct.Struct("<I")
 
 
@@ -50,11 +55,24 @@ class Film:
     depth_sum: np.ndarray  # (h, w) Σ first-hit ray distance
     hits: np.ndarray  # (h, w) samples whose camera ray hit geometry
     dropped: np.ndarray  # (h, w) NaN / inf samples thrown away
+    layers: np.ndarray | None = None  # (h, w, K, 3) Σ L per layer; None: zeros
+    layer_names: tuple = ()  # the K layers' names, in order
 
     def __post_init__(self):
         if np.ndim(self.n) != 2:
             raise FilmDataError(f"film.n: expected an (h, w) array, got shape {np.shape(self.n)}")
         h, w = self.n.shape
+        names = tuple(self.layer_names)
+        if len(set(names)) != len(names) or not all(isinstance(x, str) and x for x in names):
+            raise FilmDataError(f"film.layer_names: expected distinct names, got {names!r}")
+        object.__setattr__(self, "layer_names", names)
+        if self.layers is None:
+            object.__setattr__(self, "layers", np.zeros((h, w, len(names), 3)))
+        lay = self.layers
+        if not isinstance(lay, np.ndarray) or lay.dtype != np.float64 or not lay.flags.c_contiguous:
+            raise FilmDataError("film.layers: expected a C-contiguous float64 array")
+        if lay.shape != (h, w, len(names), 3):
+            raise FilmDataError(f"film.layers: expected shape {(h, w, len(names), 3)}, got {lay.shape}")
         for name, arr in self._arrays():
             want = (h, w, 3) if name in RGB_FIELDS else (h, w)
             if not isinstance(arr, np.ndarray) or arr.dtype != np.float64:
@@ -69,9 +87,10 @@ class Film:
         return ((f, getattr(self, f)) for f in FIELDS)
 
     @classmethod
-    def zeros(cls, h: int, w: int) -> Film:
-        """An empty film of h rows and w columns."""
-        return cls(**{f: np.zeros((h, w, 3) if f in RGB_FIELDS else (h, w)) for f in FIELDS})
+    def zeros(cls, h: int, w: int, layer_names=()) -> Film:
+        """An empty film of h rows and w columns, with the named layers."""
+        return cls(**{f: np.zeros((h, w, 3) if f in RGB_FIELDS else (h, w)) for f in FIELDS},
+                   layers=np.zeros((h, w, len(layer_names), 3)), layer_names=tuple(layer_names))
 
     @property
     def shape(self) -> tuple[int, int]:
@@ -79,7 +98,12 @@ class Film:
         return self.n.shape
 
     def copy(self) -> Film:
-        return Film(**{f: a.copy() for f, a in self._arrays()})
+        return Film(**{f: a.copy() for f, a in self._arrays()}, layers=self.layers.copy(),
+                    layer_names=self.layer_names)
+
+    def layer_mean(self, name: str) -> np.ndarray:
+        """(h, w, 3) mean of the layer `name` (its sum / n); 0 where n == 0."""
+        return _ratio(self.layers[:, :, self.layer_names.index(name)], self.n[..., None])
 
     def add_into(self, src: Film, y0: int, x0: int) -> None:
         """Add `src` into this film's rows [y0, y0 + src.h), columns [x0, x0 + src.w)."""
@@ -145,7 +169,7 @@ class Film:
         return _ratio(self.depth_sum, self.hits)
 
 
-FIELDS = tuple(f.name for f in fields(Film))
+FIELDS = tuple(f.name for f in fields(Film) if f.name not in ("layers", "layer_names"))
 RGB_FIELDS = frozenset({"rgb_sum", "rgb_sq", "albedo_sum", "normal_sum"})
 
 
@@ -160,7 +184,15 @@ def merge(a: Film, b: Film) -> Film:
     """A new film holding the samples of both: the exact elementwise sum (same shapes)."""
     if a.shape != b.shape:
         raise FilmDataError(f"cannot merge films of shapes {a.shape} and {b.shape}")
-    return Film(**{f: getattr(a, f) + getattr(b, f) for f in FIELDS})
+    _same_layers(a, b)
+    return Film(**{f: getattr(a, f) + getattr(b, f) for f in FIELDS}, layers=a.layers + b.layers,
+                layer_names=a.layer_names)
+
+
+def _same_layers(a: Film, b: Film) -> None:
+    if a.layer_names != b.layer_names:
+        raise FilmDataError(f"cannot merge films with layers {list(a.layer_names)} and "
+                            f"{list(b.layer_names)}")
 
 
 def add_into(dst: Film, src: Film, y0: int, x0: int) -> None:
@@ -169,48 +201,88 @@ def add_into(dst: Film, src: Film, y0: int, x0: int) -> None:
     H, W = dst.shape
     if y0 < 0 or x0 < 0 or y0 + h > H or x0 + w > W:
         raise FilmDataError(f"a {w}x{h} film at ({x0}, {y0}) does not fit in a {W}x{H} film")
+    _same_layers(dst, src)
     for f in FIELDS:
         getattr(dst, f)[y0:y0 + h, x0:x0 + w] += getattr(src, f)
+    dst.layers[y0:y0 + h, x0:x0 + w] += src.layers
 
 
 # -- bytes for transport (Redis) and the head's tile accumulators -------------------------------
 #
-# Layout, little-endian: magic "LMPFILM\0", u16 format version, u16 field count, u32 h, u32 w,
-# then every field of FIELDS in order as raw float64 (h, w[, 3]) C-order, then a CRC-32
-# (zlib.crc32) of everything before it.
+# Layout (version 2), little-endian: magic "LMPFILM\0", u16 format version, u16 field count,
+# u32 h, u32 w, u8 bits per value (32 or 64), u16 layer count K, then K layer names (u8 length,
+# UTF-8), then every field of FIELDS in order and the layers (h, w, K, 3) as raw float32 or
+# float64 C-order, then a CRC-32 (zlib.crc32) of everything before it. Version 1 (no bits, no
+# layers, float64) is still read.
+#
+# Workers send 32 bits (a batch's sums need no more: the head merges in float64 and its tile
+# accumulators keep 64 bits, so long merges do not lose precision); the counts stay exact up to
+# 2^24 samples of one pixel in one batch.
 
 
-def to_bytes(film: Film) -> bytes:
-    """The film as bytes (136 bytes per pixel plus 24), see the layout above."""
+def to_bytes(film: Film, bits: int = 64) -> bytes:
+    """The film as bytes: (17 + 3K) values per pixel of bits / 8 bytes each, plus a 23-byte
+    header, the layer names and a 4-byte checksum; see the layout above."""
+    if bits not in (32, 64):
+        raise ValueError(f"bits: 32 or 64, got {bits!r}")
     h, w = film.shape
-    parts = [_HEAD.pack(_MAGIC, FORMAT_VERSION, len(FIELDS), h, w)]
-    parts += [np.ascontiguousarray(a, dtype="<f8").tobytes() for _, a in film._arrays()]
+    dtype = "<f4" if bits == 32 else "<f8"
+    parts = [_HEAD.pack(_MAGIC, FORMAT_VERSION, len(FIELDS), h, w),
+             _HEAD2.pack(bits, len(film.layer_names))]
+    for name in film.layer_names:
+        raw = name.encode()
+        if len(raw) > 255:
+            raise FilmDataError(f"film layer name too long: {name[:40]!r}...")
+        parts.append(bytes([len(raw)]) + raw)
+    parts += [np.ascontiguousarray(a, dtype=dtype).tobytes() for _, a in film._arrays()]
+    parts.append(np.ascontiguousarray(film.layers, dtype=dtype).tobytes())
     body = b"".join(parts)
     return body + _CRC.pack(zlib.crc32(body))
 
 
 def from_bytes(data: bytes) -> Film:
-    """Rebuild a film written by `to_bytes`; FilmDataError when the bytes are not one."""
+    """Rebuild a film written by `to_bytes` (float64 in memory); FilmDataError when the bytes
+    are not one."""
     data = bytes(data)
     if len(data) < _HEAD.size + _CRC.size:
         raise FilmDataError(f"film bytes: {len(data)} bytes is too short for a film header")
     magic, version, count, h, w = _HEAD.unpack_from(data)
     if magic != _MAGIC:
         raise FilmDataError("film bytes: not a lampyr film (bad magic)")
-    if version != FORMAT_VERSION or count != len(FIELDS):
+    if version not in (1, FORMAT_VERSION) or count != len(FIELDS):
         raise FilmDataError(f"film bytes: format version {version} with {count} fields; this "
-                            f"lampyr reads version {FORMAT_VERSION} with {len(FIELDS)} fields")
-    sizes = [h * w * (3 if f in RGB_FIELDS else 1) for f in FIELDS]
-    want = _HEAD.size + 8 * sum(sizes) + _CRC.size
-    if len(data) != want:
-        raise FilmDataError(f"film bytes: a {w}x{h} film takes {want} bytes, got {len(data)} "
-                            "(truncated or padded)")
+                            f"lampyr reads versions 1 and {FORMAT_VERSION} with {len(FIELDS)} fields")
     (crc,) = _CRC.unpack_from(data, len(data) - _CRC.size)
     if zlib.crc32(memoryview(data)[:-_CRC.size]) != crc:
         raise FilmDataError(f"film bytes: checksum mismatch in a {w}x{h} film (corrupted)")
-    arrays, offset = {}, _HEAD.size
-    for f, size in zip(FIELDS, sizes):
-        flat = np.frombuffer(data, dtype="<f8", count=size, offset=offset)
-        arrays[f] = flat.astype(np.float64).reshape((h, w, 3) if f in RGB_FIELDS else (h, w))
-        offset += 8 * size
-    return Film(**arrays)
+    offset, bits, names = _HEAD.size, 64, []
+    if version >= 2:
+        if len(data) < offset + _HEAD2.size + _CRC.size:
+            raise FilmDataError("film bytes: truncated header")
+        bits, k = _HEAD2.unpack_from(data, offset)
+        offset += _HEAD2.size
+        if bits not in (32, 64):
+            raise FilmDataError(f"film bytes: {bits} bits per value; expected 32 or 64")
+        for _ in range(k):
+            if offset >= len(data) - _CRC.size:
+                raise FilmDataError("film bytes: truncated layer names")
+            size = data[offset]
+            try:
+                names.append(data[offset + 1:offset + 1 + size].decode())
+            except UnicodeDecodeError:
+                raise FilmDataError("film bytes: a layer name is not UTF-8") from None
+            offset += 1 + size
+    width = bits // 8
+    dtype = "<f4" if bits == 32 else "<f8"
+    sizes = [h * w * (3 if f in RGB_FIELDS else 1) for f in FIELDS] + [h * w * len(names) * 3]
+    want = offset + width * sum(sizes) + _CRC.size
+    if len(data) != want:
+        raise FilmDataError(f"film bytes: a {w}x{h} film takes {want} bytes, got {len(data)} "
+                            "(truncated or padded)")
+    arrays = {}
+    for f, size in zip(FIELDS + ("layers",), sizes):
+        flat = np.frombuffer(data, dtype=dtype, count=size, offset=offset)
+        shape = (h, w, len(names), 3) if f == "layers" else (h, w, 3) if f in RGB_FIELDS else (h, w)
+        arrays[f] = flat.astype(np.float64).reshape(shape)
+        offset += width * size
+    return Film(**arrays, layer_names=tuple(names))

@@ -33,6 +33,7 @@ from numba import njit, prange
 
 from .bsdf import bsdf_eval, bsdf_sample, build_frame, has_nonspecular_lobe, needs_outward_normal
 from .camera import camera_ray
+from .layers import deposit, env_group, material_group, sampled_group, shares
 from .lights import env_pdf, env_radiance, light_pdf, sample_light
 from .material_table import (
     M_ALPHA_CUTOFF, M_ALPHA_MODE, M_COLOR, M_DOUBLE_SIDED, M_EMISSION, M_THICKNESS, M_TRANSMISSION, M_TYPE,
@@ -148,12 +149,13 @@ def shadow_transmittance(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, sta
 
 @njit(cache=True)
 def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, rr_start,
-               pixel, fx, fy, index, stack_top, stack, surf, rm, surf_shadow, rm_shadow):
+               pixel, fx, fy, index, stack_top, stack, surf, rm, surf_shadow, rm_shadow, split, lay):
     """One camera sample: (Lr, Lg, Lb, hit, albedo rgb, normal xyz, depth).
 
     surf, surf_shadow (SURF_SIZE,) and rm, rm_shadow (MATERIAL_SIZE,) float64: scratch for the
     hit's surface and resolved material (surface.py), and the same for shadow rays' tests,
-    allocated once per thread."""
+    allocated once per thread. split: bits of layers.SPLIT_*; when not 0 every contribution is
+    also added into `lay` (rows of layers.py), which the caller zeroed."""
     jx = sample_dim(seed, frame, pixel, index, 0, mode)
     jy = sample_dim(seed, frame, pixel, index, 1, mode)
     lu = sample_dim(seed, frame, pixel, index, 2, mode)
@@ -176,6 +178,9 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
     prev_x = ox
     prev_y = oy
     prev_z = oz
+    # the shares of the path's first scattering event (layers.shares), once it has scattered
+    qdr = qdg = qdb = 0.0
+    qtr = qtg = qtb = 0.0
 
     bounce = 0  # scattering events so far; passing straight through a thin wall is not one
     for vertex in range(max_bounces + 1 + MAX_PASSES):
@@ -226,9 +231,14 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
             if not prev_delta and S.env_params[3] > 0.0:
                 pl = S.env_params[3] * env_pdf(S, dx, dy, dz)
                 w = prev_pdf * prev_pdf / (prev_pdf * prev_pdf + pl * pl)
-            lr += br * er * w
-            lg += bg * eg * w
-            lb += bb * eb * w
+            cr = br * er * w
+            cg = bg * eg * w
+            cb = bb * eb * w
+            lr += cr
+            lg += cg
+            lb += cb
+            if split:
+                deposit(lay, split, bounce, True, cr, cg, cb, qdr, qdg, qdb, qtr, qtg, qtb, env_group(S))
             break
 
         gx, gy, gz = surf[SF_NG], surf[SF_NG + 1], surf[SF_NG + 2]  # outward (winding or vertex normals)
@@ -253,9 +263,15 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
             if not prev_delta:
                 pl = light_pdf(S, inst, k, prev_x, prev_y, prev_z, px, py, pz, gx, gy, gz, time_u)
                 w = prev_pdf * prev_pdf / (prev_pdf * prev_pdf + pl * pl)
-            lr += br * rm[M_EMISSION] * w
-            lg += bg * rm[M_EMISSION + 1] * w
-            lb += bb * rm[M_EMISSION + 2] * w
+            cr = br * rm[M_EMISSION] * w
+            cg = bg * rm[M_EMISSION + 1] * w
+            cb = bb * rm[M_EMISSION + 2] * w
+            lr += cr
+            lg += cg
+            lb += cb
+            if split:
+                deposit(lay, split, bounce, False, cr, cg, cb, qdr, qdg, qdb, qtr, qtg, qtb,
+                        material_group(S, mid))
 
         apply_normal_map(S, S.mats[mid], surf)
         nx, ny, nz = surf[SF_NS], surf[SF_NS + 1], surf[SF_NS + 2]
@@ -341,9 +357,19 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
                             c = abs(wiz) / pl
                         else:  # the BSDF could have sampled this direction too: weigh against it
                             c = abs(wiz) * (pl * pl / (pl * pl + pb * pb)) / pl
-                        lr += br * fr * er * c * vr
-                        lg += bg * fg * eg * c * vg
-                        lb += bb * fb * eb * c * vb
+                        cr = br * fr * er * c * vr
+                        cg = bg * fg * eg * c * vg
+                        cb = bb * fb * eb * c * vb
+                        lr += cr
+                        lg += cg
+                        lb += cb
+                        if split:
+                            if bounce == 0:  # the first scattering event: the light's own shares
+                                sdr, sdg, sdb, stt, stg, stb = shares(rm, woz, wiz, fr, fg, fb, False)
+                            else:
+                                sdr, sdg, sdb, stt, stg, stb = qdr, qdg, qdb, qtr, qtg, qtb
+                            deposit(lay, split, bounce + 1, False, cr, cg, cb, sdr, sdg, sdb, stt, stg, stb,
+                                    sampled_group(S, u_sel))
 
         # continue the path by sampling the BSDF
         u1 = sample_dim(seed, frame, pixel, index, base + 0, mode)
@@ -373,6 +399,11 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
             prev_pdf = pdf
             prev_delta = is_delta
             prev_x, prev_y, prev_z = px, py, pz
+            if split and bounce == 0:  # the path's first scattering event: its shares
+                fr, fg, fb = wr, wg, wb
+                if not is_delta:  # the BSDF's value itself (the weight is over the mixture pdf)
+                    fr, fg, fb, fpdf = bsdf_eval(rm, wox, woy, woz, wix, wiy, wiz)
+                qdr, qdg, qdb, qtr, qtg, qtb = shares(rm, woz, wiz, fr, fg, fb, is_delta)
         dx, dy, dz = ndx, ndy, ndz
         side = eps if cos_g > 0.0 else -eps
         qx, qy, qz = px, py, pz
@@ -399,12 +430,14 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
 @njit(cache=True, parallel=True)
 def render_tile(S, cam, aperture, width, height, frame, seed, mode, max_bounces, rr_start,
                 x0, y0, tile_w, tile_h, first, count,
-                n, rgb_sum, rgb_sq, alpha_sum, albedo_sum, normal_sum, depth_sum, hits, dropped):
+                n, rgb_sum, rgb_sq, alpha_sum, albedo_sum, normal_sum, depth_sum, hits, dropped,
+                split, slots, layers):
     """Add samples [first, first+count) of the tile's pixels into the given sums.
 
     The sums are (tile_h, tile_w[, 3]) float64 arrays (see film.Film); row 0 of the tile is
     image row y0. Rows run in parallel; every write is per pixel, so the result is the same bits
-    for any thread count.
+    for any thread count. split, slots: layers.layer_plan's; layers (tile_h, tile_w, K, 3) the
+    film's layer sums (K = 0 and split = 0 when the shot keeps none).
     """
     for ty in prange(tile_h):
         stack_top = np.empty(STACK_SIZE, np.int32)
@@ -413,14 +446,18 @@ def render_tile(S, cam, aperture, width, height, frame, seed, mode, max_bounces,
         rm = np.zeros(MATERIAL_SIZE)
         rm_shadow = np.zeros(MATERIAL_SIZE)
         surf_shadow = np.zeros(SURF_SIZE)
+        lay = np.zeros((slots.shape[0], 3))
         y = y0 + ty
         for tx in range(tile_w):
             x = x0 + tx
             pixel = y * width + x
             for s in range(first, first + count):
+                if split:
+                    lay[:, :] = 0.0
                 lr, lg, lb, hit, ar, ag, ab, nx, ny, nz, depth = trace_path(
                     S, cam, aperture, width, height, frame, seed, mode, max_bounces, rr_start,
                     pixel, float(x), float(y), s, stack_top, stack, surf, rm, surf_shadow, rm_shadow,
+                    split, lay,
                 )
                 if not (math.isfinite(lr) and math.isfinite(lg) and math.isfinite(lb)):
                     dropped[ty, tx] += 1.0
@@ -432,6 +469,13 @@ def render_tile(S, cam, aperture, width, height, frame, seed, mode, max_bounces,
                 rgb_sq[ty, tx, 0] += lr * lr
                 rgb_sq[ty, tx, 1] += lg * lg
                 rgb_sq[ty, tx, 2] += lb * lb
+                if split:
+                    for i in range(slots.shape[0]):
+                        k = slots[i]
+                        if k >= 0:
+                            layers[ty, tx, k, 0] += lay[i, 0]
+                            layers[ty, tx, k, 1] += lay[i, 1]
+                            layers[ty, tx, k, 2] += lay[i, 2]
                 if hit:
                     alpha_sum[ty, tx] += 1.0
                     hits[ty, tx] += 1.0

@@ -62,7 +62,7 @@ M_TEX_CLEARCOAT = 31
 M_TEX_CLEARCOAT_ROUGHNESS = 32
 M_TEX_SPECULAR = 33
 M_TEX_SPECULAR_COLOR = 34
-M_GROUP = 35  # light group of the material's emission (reserved for the layers issue)
+M_GROUP = 35  # light group of the material's emission (engine/layers.py; 0: ungrouped)
 MATERIAL_SIZE = 40
 
 TEXTURE_COLUMNS = (M_TEX_BASE, M_TEX_METALLIC_ROUGHNESS, M_TEX_NORMAL, M_TEX_EMISSIVE, M_TEX_TRANSMISSION,

@@ -39,6 +39,7 @@ L_DIR_OPEN = 10
 L_DIR_CLOSE = 13
 L_SPOT_SCALE = 16
 L_SPOT_OFFSET = 17
+L_GROUP = 18  # light group index (engine/layers.py; 0: ungrouped)
 PUNCT_SIZE = 20
 LUMA = np.array([0.2126, 0.7152, 0.0722])  # Rec. 709 luminance weights (ITU-R BT.709)
 

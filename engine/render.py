@@ -13,6 +13,7 @@ from dataclasses import dataclass
 from .compiler import Geometry, compile_frame, compile_geometry
 from .film import Film
 from .integrator import render_tile
+from .layers import layer_plan
 from .sampler import RANDOM, SOBOL
 
 SAMPLER_MODES = {"sobol": SOBOL, "random": RANDOM}
@@ -45,12 +46,17 @@ class FrameRenderer:
         self.frame = int(frame)
         self.geometry = geometry if geometry is not None else compile_geometry(shot)
         self.scene, self.camera = compile_frame(shot, self.geometry, self.frame)
+        # the layers the shot keeps (docs/shot-file.md, [output]): none unless asked for
+        self.layer_names, self._slots, self._split = layer_plan(shot)
 
     def render(self, tile: Tile, first: int, count: int, film: Film | None = None) -> Film:
         """Add samples [first, first + count) of every pixel in `tile` to `film` (new if None)."""
         shot = self.shot
         if film is None:
-            film = Film.zeros(tile.h, tile.w)
+            film = Film.zeros(tile.h, tile.w, self.layer_names)
+        elif film.layer_names != self.layer_names:
+            raise ValueError(f"film layers {list(film.layer_names)}; this shot keeps "
+                             f"{list(self.layer_names)}")
         if count <= 0:
             return film
         render_tile(
@@ -58,7 +64,7 @@ class FrameRenderer:
             self.frame, int(shot.seed), SAMPLER_MODES[shot.sampler], int(shot.bounces), int(shot.roulette),
             tile.x0, tile.y0, tile.w, tile.h, int(first), int(count),
             film.n, film.rgb_sum, film.rgb_sq, film.alpha_sum, film.albedo_sum, film.normal_sum,
-            film.depth_sum, film.hits, film.dropped,
+            film.depth_sum, film.hits, film.dropped, self._split, self._slots, film.layers,
         )
         return film
 
@@ -71,7 +77,7 @@ def render_frame(shot, frame: int, first: int = 0, count: int | None = None,
     """
     count = shot.samples - first if count is None else count
     renderer = FrameRenderer(shot, frame, geometry)
-    film = Film.zeros(shot.height, shot.width)
+    film = Film.zeros(shot.height, shot.width, renderer.layer_names)
     for tile in tiles_for(shot.width, shot.height, tile_size):
         part = renderer.render(tile, first, count)
         film.add_into(part, tile.y0, tile.x0)

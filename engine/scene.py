@@ -83,7 +83,7 @@ class Scene(NamedTuple):
     env_map: np.ndarray  # (H, W, 3) float64 radiance, (1, 1, 3) when there is no map
     env_row_cdf: np.ndarray  # (H + 1,) float64 marginal over rows
     env_col_cdf: np.ndarray  # (H, W + 1) float64 conditional over columns per row
-    env_params: np.ndarray  # (4,) float64: [has_map, strength, rotate (radians), p_env]
+    env_params: np.ndarray  # (5,) float64: [has_map, strength, rotate (radians), p_env, light group]
     flags: np.ndarray  # (FLAG_COUNT,) int64 scene-wide facts (FLAG_*)
 
 

@@ -28,7 +28,7 @@ from lampyr.errors import AssetError
 from .assets import resolve_asset
 from .bsdf import DIFFUSE, GLASS, METAL, PLASTIC, material_row
 from .gltf_animation import decompose_trs, world_matrices
-from .material_table import M_DOUBLE_SIDED, M_METALLIC, M_TEX_NORMAL, M_TRANSMISSION, PBR, row_from_spec
+from .material_table import M_DOUBLE_SIDED, M_GROUP, M_METALLIC, M_TEX_NORMAL, M_TRANSMISSION, PBR, row_from_spec
 from .mesh_table import MeshTableBuilder
 from .scene_data import MaterialSpec, SceneData
 from .skinning import SPACE_WORLD, deformed_vertices, is_deforming
@@ -138,6 +138,9 @@ class _Tables:
 
     def __init__(self, shot):
         self.rows = [shot_material_row(m) for m in shot.materials]
+        for row, m in zip(self.rows, shot.materials):
+            row[M_GROUP] = shot.group_index(m.group)  # the light group of its emission
+        self.shot = shot
         self.by_name = {m.name: i for i, m in enumerate(shot.materials)}
         self.images: list = []
         self.texrefs: list = []
@@ -161,6 +164,7 @@ class _Tables:
                 out.append(self.by_name[spec.name])  # the shot's material of that name replaces it
                 continue
             self.rows.append(row_from_spec(spec, ref_row))
+            self.rows[-1][M_GROUP] = self.shot.group_index(self.shot.scene_groups.get(spec.name))
             out.append(len(self.rows) - 1)
         out.append(self.default_row(gltf))
         return np.array(out, np.int64)

@@ -36,6 +36,9 @@ LIGHT_TYPES = ("point", "spot", "directional")
 SCENE_EXTENSIONS = (".glb", ".gltf")
 SAMPLERS = ("sobol", "random")
 _NAME = re.compile(r"[A-Za-z0-9_][A-Za-z0-9_.-]{0,99}")
+_GROUP = re.compile(r"[A-Za-z0-9_]{1,40}")  # a light group's name: a layer name group_<NAME>
+LAYERS = ("diffuse_direct", "diffuse_indirect", "specular_direct", "specular_indirect",
+          "transmission", "emission", "background")  # engine/layers.py, LAYER_NAMES
 _LABEL = re.compile(r"[A-Za-z0-9_.-]([A-Za-z0-9 _.-]{0,62}[A-Za-z0-9_.-])?")
 _MISSING = object()
 
@@ -222,6 +225,7 @@ class Environment:
     map: str | None
     strength: float
     rotate: float
+    group: str | None = None  # light group (docs/shot-file.md, [output] light_groups)
 
 
 @dataclass(frozen=True, eq=False)
@@ -234,6 +238,7 @@ class Material:
     emission: np.ndarray  # (3,) radiance
     metallic: float = 0.0  # "pbr" only
     transmission: float = 0.0  # "pbr" only: a thin-walled transmissive surface
+    group: str | None = None  # light group of its emission
 
 
 @dataclass(frozen=True, eq=False)
@@ -251,6 +256,7 @@ class Light:
     intensity: float
     inner_cone: float
     outer_cone: float
+    group: str | None = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -304,12 +310,26 @@ class Shot:
     scene_light_scale: float = 1.0  # multiplies the intensity of the scene file's lights
     lights: tuple = ()
     denoise: bool = True  # [output] denoise: complete frames get a denoised layer
+    layers: tuple = ()  # [output] layers: light-path layers kept (names of LAYERS)
+    light_groups: bool = False  # [output] light_groups: a layer per light group
+    scene_groups: dict = field(default_factory=dict)  # [output] groups: scene file's light or material → group
     path: Path | None = None
     root: Path | None = None
     raw: dict = field(default_factory=dict, repr=False)
 
     def frames(self) -> range:
         return range(self.first_frame, self.last_frame + 1)
+
+    def light_group_names(self) -> tuple[str, ...]:
+        """Every light group an emitter of the shot names, sorted; group i's index is i + 1 and
+        0 is the ungrouped emitters (`group_other`)."""
+        names = {m.group for m in self.materials} | {li.group for li in self.lights}
+        names |= {self.environment.group} | set(self.scene_groups.values())
+        return tuple(sorted(n for n in names if n is not None))
+
+    def group_index(self, name: str | None) -> int:
+        """The light group's index (0 for None: ungrouped)."""
+        return 0 if name is None else 1 + self.light_group_names().index(name)
 
     def scene_time(self, frame: float) -> float:
         """Seconds of scene-file animation time shown at (fractional) `frame`: (frame - zero) / fps,
@@ -451,7 +471,30 @@ def _environment(t: _Table, root) -> Environment:
         map=t.get("map", _asset(MAP_EXTENSIONS, root), None),
         strength=t.get("strength", number("a multiplier >= 0", 0), 1.0),
         rotate=t.get("rotate", number("degrees about +y"), 0.0),
+        group=t.get("group", _group_name, None),
     )
+
+
+def _group_name(v, key):
+    if isinstance(v, str) and _GROUP.fullmatch(v) and v != "other":
+        return v
+    _fail(key, 'a light group name of 1 to 40 letters, digits and _ (not "other", the name of '
+               "the ungrouped emitters' layer)", v)
+
+
+def _layer_list(v, key):
+    if isinstance(v, list) and all(isinstance(x, str) and x in LAYERS for x in v) and len(set(v)) == len(v):
+        return tuple(v)
+    bad = [x for x in v if not (isinstance(x, str) and x in LAYERS)] if isinstance(v, list) else None
+    _fail(key, f"a list of distinct layer names among {', '.join(LAYERS)}",
+          bad[0] if bad else v)
+
+
+def _scene_groups(v, key):
+    if not isinstance(v, dict):
+        _fail(key, 'a table of scene-file light or material names and their light groups '
+                   '({ "Lamp" = "key" })', v)
+    return {str(k): _group_name(g, f"{key}.{k}") for k, g in v.items()}
 
 
 def _material(t: _Table, name: str) -> Material:
@@ -469,6 +512,7 @@ def _material(t: _Table, name: str) -> Material:
                        _frozen([0, 0, 0])),
         metallic=t.get("metallic", number("a metalness between 0 and 1", 0, 1), 0.0),
         transmission=t.get("transmission", number("a transmission between 0 and 1", 0, 1), 0.0),
+        group=t.get("group", _group_name, None),
     )
 
 
@@ -507,6 +551,7 @@ def _light(t: _Table, name: str) -> Light:
         color=t.get("color", vector("3 numbers between 0 and 1 [r, g, b]", 0, 1), _frozen([1, 1, 1])),
         intensity=t.get("intensity", number("an intensity >= 0 in the shot's radiance units", 0), 1.0),
         inner_cone=math.radians(inner), outer_cone=math.radians(outer),
+        group=t.get("group", _group_name, None),
     )
 
 
@@ -578,16 +623,17 @@ def parse_shot(data: dict, root=None, path=None) -> Shot:
         "position", "target", "up", "fov", "aperture", "focus", "shutter", "key", "scene_camera"}),
         scene_file=scene is not None)
     environment = _environment(_Table(data.get("environment", {}), "environment",
-                                      {"color", "map", "strength", "rotate"}), root)
+                                      {"color", "map", "strength", "rotate", "group"}), root)
 
-    output = _Table(data.get("output", {}), "output", {"denoise"}, "a table [output]")
+    output = _Table(data.get("output", {}), "output", {"denoise", "layers", "light_groups", "groups"},
+                    "a table [output]")
     mat_data = top.array("material", "an array of tables ([[material]] blocks)")
     materials = tuple(_material(_Table(d, label, {"name", "type", "color", "roughness", "ior", "emission",
-                                                  "metallic", "transmission"}),
+                                                  "metallic", "transmission", "group"}),
                                 d["name"]) for d, label in zip(mat_data, _labels(mat_data, "material")))
     light_data = top.array("light", "an array of tables ([[light]] blocks)")
     lights = tuple(_light(_Table(d, label, {"name", "type", "position", "direction", "target", "color",
-                                            "intensity", "inner_cone", "outer_cone"}), d["name"])
+                                            "intensity", "inner_cone", "outer_cone", "group"}), d["name"])
                    for d, label in zip(light_data, _labels(light_data, "light")))
     known = {m.name: m for m in materials}
     obj_data = top.array("object", "an array of tables ([[object]] blocks)")
@@ -607,6 +653,9 @@ def parse_shot(data: dict, root=None, path=None) -> Shot:
         camera=camera, environment=environment, materials=materials, objects=objects,
         scene=scene, lights=lights,
         denoise=output.get("denoise", _boolean, True),
+        layers=output.get("layers", _layer_list, ()),
+        light_groups=output.get("light_groups", _boolean, False),
+        scene_groups=output.get("groups", _scene_groups, {}),
         time_zero=top.get("time_zero", number("a frame number (may be negative or fractional)"), None),
         scene_light_scale=top.get("scene_light_scale", number("a multiplier >= 0", 0), 1.0),
         path=None if path is None else Path(path), root=None if root is None else Path(root),

@@ -222,9 +222,37 @@ def test_bytes_round_trip_exactly(smp):
 
 
 def test_bytes_hold_the_sums_and_little_more():
-    # 17 float64 values per pixel (5 counts and scalar sums + 4 colours), a 20-byte header and
-    # a 4-byte CRC
-    assert len(to_bytes(Film.zeros(7, 9))) == 7 * 9 * 17 * 8 + 20 + 4
+    # 17 values per pixel (5 counts and scalar sums + 4 colours), float64 for the head's disk and
+    # float32 on the wire, a 23-byte header and a 4-byte CRC (docs/design.md, film bytes)
+    assert len(to_bytes(Film.zeros(7, 9))) == 7 * 9 * 17 * 8 + 23 + 4
+    assert len(to_bytes(Film.zeros(7, 9), bits=32)) == 7 * 9 * 17 * 4 + 23 + 4
+    # each layer adds 3 values per pixel and its name (a length byte and the UTF-8 bytes)
+    names = ("diffuse_direct", "group_key")
+    assert len(to_bytes(Film.zeros(7, 9, names))) == 7 * 9 * 23 * 8 + 23 + 15 + 10 + 4
+
+
+def test_float32_bytes_round_the_sums_to_float32(smp):
+    # IEEE 754 binary32 keeps 24 significant bits: each value within 2^-24 of itself, relative
+    film = accumulate(smp)
+    back = from_bytes(to_bytes(film, bits=32))
+    for f in FIELDS:
+        a, b = getattr(film, f), getattr(back, f)
+        assert np.all(np.abs(b - a) <= np.abs(a) * 2.0**-24)
+        assert np.array_equal(b, a.astype(np.float32).astype(np.float64))
+
+
+def test_version_1_bytes_are_still_read(smp):
+    # the format before layers (float64, no bits or layer fields): tile accumulators written by
+    # an older head
+    import struct
+    import zlib
+
+    film = accumulate(smp)
+    h, w = film.shape
+    body = struct.pack("<8sHHII", b"LMPFILM\x00", 1, len(FIELDS), h, w)
+    body += b"".join(np.ascontiguousarray(getattr(film, f), dtype="<f8").tobytes() for f in FIELDS)
+    back = from_bytes(body + struct.pack("<I", zlib.crc32(body)))
+    assert fields_equal(back, film) and back.layer_names == ()
 
 
 def _corrupt(kind: str, data: bytes) -> bytes:
