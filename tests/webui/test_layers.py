@@ -192,8 +192,6 @@ def test_a_malformed_layer_name_is_a_404_in_one_line(user, finished_job, layer):
 
 
 def test_the_thumbnail_is_a_small_jpeg_of_the_downscaled_preview(user, finished_job, state):
-    from lampyr.webui.app import create_app  # noqa: F401  (the app under test made it)
-
     resp = user.get(f"/jobs/{finished_job}/frames/1/thumb.jpg")
     assert resp.status_code == 200 and resp.mimetype == "image/jpeg"
     assert len(resp.data) < 4096

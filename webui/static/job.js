@@ -1,4 +1,5 @@
-/* A job: its frames strip, the chosen frame's preview with a tile map, and the actions. */
+/* A job: its frames strip (with a small picture of each frame), the chosen frame's picture
+   (any layer of its file) with a tile map, playing the shot, and the actions. */
 "use strict";
 (() => {
   const L = Lampyr, el = L.el;
@@ -7,7 +8,7 @@
   const base = "/api/jobs/" + encodeURIComponent(JOB);
   const files = "/jobs/" + encodeURIComponent(JOB) + "/frames/";
   const S = {job: null, layout: null, frames: [], sel: null, picked: new Set(), detail: null,
-             exposure: 0, raw: false, overlay: "state", tile: null, imgKey: ""};
+             exposure: 0, layer: null, overlay: "state", tile: null, imgKey: "", thumbs: new Map()};
 
   /* ---------------- job header ---------------- */
   function fact(dt, dd, cls) { return el("div", {class: cls || null}, el("dt", {text: dt}), el("dd", {text: dd})); }
@@ -89,9 +90,11 @@
         document.getElementById("picked-count").textContent = S.picked.size;
       });
       const cell = el("div", {class: "cell st-" + f.state + (f.frame === S.sel ? " sel" : ""),
+                             "data-frame": f.frame,
                              role: "option", tabindex: "0", "aria-selected": String(f.frame === S.sel),
                              title: "frame " + f.frame + ": " + L.WORDS[f.state] + ", " + f.held + " of " + f.target + " samples, " + noiseText(f.noise)},
         el("div", {class: "c-top"}, tick, el("span", {class: "c-num", text: f.frame})),
+        thumbOf(f),
         el("div", {class: "c-state"}, L.icon(f.state), el("span", {class: "c-word", text: L.WORDS[f.state]})),
         el("div", {class: "c-noise"}, chip, el("span", {text: noiseText(f.noise)})),
         el("div", {class: "c-spp", text: f.held + "/" + f.target}));
@@ -112,6 +115,26 @@
     }));
     const cur = strip.querySelector(".sel");
     if (cur && !S.stripScrolled) { cur.scrollIntoView({block: "nearest", inline: "center"}); S.stripScrolled = true; }
+  }
+
+  /* the strip's small pictures: one <img> per frame, kept between polls (its address names the
+     frame file's version and the exposure, so it is fetched again only when either changes) */
+  function thumbOf(f) {
+    const ratio = S.layout ? S.layout.width + " / " + S.layout.height : "16 / 9";
+    if (f.exr === null || f.exr === undefined) {
+      const none = el("div", {class: "c-pic none", text: "no pixels yet"});
+      none.style.aspectRatio = ratio;
+      return none;
+    }
+    const src = files + f.frame + "/thumb.jpg?exposure=" + S.exposure + "&v=" + f.exr;
+    let img = S.thumbs.get(f.frame);
+    if (!img) {
+      img = el("img", {class: "c-pic", alt: "frame " + f.frame, loading: "lazy", decoding: "async"});
+      S.thumbs.set(f.frame, img);
+    }
+    img.style.aspectRatio = ratio;
+    if (img.getAttribute("src") !== src) img.src = src;
+    return img;
   }
 
   function select(frame) {
@@ -139,13 +162,10 @@
     const exr = d.files && d.files.exr;
     none.hidden = !!exr;
     img.hidden = !exr;
+    renderLayers(d);
     if (exr) {
-      const key = S.sel + ":" + exr.mtime + ":" + S.exposure + ":" + S.raw;
-      if (key !== S.imgKey) {
-        S.imgKey = key;
-        img.src = files + S.sel + "/preview.png?exposure=" + S.exposure + (S.raw ? "&raw=1" : "") +
-                  "&v=" + exr.mtime;
-      }
+      const url = pictureURL(S.sel, exr.mtime, S.layer && d.layers.includes(S.layer) ? S.layer : null);
+      if (url !== S.imgKey) { S.imgKey = url; img.src = url; }
     }
     drawTiles();
     const noisy = d.tiles.filter(t => t.state !== "done").length;
@@ -169,6 +189,44 @@
     if (!spp.value || spp.dataset.frame !== String(S.sel)) { spp.value = d.target * 2; spp.dataset.frame = S.sel; }
     renderFailures(d);
     renderTileInfo();
+  }
+
+  /* ---------------- layers ---------------- */
+  const DATA_LAYERS = ["normal", "depth", "variance"];
+  const LAYER_WORDS = {denoised: "denoised", beauty: "beauty (the raw mean)", albedo: "albedo",
+                       normal: "normal", depth: "depth", variance: "variance (noise)"};
+  const LAYER_NOTES = {
+    denoised: "The frame through the denoiser, exposed and through the sRGB curve.",
+    beauty: "The unbiased mean of the samples, before the denoiser, exposed and through the sRGB curve.",
+    albedo: "The colour of the first surface each sample hit, exposed and through the sRGB curve.",
+    normal: "The first surface's normal N shown as colour 0.5 + 0.5·N (x red, y green, z blue); nothing hit is mid grey. Exposure does not apply.",
+    depth: "Distance to the first surface: the nearest white, the farthest black, nothing hit black. Exposure does not apply.",
+    variance: "Each pixel's standard error, √(variance ÷ samples), white at the frame's 99th percentile and above; pixels under 2 samples black. Exposure does not apply."};
+  function layerWord(name) {
+    if (LAYER_WORDS[name]) return LAYER_WORDS[name];
+    const g = /^group_(.+)$/.exec(name);
+    return g ? "light group " + g[1].replace(/_/g, " ") : name.replace(/_/g, " ");
+  }
+  function pictureURL(frame, mtime, layer) {
+    return files + frame + "/preview.png?exposure=" + (layer && DATA_LAYERS.includes(layer) ? 0 : S.exposure) +
+           (layer ? "&layer=" + encodeURIComponent(layer) : "") + "&v=" + mtime;
+  }
+  function renderLayers(d) {
+    const pick = document.getElementById("layer");
+    const have = d.layers || [];
+    const want = have.length ? have : ["–"];
+    const now = [...pick.options].map(o => o.value);
+    if (now.join() !== want.join()) {
+      pick.replaceChildren(...want.map(n => el("option", {value: n, text: n === "–" ? "–" : layerWord(n)})));
+    }
+    pick.disabled = !have.length;
+    const shown = S.layer && have.includes(S.layer) ? S.layer : (have.includes("denoised") ? "denoised" : have[0]);
+    if (shown) pick.value = shown;
+    document.getElementById("exposure").disabled = DATA_LAYERS.includes(shown);
+    const note = document.getElementById("layer-note");
+    note.textContent = !shown ? "" : (LAYER_NOTES[shown] || "A layer of the frame file, exposed and through the sRGB curve.") +
+      (S.layer && !have.includes(S.layer) ? " This frame has no " + layerWord(S.layer) + " layer yet." : "");
+    document.getElementById("stage").dataset.layer = shown || "";
   }
 
   function renderFailures(d) {
@@ -204,6 +262,7 @@
     stage.style.width = w + "px";
     stage.style.height = h + "px";
     img.classList.toggle("coarse", w >= 2 * lay.width);
+    document.getElementById("movie").classList.toggle("coarse", w >= 2 * lay.width);
     const dpr = window.devicePixelRatio || 1;
     cv.width = Math.round(w * dpr); cv.height = Math.round(h * dpr);
     cv.style.width = w + "px"; cv.style.height = h + "px";
@@ -212,7 +271,7 @@
     g.clearRect(0, 0, w, h);
     const sx = w / lay.width, sy = h / lay.height;
     renderLegend();
-    if (S.overlay === "none" && img.hidden === false) return;
+    if (P.playing || (S.overlay === "none" && img.hidden === false)) return;
     for (const t of d.tiles) {
       const x = t.x * sx, y = t.y * sy, tw = t.w * sx, th = t.h * sy;
       if (S.overlay === "noise") {
@@ -331,11 +390,29 @@
       S.exposure = Number(v); ex.value = v;
       document.getElementById("exposure-out").textContent = (S.exposure >= 0 ? "+" : "") + S.exposure.toFixed(1);
       if (S.detail) renderFrame();
+      renderStrip();
+      if (P.playing) play(false);
     };
     ex.addEventListener("input", () => setExposure(ex.value));
     document.getElementById("exposure-reset").addEventListener("click", () => setExposure(0));
-    const raw = document.getElementById("raw");
-    raw.addEventListener("change", () => { S.raw = raw.checked; if (S.detail) renderFrame(); });
+    const pick = document.getElementById("layer");
+    pick.addEventListener("change", () => {
+      S.layer = pick.value === "denoised" ? null : pick.value;
+      if (S.detail) renderFrame();
+      if (P.playing) play(false);
+    });
+    document.getElementById("play").addEventListener("click", () => (P.playing || P.loading) ? pause() : play(true));
+    document.getElementById("step-back").addEventListener("click", () => step(-1));
+    document.getElementById("step-on").addEventListener("click", () => step(1));
+    document.addEventListener("keydown", (ev) => {
+      // typing in a field, or the strip (its arrows choose frames), keeps its keys; a focused
+      // button takes the space bar itself
+      const t = ev.target;
+      if (ev.altKey || ev.ctrlKey || ev.metaKey || (t && t.closest && t.closest("input, select, textarea, #strip"))) return;
+      if (ev.key === " " && !(t && t.closest && t.closest("button, a"))) { ev.preventDefault(); (P.playing || P.loading) ? pause() : play(true); }
+      else if (ev.key === "ArrowLeft") { ev.preventDefault(); step(-1); }
+      else if (ev.key === "ArrowRight") { ev.preventDefault(); step(1); }
+    });
     for (const r of document.querySelectorAll("input[name=overlay]"))
       r.addEventListener("change", () => { S.overlay = r.value; drawTiles(); });
     const cv = document.getElementById("tiles");
@@ -363,6 +440,103 @@
         setTimeout(refresh, 600);
       } catch (e) { msg.textContent = e.message; msg.className = "form-msg bad"; }
     });
+  }
+
+  /* ---------------- playing the shot ----------------
+     The frames written so far, at the shot's fps, from the same pictures as the frame view
+     (layer and exposure as chosen). Every picture is fetched and decoded before the first is
+     shown, so playback does not wait on the network; frames without a file yet are left out,
+     and the line beside the buttons says how many. Pictures are drawn on a canvas above the
+     preview, one per tick of the shot's clock. */
+  const P = {playing: false, loading: false, list: [], pics: [], at: 0, t0: 0, fps: 24, timer: 0, gen: 0};
+
+  function fpsOf() { return S.layout && S.layout.fps > 0 ? S.layout.fps : 24; }
+
+  async function play(fromSel) {
+    const gen = ++P.gen;
+    const keep = P.playing ? P.list[P.at] : null;
+    stopClock();
+    P.loading = true; P.playing = false;
+    const ready = S.frames.filter(f => f.exr !== null && f.exr !== undefined);
+    const left = S.frames.length - ready.length;
+    const info = document.getElementById("play-info");
+    document.getElementById("play").textContent = "Pause";
+    if (!ready.length) { P.loading = false; document.getElementById("play").textContent = "Play"; info.textContent = "No frame has been written yet."; return; }
+    let loaded = 0;
+    info.textContent = "loading 0 of " + ready.length + " pictures";
+    const layer = S.layer;
+    const pics = await Promise.all(ready.map(async f => {
+      const im = new Image();
+      im.src = pictureURL(f.frame, f.exr, layer);
+      try { await im.decode(); } catch (e) { return null; }
+      if (gen === P.gen) info.textContent = "loading " + (++loaded) + " of " + ready.length + " pictures";
+      return im;
+    }));
+    if (gen !== P.gen) return;  // paused, or started again, meanwhile
+    P.list = ready.map(f => f.frame).filter((_, k) => pics[k]);
+    P.pics = pics.filter(Boolean);
+    const missing = left + (ready.length - P.pics.length);
+    P.loading = false;
+    if (!P.pics.length) { pause(); info.textContent = "No picture of this layer could be loaded."; return; }
+    P.fps = fpsOf();
+    const start = keep !== null ? keep : (fromSel ? S.sel : null);
+    P.at = Math.max(0, P.list.indexOf(start));
+    P.playing = true;
+    P.missing = missing;
+    const cv = document.getElementById("movie");
+    cv.width = P.pics[0].naturalWidth; cv.height = P.pics[0].naturalHeight;
+    cv.hidden = false;
+    document.getElementById("tiles").hidden = true;
+    document.getElementById("stage").classList.add("playing");
+    P.t0 = performance.now() - P.at * 1000 / P.fps;
+    showMovie(P.at);
+    tick();
+  }
+
+  /* one picture per tick of the shot's clock: the frame due now, then sleep until the next is */
+  function tick() {
+    if (!P.playing) return;
+    const n = Math.floor((performance.now() - P.t0) * P.fps / 1000);
+    const k = n % P.list.length;
+    if (k !== P.at) showMovie(k);
+    P.timer = setTimeout(tick, Math.max(1, P.t0 + (n + 1) * 1000 / P.fps - performance.now()));
+  }
+
+  function showMovie(k) {
+    P.at = k;
+    const cv = document.getElementById("movie"), g = cv.getContext("2d");
+    g.imageSmoothingEnabled = false;
+    g.drawImage(P.pics[k], 0, 0, cv.width, cv.height);
+    const frame = P.list[k];
+    document.getElementById("sel-frame").textContent = frame;
+    document.getElementById("stage").dataset.shown = frame;
+    for (const c of document.querySelectorAll("#strip .cell")) c.classList.toggle("playing-now", Number(c.dataset.frame) === frame);
+    document.getElementById("play-info").textContent = "frame " + frame + " · " + P.fps + " frames a second · " +
+      P.list.length + " written" + (P.missing ? ", " + P.missing + " not written yet left out" : "");
+  }
+
+  function stopClock() { clearTimeout(P.timer); P.timer = 0; }
+
+  function pause() {
+    P.gen++;
+    const was = P.playing ? P.list[P.at] : null;
+    stopClock();
+    P.playing = false; P.loading = false;
+    document.getElementById("play").textContent = "Play";
+    document.getElementById("movie").hidden = true;
+    document.getElementById("tiles").hidden = false;
+    document.getElementById("stage").classList.remove("playing");
+    delete document.getElementById("stage").dataset.shown;
+    for (const c of document.querySelectorAll("#strip .playing-now")) c.classList.remove("playing-now");
+    document.getElementById("play-info").textContent = was !== null ? "paused at frame " + was : "";
+    if (was !== null) select(was); else drawTiles();
+  }
+
+  function step(by) {
+    if (P.playing || P.loading) pause();
+    const i = S.frames.findIndex(f => f.frame === S.sel);
+    const f = S.frames[i + by];
+    if (i >= 0 && f) select(f.frame);
   }
 
   async function refresh() {
