@@ -166,10 +166,11 @@ class JobRun:
     def write_frame(self, frame: int, final: bool) -> Path:
         """The one writer of frame files: the tiles' films assembled (missing tiles empty)."""
         from ..engine.film import Film
+        from ..engine.layers import layer_plan
         from ..frames import write_frame_files
 
         level, total = self.frame_totals(frame)
-        film = Film.zeros(self.shot.height, self.shot.width)
+        film = Film.zeros(self.shot.height, self.shot.width, layer_plan(self.shot)[0])
         for i, t in enumerate(self.tiles):
             acc = TileAccumulator.load(self.folder.tile(frame, i), t.w, t.h)
             if acc.film is not None:

@@ -45,7 +45,12 @@ def refine_frame_file(path: Path, shot_path: Path, samples: int, noise: float | 
     frame = frame_number(path, attrs)
     held_all = film.n + film.dropped
     renderer = FrameRenderer(shot, frame)
-    extra = Film.zeros(h, w)
+    if renderer.layer_names != film.layer_names:
+        raise FrameFileError(f"{path}: the frame holds the layers [{', '.join(film.layer_names)}] "
+                             f"and {shot_path} asks for [{', '.join(renderer.layer_names)}]; refine "
+                             "with the shot file the frame was rendered from ([output] layers, "
+                             "light_groups)")
+    extra = Film.zeros(h, w, renderer.layer_names)
     refined = 0
     tiles = tiles_for(w, h, tile_size)
     start = time.perf_counter()

@@ -105,12 +105,12 @@ def run_batch(ctx: Context, payload: str) -> dict:
             text = "".join(traceback.format_exception_only(type(err), err)).strip()
             r.rpush(P.K_RESULTS, P.error_notice(b.id, task.ticket, ctx.name, text))
             return {"batch": b.id, "outcome": "error", "error": text}
-        from ..engine.film import to_bytes
+        from ..engine.film import to_bytes  # 32 bits on the wire; the head merges in 64
 
         pipe = r.pipeline(transaction=True)
         if done < b.count:
             if done:
-                pipe.set(P.k_result(b.id, task.ticket), to_bytes(film), ex=P.RESULT_TTL)
+                pipe.set(P.k_result(b.id, task.ticket), to_bytes(film, bits=32), ex=P.RESULT_TTL)
             else:  # stopped before its first sample: the start does not count against it
                 pipe.hincrby(P.K_ATTEMPTS, b.id, -1)
             pipe.rpush(P.K_RESULTS, P.partial_notice(b.id, task.ticket, ctx.name, seconds,
@@ -118,7 +118,7 @@ def run_batch(ctx: Context, payload: str) -> dict:
             pipe.execute()
             return {"batch": b.id, "outcome": "handed back", "done": done,
                     "seconds": round(seconds, 4)}
-        pipe.set(P.k_result(b.id, task.ticket), to_bytes(film), ex=P.RESULT_TTL)
+        pipe.set(P.k_result(b.id, task.ticket), to_bytes(film, bits=32), ex=P.RESULT_TTL)
         pipe.rpush(P.K_RESULTS, P.result_notice(b.id, task.ticket, ctx.name, seconds,
                                                 ctx.prepare_seconds))
         pipe.execute()

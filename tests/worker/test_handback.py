@@ -73,9 +73,13 @@ class ChunkWatch:
 
 
 def direct(shot, frame, tile, first, count):
+    """The batch rendered here, as the head receives it: sums rounded to float32 on the wire
+    (docs/design.md, film bytes)."""
+    from lampyr.engine.film import from_bytes, to_bytes
     from lampyr.engine.render import FrameRenderer, Tile
 
-    return FrameRenderer(load_shot(shot), frame).render(Tile(*tile), first, count)
+    return from_bytes(to_bytes(FrameRenderer(load_shot(shot), frame).render(Tile(*tile), first, count),
+                               bits=32))
 
 
 def test_a_stop_between_chunks_hands_back_the_finished_samples(one_batch, gate, tiny_shot, monkeypatch):

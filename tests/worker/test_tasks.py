@@ -31,7 +31,10 @@ def test_a_batch_renders_into_its_result_key(setup, tiny_shot):
     r, ctx, task = setup
     assert run_batch(ctx, task.to_json())["outcome"] == "done"
     film = from_bytes(r.get(P.k_result(task.batch.id, 1)))
+    from lampyr.engine.film import to_bytes
+
     direct = FrameRenderer(load_shot(tiny_shot), 1).render(Tile(0, 0, 8, 8), 2, 3)
+    direct = from_bytes(to_bytes(direct, bits=32))  # the wire's float32 (docs/design.md, film bytes)
     np.testing.assert_array_equal(film.mean(), direct.mean())  # docs/design.md, invariant 1: same five numbers
     note = json.loads(r.lpop(P.K_RESULTS))
     assert (note["kind"], note["batch"], note["ticket"]) == ("result", task.batch.id, 1)
