@@ -234,3 +234,33 @@ def test_a_rewritten_frame_gets_new_pictures_and_its_old_ones_go(user, finished_
     user.get(f"/jobs/{finished_job}/frames/1/thumb.jpg")
     new = {p.name for p in (path.parent / ".previews").iterdir()}
     assert len(new) == 1 and not new & old
+
+
+def test_extra_layers_in_the_file_are_offered_and_shown_like_the_beauty(user, finished_job,
+                                                                        state):
+    """Light-path and light-group layers are found by their channel names: a frame file given
+    two more colour layers (written here with the OpenEXR library) offers both, each exposed and
+    through the sRGB curve."""
+    import OpenEXR
+
+    path = exr_path(state, finished_job)
+    with OpenEXR.File(str(path), separate_channels=True) as f:
+        header = dict(f.header())
+        chans = {n: np.array(c.pixels) for n, c in f.channels().items()}
+    rng = np.random.default_rng(2)
+    extra = {"diffuse_direct": rng.uniform(0, 2, (12, 16, 3)),
+             "group_key_light": rng.uniform(0, 2, (12, 16, 3))}
+    for name, rgb in extra.items():
+        for i, c in enumerate("RGB"):
+            chans[f"{name}.{c}"] = np.ascontiguousarray(rgb[..., i], np.float32)
+    header = {k: v for k, v in header.items() if k not in ("channels", "dataWindow",
+                                                          "displayWindow")}
+    OpenEXR.File(header, chans).write(str(path))
+    d = user.get(f"/api/jobs/{finished_job}/frames/1").get_json()
+    assert d["layers"] == ["denoised", "beauty", "diffuse_direct", "group_key_light", "albedo",
+                           "normal", "depth", "variance"]
+    for name, rgb in extra.items():
+        got = codes_of(user.get(f"/jobs/{finished_job}/frames/1/preview.png?layer={name}"
+                                "&exposure=-1").data)
+        want = np.floor(srgb(rgb.astype(np.float32) * 0.5) * 255 + 0.5)
+        assert np.abs(got - want).max() <= 1

@@ -174,7 +174,7 @@ def test_thumbnails_playback_and_the_layer_picker_show_the_frames(shot_farm, rep
         shown_frames.add(best)
     shots.take(page, "21-job-playing-laptop", full=False)
     info = page.inner_text("#play-info")
-    assert f"{FPS} frames a second" in info and "3 written" in info
+    assert f"{FPS} frames a second" in info and "3 frames written" in info
 
     page.click("#play")  # "Pause"
     page.wait_for_selector("#stage:not([data-shown])")
@@ -229,6 +229,24 @@ def test_thumbnails_playback_and_the_layer_picker_show_the_frames(shot_farm, rep
     for layer in ("depth", "variance"):
         assert np.array_equal(shown[layer][..., 0], shown[layer][..., 2])
     assert np.abs(shown["normal"][..., 0] - shown["normal"][..., 2]).mean() > 10
+
+    # -- a frame without a file: no picture in the strip, left out of playing ----------------
+    page.select_option("#layer", "denoised")
+    gone = next((farm.state / "jobs").glob("courtyard-*/frames/courtyard.0002.exr"))
+    gone.unlink()
+    page.wait_for_selector("#strip .cell[data-frame='2'] .c-pic.none", timeout=10_000)
+    page.click("#play")
+    page.wait_for_selector("#stage[data-shown]", timeout=60_000)
+    seen = []
+    give_up = time.monotonic() + 3.5 / FPS
+    while time.monotonic() < give_up:
+        now = int(page.get_attribute("#stage", "data-shown"))
+        if not seen or seen[-1] != now:
+            seen.append(now)
+    assert len(seen) >= 3 and set(seen) == {1, 3}, seen  # 1, 3, 1, 3, …
+    assert "2 frames written, 1 not written yet (left out)" in page.inner_text("#play-info")
+    shots.take(page, "24-job-playing-one-frame-missing-laptop")
+    page.click("#play")
 
 
 WALL_SHOT = """\

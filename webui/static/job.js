@@ -511,8 +511,9 @@
     document.getElementById("sel-frame").textContent = frame;
     document.getElementById("stage").dataset.shown = frame;
     for (const c of document.querySelectorAll("#strip .cell")) c.classList.toggle("playing-now", Number(c.dataset.frame) === frame);
-    document.getElementById("play-info").textContent = "frame " + frame + " · " + P.fps + " frames a second · " +
-      P.list.length + " written" + (P.missing ? ", " + P.missing + " not written yet left out" : "");
+    const plural = (n, word) => n + " " + word + (n === 1 ? "" : "s");
+    document.getElementById("play-info").textContent = "frame " + frame + " · " + plural(P.fps, "frame") + " a second · " +
+      plural(P.list.length, "frame") + " written" + (P.missing ? ", " + P.missing + " not written yet (left out)" : "");
   }
 
   function stopClock() { clearTimeout(P.timer); P.timer = 0; }
