@@ -2,10 +2,11 @@
 
     GET /jobs/<job>/frames/<frame>.exr               the frame file (attachment)
     GET /jobs/<job>/frames/<frame>.png               the head's sRGB preview (attachment)
-    GET /jobs/<job>/frames/<frame>/preview.png?exposure=STOPS&layer=NAME
+    GET /jobs/<job>/frames/<frame>/preview.png?exposure=STOPS&layer=NAME&width=PX
         one layer of the frame as a picture (webui/layers.py: which layers, and how each is
         mapped); without `layer`, the denoised layer, or the raw mean (`beauty`) when the
-        frame has none yet; raw=1 is the older spelling of layer=beauty
+        frame has none yet; raw=1 is the older spelling of layer=beauty; `width` (one of
+        layers.PLAY_WIDTHS, for playing the shot) shrinks a frame wider than that
     GET /jobs/<job>/frames/<frame>/thumb.jpg?exposure=STOPS
         a small JPEG of the frame for the strip (a few kB)
 
@@ -46,8 +47,10 @@ class PreviewCache:
         """The layers the frame file holds (FrameFileError when unreadable or gone)."""
         return self.channels.layers(path)
 
-    def get(self, path, exposure: float, layer: str | None = None, thumb: bool = False) -> bytes:
-        """The PNG of `layer` (None: the default layer) at `exposure`, or the thumbnail JPEG.
+    def get(self, path, exposure: float, layer: str | None = None, thumb: bool = False,
+            width: int | None = None) -> bytes:
+        """The PNG of `layer` (None: the default layer) at `exposure` (at most `width` wide when
+        given), or the thumbnail JPEG.
         FrameFileError when the file is unreadable or gone (removed since it was found);
         layers.NoSuchLayer when it holds no such layer."""
         from ..errors import FrameFileError
@@ -62,7 +65,7 @@ class PreviewCache:
             raise L.NoSuchLayer(layer, layers)
         if not thumb and not L.is_colour(layer):
             exposure = 0.0  # data layers have no exposure
-        what = ("thumb" if thumb else layer) + f".e{exposure:+.2f}"
+        what = f"{'thumb' if thumb else layer}.e{exposure:+.2f}" + (f".w{width}" if width else "")
         key = (str(path), st.st_mtime_ns, st.st_size, what, thumb)
         with self.lock:
             if key in self.data:
@@ -71,7 +74,8 @@ class PreviewCache:
         if thumb:
             make = lambda: L.thumb_bytes(path, layers, exposure)  # noqa: E731
         else:
-            make = lambda: L.png_bytes(L.layer_codes(path, layer, layers, exposure))  # noqa: E731
+            make = lambda: L.png_bytes(L.layer_codes(path, layer, layers, exposure,  # noqa: E731
+                                                     width))
         data = L.cached_picture(path, what, "jpg" if thumb else "png", make)
         with self.lock:
             self.data[key] = data
@@ -120,7 +124,18 @@ def _exposure() -> float:
     return exposure
 
 
-def _picture(job: str, frame: int, layer: str | None, thumb: bool, mimetype: str):
+def _width() -> int | None:
+    raw = request.args.get("width")
+    if raw is None:
+        return None
+    if raw not in {str(w) for w in L.PLAY_WIDTHS}:
+        abort(400, description=f"width: expected one of {', '.join(map(str, L.PLAY_WIDTHS))} "
+                               f"(pixels), got {raw[:20]!r}")
+    return int(raw)
+
+
+def _picture(job: str, frame: int, layer: str | None, thumb: bool, mimetype: str,
+             width: int | None = None):
     from flask import current_app
 
     from ..errors import FrameFileError
@@ -131,7 +146,7 @@ def _picture(job: str, frame: int, layer: str | None, thumb: bool, mimetype: str
                                f"{layer[:40]!r}")
     path = _file_or_404(job, frame, "exr")
     try:
-        data = current_app.extensions["lampyr.previews"].get(path, exposure, layer, thumb)
+        data = current_app.extensions["lampyr.previews"].get(path, exposure, layer, thumb, width)
     except L.NoSuchLayer as err:
         abort(404, description=f"frame {frame} of {job!r} has no layer {err.layer!r} (it has "
                                f"{', '.join(err.layers)})")
@@ -152,7 +167,7 @@ def preview(job, frame):
         abort(400, description=f"raw: expected 0 (denoised) or 1 (the raw mean), got {raw_flag!r}")
     if layer is None and raw_flag == "1":
         layer = "beauty"
-    return _picture(job, frame, layer, False, "image/png")
+    return _picture(job, frame, layer, False, "image/png", _width())
 
 
 @bp.route("/jobs/<job>/frames/<int:frame>/thumb.jpg")

@@ -50,6 +50,9 @@ REC709 = (0.2126, 0.7152, 0.0722)  # ITU-R BT.709 luminance weights
 VARIANCE_PERCENTILE = 99.0
 THUMB_WIDTH = 96  # px: the strip's cells are about this wide
 THUMB_QUALITY = 80  # JPEG quality: a 96 px thumbnail is a few kB
+# narrower pictures for playing a shot (the page asks for the smallest at least as wide as its
+# picture on the screen): a 1920 px frame decoded 48 times over would hold 400 MB in the browser
+PLAY_WIDTHS = (480, 960)
 
 
 class NoSuchLayer(LookupError):
@@ -218,13 +221,24 @@ def layer_linear(path, layer: str, layers: list[str]):
         raise NoSuchLayer(layer, layers) from None
 
 
-def layer_codes(path, layer: str, layers: list[str], exposure: float = 0.0) -> np.ndarray:
-    """The (h, w, 3) uint8 picture of one layer of a frame file (mappings: module docstring).
+def layer_codes(path, layer: str, layers: list[str], exposure: float = 0.0,
+                width: int | None = None) -> np.ndarray:
+    """The (h, w, 3) uint8 picture of one layer of a frame file (mappings: module docstring),
+    shrunk to `width` when given and narrower than the frame: colour layers in linear light
+    before the sRGB curve, data layers after their mapping (`box_downscale` both).
     NoSuchLayer when the file lacks it; FrameFileError when it cannot be read."""
     if layer not in layers:
         raise NoSuchLayer(layer, layers)
     if is_colour(layer):
-        return colour_codes(layer_linear(path, layer, layers), exposure)
+        rgb = layer_linear(path, layer, layers)
+        return colour_codes(rgb if width is None else box_downscale(rgb, width), exposure)
+    codes = _data_codes(path, layer, layers)
+    if width is None or codes.shape[1] <= width:
+        return codes
+    return np.floor(box_downscale(codes.astype(np.float64), width) + 0.5).astype(np.uint8)
+
+
+def _data_codes(path, layer: str, layers: list[str]) -> np.ndarray:
     want = {"normal": ("N.X", "N.Y", "N.Z"), "depth": ("Z", "hits"),
             "variance": ("var.R", "var.G", "var.B", "spp")}[layer]
     try:

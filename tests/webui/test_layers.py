@@ -264,3 +264,36 @@ def test_extra_layers_in_the_file_are_offered_and_shown_like_the_beauty(user, fi
                                 "&exposure=-1").data)
         want = np.floor(srgb(rgb.astype(np.float32) * 0.5) * 255 + 0.5)
         assert np.abs(got - want).max() <= 1
+
+
+def test_a_picture_for_playing_is_shrunk_in_linear_light(tmp_path):
+    """A 960 × 540 frame asked for at 480 px: each pixel the mean radiance of a 2 × 2 block
+    (numpy), then the sRGB curve; data layers shrink after their mapping."""
+    import OpenEXR
+
+    rng = np.random.default_rng(8)
+    rgb = rng.uniform(0, 1.2, (540, 960, 3))
+    n = np.tile(np.array([0.0, 0.6, 0.8]), (540, 960, 1)) * rng.choice([-1, 1], (540, 960, 1))
+    chans = {c: np.ascontiguousarray(rgb[..., i], np.float32) for i, c in enumerate("RGB")}
+    chans.update({f"N.{c}": np.ascontiguousarray(n[..., i], np.float32)
+                  for i, c in enumerate("XYZ")})
+    path = tmp_path / "big.0001.exr"
+    OpenEXR.File({"compression": OpenEXR.ZIP_COMPRESSION, "type": OpenEXR.scanlineimage},
+                 chans).write(str(path))
+    layers = L.layers_from_channels(L.channel_names(path))
+    assert layers == ["beauty", "normal"]
+    got = L.layer_codes(path, "beauty", layers, 0.0, width=480).astype(np.float64)
+    blocks = rgb.astype(np.float32).astype(np.float64).reshape(270, 2, 480, 2, 3).mean((1, 3))
+    assert got.shape == (270, 480, 3)
+    assert np.abs(got - np.floor(srgb(blocks) * 255 + 0.5)).max() <= 1
+    normal = L.layer_codes(path, "normal", layers, 0.0, width=480).astype(np.float64)
+    full = L.layer_codes(path, "normal", layers).astype(np.float64)
+    assert np.abs(normal - full.reshape(270, 2, 480, 2, 3).mean((1, 3))).max() <= 0.5 + 1e-9
+    assert L.layer_codes(path, "beauty", layers, 0.0, width=960).shape == (540, 960, 3)
+
+
+@pytest.mark.parametrize("width", ["100", "abc", "960.0", "-480"])
+def test_a_width_not_offered_for_playing_is_refused_in_one_line(user, finished_job, width):
+    resp = user.get(f"/jobs/{finished_job}/frames/1/preview.png?width={width}")
+    assert resp.status_code == 400 and "width: expected one of 480, 960" in resp.get_data(
+        as_text=True)

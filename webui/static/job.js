@@ -207,9 +207,9 @@
     const g = /^group_(.+)$/.exec(name);
     return g ? "light group " + g[1].replace(/_/g, " ") : name.replace(/_/g, " ");
   }
-  function pictureURL(frame, mtime, layer) {
+  function pictureURL(frame, mtime, layer, width) {
     return files + frame + "/preview.png?exposure=" + (layer && DATA_LAYERS.includes(layer) ? 0 : S.exposure) +
-           (layer ? "&layer=" + encodeURIComponent(layer) : "") + "&v=" + mtime;
+           (layer ? "&layer=" + encodeURIComponent(layer) : "") + (width ? "&width=" + width : "") + "&v=" + mtime;
   }
   function renderLayers(d) {
     const pick = document.getElementById("layer");
@@ -465,9 +465,13 @@
     let loaded = 0;
     info.textContent = "loading 0 of " + ready.length + " pictures";
     const layer = S.layer;
+    // as wide as the picture on the screen needs (the server's sizes for playing: 480, 960),
+    // full size when the frame is narrower or the screen wider
+    const need = document.getElementById("stage").clientWidth * (window.devicePixelRatio || 1);
+    const width = [480, 960].find(w => w >= need && S.layout && w < S.layout.width) || null;
     const pics = await Promise.all(ready.map(async f => {
       const im = new Image();
-      im.src = pictureURL(f.frame, f.exr, layer);
+      im.src = pictureURL(f.frame, f.exr, layer, width);
       try { await im.decode(); } catch (e) { return null; }
       if (gen === P.gen) info.textContent = "loading " + (++loaded) + " of " + ready.length + " pictures";
       return im;
