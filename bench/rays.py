@@ -6,7 +6,9 @@ Prints, for one icosphere (subdivisions 8: 1.31 M faces; 6 with --small: 82 k):
   1. BVH build time and peak memory per million triangles, lampyr vs Embree;
   2. Mrays/s for the same rays through both, coherent (a pinhole camera looking at the mesh)
      and incoherent (random origins inside the sphere, random directions), on one thread
-     and on all cores, with the ratio lampyr / Embree.
+     and on all cores, with the ratio lampyr / Embree. lampyr runs three ways: the binary tree
+     (bvh.py, the readable reference), the same with SAH termination, and the four-wide tree
+     collapsed from it (wide_bvh.py), which is what the renderer traverses.
 
 Single-thread rates are taken from process CPU time (best of several interleaved repeats) so a
 busy shared machine skews them less; all-core rates from wall time. Embree runs on all cores by
@@ -94,6 +96,7 @@ def run(report=print_table, small: bool = False, repeats: int = 3) -> dict:
     from embreex.mesh_construction import TriangleMesh
 
     from lampyr.engine.bvh import build_bvh, cast, pack_triangles
+    from lampyr.engine.wide_bvh import cast_wide, collapse_bvh
 
     mesh = trimesh.creation.icosphere(subdivisions=6 if small else 8)
     v = np.asarray(mesh.vertices, np.float64)
@@ -102,6 +105,8 @@ def run(report=print_table, small: bool = False, repeats: int = 3) -> dict:
     warm = build_bvh(v[f[:64]].min(1), v[f[:64]].max(1))  # compile / load kernels first
     cast(warm, pack_triangles(v, f[:64], warm.order), np.zeros((1, 3)), np.ones((1, 3)),
          np.empty(1), np.empty(1, np.int64))
+    cast_wide(collapse_bvh(warm), pack_triangles(v, f[:64], warm.order), np.zeros((1, 3)), np.ones((1, 3)),
+              np.empty(1), np.empty(1, np.int64))
 
     tri32 = v[f].astype(np.float32)
 
@@ -135,9 +140,21 @@ def run(report=print_table, small: bool = False, repeats: int = 3) -> dict:
                            f"{kept * per_m / 2**20:.0f}", f"{len(bvh.lo):,}"])
         if name == "lampyr":
             numbers = {"build_s": t_build, "build_peak_bytes_per_tri": mem / n_tri}
+    # the renderer's tree: the terminated binary one collapsed four-wide (its order and
+    # triangles are the binary tree's; the renderer keeps only the wide nodes and triangles)
+    bvh, tris = trees["lampyr+term"]
+    t0 = time.perf_counter()
+    wide = collapse_bvh(bvh)
+    t_collapse = time.perf_counter() - t0
+    kept = wide.box.nbytes + tris.nbytes + bvh.order.nbytes
+    build_rows.append(["lampyr wide", f"{build_rows[1][1]} + {t_collapse:.2f}", "-",
+                       f"{kept * per_m / 2**20:.0f}", f"{len(wide.box):,}"])
+    numbers["wide_build_s"] = float(build_rows[1][1]) + t_collapse
+    numbers["wide_kept_bytes_per_tri"] = kept / n_tri
     build_rows.append(["Embree", f"{e_build:.2f}", f"{e_mem * per_m / 2**20:.0f}", "-", "-"])
     report(f"1. build over {n_tri:,} triangles (icosphere, from float64 vertices and faces); "
-           "lampyr+term: max_leaf=16, trav_cost=4; peak: tracemalloc (lampyr), resident set (Embree)",
+           "lampyr+term: max_leaf=16, trav_cost=4; lampyr wide: lampyr+term collapsed (build + collapse s); "
+           "peak: tracemalloc (lampyr), resident set (Embree)",
            ["library", "build s", "peak MB / M tris", "kept MB / M tris", "nodes"], build_rows)
 
     side = 256 if small else 640
@@ -153,7 +170,7 @@ def run(report=print_table, small: bool = False, repeats: int = 3) -> dict:
             numba.set_num_threads(nt)
             clock = time.process_time if nt == 1 else time.perf_counter
             parts = np.array_split(np.arange(n), nt)
-            best = dict.fromkeys([*trees, "Embree"], math.inf)
+            best = dict.fromkeys([*trees, "wide", "Embree"], math.inf)
             with ThreadPoolExecutor(nt) as pool:
                 for _ in range(repeats):  # interleaved, so a busy spell hits all alike
                     for name, (bvh, tris) in trees.items():
@@ -161,21 +178,25 @@ def run(report=print_table, small: bool = False, repeats: int = 3) -> dict:
                         cast(bvh, tris, o, d, t_out, k_out)
                         best[name] = min(best[name], clock() - c0)
                     c0 = clock()
+                    cast_wide(wide, trees["lampyr+term"][1], o, d, t_out, k_out)
+                    best["wide"] = min(best["wide"], clock() - c0)
+                    c0 = clock()
                     te = np.concatenate(list(pool.map(
                         lambda p: scene.run(o32[p], d32[p], query="DISTANCE"), parts)))
                     best["Embree"] = min(best["Embree"], clock() - c0)
             rate = {k: n / x / 1e6 for k, x in best.items()}
             agree = float(((k_out >= 0) == (te < 1e36)).mean())
-            for name in trees:
+            for name in [*trees, "wide"]:
                 numbers[f"{label} {name} {nt}t ratio"] = rate[name] / rate["Embree"]
             rows.append([label, nt, f"{n:,}", f"{rate['lampyr']:.2f}", f"{rate['lampyr+term']:.2f}",
-                         f"{rate['Embree']:.2f}", f"{rate['lampyr'] / rate['Embree']:.2f}",
-                         f"{rate['lampyr+term'] / rate['Embree']:.2f}", f"{(k_out >= 0).mean():.2f}",
+                         f"{rate['wide']:.2f}", f"{rate['Embree']:.2f}", f"{rate['lampyr'] / rate['Embree']:.2f}",
+                         f"{rate['lampyr+term'] / rate['Embree']:.2f}", f"{rate['wide'] / rate['Embree']:.2f}",
+                         f"{rate['wide'] / rate['lampyr+term']:.2f}", f"{(k_out >= 0).mean():.2f}",
                          f"{agree:.5f}"])
         numba.set_num_threads(threads)
     report("2. closest-hit Mrays/s (single thread: CPU time; all cores: wall time)",
-           ["rays", "threads", "count", "lampyr", "lampyr+term", "Embree", "lampyr/Embree",
-            "+term/Embree", "hit fraction", "same hit/miss"], rows)
+           ["rays", "threads", "count", "lampyr", "lampyr+term", "wide", "Embree", "lampyr/Embree",
+            "+term/Embree", "wide/Embree", "wide/+term", "hit fraction", "same hit/miss"], rows)
     return numbers
 
 
