@@ -145,17 +145,20 @@ def test_thumbnails_playback_and_the_layer_picker_show_the_frames(shot_farm, rep
     page.wait_for_selector("#stage[data-shown]", timeout=60_000)
     # the order and pace, from the frame number the stage says it shows (read every few ms)
     seen, stamps = [], []
-    give_up = time.monotonic() + 4.5 / FPS
+    give_up = time.monotonic() + 9 / FPS
     while time.monotonic() < give_up:
         now = int(page.get_attribute("#stage", "data-shown"))
         if not seen or seen[-1] != now:
             seen.append(now)
             stamps.append(time.monotonic())
-    assert len(seen) >= 4, seen
+    assert len(seen) >= 8, seen
     for a, b in zip(seen, seen[1:]):
         assert b == a % N + 1, seen  # each next frame in turn, then round again
+    # the shot's fps, over the changes seen (each seen up to a poll late: a few hundredths of a
+    # second over several seconds); slower only when the page falls behind, as it never skips a
+    # frame, so the upper bound is loose on a busy machine
     period = (stamps[-1] - stamps[1]) / (len(stamps) - 2)
-    assert abs(period - 1 / FPS) < 0.25 / FPS, period  # the shot's fps, within a quarter frame
+    assert 0.85 / FPS < period < 1.5 / FPS, period
     # the pixels: each screenshot is exactly the preview of the frame the stage names (a
     # screenshot takes a few tenths of a second, so only those taken within one frame count)
     shown_frames, slow = set(), 0

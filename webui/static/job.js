@@ -447,8 +447,8 @@
      (layer and exposure as chosen). Every picture is fetched and decoded before the first is
      shown, so playback does not wait on the network; frames without a file yet are left out,
      and the line beside the buttons says how many. Pictures are drawn on a canvas above the
-     preview, one per tick of the shot's clock. */
-  const P = {playing: false, loading: false, list: [], pics: [], at: 0, t0: 0, fps: 24, timer: 0, gen: 0};
+     preview, one after another at the shot's fps. */
+  const P = {playing: false, loading: false, list: [], pics: [], at: 0, due: 0, fps: 24, timer: 0, gen: 0};
 
   function fpsOf() { return S.layout && S.layout.fps > 0 ? S.layout.fps : 24; }
 
@@ -492,18 +492,19 @@
     cv.hidden = false;
     document.getElementById("tiles").hidden = true;
     document.getElementById("stage").classList.add("playing");
-    P.t0 = performance.now() - P.at * 1000 / P.fps;
     showMovie(P.at);
-    tick();
+    P.due = performance.now() + 1000 / P.fps;
+    P.timer = setTimeout(tick, 1000 / P.fps);
   }
 
-  /* one picture per tick of the shot's clock: the frame due now, then sleep until the next is */
+  /* every frame in turn, each for 1/fps: a browser that falls behind plays slower rather than
+     skip a frame (a skipped frame could be the one that flickers) */
   function tick() {
     if (!P.playing) return;
-    const n = Math.floor((performance.now() - P.t0) * P.fps / 1000);
-    const k = n % P.list.length;
-    if (k !== P.at) showMovie(k);
-    P.timer = setTimeout(tick, Math.max(1, P.t0 + (n + 1) * 1000 / P.fps - performance.now()));
+    showMovie((P.at + 1) % P.list.length);
+    const now = performance.now();
+    P.due = Math.max(P.due + 1000 / P.fps, now + 1);
+    P.timer = setTimeout(tick, P.due - now);
   }
 
   function showMovie(k) {
