@@ -36,6 +36,7 @@ from .skinning import SPACE_WORLD, deformed_vertices
 from .bvh import build_bvh
 from .textures import srgb_table
 from .transforms import apply_placement, pack_placement, placement_at
+from .wide_bvh import wide_views
 
 MOTION_STEPS = 8  # instants per shutter at which motion bounds are taken
 LUMA = np.array([0.2126, 0.7152, 0.0722])  # Rec. 709 luminance weights (ITU-R BT.709)
@@ -231,13 +232,12 @@ def _deforming_meshes(shot, geom: Geometry, worlds: _Worlds, t_open: float, t_cl
 
 def _concat(a: MeshTable, b: MeshTable) -> MeshTable:
     """Mesh table b appended to a (b's indices shifted)."""
-    n_nodes = len(a.blas_lo)
+    n_nodes = len(a.blas_box)
     n_tris = len(a.tris)
     n_verts = len(a.vtx_n)
+    nodes = wide_views(np.concatenate([a.blas_box, b.blas_box]))
     return MeshTable(
-        blas_lo=np.concatenate([a.blas_lo, b.blas_lo]), blas_hi=np.concatenate([a.blas_hi, b.blas_hi]),
-        blas_a=np.concatenate([a.blas_a, b.blas_a]), blas_count=np.concatenate([a.blas_count, b.blas_count]),
-        blas_axis=np.concatenate([a.blas_axis, b.blas_axis]), tris=np.concatenate([a.tris, b.tris]),
+        blas_box=nodes.box, blas_meta=nodes.meta, tris=np.concatenate([a.tris, b.tris]),
         tri_mat=np.concatenate([a.tri_mat, b.tri_mat]),
         tri_vtx=np.concatenate([a.tri_vtx, b.tri_vtx + n_verts]).astype(np.int32),
         vtx_n=np.concatenate([a.vtx_n, b.vtx_n]), vtx_uv=np.concatenate([a.vtx_uv, b.vtx_uv]),
@@ -378,7 +378,7 @@ def compile_frame(shot, geom: Geometry, frame: int):
     flags[FLAG_PASSABLE] = int(inst_passable[:k].any())  # some instance lets shadow rays pass
 
     scene = Scene(
-        meshes.blas_lo, meshes.blas_hi, meshes.blas_a, meshes.blas_count, meshes.blas_axis, meshes.tris,
+        meshes.blas_box, meshes.blas_meta, meshes.tris,
         meshes.mesh_node_base, meshes.mesh_tri_base, meshes.mesh_tri_count,
         meshes.tri_mat, meshes.tri_vtx, meshes.vtx_n, meshes.vtx_uv, meshes.vtx_t, meshes.mesh_attr,
         meshes.tris_end, meshes.mesh_end,

@@ -47,6 +47,7 @@ from .surface import (
     SF_NG, SF_NS, SURF_SIZE, apply_normal_map, hit_material, hit_surface, lifted_origin, normals_hug_face,
     resolve_material,
 )
+from .wide_bvh import traversal_stack
 
 STACK_SIZE = 64
 MAX_LAYERS = 16  # cut-out or partly covered surfaces a ray passes in one segment (rule of thumb)
@@ -441,7 +442,7 @@ def render_tile(S, cam, aperture, width, height, frame, seed, mode, max_bounces,
     """
     for ty in prange(tile_h):
         stack_top = np.empty(STACK_SIZE, np.int32)
-        stack = np.empty(STACK_SIZE, np.int32)
+        stack = traversal_stack()  # the meshes' wide BVHs (wide_bvh.py)
         surf = np.zeros(SURF_SIZE)
         rm = np.zeros(MATERIAL_SIZE)
         rm_shadow = np.zeros(MATERIAL_SIZE)

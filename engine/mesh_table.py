@@ -26,6 +26,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .bvh import build_bvh, pack_triangles
+from .wide_bvh import collapse_bvh, empty_wide, wide_views
 
 ATTR_NORMAL = 1
 ATTR_UV0 = 2
@@ -37,11 +38,8 @@ ATTR_TANGENT = 8
 class MeshTable:
     """Concatenated bottom-level arrays (shapes in the module docstring); M meshes, T triangles."""
 
-    blas_lo: np.ndarray  # (N, 3) float32
-    blas_hi: np.ndarray  # (N, 3) float32
-    blas_a: np.ndarray  # (N,) int32
-    blas_count: np.ndarray  # (N,) int32
-    blas_axis: np.ndarray  # (N,) int8
+    blas_box: np.ndarray  # (N, 8, 4) float32 four-wide nodes (wide_bvh.py)
+    blas_meta: np.ndarray  # (N, 8, 4) int32 view of blas_box
     tris: np.ndarray  # (T, 3, 3) float32
     tri_mat: np.ndarray  # (T,) int32
     tri_vtx: np.ndarray  # (T, 3) int32
@@ -111,7 +109,7 @@ class MeshTableBuilder:
             vt[:] = tangents
             attr |= ATTR_TANGENT
         self._parts.append(dict(
-            bvh=bvh, tris=pack_triangles(v, f, order), tri_mat=np.asarray(tri_mat, np.int32)[order],
+            wide=collapse_bvh(bvh), tris=pack_triangles(v, f, order), tri_mat=np.asarray(tri_mat, np.int32)[order],
             tri_vtx=f[order].astype(np.int64), vn=vn, uv=uv, vt=vt, attr=attr,
             box=np.array([tri.reshape(-1, 3).min(axis=0), tri.reshape(-1, 3).max(axis=0)]),
             tris_end=None if end is None else pack_triangles(v_end, f, order),
@@ -135,7 +133,7 @@ class MeshTableBuilder:
             tri_base.append(n_tris)
             tri_count.append(len(p["tris"]))
             tri_vtx.append(p["tri_vtx"] + n_verts)
-            n_nodes += len(p["bvh"].lo)
+            n_nodes += len(p["wide"].box)
             n_tris += len(p["tris"])
             n_verts += len(p["vn"])
 
@@ -143,12 +141,10 @@ class MeshTableBuilder:
             return np.ascontiguousarray(np.concatenate(arrs).astype(dtype, copy=False)) if arrs \
                 else np.zeros(shape, dtype)
 
+        nodes = wide_views(np.concatenate([p["wide"].box for p in parts])) if parts else empty_wide()
         return MeshTable(
-            blas_lo=cat([p["bvh"].lo for p in parts], (1, 3), np.float32),
-            blas_hi=cat([p["bvh"].hi for p in parts], (1, 3), np.float32),
-            blas_a=cat([p["bvh"].a for p in parts], (1,), np.int32),
-            blas_count=cat([p["bvh"].count for p in parts], (1,), np.int32),
-            blas_axis=cat([p["bvh"].axis for p in parts], (1,), np.int8),
+            blas_box=nodes.box,
+            blas_meta=nodes.meta,
             tris=cat([p["tris"] for p in parts], (1, 3, 3), np.float32),
             tri_mat=cat([p["tri_mat"] for p in parts], (1,), np.int32),
             tri_vtx=cat(tri_vtx, (1, 3), np.int32),

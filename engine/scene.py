@@ -3,8 +3,9 @@
 The compiled scene is a two-level hierarchy, kept as a NamedTuple of plain arrays (which numba
 caches well, where a jitclass argument misses the cache on every run):
 
-* bottom level: one BVH per mesh in its own object space, all concatenated (`blas_*`, `tris`,
-  with per-mesh node and triangle offsets), built once per shot and shared by every frame;
+* bottom level: one four-wide BVH (wide_bvh.py) per mesh in its own object space, all
+  concatenated (`blas_*`, `tris`, with per-mesh node and triangle offsets), built once per shot
+  and shared by every frame;
 * top level: a BVH over *instances* (a mesh or an analytic sphere, with a material and a
   placement at shutter open and close), built per frame over the instances' motion bounds.
 
@@ -21,9 +22,9 @@ from typing import NamedTuple
 import numpy as np
 from numba import njit
 
-from .bvh import intersect_mesh, intersect_mesh_at, occluded_mesh, occluded_mesh_at
 from .intersect import ray_box, ray_sphere
 from .transforms import placement_at, quat_rotate
+from .wide_bvh import intersect_wide, intersect_wide_at, occluded_wide, occluded_wide_at
 
 KIND_MESH = 0
 KIND_SPHERE = 1
@@ -31,11 +32,8 @@ KIND_SPHERE = 1
 
 class Scene(NamedTuple):
     # bottom level, object space (float32 geometry)
-    blas_lo: np.ndarray  # (N, 3) float32
-    blas_hi: np.ndarray  # (N, 3) float32
-    blas_a: np.ndarray  # (N,) int32
-    blas_count: np.ndarray  # (N,) int32
-    blas_axis: np.ndarray  # (N,) int8
+    blas_box: np.ndarray  # (N, 8, 4) float32 four-wide nodes (wide_bvh.py)
+    blas_meta: np.ndarray  # (N, 8, 4) int32 view of blas_box: child rows and counts
     tris: np.ndarray  # (T, 3, 3) float32, in leaf order per mesh
     mesh_node_base: np.ndarray  # (M,) int64
     mesh_tri_base: np.ndarray  # (M,) int64
@@ -165,12 +163,12 @@ def intersect_instance(S, i, ox, oy, oz, dx, dy, dz, tmax, time_u, stack):
         return tmax, -1, 0.0, 0.0
     m = S.inst_mesh[i]
     if S.mesh_end[m] < 0:
-        return intersect_mesh(
-            S.blas_lo, S.blas_hi, S.blas_a, S.blas_count, S.blas_axis, S.tris,
+        return intersect_wide(
+            S.blas_box, S.blas_meta, S.tris,
             S.mesh_node_base[m], S.mesh_tri_base[m], lox, loy, loz, ldx, ldy, ldz, 0.0, tmax, stack,
         )
-    return intersect_mesh_at(
-        S.blas_lo, S.blas_hi, S.blas_a, S.blas_count, S.blas_axis, S.tris, S.tris_end,
+    return intersect_wide_at(
+        S.blas_box, S.blas_meta, S.tris, S.tris_end,
         S.mesh_node_base[m], S.mesh_tri_base[m], S.mesh_end[m], time_u,
         lox, loy, loz, ldx, ldy, ldz, 0.0, tmax, stack,
     )
@@ -273,14 +271,14 @@ def occluded_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack, vi
                 else:
                     m = S.inst_mesh[i]
                     if S.mesh_end[m] < 0:
-                        if occluded_mesh(
-                            S.blas_lo, S.blas_hi, S.blas_a, S.blas_count, S.blas_axis, S.tris,
+                        if occluded_wide(
+                            S.blas_box, S.blas_meta, S.tris,
                             S.mesh_node_base[m], S.mesh_tri_base[m],
                             lox, loy, loz, ldx, ldy, ldz, 0.0, tmax, stack,
                         ):
                             return True
-                    elif occluded_mesh_at(
-                        S.blas_lo, S.blas_hi, S.blas_a, S.blas_count, S.blas_axis, S.tris, S.tris_end,
+                    elif occluded_wide_at(
+                        S.blas_box, S.blas_meta, S.tris, S.tris_end,
                         S.mesh_node_base[m], S.mesh_tri_base[m], S.mesh_end[m], time_u,
                         lox, loy, loz, ldx, ldy, ldz, 0.0, tmax, stack,
                     ):
