@@ -301,3 +301,40 @@ def test_two_sphere_lights_in_two_groups_each_follow_their_configuration_factor(
     assert len(gots) >= 40
     # green only: the grey scene's channels are one estimate, not three independent ones
     assert_within(np.array(gots), np.array(wants), np.array(ses), SIGMAS, 0.0, "group layers")
+
+
+def test_the_scene_files_light_and_emissive_material_take_groups_by_name(tmp_path):
+    # [output] groups names a KHR_lights_punctual light (by its name) and an emissive material of
+    # the scene file; each group's layer then holds that emitter's light, and the family still
+    # adds up to the beauty (Veach 1997, ch. 8)
+    from examples.gltf_builder import GltfBuilder
+    from lampyr.engine.render import render_frame
+
+    from .gltf_files import QUAD_FACES, QUAD_NORMALS, QUAD_POSITIONS, QUAD_UVS, save_valid
+
+    b = GltfBuilder()
+    paint = b.add_material("paint", base_color=[0.6, 0.6, 0.6, 1.0], metallic=0.0, roughness=1.0)
+    glow = b.add_material("glow", base_color=[0, 0, 0, 1], emissive=[1.0, 0.8, 0.5])
+    for name, mat, at, size in (("floor", paint, [-3, -3, 0], 6), ("panel", glow, [1, 1, 1], 0.5)):
+        mesh = b.add_mesh([b.primitive(QUAD_POSITIONS, QUAD_NORMALS, QUAD_UVS, indices=QUAD_FACES,
+                                       material=mat)], name=name)
+        b.add_node(name, mesh=mesh, translation=at, scale=[size, size, 1])
+    b.add_node("lamp", light=b.add_light("point", intensity=5.0, name="bulb"), translation=[-1, 0, 2])
+    save_valid(b, tmp_path / "scene.glb")
+    text = 'scene = "scene.glb"\n' + shot_text(
+        '\n[output]\nlight_groups = true\ngroups = { bulb = "key", glow = "panel" }\n',
+        camera="position = [0, 0, 5]\ntarget = [0, 0, 0]", samples=16)
+    film = render_frame(load(tmp_path, text), 1)
+    assert film.layer_names == ("group_other", "group_key", "group_panel")
+    assert not film.layers[:, :, 0].any()
+    assert film.layers[:, :, 1].sum() > 0 and film.layers[:, :, 2].sum() > 0
+    assert np.abs(film.layers.sum(axis=2) - film.rgb_sum).max() <= 1e-12 * film.rgb_sum.max()
+
+
+def test_a_bad_layer_or_group_name_is_one_line_naming_the_key(tmp_path):
+    from lampyr.errors import ShotError
+
+    with pytest.raises(ShotError, match=r"output\.layers: expected a list of distinct layer names"):
+        load(tmp_path, shot_text('[output]\nlayers = ["diffuse", "emission"]'))
+    with pytest.raises(ShotError, match=r"material\[m\]\.group: expected a light group name"):
+        load(tmp_path, shot_text('[[material]]\nname = "m"\ntype = "diffuse"\ngroup = "other"'))
