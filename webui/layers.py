@@ -5,8 +5,8 @@ Layers, by the channel names of `engine/exr.py` (found in the file, never assume
 
     beauty      R G B                 the raw mean radiance
     denoised    denoised.R/G/B        the denoised mean (complete frames)
-    <name>      <name>.R/G/B          any other colour layer the file holds (light paths, light
-                                      groups, ...), in the file's channel order
+    <name>      <name>.R/G/B          any other colour layer the file holds (light paths by
+                                      name, then light groups `group_<NAME>` by name)
     albedo      albedo.R/G/B          first-hit albedo
     normal      N.X N.Y N.Z           first-hit normal
     depth       Z (and hits)          first-hit distance
@@ -68,7 +68,8 @@ class NoSuchLayer(LookupError):
 
 def layers_from_channels(names) -> list[str]:
     """The layers a file with these channel names holds, in the picker's order: denoised,
-    beauty, the extra colour layers (file order), albedo, normal, depth, variance."""
+    beauty, the extra colour layers (light paths, then light groups), albedo, normal, depth,
+    variance."""
     names = set(names)
     has = lambda *cs: all(c in names for c in cs)  # noqa: E731
     out = []
@@ -76,7 +77,9 @@ def layers_from_channels(names) -> list[str]:
         out.append("denoised")
     if has("R", "G", "B"):
         out.append("beauty")
-    extra = sorted({n.rsplit(".", 1)[0] for n in names if n.count(".") == 1})
+    # light paths by name, then the light groups (group_<NAME>) by name
+    extra = sorted({n.rsplit(".", 1)[0] for n in names if n.count(".") == 1},
+                   key=lambda layer: (layer.startswith("group_"), layer))
     for layer in extra:
         if (layer not in OWN_PREFIXES and layer not in COLOUR_FIXED + DATA_LAYERS
                 and LAYER_NAME.fullmatch(layer) and has(*(f"{layer}.{c}" for c in "RGB"))):

@@ -39,8 +39,8 @@ def test_extra_colour_layers_are_found_by_their_channel_names():
              for c in "RGB"]
     found = L.layers_from_channels(FRAME + extra + ["denoised.R", "denoised.G", "denoised.B",
                                                     "half.R", "half.G"])  # half: no B
-    assert found == ["denoised", "beauty", "diffuse_direct", "group_key", "specular_indirect",
-                     "albedo", "normal", "depth", "variance"]
+    assert found == ["denoised", "beauty", "diffuse_direct", "specular_indirect", "group_key",
+                     "albedo", "normal", "depth", "variance"]  # light paths, then light groups
     assert L.default_layer(found) == "denoised"
 
 

@@ -283,6 +283,10 @@ color = [0.8, 0.3, 0.1]
 name = "wall"
 material = "paint"
 sphere = { center = [0.0, 0.0, -1000.0], radius = 995.0 }
+
+[output]
+layers = ["diffuse_direct", "background"]
+light_groups = true
 """
 
 
@@ -304,6 +308,16 @@ def test_a_wall_facing_the_camera_shows_the_normal_colour_of_plus_z(shot_farm, b
     page.wait_for_selector("#submit-msg.good", timeout=60_000)
     page.wait_for_selector("a.shot")
     open_finished_job(page, 1)
+    # the shot's light-path and light-group layers are offered by name, after the beauty
+    options = page.locator("#layer option").all_inner_texts()
+    assert options == ["denoised", "beauty (the raw mean)", "background", "diffuse direct",
+                       "light group other", "albedo", "normal", "depth", "variance (noise)"]
+    page.select_option("#layer", "diffuse_direct")
+    page.wait_for_selector("#preview[src*='layer=diffuse_direct']")
+    page.wait_for_load_state("networkidle")
+    time.sleep(0.2)
+    assert np.abs(centres(stage(page), 48, 32) - preview_of(page, 1, "&layer=diffuse_direct")
+                  ).mean() < 1.0
     page.select_option("#layer", "normal")
     page.wait_for_selector("#preview[src*='layer=normal']")
     page.wait_for_load_state("networkidle")
