@@ -48,10 +48,12 @@ def fsync_folder(folder: Path) -> None:
         pass
 
 
-def write_atomic(path: Path, data: bytes, sync_folder: bool = True, mode: int = 0o644) -> None:
+def write_atomic(path: Path, data: bytes, sync_folder: bool = True, mode: int = 0o644,
+                 fsync: bool = True) -> None:
     """Replace `path` with `data` so readers see the old or the new bytes, never a mix.
 
-    sync_folder=False leaves the folder's fsync to the caller (one for many files)."""
+    sync_folder=False leaves the folder's fsync to the caller (one for many files); fsync=False
+    skips the file's fsync too (a file no crash needs to find: `lampyr render`'s scratch state)."""
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_name(path.name + ".tmp")
     fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, mode)
@@ -61,7 +63,8 @@ def write_atomic(path: Path, data: bytes, sync_folder: bool = True, mode: int = 
                 os.fchmod(fd, mode)
             f.write(data)
             f.flush()
-            os.fsync(f.fileno())
+            if fsync:
+                os.fsync(f.fileno())
     except BaseException:
         tmp.unlink(missing_ok=True)
         raise
@@ -164,5 +167,5 @@ class TileAccumulator:
         self.ranges = sorted(self.ranges + [(int(first), int(count))])
         return True
 
-    def save(self, sync_folder: bool = True, noise=_UNKNOWN) -> None:
-        write_atomic(self.path, self.to_bytes(noise), sync_folder)
+    def save(self, sync_folder: bool = True, noise=_UNKNOWN, fsync: bool = True) -> None:
+        write_atomic(self.path, self.to_bytes(noise), sync_folder and fsync, fsync=fsync)

@@ -4,8 +4,11 @@ A job's runtime view (`JobRun`) keeps the sample ranges and noise of every tile 
 from the accumulators' headers at start-up (films are not read); tile films stay on disk and are
 read only to merge or to assemble a frame. A frame file is rewritten whenever the fewest samples
 any of its tiles holds grows, so the first pass already gives a complete frame and the last batch
-the final one. At start-up a frame file newer than every tile file of its frame counts as
-written (`settle_written`), so a restart does not rewrite old jobs' frames.
+the final one; a frame not complete yet is rewritten at most once per `rewrite_every` seconds
+(a growth sooner is written when that time is up), a complete one at once. At start-up a frame
+file newer than every tile file of its frame counts as written (`settle_written`), so a restart
+does not rewrite old jobs' frames. Tile files are fsynced unless the job run is not `durable`
+(`lampyr render`, whose state folder is scratch removed at its end).
 
 Every frame file is written by `write_frame` alone. A frame that cannot be written (an `--out`
 that cannot be made, a full disk) does not stop the head: `write_frames` records the reason as
@@ -27,16 +30,25 @@ from .protocol import Batch, parse_batch_id
 
 log = logging.getLogger("lampyr.head")
 
+# seconds between two rewrites of a frame that is not complete yet (rule of thumb: often enough
+# to watch a frame grow, rarely enough that EXR and PNG writing stays a small share of the head)
+REWRITE_EVERY = 5.0
+
 
 class JobRun:
     """A job as the head runs it: record, shot, tiles, which batches are done, frames written."""
 
-    def __init__(self, state: Path, rec: JobRecord, partial_frames: bool = True):
+    def __init__(self, state: Path, rec: JobRecord, partial_frames: bool = True, *,
+                 durable: bool = True, rewrite_every: float = REWRITE_EVERY):
         from ..engine.render import tiles_for
         from ..engine.shot import load_shot
 
         self.rec = rec
         self.partial_frames = partial_frames
+        self.durable = durable  # False: tile files are not fsynced (a scratch state folder)
+        self.rewrite_every = rewrite_every
+        self.partial_at: dict[int, float] = {}  # frame → time.monotonic() of its last partial write
+        self.due: dict[int, float] = {}  # frame → when its held-back rewrite is due
         self.folder = JobFolder(state, rec.id)
         shot = load_shot(self.folder.bundle / rec.shot)
         self.shot = shot.with_overrides(**_overrides(rec)) if rec.overrides or rec.samples else shot
@@ -107,7 +119,7 @@ class JobRun:
             self.held[(b.frame, b.tile)] = acc.ranges
             return False
         noise = tile_noise(acc.film)  # the film in memory, no reread
-        acc.save(sync_folder, noise)
+        acc.save(sync_folder, noise, fsync=self.durable)
         self.held[(b.frame, b.tile)] = acc.ranges
         self.seconds[b.frame] = self.seconds.get(b.frame, 0.0) + seconds
         self.samples_merged += t.w * t.h * b.count
@@ -147,12 +159,19 @@ class JobRun:
             self.frame_complete(frame) and total > self.written_sum.get(frame, 0))
 
     def write_frame_if_grown(self, frame: int, force: bool = False) -> Path | None:
-        """Rewrite the frame file when its lowest tile sample count grew (or `force`)."""
+        """Rewrite the frame file when its lowest tile sample count grew (or `force`). A frame
+        not yet complete is rewritten at most once per `rewrite_every` seconds: a growth sooner
+        is held back until then (`write_due`); a complete frame is written at once."""
         if self.frame_level(frame) == 0 or not (force or self.grown(frame)):
             return None
         complete = self.frame_complete(frame)
         if not self.partial_frames and not complete:
             return None
+        if not complete and not force:
+            at = self.partial_at.get(frame)
+            if at is not None and time.monotonic() - at < self.rewrite_every:
+                self.due.setdefault(frame, at + self.rewrite_every)
+                return None
         # denoised only when complete (its pass done): the intermediate rewrites stay cheap
         return self.write_frame(frame, final=complete)
 
@@ -179,7 +198,20 @@ class JobRun:
                                  self.seconds.get(frame, 0.0), final=final)
         self.written[frame] = level
         self.written_sum[frame] = total
+        self.due.pop(frame, None)
+        if not final:
+            self.partial_at[frame] = time.monotonic()
         return path
+
+    def write_due(self) -> bool:
+        """Write the frames whose held-back rewrite is due (the head's turn calls this)."""
+        if not self.due:
+            return True
+        now = time.monotonic()
+        ready = sorted(f for f, at in self.due.items() if at <= now)
+        for f in ready:
+            del self.due[f]
+        return self.write_frames(ready) if ready else True
 
     def write_frames(self, frames, held: bool = False, force: bool = False) -> bool:
         """Write the frames that grew (held: as `write_held_frame`); an error stops the job with

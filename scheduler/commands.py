@@ -26,7 +26,7 @@ from pathlib import Path
 from ..errors import LampyrError
 from . import protocol as P
 from .accumulator import write_atomic
-from .assembler import JobRun
+from .assembler import REWRITE_EVERY, JobRun
 from .jobs import JobFolder, JobRecord, is_job_id
 
 log = logging.getLogger("lampyr.head")
@@ -62,6 +62,8 @@ class Context:
     runs: dict
     dispatch: object
     partial_frames: bool = True
+    durable: bool = True  # see JobRun
+    rewrite_every: float = REWRITE_EVERY
 
 
 COMMANDS: dict = {}
@@ -70,6 +72,11 @@ COMMANDS: dict = {}
 def command(fn):
     COMMANDS[fn.__name__.rstrip("_")] = fn
     return fn
+
+
+def job_run(ctx: Context, rec) -> JobRun:
+    return JobRun(ctx.state, rec, ctx.partial_frames, durable=ctx.durable,
+                  rewrite_every=ctx.rewrite_every)
 
 
 def _run(ctx: Context, job: str) -> JobRun:
@@ -119,7 +126,8 @@ def submit(ctx: Context, job: str, bundle: str, shot: str, overrides: dict, out:
         layout = choose_layout(spec.width, spec.height, spec.samples, FALLBACK_COST)
         tile_size = tile_size or layout.tile_size
         batch_samples = batch_samples or layout.batch_samples
-    first = first_pass_samples(spec.samples, batch_samples)
+    # the first pass is there to show whole frames early: none when frames appear only complete
+    first = first_pass_samples(spec.samples, batch_samples) if ctx.partial_frames else 0
     check_batch_count(spec, tile_size, batch_samples, first)
     ranges = sample_ranges(0, spec.samples, batch_samples, first)
     rec = JobRecord(id=job, name=spec.name, bundle=bundle, shot=shot, overrides=overrides,
@@ -128,7 +136,7 @@ def submit(ctx: Context, job: str, bundle: str, shot: str, overrides: dict, out:
                     batch_samples=int(batch_samples), samples=int(spec.samples), ranges=ranges,
                     ready_by=None if ready_by is None else float(ready_by))
     folder.save(rec)
-    ctx.runs[job] = JobRun(ctx.state, rec, ctx.partial_frames)
+    ctx.runs[job] = job_run(ctx, rec)
     ctx.r.zadd(P.K_JOBS, {job: rec.submitted})
     log.info("job %s: %d batches, tiles %d px, %d samples per batch", job,
              len(ctx.runs[job].pending), tile_size, batch_samples)
@@ -258,7 +266,7 @@ def refine(ctx: Context, job: str, samples: int, noise: float | None = None,
                     have, samples, run.rec.batch_samples)
     run.rec.ended = None
     run.save()
-    again = JobRun(ctx.state, run.rec, ctx.partial_frames)
+    again = job_run(ctx, run.rec)
     again.written = dict(run.written)
     again.written_sum = dict(run.written_sum)
     ctx.runs[job] = again

@@ -43,7 +43,7 @@ from pathlib import Path
 from . import commands
 from . import protocol as P
 from .accumulator import write_atomic
-from .assembler import JobRun
+from .assembler import REWRITE_EVERY, JobRun
 from .dispatch import Dispatcher, make_sender
 from .history import HistoryRecorder
 from .jobs import JobFolder, list_jobs
@@ -67,12 +67,14 @@ class Head:
 
     lease_seconds: how long a silent worker keeps its batches; max_attempts: starts of a batch
     (crashes, lost leases, errors) before it is marked failed; archive_after: seconds after its
-    end a job folds away (None: never).
+    end a job folds away (None: never); durable: False skips fsyncing tile files (a scratch
+    state folder); rewrite_every: seconds between two rewrites of a frame not complete yet.
     """
 
     def __init__(self, state: Path, url: str, lease_seconds: float = 120.0, max_attempts: int = 3,
                  redis_server=None, partial_frames: bool = True,
-                 archive_after: float | None = ARCHIVE_AFTER):
+                 archive_after: float | None = ARCHIVE_AFTER, durable: bool = True,
+                 rewrite_every: float = REWRITE_EVERY):
         from .store import connect
 
         self.state = Path(state)
@@ -91,7 +93,7 @@ class Head:
                                      self.metrics, self.scenes.hold)
         self.results = Results(self.r, self.jobs, self.dispatcher, self.metrics)
         self.commands = commands.Context(self.state, self.r, self.jobs, self.dispatcher,
-                                         partial_frames)
+                                         partial_frames, durable, rewrite_every)
         self.ready_by = ReadyByKeeper(self.jobs, self.dispatcher, self.r)
         self.progress = ProgressPublisher()  # per-frame / per-tile summary for the web page
         self.history = HistoryRecorder()  # throughput per minute, workers last seen
@@ -108,8 +110,8 @@ class Head:
                      mode=0o600)
         for job in list_jobs(self.state):
             try:
-                self.jobs[job] = JobRun(self.state, JobFolder(self.state, job).load(),
-                                        self.partial_frames)
+                self.jobs[job] = commands.job_run(self.commands,
+                                                  JobFolder(self.state, job).load())
             except Exception as err:  # a broken job must not keep the farm down
                 reason = str(err).strip().splitlines()
                 self.broken[job] = (f"cannot be resumed: {type(err).__name__}: "
@@ -137,7 +139,7 @@ class Head:
         # errors interrupted), go back in front of their queues
         while r.lmove(P.K_PROCESSING, P.K_RESULTS, "RIGHT", "LEFT") is not None:
             pass
-        self.results.parked.clear()  # parked notices went back with the others
+        self.results.forget_in_hand()  # parked notices went back with the others
         commands.replay(r, count=starting)
         for run in self.jobs.values():
             run.replan()
@@ -150,7 +152,9 @@ class Head:
 
     # -- the loop ---------------------------------------------------------------------------
 
-    def run(self, stop=lambda: False, idle: float = 0.05) -> None:
+    def run(self, stop=lambda: False, idle: float = 0.2) -> None:
+        """Turns until `stop()`; after a turn with nothing to do the head sleeps in Redis for up
+        to `idle` seconds, woken at once by a worker's notice (`Results.wait`)."""
         from .store import transient_errors
 
         lost = transient_errors()
@@ -165,6 +169,8 @@ class Head:
                     self.reconcile()
                     down = False
                 busy = self.step()
+                if not busy:
+                    self.results.wait(idle)
             except lost as err:
                 log.warning("Redis unreachable (%s); retrying", err)
                 down = True
@@ -173,9 +179,6 @@ class Head:
             except Exception:  # noqa: BLE001 — a fault of the head's own: logged, never a loop
                 log.exception("the head's turn failed; going on")
                 time.sleep(1.0)
-                continue
-            if not busy:
-                time.sleep(idle)
 
     def step(self) -> bool:
         now = time.monotonic()
@@ -189,6 +192,8 @@ class Head:
         self.reap()
         self.ready_by.tick()
         busy |= self.dispatch() > 0
+        for run in self.jobs.values():
+            run.write_due()  # frame rewrites held back (JobRun.rewrite_every)
         self.hold_files()
         self.publish()
         return busy

@@ -21,6 +21,8 @@ from pathlib import Path
 from ..errors import RenderFailed
 from ..scratch import scratch_folder
 
+POLL = 0.25  # seconds between looks at the job's status (this thread competes with the head's)
+
 
 def first_line(error) -> str:
     """The first line of a worker's or the head's error text, without the exception's class
@@ -39,6 +41,7 @@ def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: in
     to Redis (a job's status and its frames' progress), never the head's own tables.
     """
     from ..frames import frame_path
+    from . import protocol as P
     from .head import Head
     from .progress import job_frames
     from .store import connect, job_status
@@ -52,8 +55,22 @@ def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: in
     head_error: list[BaseException] = []
     worker = None
     thread = None
+    finished = False
     try:
-        head = Head(state, server.url, lease_seconds=60, redis_server=server, partial_frames=False)
+        r = connect(server.url)
+        # the worker first: its processes take longest to be ready (imports, kernels), so they
+        # start while the head does; the key it looks for is the one the head's start sets
+        r.set(P.K_PROTOCOL, P.PROTOCOL_VERSION)
+        with open(state / "worker.log", "wb") as log:  # the worker keeps its own copy
+            worker = subprocess.Popen(
+                [sys.executable, "-m", "lampyr.cli", "worker", "--cores", str(workers),
+                 "--name", "local", "--normal-priority"],  # the artist asked for this render
+                env=dict(os.environ, LAMPYR_HEAD=server.worker_url),  # not on the command line
+                stdin=subprocess.DEVNULL, stdout=log, stderr=subprocess.STDOUT,
+                start_new_session=True, cwd=state, preexec_fn=die_with_parent())
+        # the state folder is scratch, removed at the end: its tile files need no fsync
+        head = Head(state, server.url, lease_seconds=60, redis_server=server, partial_frames=False,
+                    durable=False)
         head.start()
 
         def run_head():
@@ -64,16 +81,8 @@ def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: in
 
         thread = threading.Thread(target=run_head, name="lampyr-head", daemon=True)
         thread.start()
-        with open(state / "worker.log", "wb") as log:  # the worker keeps its own copy
-            worker = subprocess.Popen(
-                [sys.executable, "-m", "lampyr.cli", "worker", "--cores", str(workers),
-                 "--name", "local", "--normal-priority"],  # the artist asked for this render
-                env=dict(os.environ, LAMPYR_HEAD=server.worker_url),  # not on the command line
-                stdin=subprocess.DEVNULL, stdout=log, stderr=subprocess.STDOUT,
-                start_new_session=True, cwd=state, preexec_fn=die_with_parent())
         batch = batch_samples or max(1, shot.samples)
         # `lampyr render` read the shot's files before anything started
-        r = connect(server.url)
         job = submit_request(r, Path(shot_path), overrides, str(out), 0, tile_size, batch, files_checked=True)
         written: list[Path] = []
         seen: set[int] = set()
@@ -110,13 +119,22 @@ def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: in
                                        f"before it are kept in {out}")
                 if st["state"] == "done" and len(seen) == st["frames"]:
                     break
-            time.sleep(0.05)
+            time.sleep(POLL)
+        finished = True
         return written
     finally:
         stop.set()
         if thread is not None:
             thread.join(10)
-        if worker is not None and worker.poll() is None:
+        if worker is not None and worker.poll() is None and finished:
+            # every frame is written: nothing to hand back, no warm shutdown to wait for (its
+            # gate folder is swept by the next worker's start, lampyr/scratch.py)
+            try:
+                os.killpg(worker.pid, signal.SIGKILL)
+            except ProcessLookupError:
+                pass
+            worker.wait()
+        elif worker is not None and worker.poll() is None:
             try:
                 os.killpg(worker.pid, signal.SIGTERM)  # warm shutdown; then make sure
                 worker.wait(5)

@@ -1,6 +1,7 @@
 """Results: taking the workers' notices, guarding each one, merging, taking back a part.
 
-`Results.take()` moves up to `limit` notices from `results` to `results:processing`, merges them
+`Results.take()` moves up to `limit` notices from `results` to `results:processing` (one Lua
+script: a turn with no notice costs one short round trip), merges them
 as one group commit (every tile file written and fsynced, their folders fsynced once, frames
 rewritten) and only then removes them: a head killed mid-merge finds them again, and a replayed
 result is dropped because its tile already holds that sample range.
@@ -32,6 +33,19 @@ log = logging.getLogger("lampyr.head")
 
 KINDS = ("result", "partial", "error")
 ASIDE_KEEP = 1000  # notices kept in results:aside (the newest)
+
+
+# up to ARGV[1] notices from the front of `results` (KEYS[1]) to the back of
+# `results:processing` (KEYS[2]), in one step whatever their number
+_MOVE = """
+local out = {}
+for i = 1, tonumber(ARGV[1]) do
+  local raw = redis.call('LMOVE', KEYS[1], KEYS[2], 'LEFT', 'RIGHT')
+  if not raw then break end
+  out[i] = raw
+end
+return out
+"""
 
 
 class NoticeError(ValueError):
@@ -89,6 +103,22 @@ class Results:
         self.dispatch = dispatch
         self.metrics = metrics
         self.parked: dict[bytes, str] = {}  # notice → its job (left in results:processing)
+        self.early: list[bytes] = []  # notices `wait()` moved to processing, for the next take
+        self._move = r.register_script(_MOVE)
+
+    def wait(self, seconds: float) -> bool:
+        """Sleep in Redis until a notice arrives or `seconds` pass (BLMOVE): an idle head costs
+        nothing and wakes at once when a worker reports. The notice moved is merged at the next
+        `take`. True when one arrived."""
+        raw = self.r.blmove(P.K_RESULTS, P.K_PROCESSING, seconds, "LEFT", "RIGHT")
+        if raw is not None:
+            self.early.append(raw)
+        return raw is not None
+
+    def forget_in_hand(self) -> None:
+        """Reconcile moved results:processing back whole: nothing is parked or in hand."""
+        self.parked.clear()
+        self.early.clear()
 
     def take(self, limit: int = 256) -> int:
         import redis
@@ -97,10 +127,9 @@ class Results:
 
         r = self.r
         self._unpark()
-        pipe = r.pipeline(transaction=False)
-        for _ in range(limit):
-            pipe.lmove(P.K_RESULTS, P.K_PROCESSING, "LEFT", "RIGHT")
-        raws = [raw for raw in pipe.execute() if raw is not None]
+        raws, self.early = self.early, []
+        if len(raws) < limit:  # one step in Redis, whatever the count (none: nothing to pack)
+            raws += self._move(keys=[P.K_RESULTS, P.K_PROCESSING], args=[limit - len(raws)])
         if not raws:
             return 0
         notes = []
@@ -183,7 +212,7 @@ class Results:
         entry = self.dispatch.leases.get(bid)
         if note["kind"] == "partial":
             taken, merged = self._take_back(run, entry, ticket, note, data)
-            if merged:
+            if merged and run.durable:
                 folders.add(run.folder.tile(entry.batch.frame, entry.batch.tile).parent)
                 frames.add((job, frame))
             if taken:
@@ -196,7 +225,8 @@ class Results:
         if data is not None and b is not None:
             if run.merge(b, from_bytes(data), float(note.get("seconds", 0.0)), sync_folder=False):
                 self.metrics.merged(b.w * b.h * b.count)
-                folders.add(run.folder.tile(b.frame, b.tile).parent)
+                if run.durable:
+                    folders.add(run.folder.tile(b.frame, b.tile).parent)
             # also when held already (a replay): its frame may not have been written before
             frames.add((job, frame))
             self.dispatch.leases.pop(bid)
