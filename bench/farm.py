@@ -1,12 +1,22 @@
-"""Farm benchmarks: parallel efficiency, overhead per batch, head capacity. Prints tables.
+"""Farm benchmarks: `lampyr render` against the engine alone, and the head's capacity against
+Celery's own task rate. Prints tables; compares side by side in one run (ratios), never asserts.
 
-    python bench/farm.py [--width 192 --height 108 --samples 96 --frames 1 --tile 48 --batch 48]
+    python bench/farm.py [--frames 1-4] [--cores 2] [--repeat 1] [--capacity-tiles 16]
+    python bench/farm.py --frames 1-48            # the whole demo, as a user renders it
+    python bench/farm.py --pools                  # also: 1 vs 2 pool processes vs solo
 
-1. End to end on the demo shot (made small): one worker process vs two (prefork, one numba
-   thread each) vs one solo worker with two numba threads — wall time, efficiency
-   T1 / (n · Tn), and the overhead per batch: (wall · processes − Σ render seconds) / Σ render.
-2. Head capacity: synthetic workers (threads answering from the queue with a precomputed
-   64 × 64 film) — batches per second queued, delivered and merged; Redis memory per queued batch.
+1. The demo shot (examples/courtyard) rendered twice on the same cores: by the engine alone, in
+   one process with `--cores` numba threads, writing the same frame files (EXR with its denoised
+   layer, PNG preview), and by `lampyr render --workers CORES` (embedded Redis, head, worker). The
+   ratio engine wall / farm wall is the share of the engine's speed the farm keeps (goal 0.95).
+   Both walls run from the process's start to its exit (imports, kernels, scene, every frame).
+   Beside it, the CPU seconds of each process of the farm: what the head, Redis, the worker's
+   supervisor, Celery's parent and the pool processes cost. With --repeat N the two alternate
+   (engine, farm, farm, engine, ...), so a neighbour's load lands on both.
+2. Head capacity: a real Head (in this process) driven by synthetic workers (processes answering
+   every queued batch at once with a precomputed 64 × 64 film) — merged batches per second —
+   beside the rate of Celery's own no-op task (a solo worker, the farm's Celery settings) on the
+   same Redis server, in the same run.
 """
 
 from __future__ import annotations
@@ -20,7 +30,6 @@ import signal
 import subprocess
 import sys
 import tempfile
-import threading
 import time
 from pathlib import Path
 
@@ -28,80 +37,209 @@ import redis
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO = ROOT / "examples" / "courtyard" / "courtyard.toml"
+NOOP_TASK = "bench.noop"
+NOOP_DONE = "bench:noop:done"
 
 
 def lampyr(*args) -> list[str]:
     return [sys.executable, "-m", "lampyr.cli", *map(str, args)]
 
 
-def spawn(args, log: Path, env=None) -> subprocess.Popen:
-    return subprocess.Popen(lampyr(*args), stdout=open(log, "wb"), stderr=subprocess.STDOUT,
-                            env=dict(os.environ, PYTHONUNBUFFERED="1", **(env or {})),
-                            start_new_session=True, cwd=log.parent)
+def load_line() -> str:
+    one, five, fifteen = os.getloadavg()
+    return f"{one:.2f} {five:.2f} {fifteen:.2f}"
 
 
-def start_head(tmp: Path) -> tuple[subprocess.Popen, str]:
-    head = spawn(["head", "--state", tmp / "state"], tmp / "head.log")
-    give_up_at = time.monotonic() + 60
-    while "Workers join with:" not in (text := (tmp / "head.log").read_text()):
-        if head.poll() is not None or time.monotonic() > give_up_at:
-            raise RuntimeError(text)
-        time.sleep(0.05)
-    # the head's own address (Redis user `head`): the bench reads keys no worker or command may
-    return head, json.loads((tmp / "state" / "head.json").read_text())["address"]
+def shot_overrides(args) -> dict:
+    o = {}
+    if args.frames:
+        a, _, b = args.frames.partition("-")
+        o["frames"] = (int(a), int(b or a))
+    for key in ("width", "height", "samples"):
+        if getattr(args, key):
+            o[key] = getattr(args, key)
+    return o
 
 
-def end_to_end(args, pool: str, cores: int, tmp: Path) -> dict:
-    head, url = start_head(tmp)
-    r = redis.Redis.from_url(url)
-    worker = spawn(["worker", url, "--cores", cores, "--pool", pool, "--name", "bench"],
-                   tmp / "worker.log")
+def render_options(args) -> list[str]:
+    opts = []
+    for key in ("frames", "width", "height", "samples"):
+        if getattr(args, key):
+            opts += [f"--{key}", str(getattr(args, key))]
+    return opts
+
+
+# -- 1. lampyr render against the engine alone ------------------------------------------------
+
+def engine_alone_main(spec: str) -> None:
+    """In a fresh process (NUMBA_NUM_THREADS set by the caller): render and write every frame
+    as `lampyr render` does, with no farm; print one JSON line."""
+    from lampyr.engine.compiler import compile_geometry
+    from lampyr.engine.film import Film
+    from lampyr.engine.render import FrameRenderer, tiles_for
+    from lampyr.engine.shot import load_shot
+    from lampyr.frames import write_frame_files
+
+    d = json.loads(spec)
+    o = d["overrides"]
+    if "frames" in o:
+        o["frames"] = tuple(o["frames"])
+    shot = load_shot(Path(d["shot"]))
+    shot = shot.with_overrides(**o) if o else shot
+    out = Path(d["out"])
+    geometry = compile_geometry(shot)
+    rendering = writing = 0.0
+    for f in shot.frames():
+        t0 = time.perf_counter()
+        renderer = FrameRenderer(shot, f, geometry)
+        film = None
+        for t in tiles_for(shot.width, shot.height, 64):
+            part = renderer.render(t, 0, shot.samples)
+            if film is None:  # the tile's own film says which layers the shot has
+                names = getattr(part, "layer_names", ())
+                film = (Film.zeros(shot.height, shot.width, names) if names
+                        else Film.zeros(shot.height, shot.width))
+            film.add_into(part, t.y0, t.x0)
+        t1 = time.perf_counter()
+        write_frame_files(out, shot, f, film, t1 - t0, final=True)
+        rendering += t1 - t0
+        writing += time.perf_counter() - t1
+    print(json.dumps({"render": rendering, "write": writing}))
+
+
+def run_engine_alone(args, tmp: Path) -> dict:
+    spec = json.dumps({"shot": str(DEMO), "overrides": shot_overrides(args),
+                       "out": str(tmp / "engine-out")})
+    import resource
+
+    env = dict(os.environ, NUMBA_NUM_THREADS=str(args.cores))
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
+    start = time.perf_counter()
+    res = subprocess.run([sys.executable, __file__, "--engine-alone", spec], env=env,
+                         capture_output=True, text=True)
+    wall = time.perf_counter() - start
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    if res.returncode:
+        raise RuntimeError(res.stderr[-2000:])
+    d = json.loads(res.stdout.strip().splitlines()[-1])
+    d["wall"] = wall
+    d["cpu"] = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
+    return d
+
+
+PARTS = ("head (lampyr render)", "Redis", "worker supervisor", "Celery parent", "pool processes")
+
+
+def _part(p, root_pid: int) -> str:
     try:
-        while not r.exists("lampyr:host:bench"):
-            time.sleep(0.1)
-        time.sleep(2 + 3 * cores)  # let every pool process load its kernels before timing
-        seconds, prepare = [], []
+        cmd = " ".join(p.cmdline())
+    except Exception:  # noqa: BLE001 — gone
+        return "?"
+    if p.pid == root_pid:
+        return PARTS[0]
+    if "redis-server" in cmd:
+        return PARTS[1]
+    if "lampyr.cli worker" in cmd:
+        return PARTS[2]
+    if "lampyr.worker.app" in cmd:
+        try:
+            parent = " ".join(p.parent().cmdline())
+        except Exception:  # noqa: BLE001
+            parent = ""
+        return PARTS[4] if "lampyr.worker.app" in parent else PARTS[3]
+    return "other"
 
-        def watch(stop):  # the render seconds each result notice reports
-            seen = set()
-            while not stop.is_set():
-                for raw in r.lrange("lampyr:results:processing", 0, -1) + r.lrange("lampyr:results", 0, -1):
-                    note = json.loads(raw)
-                    k = (note["batch"], note["ticket"])
-                    if note["kind"] == "result" and k not in seen:
-                        seen.add(k)
-                        seconds.append(note["seconds"])
-                        prepare.append(note.get("prepare", 0.0))
-                time.sleep(0.002)
 
-        stop = threading.Event()
-        t = threading.Thread(target=watch, args=(stop,), daemon=True)
-        t.start()
-        res = subprocess.run(lampyr("submit", DEMO, "--head", url, "--out", tmp / "out",
-                                    "--width", args.width, "--height", args.height,
-                                    "--samples", args.samples, "--frames", args.frames,
-                                    "--tile", args.tile, "--batch", args.batch),
-                             capture_output=True, text=True, cwd=tmp, check=True)
-        job = res.stdout.split()[-1]
-        start = time.perf_counter()  # from the job's submission (not the client's start-up)
-        while True:
-            st = {k.decode(): json.loads(v) for k, v in r.hgetall(f"lampyr:job:{job}").items()}
-            if st.get("state") in ("done", "failed"):
-                break
-            time.sleep(0.05)
-        wall = time.perf_counter() - start
-        stop.set()
-        t.join()
-        return {"wall": wall, "render": sum(seconds), "prepare": sum(prepare),
-                "batches": len(seconds)}
-    finally:
-        for p in (worker, head):
+def run_farm_render(args, tmp: Path) -> dict:
+    """`lampyr render` in a child process; CPU seconds of its process tree sampled meanwhile."""
+    import psutil
+
+    out = tmp / "farm-out"
+    cmd = lampyr("render", DEMO, "--out", out, "--workers", args.cores, "--quiet",
+                 *render_options(args), *(["--tile", args.tile] if args.tile else []))
+    start = time.perf_counter()
+    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                            cwd=tmp)
+    root = psutil.Process(proc.pid)
+    seen: dict[int, tuple[str, float]] = {}
+    while proc.poll() is None:
+        try:
+            procs = [root] + root.children(recursive=True)
+        except psutil.Error:
+            procs = []
+        for p in procs:
             try:
-                os.killpg(p.pid, signal.SIGTERM)
-                p.wait(20)
-            except (ProcessLookupError, subprocess.TimeoutExpired):
-                os.killpg(p.pid, signal.SIGKILL)
+                c = p.cpu_times()
+                part = seen[p.pid][0] if p.pid in seen else _part(p, proc.pid)
+                seen[p.pid] = (part, c.user + c.system)
+            except psutil.Error:
+                pass
+        time.sleep(0.2)
+    wall = time.perf_counter() - start
+    stdout, stderr = proc.communicate()
+    if proc.returncode:
+        raise RuntimeError(f"lampyr render failed ({proc.returncode}): {stderr[-2000:]}")
+    cpu = dict.fromkeys(PARTS, 0.0)
+    for part, seconds in seen.values():
+        cpu[part] = cpu.get(part, 0.0) + seconds
+    frames = len(list(out.glob("*.exr")))
+    return {"wall": wall, "cpu": cpu, "frames": frames, "said": stdout.strip()}
 
+
+def render_vs_engine(args) -> None:
+    print(f"\nload average before: {load_line()} ({os.cpu_count()} cores)")
+    runs = {"engine": [], "farm": []}
+    order = []
+    for i in range(args.repeat):
+        order += ["engine", "farm"] if i % 2 == 0 else ["farm", "engine"]
+    for kind in order:
+        tmp = Path(tempfile.mkdtemp(prefix="lampyr-bench-"))
+        try:
+            res = run_engine_alone(args, tmp) if kind == "engine" else run_farm_render(args, tmp)
+        finally:
+            shutil.rmtree(tmp, ignore_errors=True)
+        runs[kind].append(res)
+        print(f"  {kind}: {res['wall']:.1f} s (load average now {load_line()})", flush=True)
+    o = shot_overrides(args)
+    what = (f"demo shot, frames {args.frames}, {o.get('width', 'its')} × {o.get('height', 'its')}"
+            f" px, {o.get('samples', 'its')} spp, {args.cores} cores")
+    print(f"\n1. lampyr render against the engine alone ({what})")
+    rows = []
+    for kind, label in (("engine", "engine alone (1 process)"), ("farm", "lampyr render")):
+        walls = [r["wall"] for r in runs[kind]]
+        rows.append([label, " ".join(f"{w:.1f}" for w in walls), f"{min(walls):.1f}"])
+    _table(["run", "wall s (each run)", "best"], rows)
+    e = [r["wall"] for r in runs["engine"]]
+    f = [r["wall"] for r in runs["farm"]]
+    pairs = " ".join(f"{a / b:.2f}" for a, b in zip(e, f))
+    print(f"speed of lampyr render / engine alone: {min(e) / min(f):.2f} (best of each; "
+          f"pair by pair {pairs}); goal ≥ 0.95")
+    eng = runs["engine"][0]
+    print(f"engine alone: rendering {eng['render']:.1f} s, writing frames {eng['write']:.1f} s, "
+          f"CPU {eng['cpu']:.1f} s")
+    rows = []
+    for r in runs["farm"]:
+        total = sum(r["cpu"].values())
+        rows.append([f"{r['wall']:.1f}"] + [f"{r['cpu'].get(p, 0.0):.1f}" for p in PARTS]
+                    + [f"{total:.1f}"])
+    print("\nCPU seconds of the farm's processes")
+    _table(["wall s", *PARTS, "all"], rows)
+    farm_cpu = min(sum(r["cpu"].values()) for r in runs["farm"])
+    print(f"CPU seconds engine alone / lampyr render: {eng['cpu']:.1f} / {farm_cpu:.1f} = "
+          f"{eng['cpu'] / farm_cpu:.2f} (the speed ratio a machine with no neighbours would "
+          "see, as both keep every core busy)")
+    print(f"load average after: {load_line()}")
+
+
+def _table(header, rows) -> None:
+    widths = [max(len(str(x)) for x in col) for col in zip(header, *rows)]
+    print("  ".join(h.ljust(w) for h, w in zip(header, widths)))
+    print("  ".join("-" * w for w in widths))
+    for row in rows:
+        print("  ".join(str(x).ljust(w) for x, w in zip(row, widths)))
+
+
+# -- 2. head capacity against Celery's own task rate ------------------------------------------
 
 def synthetic_worker(url: str, blob: bytes, stop) -> None:
     """Answer every queued batch at once with the same precomputed film (no rendering)."""
@@ -121,26 +259,35 @@ def synthetic_worker(url: str, blob: bytes, stop) -> None:
         pipe.execute()
 
 
-def head_capacity(n_tiles_side: int, synthetic: int, tmp: Path) -> dict:
-    """Drive a real Head (in this process) with synthetic workers answering from the queue."""
+def _film_blob() -> bytes:
     import numpy as np
 
     from lampyr.engine.film import Film, to_bytes
-    from lampyr.scheduler import protocol as P
-    from lampyr.scheduler.head import Head, submit_request
-    from lampyr.scheduler.redis_server import EmbeddedRedis
 
-    server = EmbeddedRedis(tmp / "redis").start()
-    r = redis.Redis.from_url(server.url)
-    shot = tmp / "cap.toml"
-    shot.write_text(DEMO.read_text())
-    for a in (DEMO.parent / "assets").iterdir():
-        (tmp / "assets").mkdir(exist_ok=True)
-        shutil.copy(a, tmp / "assets" / a.name)
     film = Film.zeros(64, 64)
     film.n[:] = 4
     film.rgb_sum[:] = np.random.default_rng(1).random((64, 64, 3))
-    blob = to_bytes(film)
+    film.rgb_sq[:] = film.rgb_sum ** 2
+    try:
+        return to_bytes(film, bits=32)  # what workers send, where the engine has it
+    except TypeError:
+        return to_bytes(film)
+
+
+def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path) -> dict:
+    """Drive a real Head (in this process) with synthetic workers answering from the queue."""
+    import multiprocessing as mp
+
+    from lampyr.scheduler import protocol as P
+    from lampyr.scheduler.head import Head, submit_request
+
+    r = redis.Redis.from_url(server.url)
+    shot = tmp / "cap.toml"
+    shot.write_text(DEMO.read_text())
+    (tmp / "assets").mkdir(exist_ok=True)
+    for a in (DEMO.parent / "assets").iterdir():
+        shutil.copy(a, tmp / "assets" / a.name)
+    blob = _film_blob()
     head = Head(tmp / "state", server.url, lease_seconds=120)
     head.start()
     r.set(P.k_host("synthetic"), json.dumps({"name": "synthetic", "cores": synthetic}))
@@ -150,18 +297,13 @@ def head_capacity(n_tiles_side: int, synthetic: int, tmp: Path) -> dict:
     head.take_commands()
     run = next(iter(head.jobs.values()))
     total = len(run.pending)
-    mem0 = r.info("memory")["used_memory"]
-    head.dispatch()
-    queued = r.llen(P.QUEUE)
-    mem_per = (r.info("memory")["used_memory"] - mem0) / max(queued, 1)
-    import multiprocessing as mp
-
     ctx = mp.get_context("spawn")
     stop = ctx.Event()
     procs = [ctx.Process(target=synthetic_worker, args=(server.url, blob, stop), daemon=True)
              for _ in range(2)]
     for p in procs:
         p.start()
+    time.sleep(1.0)  # the synthetic workers are up before the clock starts
     start = time.perf_counter()
     while head.job_state(run) != "done":
         head.step()
@@ -169,49 +311,179 @@ def head_capacity(n_tiles_side: int, synthetic: int, tmp: Path) -> dict:
     stop.set()
     for p in procs:
         p.join()
-    server.stop()
-    return {"batches": total, "seconds": seconds, "rate": total / seconds,
-            "mem_per_batch": mem_per, "queued": queued}
+    return {"batches": total, "seconds": seconds, "rate": total / seconds}
 
 
-def main() -> None:
-    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--width", type=int, default=192)
-    ap.add_argument("--height", type=int, default=108)
-    ap.add_argument("--samples", type=int, default=96)
-    ap.add_argument("--frames", default="1")
-    ap.add_argument("--tile", type=int, default=48)
-    ap.add_argument("--batch", type=int, default=48)
-    ap.add_argument("--capacity-tiles", type=int, default=16, help="tiles per image side")
-    args = ap.parse_args()
+def noop_worker_main(url: str) -> None:
+    """A Celery worker (solo pool, the farm's settings) whose one task only counts itself."""
+    from celery import Celery
+
+    from lampyr.scheduler import protocol as P
+
+    app = Celery("lampyr-bench", set_as_current=False)
+    app.conf.update(P.celery_settings(url))
+    counter = redis.Redis.from_url(url)
+
+    @app.task(name=NOOP_TASK, acks_late=True, ignore_result=True)
+    def noop(payload: str) -> None:
+        counter.incr(NOOP_DONE)
+
+    app.worker_main(["--quiet", "worker", "-P", "solo", "-Q", "bench-noop", "-l", "WARNING",
+                     "--without-gossip", "--without-mingle", "--without-heartbeat"])
+
+
+def celery_noop_rate(server, n: int, tmp: Path) -> dict:
+    """Tasks per second of Celery's own no-op task, sent as the head sends batches."""
+    from lampyr.scheduler.dispatch import make_sender
+
+    r = redis.Redis.from_url(server.url)
+    r.delete(NOOP_DONE)
+    log = open(tmp / "noop.log", "wb")
+    worker = subprocess.Popen([sys.executable, __file__, "--noop-worker"], stdout=log,
+                              stderr=subprocess.STDOUT, start_new_session=True,
+                              env=dict(os.environ, LAMPYR_BENCH_URL=server.url))
+    sender = make_sender(server.url)
+    try:
+        sender.send_task(NOOP_TASK, args=["warm"], queue="bench-noop")
+        give_up = time.monotonic() + 120
+        while int(r.get(NOOP_DONE) or 0) < 1:
+            if worker.poll() is not None or time.monotonic() > give_up:
+                raise RuntimeError((tmp / "noop.log").read_text()[-2000:])
+            time.sleep(0.05)
+        payload = "x" * 300  # about a render task's JSON argument
+        start = time.perf_counter()
+        for _ in range(n):
+            sender.send_task(NOOP_TASK, args=[payload], queue="bench-noop")
+        sent = time.perf_counter() - start
+        while int(r.get(NOOP_DONE) or 0) < n + 1:
+            if worker.poll() is not None:
+                raise RuntimeError((tmp / "noop.log").read_text()[-2000:])
+            time.sleep(0.01)
+        seconds = time.perf_counter() - start
+    finally:
+        os.killpg(worker.pid, signal.SIGTERM)
+        try:
+            worker.wait(20)
+        except subprocess.TimeoutExpired:
+            os.killpg(worker.pid, signal.SIGKILL)
+        log.close()
+    return {"tasks": n, "seconds": seconds, "rate": n / seconds, "send_rate": n / sent}
+
+
+def capacity(args) -> None:
+    from lampyr.scheduler.redis_server import EmbeddedRedis
+
+    tmp = Path(tempfile.mkdtemp(prefix="lampyr-bench-"))
+    server = EmbeddedRedis(tmp / "redis").start()
+    try:
+        noop = celery_noop_rate(server, args.noop_tasks, tmp)
+        cap = head_capacity(server, args.capacity_tiles, 64, tmp)
+    finally:
+        server.stop()
+        shutil.rmtree(tmp, ignore_errors=True)
+    print(f"\n2. Head capacity against Celery's own task rate (one embedded Redis; load average "
+          f"{load_line()})")
+    _table(["what", "count", "seconds", "per second"], [
+        ["Celery no-op tasks, sent and run (solo worker)", noop["tasks"], f"{noop['seconds']:.2f}",
+         f"{noop['rate']:.0f}"],
+        ["Celery sends alone (the head's sender)", noop["tasks"], "",
+         f"{noop['send_rate']:.0f}"],
+        [f"head: 64×64 batches queued, answered, merged ({args.capacity_tiles}² tiles)",
+         cap["batches"], f"{cap['seconds']:.2f}", f"{cap['rate']:.0f}"],
+    ])
+    print(f"head / Celery no-op: {cap['rate'] / noop['rate']:.2f}; goal ≥ 400 merged batches/s")
+
+
+# -- optional: pool layouts (one process, two, solo with two threads) --------------------------
+
+def spawn(args, log: Path, env=None) -> subprocess.Popen:
+    return subprocess.Popen(lampyr(*args), stdout=open(log, "wb"), stderr=subprocess.STDOUT,
+                            env=dict(os.environ, PYTHONUNBUFFERED="1", **(env or {})),
+                            start_new_session=True, cwd=log.parent)
+
+
+def start_head(tmp: Path) -> tuple[subprocess.Popen, str]:
+    head = spawn(["head", "--state", tmp / "state", "--no-web"], tmp / "head.log")
+    give_up_at = time.monotonic() + 60
+    while "Workers join with:" not in (text := (tmp / "head.log").read_text()):
+        if head.poll() is not None or time.monotonic() > give_up_at:
+            raise RuntimeError(text)
+        time.sleep(0.05)
+    # the head's own address (Redis user `head`): the bench reads keys no worker or command may
+    return head, json.loads((tmp / "state" / "head.json").read_text())["address"]
+
+
+def end_to_end(args, pool: str, cores: int, tmp: Path) -> dict:
+    head, url = start_head(tmp)
+    r = redis.Redis.from_url(url)
+    worker = spawn(["worker", "--cores", cores, "--pool", pool, "--name", "bench"],
+                   tmp / "worker.log", env={"LAMPYR_HEAD": url})
+    try:
+        while not r.exists("lampyr:host:bench"):
+            time.sleep(0.1)
+        time.sleep(2 + 3 * cores)  # let every pool process load its kernels before timing
+        res = subprocess.run(lampyr("submit", DEMO, "--head", url, "--out", tmp / "out",
+                                    *render_options(args), "--tile", args.tile or 32,
+                                    "--batch", args.samples or 8),
+                             capture_output=True, text=True, cwd=tmp, check=True)
+        job = res.stdout.split()[-1]
+        start = time.perf_counter()
+        while True:
+            st = {k.decode(): json.loads(v) for k, v in r.hgetall(f"lampyr:job:{job}").items()}
+            if st.get("state") in ("done", "failed"):
+                break
+            time.sleep(0.05)
+        return {"wall": time.perf_counter() - start}
+    finally:
+        for p in (worker, head):
+            try:
+                os.killpg(p.pid, signal.SIGTERM)
+                p.wait(20)
+            except (ProcessLookupError, subprocess.TimeoutExpired):
+                os.killpg(p.pid, signal.SIGKILL)
+
+
+def pools(args) -> None:
     rows = []
     for label, pool, cores in [("1 process", "prefork", 1), ("2 processes", "prefork", 2),
                                ("solo, 2 threads", "solo", 2)]:
         tmp = Path(tempfile.mkdtemp(prefix="lampyr-bench-"))
-        res = end_to_end(args, pool, cores, tmp)
-        rows.append((label, cores, res))
-        shutil.rmtree(tmp, ignore_errors=True)
+        try:
+            rows.append((label, cores, end_to_end(args, pool, cores, tmp)))
+        finally:
+            shutil.rmtree(tmp, ignore_errors=True)
     t1 = rows[0][2]["wall"]
-    print(f"\nEnd to end: demo shot {args.width}×{args.height}, {args.samples} spp, frames "
-          f"{args.frames}, tiles {args.tile} px, {args.batch} samples per batch")
-    print(f"{'workers':<18}{'wall s':>9}{'batches':>9}{'render s':>10}{'scene s':>9}"
-          f"{'efficiency':>12}{'overhead':>10}{'ms/batch':>10}")
-    for label, cores, res in rows:
-        eff = t1 / (cores * res["wall"])
-        procs = cores if "process" in label else 1
-        # overhead: what neither rendering nor the once-per-process scene set-up explains
-        lost = res["wall"] * procs - res["render"] - res["prepare"]
-        overhead = lost / max(res["render"], 1e-9)
-        per = lost / max(res["batches"], 1) * 1e3
-        print(f"{label:<18}{res['wall']:>9.2f}{res['batches']:>9d}{res['render']:>10.2f}"
-              f"{res['prepare']:>9.2f}{eff:>12.2f}{overhead:>9.1%}{per:>10.1f}")
-    tmp = Path(tempfile.mkdtemp(prefix="lampyr-bench-"))
-    cap = head_capacity(args.capacity_tiles, 64, tmp)
-    shutil.rmtree(tmp, ignore_errors=True)
-    print("\nHead capacity: synthetic workers, 64×64 tiles, precomputed results")
-    print(f"{'batches':>9}{'seconds':>9}{'batches/s':>11}{'queued':>8}{'Redis B/queued':>16}")
-    print(f"{cap['batches']:>9d}{cap['seconds']:>9.2f}{cap['rate']:>11.0f}{cap['queued']:>8d}"
-          f"{cap['mem_per_batch']:>16.0f}")
+    print("\n3. Pool layouts (a head and one worker; wall from the submit to the job's end)")
+    _table(["workers", "wall s", "efficiency T1 / (n · Tn)"],
+           [[label, f"{res['wall']:.2f}", f"{t1 / (cores * res['wall']):.2f}"]
+            for label, cores, res in rows])
+
+
+def main() -> None:
+    if len(sys.argv) == 3 and sys.argv[1] == "--engine-alone":
+        return engine_alone_main(sys.argv[2])
+    if len(sys.argv) == 2 and sys.argv[1] == "--noop-worker":
+        return noop_worker_main(os.environ["LAMPYR_BENCH_URL"])
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--frames", default="1-4", help="A-B of the demo's 48 frames (default 1-4)")
+    ap.add_argument("--width", type=int, default=None, help="default: the shot's (256)")
+    ap.add_argument("--height", type=int, default=None, help="default: the shot's (144)")
+    ap.add_argument("--samples", type=int, default=None, help="default: the shot's (8)")
+    ap.add_argument("--tile", type=int, default=None, help="lampyr render --tile (default: its own)")
+    ap.add_argument("--cores", type=int, default=os.cpu_count() or 1)
+    ap.add_argument("--repeat", type=int, default=1, help="runs of each, alternating")
+    ap.add_argument("--capacity-tiles", type=int, default=16, help="tiles per image side")
+    ap.add_argument("--noop-tasks", type=int, default=2000)
+    ap.add_argument("--skip-render", action="store_true")
+    ap.add_argument("--skip-capacity", action="store_true")
+    ap.add_argument("--pools", action="store_true", help="also compare pool layouts")
+    args = ap.parse_args()
+    if not args.skip_render:
+        render_vs_engine(args)
+    if not args.skip_capacity:
+        capacity(args)
+    if args.pools:
+        pools(args)
 
 
 if __name__ == "__main__":

@@ -66,8 +66,8 @@ def cli():
               help="Render only these frames (one number or a range).")
 @click.option("--width", type=click.IntRange(1, 16384), default=None, help="Override image.width.")
 @click.option("--height", type=click.IntRange(1, 16384), default=None, help="Override image.height.")
-@click.option("--tile", "tile_size", type=click.IntRange(8, 1024), default=32, show_default=True,
-              help="Tile edge in pixels.")
+@click.option("--tile", "tile_size", type=click.IntRange(8, 1024), default=64, show_default=True,
+              help="Tile edge in pixels (a tile renders all its samples in one batch).")
 @click.option("--no-denoise", "no_denoise", is_flag=True,
               help="No denoised layer in the frames (as the shot's [output] denoise = false).")
 @click.option("--quiet", is_flag=True, help="No progress bar.")
