@@ -230,9 +230,8 @@ def _base_albedo(c, fdr):
 
 
 @njit(cache=True)
-def _plastic_coat_prob(cr, cg, cb, ior, fo):
-    """Probability of sampling the coat lobe rather than the base."""
-    fdr = diffuse_fresnel(1.0 / ior)
+def _plastic_coat_prob(cr, cg, cb, fdr, fo):
+    """Probability of sampling the coat lobe rather than the base; fdr = diffuse_fresnel(1 / ior)."""
     e_base = (1.0 - fo) * (_base_albedo(cr, fdr) + _base_albedo(cg, fdr) + _base_albedo(cb, fdr)) / 3.0
     tot = fo + e_base
     return fo / tot if tot > 0.0 else 0.5
@@ -242,15 +241,23 @@ def _plastic_coat_prob(cr, cg, cb, ior, fo):
 def plastic_eval(cr, cg, cb, alpha, smooth, ior, wox, woy, woz, wix, wiy, wiz):
     if woz <= 0.0 or wiz <= 0.0:
         return 0.0, 0.0, 0.0, 0.0
+    return _plastic_eval(cr, cg, cb, alpha, smooth, ior, diffuse_fresnel(1.0 / ior), wox, woy, woz, wix, wiy, wiz)
+
+
+@njit(cache=True)
+def _plastic_eval(cr, cg, cb, alpha, smooth, ior, fdr, wox, woy, woz, wix, wiy, wiz):
+    """`plastic_eval` given the coat's hemispherical reflectance fdr = diffuse_fresnel(1 / ior),
+    which costs two logarithms: computed once per call of plastic_eval or plastic_sample."""
+    if woz <= 0.0 or wiz <= 0.0:
+        return 0.0, 0.0, 0.0, 0.0
     fo = fresnel_dielectric(woz, ior)
     fi = fresnel_dielectric(wiz, ior)
-    fdr = diffuse_fresnel(1.0 / ior)
     k = 1.0 if smooth else ROUGH_COAT_BASE
     common = k * (1.0 - fo) * (1.0 - fi) / (math.pi * ior * ior)
     fr = cr * common / (1.0 - cr * fdr)
     fg = cg * common / (1.0 - cg * fdr)
     fb = cb * common / (1.0 - cb * fdr)
-    p_coat = _plastic_coat_prob(cr, cg, cb, ior, fo)
+    p_coat = _plastic_coat_prob(cr, cg, cb, fdr, fo)
     pdf = (1.0 - p_coat) * wiz * INV_PI
     if not smooth:
         hx, hy, hz = wox + wix, woy + wiy, woz + wiz
@@ -271,7 +278,8 @@ def plastic_sample(cr, cg, cb, alpha, smooth, ior, wox, woy, woz, u0, u1, u2):
     if woz <= 0.0:
         return NO_SAMPLE
     fo = fresnel_dielectric(woz, ior)
-    p_coat = _plastic_coat_prob(cr, cg, cb, ior, fo)
+    fdr = diffuse_fresnel(1.0 / ior)
+    p_coat = _plastic_coat_prob(cr, cg, cb, fdr, fo)
     if u0 < p_coat:
         if smooth:
             w = fo / p_coat
@@ -286,7 +294,7 @@ def plastic_sample(cr, cg, cb, alpha, smooth, ior, wox, woy, woz, u0, u1, u2):
     if wiz <= 0.0:
         return NO_SAMPLE
     # the weight of a mixture sample is the whole (non-delta) BSDF over the mixture density
-    fr, fg, fb, pdf = plastic_eval(cr, cg, cb, alpha, smooth, ior, wox, woy, woz, wix, wiy, wiz)
+    fr, fg, fb, pdf = _plastic_eval(cr, cg, cb, alpha, smooth, ior, fdr, wox, woy, woz, wix, wiy, wiz)
     if pdf <= 0.0:
         return NO_SAMPLE
     c = wiz / pdf
