@@ -338,3 +338,27 @@ def test_a_bad_layer_or_group_name_is_one_line_naming_the_key(tmp_path):
         load(tmp_path, shot_text('[output]\nlayers = ["diffuse", "emission"]'))
     with pytest.raises(ShotError, match=r"material\[m\]\.group: expected a light group name"):
         load(tmp_path, shot_text('[[material]]\nname = "m"\ntype = "diffuse"\ngroup = "other"'))
+
+
+@pytest.mark.parametrize("kind", ["plastic", "pbr"])
+def test_the_diffuse_share_is_the_whole_bsdf_where_only_the_base_is_non_delta(kind):
+    # layers.diffuse_part writes the base terms of lobes.py and pbr.py again: with a smooth coat
+    # (plastic) or a smooth specular layer (glTF, no clearcoat or transmission) the non-delta BSDF
+    # is the base alone, so the two must agree; a rough coat adds a specular part on top
+    from lampyr.engine.bsdf import PLASTIC, bsdf_eval, material_row
+    from lampyr.engine.layers import diffuse_part
+    from lampyr.engine.pbr import pbr_row
+
+    rng = np.random.default_rng(5)
+    for rough in (0.0, 0.5):
+        row = (material_row(PLASTIC, [0.7, 0.4, 0.2], rough, 1.5) if kind == "plastic"
+               else pbr_row(base=(0.7, 0.4, 0.2), metallic=0.0, roughness=rough))
+        for _ in range(50):
+            wo, wi = rng.normal(size=(2, 3))
+            wo, wi = np.abs(wo) / np.linalg.norm(wo), np.abs(wi) / np.linalg.norm(wi)
+            f = np.array(bsdf_eval(row, *wo, *wi)[:3])
+            d = np.array(diffuse_part(row, wo[2], wi[2]))
+            if rough == 0.0:
+                np.testing.assert_allclose(d, f, rtol=1e-12)
+            else:
+                assert np.all(d > 0) and np.all(d < f)
