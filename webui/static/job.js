@@ -479,14 +479,14 @@
     if (gen !== P.gen) return;  // paused, or started again, meanwhile
     P.list = ready.map(f => f.frame).filter((_, k) => pics[k]);
     P.pics = pics.filter(Boolean);
-    const missing = left + (ready.length - P.pics.length);
+    const unreadable = ready.length - P.pics.length;  // e.g. a layer only some frames hold
     P.loading = false;
     if (!P.pics.length) { pause(); info.textContent = "No picture of this layer could be loaded."; return; }
     P.fps = fpsOf();
     const start = keep !== null ? keep : (fromSel ? S.sel : null);
     P.at = Math.max(0, P.list.indexOf(start));
     P.playing = true;
-    P.missing = missing;
+    P.missing = left; P.unreadable = unreadable;
     const cv = document.getElementById("movie");
     cv.width = P.pics[0].naturalWidth; cv.height = P.pics[0].naturalHeight;
     cv.hidden = false;
@@ -518,7 +518,8 @@
     for (const c of document.querySelectorAll("#strip .cell")) c.classList.toggle("playing-now", Number(c.dataset.frame) === frame);
     const plural = (n, word) => n + " " + word + (n === 1 ? "" : "s");
     document.getElementById("play-info").textContent = "frame " + frame + " · " + plural(P.fps, "frame") + " a second · " +
-      plural(P.list.length, "frame") + " written" + (P.missing ? ", " + P.missing + " not written yet (left out)" : "");
+      plural(P.list.length, "frame") + " written" + (P.missing ? ", " + P.missing + " not written yet (left out)" : "") +
+      (P.unreadable ? ", " + P.unreadable + " without this picture (left out)" : "");
   }
 
   function stopClock() { clearTimeout(P.timer); P.timer = 0; }
