@@ -203,15 +203,18 @@ class JobRun:
             self.partial_at[frame] = time.monotonic()
         return path
 
-    def write_due(self) -> bool:
-        """Write the frames whose held-back rewrite is due (the head's turn calls this)."""
+    def write_due(self, all_now: bool = False) -> bool:
+        """Write the frames whose held-back rewrite is due (the head's turn calls this); all of
+        them with `all_now` (the head passes it when nothing of the job is pending or in flight:
+        no more samples are coming, and a status of `failed` or `cancelled` must find every
+        merged sample in the frame files)."""
         if not self.due:
             return True
         now = time.monotonic()
-        ready = sorted(f for f, at in self.due.items() if at <= now)
+        ready = sorted(f for f, at in self.due.items() if all_now or at <= now)
         for f in ready:
             del self.due[f]
-        return self.write_frames(ready) if ready else True
+        return self.write_frames(ready, force=True) if ready else True
 
     def write_frames(self, frames, held: bool = False, force: bool = False) -> bool:
         """Write the frames that grew (held: as `write_held_frame`); an error stops the job with

@@ -192,8 +192,8 @@ class Head:
         self.reap()
         self.ready_by.tick()
         busy |= self.dispatch() > 0
-        for run in self.jobs.values():
-            run.write_due()  # frame rewrites held back (JobRun.rewrite_every)
+        for run in self.jobs.values():  # frame rewrites held back (JobRun.rewrite_every)
+            run.write_due(all_now=not run.pending and not self.dispatcher.inflight(run.rec.id))
         self.hold_files()
         self.publish()
         return busy
