@@ -10,10 +10,11 @@ import re
 import shutil
 import signal
 import time
-import zipfile
 from pathlib import Path
 
 import pytest
+
+from .shots import courtyard_upload
 
 CHROMIUM = Path("/usr/bin/chromium")
 ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
@@ -85,21 +86,7 @@ def upload(page, shot, archive, tile="16"):
 @pytest.fixture
 def small_courtyard(tmp_path, repo_root):
     """The demo shot at 64 × 36, 3 frames, 4 spp, beside a zip of its assets."""
-    src = repo_root / "examples" / "courtyard"
-    text = (src / "courtyard.toml").read_text()
-    text = re.sub(r"(?m)^frames = \[1, 48\]", "frames = [1, 3]", text, count=1)
-    text = re.sub(r"(?m)^width = \d+", "width = 64", text, count=1)
-    text = re.sub(r"(?m)^height = \d+", "height = 36", text, count=1)
-    text = re.sub(r"(?m)^samples = \d+", "samples = 4", text, count=1)
-    folder = tmp_path / "upload"
-    folder.mkdir()
-    shot = folder / "courtyard.toml"
-    shot.write_text(text)
-    archive = folder / "assets.zip"
-    with zipfile.ZipFile(archive, "w") as z:
-        for f in sorted((src / "assets").iterdir()):
-            z.write(f, f"assets/{f.name}")
-    return shot, archive
+    return courtyard_upload(tmp_path, repo_root, width=64, height=36, frames=3)
 
 
 class Shots:

@@ -6,13 +6,13 @@ tests/webui/screenshots-out/ (fixtures shared with test_browser.py)."""
 from __future__ import annotations
 
 import io
-import re
 import time
 
 import numpy as np
 import pytest
 from PIL import Image
 
+from .shots import courtyard_upload
 from .test_browser import Shots, browser, log_in, upload, web_head  # noqa: F401  (fixtures)
 
 KNOWN_NOISE = "#frame-facts[data-noise]:not([data-noise=''])"
@@ -59,30 +59,6 @@ def shot_farm(web_head):
     return farm, url
 
 
-def courtyard(tmp_path, repo_root, width=192, height=108, frames=3, fps=3):
-    """The demo shot, small, 4 spp, at `fps` frames a second, with its assets zipped."""
-    import zipfile
-
-    src = repo_root / "examples" / "courtyard"
-    text = (src / "courtyard.toml").read_text()
-    for pattern, value in ((r"(?m)^frames = \[1, 48\]", f"frames = [1, {frames}]"),
-                           (r"(?m)^fps = \d+", f"fps = {fps}"),
-                           (r"(?m)^width = \d+", f"width = {width}"),
-                           (r"(?m)^height = \d+", f"height = {height}"),
-                           (r"(?m)^samples = \d+", "samples = 4")):
-        text, n = re.subn(pattern, value, text, count=1)
-        assert n == 1, pattern
-    folder = tmp_path / "upload"
-    folder.mkdir()
-    shot = folder / "courtyard.toml"
-    shot.write_text(text)
-    archive = folder / "assets.zip"
-    with zipfile.ZipFile(archive, "w") as z:
-        for f in sorted((src / "assets").iterdir()):
-            z.write(f, f"assets/{f.name}")
-    return shot, archive
-
-
 def open_finished_job(page, frames: int):
     page.click("a.shot")
     page.wait_for_selector("#job-state .st-done", timeout=300_000)
@@ -107,7 +83,7 @@ def test_thumbnails_playback_and_the_layer_picker_show_the_frames(shot_farm, rep
                                                                    tmp_path):
     farm, url = shot_farm
     W, H, N, FPS = 192, 108, 3, 2
-    shot, archive = courtyard(tmp_path, repo_root, W, H, N, FPS)
+    shot, archive = courtyard_upload(tmp_path, repo_root, W, H, N, FPS)
     shots = Shots(tmp_path / "screenshots")
     page = log_in(browser, farm, url)
     thumbs = {}
