@@ -193,7 +193,8 @@ class Head:
         self.ready_by.tick()
         busy |= self.dispatch() > 0
         for run in self.jobs.values():  # frame rewrites held back (JobRun.rewrite_every)
-            run.write_due(all_now=not run.pending and not self.dispatcher.inflight(run.rec.id))
+            if run.due:  # the in-flight scan below only for a job with a rewrite held back
+                run.write_due(all_now=not run.pending and not self.dispatcher.inflight(run.rec.id))
         self.hold_files()
         self.publish()
         return busy
