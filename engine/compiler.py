@@ -63,6 +63,7 @@ class Geometry:
     env_params: np.ndarray  # [has_map, strength, rotate, p_env placeholder]
     scene: object  # SceneData or None
     deforming: tuple  # (node, material rows) of the scene's skinned / morphing meshes
+    mat_names: tuple = ()  # the name of each row of mats (ID mattes, mattes.py)
 
     @property
     def triangle_count(self) -> int:
@@ -173,7 +174,7 @@ def compile_geometry(shot, texture_file=None) -> Geometry:
         texrefs=asm.texrefs, tex_pixels=asm.tex_pixels, tex_info=asm.tex_info, srgb_lut=srgb_table(),
         env_color=np.asarray(env.color, np.float64), env_map=np.ascontiguousarray(env_map, np.float64),
         env_row_cdf=row_cdf, env_col_cdf=np.ascontiguousarray(col_cdf), env_params=params,
-        scene=asm.scene, deforming=tuple(asm.deforming),
+        scene=asm.scene, deforming=tuple(asm.deforming), mat_names=tuple(asm.mat_names),
     )
 
 

@@ -16,6 +16,14 @@ One scanline part, ZIP compression (lossless; float32 survives bit for bit), per
   <layer>.R/G/B FLOAT  optional, one per layer the shot keeps (light-path layers such as
                       diffuse_direct, light groups group_<NAME>): the layer's mean, its sum / spp;
                       the header attribute `lampyr.layers` lists them in order
+  matte_<kind>NN.R/G/B/A FLOAT  optional, per ID matte kind the shot keeps (object, material;
+                      engine/mattes.py): the open ID-matte convention's ranked pairs, rank 2i's
+                      id and coverage in matte_<kind>0i.R/.G, rank 2i + 1's in .B/.A, 6 ranks;
+                      ids are float32 hashes of names, coverage the fraction of the pixel's
+                      samples whose first hit was that id (the ranks add up to A unless a pixel
+                      sees more ids than are kept); the header attribute `lampyr.mattes` lists
+                      the kinds, and `cryptomatte/<key>/name`, `hash`, `conversion` and
+                      `manifest` (JSON: name -> hex id) describe each layer as the convention asks
   denoised.R/G/B FLOAT  optional: the mean through the denoiser (engine/denoise.py), written
                       when a frame is complete; NOT an unbiased estimate, so `read_frame`
                       ignores it (merging and refining never see it); `read_denoised` reads it
@@ -40,6 +48,7 @@ import OpenEXR
 
 from lampyr.errors import FrameFileError
 
+from . import mattes
 from .film import Film
 
 FORMAT = "1"
@@ -111,6 +120,7 @@ def frame_channels(film: Film) -> dict[str, np.ndarray]:
     planes["dropped"] = _counts(film.dropped, "dropped")
     for i, name in enumerate(film.layer_names):
         put(layer_channels(name), _mean_of(film.layers[:, :, i], film.n))
+    planes.update(mattes.frame_channels(film))
     return planes
 
 
@@ -139,18 +149,25 @@ def _attr_text(key, value) -> str:
 
 
 def write_frame(path, film: Film, attrs: dict[str, str | int | float],
-                denoised: np.ndarray | None = None) -> None:
+                denoised: np.ndarray | None = None, manifest: dict | None = None) -> None:
     """Write `film` as the frame file `path`, atomically (see the module docstring).
 
     attrs: stored as strings under `lampyr.<key>` (shot, frame, samples, render_seconds,
     version, ...); the key `format` is reserved.
     denoised: None, or an (h, w, 3) image stored as the layer denoised.R/G/B (float32).
+    manifest: {kind: names} of the film's ID mattes (`mattes.manifest`); a kind it lacks gets
+    an empty manifest.
     """
     header = {PREFIX + k: _attr_text(k, v) for k, v in attrs.items()}
     header[PREFIX + "format"] = FORMAT
     header.pop(PREFIX + "layers", None)
+    header.pop(PREFIX + "mattes", None)
     if film.layer_names:
         header[PREFIX + "layers"] = ",".join(film.layer_names)
+    if film.matte_kinds:
+        header[PREFIX + "mattes"] = ",".join(film.matte_kinds)
+        for kind in film.matte_kinds:
+            header.update(mattes.header_entries(kind, (manifest or {}).get(kind, ())))
     header["compression"] = OpenEXR.ZIP_COMPRESSION
     header["type"] = OpenEXR.scanlineimage
     channels = frame_channels(film)
@@ -198,7 +215,9 @@ def read_frame(path) -> tuple[Film, dict[str, str]]:
             header = dict(exr.header())
             names = str(header.get(PREFIX + "layers", "") or "")
             layer_names = tuple(x for x in names.split(",") if x)
+            kinds = tuple(x for x in str(header.get(PREFIX + "mattes", "") or "").split(",") if x)
             wanted = set(CHANNELS) | {c for x in layer_names for c in layer_channels(x)}
+            wanted |= {c for k in kinds for pair in mattes.rank_channels(mattes.layer_name(k)) for c in pair}
             planes = {name: (ch.type(), np.array(ch.pixels))  # other channels (denoised) ignored
                       for name, ch in exr.channels().items() if name in wanted}
     except Exception as err:  # the bindings raise RuntimeError or ValueError on damaged files
@@ -230,6 +249,9 @@ def read_frame(path) -> tuple[Film, dict[str, str]]:
         raise FrameFileError(f"{path}: non-finite values in the frame's float channels")
     n = planes["spp"][1].astype(np.float64)
     hits = planes["hits"][1].astype(np.float64)
+    if any(k not in mattes.MATTE_KINDS for k in kinds):
+        raise FrameFileError(f"{path}: unknown ID matte kind(s) in {PREFIX}mattes: {', '.join(kinds)}")
+    matte_ids, matte_cov = mattes.read_channels(planes, kinds, n, path)
     mean, var = get(BEAUTY), get(VARIANCE)
     n3 = n[..., None]
     film = Film(
@@ -245,5 +267,8 @@ def read_frame(path) -> tuple[Film, dict[str, str]]:
         dropped=planes["dropped"][1].astype(np.float64),
         layers=None if lay is None else np.ascontiguousarray(lay * n3[..., None]),
         layer_names=layer_names,
+        matte_ids=matte_ids,
+        matte_cov=matte_cov,
+        matte_kinds=kinds,
     )
     return film, attrs

@@ -12,6 +12,10 @@ Samples whose radiance was NaN or infinite are not in any sum; `dropped` counts 
 Layers (light-path layers and light groups, engine/layers.py): `layers` (h, w, K, 3) holds one
 Σ L per name of `layer_names`, merged like every other sum; a layer's mean is its sum / n. A film
 of a shot that keeps no layers has K = 0.
+
+ID mattes (engine/mattes.py): `matte_ids` and `matte_cov` (h, w, M, S) hold per pixel and kept
+kind (`matte_kinds`: object, material) S slots of (id, Σ coverage); an empty slot has id 0. They
+merge by id, not elementwise (`mattes.merge_slots`). A film of a shot that keeps none has M = 0.
 """
 
 from __future__ import annotations
@@ -24,14 +28,18 @@ import numpy as np
 
 from lampyr.errors import LampyrError
 
+from .mattes import MATTE_KINDS, MATTE_SLOTS, merge_slots
+
 # Rec. 709 / sRGB luminance weights: ITU-R BT.709-6 item 3.2 (E'Y = 0.2126 R + 0.7152 G +
 # 0.0722 B), the same as IEC 61966-2-1's Y row for linear sRGB (from memory).
 LUMA_709 = np.array([0.2126, 0.7152, 0.0722])
 
-FORMAT_VERSION = 2  # 2: layers and 32-bit transport; version 1 (float64, no layers) is still read
+FORMAT_VERSION = 3  # 2: layers and 32-bit transport; 3: ID mattes; versions 1 (float64, no
+# layers) and 2 (no ID mattes) are still read
 _MAGIC = b"LMPFILM\x00"
 _HEAD = struct.Struct("<8sHHII")  # magic, version, field count, h, w
 _HEAD2 = struct.Struct("<BH")  # version 2: bits per value (32 or 64), layer count
+_HEAD3 = struct.Struct("<BB")  # version 3: ID matte kind count, slots per kind
 _CRC = struct.Struct("<I")
 
 
@@ -57,6 +65,9 @@ class Film:
     dropped: np.ndarray  # (h, w) NaN / inf samples thrown away
     layers: np.ndarray | None = None  # (h, w, K, 3) Σ L per layer; None: zeros
     layer_names: tuple = ()  # the K layers' names, in order
+    matte_ids: np.ndarray | None = None  # (h, w, M, S) ids (float32 values); None: zeros
+    matte_cov: np.ndarray | None = None  # (h, w, M, S) Σ coverage of each id; None: zeros
+    matte_kinds: tuple = ()  # the M ID matte kinds (mattes.MATTE_KINDS), in order
 
     def __post_init__(self):
         if np.ndim(self.n) != 2:
@@ -73,6 +84,24 @@ class Film:
             raise FilmDataError("film.layers: expected a C-contiguous float64 array")
         if lay.shape != (h, w, len(names), 3):
             raise FilmDataError(f"film.layers: expected shape {(h, w, len(names), 3)}, got {lay.shape}")
+        kinds = tuple(self.matte_kinds)
+        if len(set(kinds)) != len(kinds) or not all(k in MATTE_KINDS for k in kinds):
+            raise FilmDataError(f"film.matte_kinds: expected distinct kinds among {MATTE_KINDS}, "
+                                f"got {kinds!r}")
+        object.__setattr__(self, "matte_kinds", kinds)
+        for name in ("matte_ids", "matte_cov"):
+            arr = getattr(self, name)
+            if arr is None:
+                object.__setattr__(self, name, np.zeros((h, w, len(kinds), MATTE_SLOTS)))
+                continue
+            if not isinstance(arr, np.ndarray) or arr.dtype != np.float64 or not arr.flags.c_contiguous:
+                raise FilmDataError(f"film.{name}: expected a C-contiguous float64 array")
+            if arr.ndim != 4 or arr.shape[:3] != (h, w, len(kinds)):
+                raise FilmDataError(f"film.{name}: expected shape {(h, w, len(kinds), MATTE_SLOTS)}, "
+                                    f"got {arr.shape}")
+        if self.matte_ids.shape != self.matte_cov.shape:
+            raise FilmDataError(f"film.matte_cov: expected the shape of matte_ids {self.matte_ids.shape}, "
+                                f"got {self.matte_cov.shape}")
         for name, arr in self._arrays():
             want = (h, w, 3) if name in RGB_FIELDS else (h, w)
             if not isinstance(arr, np.ndarray) or arr.dtype != np.float64:
@@ -87,10 +116,11 @@ class Film:
         return ((f, getattr(self, f)) for f in FIELDS)
 
     @classmethod
-    def zeros(cls, h: int, w: int, layer_names=()) -> Film:
-        """An empty film of h rows and w columns, with the named layers."""
+    def zeros(cls, h: int, w: int, layer_names=(), matte_kinds=()) -> Film:
+        """An empty film of h rows and w columns, with the named layers and ID matte kinds."""
         return cls(**{f: np.zeros((h, w, 3) if f in RGB_FIELDS else (h, w)) for f in FIELDS},
-                   layers=np.zeros((h, w, len(layer_names), 3)), layer_names=tuple(layer_names))
+                   layers=np.zeros((h, w, len(layer_names), 3)), layer_names=tuple(layer_names),
+                   matte_kinds=tuple(matte_kinds))
 
     @property
     def shape(self) -> tuple[int, int]:
@@ -99,7 +129,18 @@ class Film:
 
     def copy(self) -> Film:
         return Film(**{f: a.copy() for f, a in self._arrays()}, layers=self.layers.copy(),
-                    layer_names=self.layer_names)
+                    layer_names=self.layer_names, **self._mattes(self.matte_ids.copy(),
+                                                                 self.matte_cov.copy()))
+
+    def _mattes(self, ids, cov) -> dict:
+        return {"matte_ids": ids, "matte_cov": cov, "matte_kinds": self.matte_kinds}
+
+    def matte_coverage(self, kind: str, ident: float) -> np.ndarray:
+        """(h, w) the fraction of each pixel's samples whose first hit had the id `ident`
+        (mattes.name_id) in the ID matte `kind`; 0 where n == 0."""
+        m = self.matte_kinds.index(kind)
+        total = np.where(self.matte_ids[:, :, m] == ident, self.matte_cov[:, :, m], 0.0).sum(-1)
+        return _ratio(total, self.n)
 
     def layer_mean(self, name: str) -> np.ndarray:
         """(h, w, 3) mean of the layer `name` (its sum / n); 0 where n == 0."""
@@ -169,7 +210,8 @@ class Film:
         return _ratio(self.depth_sum, self.hits)
 
 
-FIELDS = tuple(f.name for f in fields(Film) if f.name not in ("layers", "layer_names"))
+FIELDS = tuple(f.name for f in fields(Film)
+               if f.name not in ("layers", "layer_names", "matte_ids", "matte_cov", "matte_kinds"))
 RGB_FIELDS = frozenset({"rgb_sum", "rgb_sq", "albedo_sum", "normal_sum"})
 
 
@@ -185,14 +227,20 @@ def merge(a: Film, b: Film) -> Film:
     if a.shape != b.shape:
         raise FilmDataError(f"cannot merge films of shapes {a.shape} and {b.shape}")
     _same_layers(a, b)
+    ids, cov = a.matte_ids, a.matte_cov
+    if a.matte_kinds:
+        ids, cov = merge_slots(a.matte_ids, a.matte_cov, b.matte_ids, b.matte_cov)
     return Film(**{f: getattr(a, f) + getattr(b, f) for f in FIELDS}, layers=a.layers + b.layers,
-                layer_names=a.layer_names)
+                layer_names=a.layer_names, **a._mattes(ids.copy(), cov.copy()))
 
 
 def _same_layers(a: Film, b: Film) -> None:
     if a.layer_names != b.layer_names:
         raise FilmDataError(f"cannot merge films with layers {list(a.layer_names)} and "
                             f"{list(b.layer_names)}")
+    if a.matte_kinds != b.matte_kinds or a.matte_ids.shape[-1] != b.matte_ids.shape[-1]:
+        raise FilmDataError(f"cannot merge films with ID mattes {list(a.matte_kinds)} and "
+                            f"{list(b.matte_kinds)}")
 
 
 def add_into(dst: Film, src: Film, y0: int, x0: int) -> None:
@@ -205,15 +253,22 @@ def add_into(dst: Film, src: Film, y0: int, x0: int) -> None:
     for f in FIELDS:
         getattr(dst, f)[y0:y0 + h, x0:x0 + w] += getattr(src, f)
     dst.layers[y0:y0 + h, x0:x0 + w] += src.layers
+    if dst.matte_kinds:
+        block = (slice(y0, y0 + h), slice(x0, x0 + w))
+        ids, cov = merge_slots(dst.matte_ids[block], dst.matte_cov[block], src.matte_ids, src.matte_cov)
+        dst.matte_ids[block] = ids
+        dst.matte_cov[block] = cov
 
 
 # -- bytes for transport (Redis) and the head's tile accumulators -------------------------------
 #
-# Layout (version 2), little-endian: magic "LMPFILM\0", u16 format version, u16 field count,
+# Layout (version 3), little-endian: magic "LMPFILM\0", u16 format version, u16 field count,
 # u32 h, u32 w, u8 bits per value (32 or 64), u16 layer count K, then K layer names (u8 length,
-# UTF-8), then every field of FIELDS in order and the layers (h, w, K, 3) as raw float32 or
-# float64 C-order, then a CRC-32 (zlib.crc32) of everything before it. Version 1 (no bits, no
-# layers, float64) is still read.
+# UTF-8), u8 ID matte kind count M, u8 slots per kind S, the M kinds' names (u8 length, UTF-8),
+# then every field of FIELDS in order, the layers (h, w, K, 3), the matte ids (h, w, M, S) and
+# coverages (h, w, M, S) as raw float32 or float64 C-order, then a CRC-32 (zlib.crc32) of
+# everything before it. Version 2 (no M, S, kinds or mattes) and version 1 (no bits, no layers,
+# float64) are still read. Ids are float32 values, exact in either width.
 #
 # Workers send 32 bits (a batch's sums need no more: the head merges in float64 and its tile
 # accumulators keep 64 bits, so long merges do not lose precision); the counts stay exact up to
@@ -221,8 +276,8 @@ def add_into(dst: Film, src: Film, y0: int, x0: int) -> None:
 
 
 def to_bytes(film: Film, bits: int = 64) -> bytes:
-    """The film as bytes: (17 + 3K) values per pixel of bits / 8 bytes each, plus a 23-byte
-    header, the layer names and a 4-byte checksum; see the layout above."""
+    """The film as bytes: (17 + 3K + 2MS) values per pixel of bits / 8 bytes each, plus a
+    25-byte header, the layer and kind names and a 4-byte checksum; see the layout above."""
     if bits not in (32, 64):
         raise ValueError(f"bits: 32 or 64, got {bits!r}")
     h, w = film.shape
@@ -230,14 +285,35 @@ def to_bytes(film: Film, bits: int = 64) -> bytes:
     parts = [_HEAD.pack(_MAGIC, FORMAT_VERSION, len(FIELDS), h, w),
              _HEAD2.pack(bits, len(film.layer_names))]
     for name in film.layer_names:
-        raw = name.encode()
-        if len(raw) > 255:
-            raise FilmDataError(f"film layer name too long: {name[:40]!r}...")
-        parts.append(bytes([len(raw)]) + raw)
+        parts.append(_name_bytes(name))
+    parts.append(_HEAD3.pack(len(film.matte_kinds), film.matte_ids.shape[3]))
+    parts += [_name_bytes(k) for k in film.matte_kinds]
     parts += [np.ascontiguousarray(a, dtype=dtype).tobytes() for _, a in film._arrays()]
-    parts.append(np.ascontiguousarray(film.layers, dtype=dtype).tobytes())
+    parts += [np.ascontiguousarray(a, dtype=dtype).tobytes()
+              for a in (film.layers, film.matte_ids, film.matte_cov)]
     body = b"".join(parts)
     return body + _CRC.pack(zlib.crc32(body))
+
+
+def _name_bytes(name: str) -> bytes:
+    raw = name.encode()
+    if len(raw) > 255:
+        raise FilmDataError(f"film layer name too long: {name[:40]!r}...")
+    return bytes([len(raw)]) + raw
+
+
+def _names(data: bytes, offset: int, count: int, what: str) -> tuple[list[str], int]:
+    names = []
+    for _ in range(count):
+        if offset >= len(data) - _CRC.size:
+            raise FilmDataError(f"film bytes: truncated {what} names")
+        size = data[offset]
+        try:
+            names.append(data[offset + 1:offset + 1 + size].decode())
+        except UnicodeDecodeError:
+            raise FilmDataError(f"film bytes: a {what} name is not UTF-8") from None
+        offset += 1 + size
+    return names, offset
 
 
 def from_bytes(data: bytes) -> Film:
@@ -249,13 +325,13 @@ def from_bytes(data: bytes) -> Film:
     magic, version, count, h, w = _HEAD.unpack_from(data)
     if magic != _MAGIC:
         raise FilmDataError("film bytes: not a lampyr film (bad magic)")
-    if version not in (1, FORMAT_VERSION) or count != len(FIELDS):
+    if version not in (1, 2, FORMAT_VERSION) or count != len(FIELDS):
         raise FilmDataError(f"film bytes: format version {version} with {count} fields; this "
-                            f"lampyr reads versions 1 and {FORMAT_VERSION} with {len(FIELDS)} fields")
+                            f"lampyr reads versions 1 to {FORMAT_VERSION} with {len(FIELDS)} fields")
     (crc,) = _CRC.unpack_from(data, len(data) - _CRC.size)
     if zlib.crc32(memoryview(data)[:-_CRC.size]) != crc:
         raise FilmDataError(f"film bytes: checksum mismatch in a {w}x{h} film (corrupted)")
-    offset, bits, names = _HEAD.size, 64, []
+    offset, bits, names, kinds, slots = _HEAD.size, 64, [], [], MATTE_SLOTS
     if version >= 2:
         if len(data) < offset + _HEAD2.size + _CRC.size:
             raise FilmDataError("film bytes: truncated header")
@@ -263,26 +339,25 @@ def from_bytes(data: bytes) -> Film:
         offset += _HEAD2.size
         if bits not in (32, 64):
             raise FilmDataError(f"film bytes: {bits} bits per value; expected 32 or 64")
-        for _ in range(k):
-            if offset >= len(data) - _CRC.size:
-                raise FilmDataError("film bytes: truncated layer names")
-            size = data[offset]
-            try:
-                names.append(data[offset + 1:offset + 1 + size].decode())
-            except UnicodeDecodeError:
-                raise FilmDataError("film bytes: a layer name is not UTF-8") from None
-            offset += 1 + size
+        names, offset = _names(data, offset, k, "layer")
+    if version >= 3:
+        if len(data) < offset + _HEAD3.size + _CRC.size:
+            raise FilmDataError("film bytes: truncated header")
+        m, slots = _HEAD3.unpack_from(data, offset)
+        kinds, offset = _names(data, offset + _HEAD3.size, m, "ID matte kind")
     width = bits // 8
     dtype = "<f4" if bits == 32 else "<f8"
-    sizes = [h * w * (3 if f in RGB_FIELDS else 1) for f in FIELDS] + [h * w * len(names) * 3]
+    sizes = [h * w * (3 if f in RGB_FIELDS else 1) for f in FIELDS] + [h * w * len(names) * 3] \
+        + [h * w * len(kinds) * slots] * 2
     want = offset + width * sum(sizes) + _CRC.size
     if len(data) != want:
         raise FilmDataError(f"film bytes: a {w}x{h} film takes {want} bytes, got {len(data)} "
                             "(truncated or padded)")
     arrays = {}
-    for f, size in zip(FIELDS + ("layers",), sizes):
+    for f, size in zip(FIELDS + ("layers", "matte_ids", "matte_cov"), sizes):
         flat = np.frombuffer(data, dtype=dtype, count=size, offset=offset)
-        shape = (h, w, len(names), 3) if f == "layers" else (h, w, 3) if f in RGB_FIELDS else (h, w)
+        shape = ((h, w, len(names), 3) if f == "layers" else (h, w, len(kinds), slots)
+                 if f.startswith("matte_") else (h, w, 3) if f in RGB_FIELDS else (h, w))
         arrays[f] = flat.astype(np.float64).reshape(shape)
         offset += width * size
-    return Film(**arrays, layer_names=tuple(names))
+    return Film(**arrays, layer_names=tuple(names), matte_kinds=tuple(kinds))

@@ -34,6 +34,7 @@ from numba import njit, prange
 from .bsdf import bsdf_eval, bsdf_sample, build_frame, has_nonspecular_lobe, needs_outward_normal
 from .camera import camera_ray
 from .layers import deposit, env_group, material_group, sampled_group, shares
+from .mattes import KIND_OBJECT, add_coverage
 from .lights import env_pdf, env_radiance, light_pdf, sample_light
 from .material_table import (
     M_ALPHA_CUTOFF, M_ALPHA_MODE, M_COLOR, M_DOUBLE_SIDED, M_EMISSION, M_THICKNESS, M_TRANSMISSION, M_TYPE,
@@ -151,7 +152,8 @@ def shadow_transmittance(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, sta
 @njit(cache=True)
 def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, rr_start,
                pixel, fx, fy, index, stack_top, stack, surf, rm, surf_shadow, rm_shadow, split, lay):
-    """One camera sample: (Lr, Lg, Lb, hit, albedo rgb, normal xyz, depth).
+    """One camera sample: (Lr, Lg, Lb, hit, albedo rgb, normal xyz, depth, the first hit's
+    instance and material row (-1 without a hit)).
 
     surf, surf_shadow (SURF_SIZE,) and rm, rm_shadow (MATERIAL_SIZE,) float64: scratch for the
     hit's surface and resolved material (surface.py), and the same for shadow rays' tests,
@@ -174,6 +176,8 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
     ar = ag = ab = 0.0
     anx = any_ = anz = 0.0
     depth = 0.0
+    inst0 = -1
+    mid0 = -1
     prev_pdf = 0.0
     prev_delta = True
     prev_x = ox
@@ -257,6 +261,8 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
             first_hit = True
             ar, ag, ab = rm[M_COLOR], rm[M_COLOR + 1], rm[M_COLOR + 2]
             depth = t
+            inst0 = inst
+            mid0 = mid
 
         # emission reached by the previous bounce's BSDF sample
         if rm[M_EMISSION] > 0.0 or rm[M_EMISSION + 1] > 0.0 or rm[M_EMISSION + 2] > 0.0:
@@ -425,20 +431,23 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
             bg /= q
             bb /= q
 
-    return lr, lg, lb, first_hit, ar, ag, ab, anx, any_, anz, depth
+    return lr, lg, lb, first_hit, ar, ag, ab, anx, any_, anz, depth, inst0, mid0
 
 
 @njit(cache=True, parallel=True)
 def render_tile(S, cam, aperture, width, height, frame, seed, mode, max_bounces, rr_start,
                 x0, y0, tile_w, tile_h, first, count,
                 n, rgb_sum, rgb_sq, alpha_sum, albedo_sum, normal_sum, depth_sum, hits, dropped,
-                split, slots, layers):
+                split, slots, layers, matte_src, inst_ids, mat_ids, matte_ids, matte_cov):
     """Add samples [first, first+count) of the tile's pixels into the given sums.
 
     The sums are (tile_h, tile_w[, 3]) float64 arrays (see film.Film); row 0 of the tile is
     image row y0. Rows run in parallel; every write is per pixel, so the result is the same bits
     for any thread count. split, slots: layers.layer_plan's; layers (tile_h, tile_w, K, 3) the
-    film's layer sums (K = 0 and split = 0 when the shot keeps none).
+    film's layer sums (K = 0 and split = 0 when the shot keeps none). matte_src (M,): per ID
+    matte kind, mattes.KIND_OBJECT (the first hit's instance's id from inst_ids) or KIND_MATERIAL
+    (its material row's from mat_ids); matte_ids, matte_cov (tile_h, tile_w, M, S) the film's
+    slots (mattes.add_coverage; M = 0 when the shot keeps none).
     """
     for ty in prange(tile_h):
         stack_top = np.empty(STACK_SIZE, np.int32)
@@ -455,7 +464,7 @@ def render_tile(S, cam, aperture, width, height, frame, seed, mode, max_bounces,
             for s in range(first, first + count):
                 if split:
                     lay[:, :] = 0.0
-                lr, lg, lb, hit, ar, ag, ab, nx, ny, nz, depth = trace_path(
+                lr, lg, lb, hit, ar, ag, ab, nx, ny, nz, depth, inst0, mid0 = trace_path(
                     S, cam, aperture, width, height, frame, seed, mode, max_bounces, rr_start,
                     pixel, float(x), float(y), s, stack_top, stack, surf, rm, surf_shadow, rm_shadow,
                     split, lay,
@@ -487,3 +496,6 @@ def render_tile(S, cam, aperture, width, height, frame, seed, mode, max_bounces,
                     normal_sum[ty, tx, 1] += ny
                     normal_sum[ty, tx, 2] += nz
                     depth_sum[ty, tx] += depth
+                    for m in range(matte_src.shape[0]):
+                        idv = inst_ids[inst0] if matte_src[m] == KIND_OBJECT else mat_ids[mid0]
+                        add_coverage(matte_ids, matte_cov, ty, tx, m, idv, 1.0)

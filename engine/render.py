@@ -9,11 +9,13 @@ from __future__ import annotations
 import time
 from dataclasses import dataclass
 
+import numpy as np
 
 from .compiler import Geometry, compile_frame, compile_geometry
 from .film import Film
 from .integrator import render_tile
 from .layers import layer_plan
+from .mattes import instance_ids, material_ids, matte_plan, matte_sources
 from .sampler import RANDOM, SOBOL
 
 SAMPLER_MODES = {"sobol": SOBOL, "random": RANDOM}
@@ -48,15 +50,21 @@ class FrameRenderer:
         self.scene, self.camera = compile_frame(shot, self.geometry, self.frame)
         # the layers the shot keeps (docs/shot-file.md, [output]): none unless asked for
         self.layer_names, self._slots, self._split = layer_plan(shot)
+        # the ID mattes it keeps (docs/shot-file.md, [output] id_mattes): none unless asked for
+        self.matte_kinds = matte_plan(shot)
+        self._matte_src = matte_sources(self.matte_kinds)
+        self._inst_ids = instance_ids(self.geometry) if self.matte_kinds else np.zeros(1)
+        self._mat_ids = material_ids(self.geometry) if self.matte_kinds else np.zeros(1)
 
     def render(self, tile: Tile, first: int, count: int, film: Film | None = None) -> Film:
         """Add samples [first, first + count) of every pixel in `tile` to `film` (new if None)."""
         shot = self.shot
         if film is None:
-            film = Film.zeros(tile.h, tile.w, self.layer_names)
-        elif film.layer_names != self.layer_names:
-            raise ValueError(f"film layers {list(film.layer_names)}; this shot keeps "
-                             f"{list(self.layer_names)}")
+            film = Film.zeros(tile.h, tile.w, self.layer_names, self.matte_kinds)
+        elif film.layer_names != self.layer_names or film.matte_kinds != self.matte_kinds:
+            raise ValueError(f"film layers {list(film.layer_names)} and ID mattes "
+                             f"{list(film.matte_kinds)}; this shot keeps {list(self.layer_names)} "
+                             f"and {list(self.matte_kinds)}")
         if count <= 0:
             return film
         render_tile(
@@ -65,6 +73,7 @@ class FrameRenderer:
             tile.x0, tile.y0, tile.w, tile.h, int(first), int(count),
             film.n, film.rgb_sum, film.rgb_sq, film.alpha_sum, film.albedo_sum, film.normal_sum,
             film.depth_sum, film.hits, film.dropped, self._split, self._slots, film.layers,
+            self._matte_src, self._inst_ids, self._mat_ids, film.matte_ids, film.matte_cov,
         )
         return film
 
@@ -77,7 +86,7 @@ def render_frame(shot, frame: int, first: int = 0, count: int | None = None,
     """
     count = shot.samples - first if count is None else count
     renderer = FrameRenderer(shot, frame, geometry)
-    film = Film.zeros(shot.height, shot.width, renderer.layer_names)
+    film = Film.zeros(shot.height, shot.width, renderer.layer_names, renderer.matte_kinds)
     for tile in tiles_for(shot.width, shot.height, tile_size):
         part = renderer.render(tile, first, count)
         film.add_into(part, tile.y0, tile.x0)

@@ -29,6 +29,7 @@ from .assets import resolve_asset
 from .bsdf import DIFFUSE, GLASS, METAL, PLASTIC, material_row
 from .gltf_animation import decompose_trs, world_matrices
 from .material_table import M_DOUBLE_SIDED, M_GROUP, M_METALLIC, M_TEX_NORMAL, M_TRANSMISSION, PBR, row_from_spec
+from .mattes import GLTF_DEFAULT, GREY_DEFAULT
 from .mesh_table import MeshTableBuilder
 from .scene_data import MaterialSpec, SceneData
 from .skinning import SPACE_WORLD, deformed_vertices, is_deforming
@@ -107,7 +108,8 @@ class Part:
 
     material: row for the whole instance, or -1 for the triangles' own; obj: the shot object
     that places it (its keys), or -1; node: the scene node that places it (its world matrix), or
-    -1; neither: placed where it is (identity). box: (2, 3) object-space bounds.
+    -1; neither: placed where it is (identity). box: (2, 3) object-space bounds. name: what its
+    object ID matte calls it (mattes.py): the shot object's name or the scene node's.
     """
 
     kind: int
@@ -117,6 +119,7 @@ class Part:
     sphere: tuple = (0.0, 0.0, 0.0, 0.0)
     obj: int = -1
     node: int = -1
+    name: str = ""
 
 
 @dataclass(eq=False)
@@ -131,6 +134,7 @@ class Assembly:
     tex_info: np.ndarray
     scene: SceneData | None
     deforming: list = field(default_factory=list)  # (node, material rows (F,)) rebuilt per frame
+    mat_names: tuple = ()  # the name of each row of mats (ID mattes, mattes.py)
 
 
 class _Tables:
@@ -138,6 +142,7 @@ class _Tables:
 
     def __init__(self, shot):
         self.rows = [shot_material_row(m) for m in shot.materials]
+        self.names = [m.name for m in shot.materials]  # one per row (ID mattes, mattes.py)
         for row, m in zip(self.rows, shot.materials):
             row[M_GROUP] = shot.group_index(m.group)  # the light group of its emission
         self.shot = shot
@@ -164,6 +169,7 @@ class _Tables:
                 out.append(self.by_name[spec.name])  # the shot's material of that name replaces it
                 continue
             self.rows.append(row_from_spec(spec, ref_row))
+            self.names.append(spec.name)
             self.rows[-1][M_GROUP] = self.shot.group_index(self.shot.scene_groups.get(spec.name))
             out.append(len(self.rows) - 1)
         out.append(self.default_row(gltf))
@@ -173,10 +179,12 @@ class _Tables:
         if gltf:
             if self._gltf_default is None:  # glTF 2.0 spec, 3.9.6: the default material
                 self.rows.append(row_from_spec(MaterialSpec("default"), None))
+                self.names.append(GLTF_DEFAULT)
                 self._gltf_default = len(self.rows) - 1
             return self._gltf_default
         if self._grey is None:
             self.rows.append(material_row(DIFFUSE, DEFAULT_GREY))
+            self.names.append(GREY_DEFAULT)
             self._grey = len(self.rows) - 1
         return self._grey
 
@@ -254,7 +262,8 @@ def assemble(shot, scene: SceneData | None, object_files: dict, texture_file=Non
         if obj.sphere is not None:
             (cx, cy, cz), r = obj.sphere.center, obj.sphere.radius
             box = np.array([[cx - r, cy - r, cz - r], [cx + r, cy + r, cz + r]], float)
-            parts.append(Part(KIND_SPHERE, -1, tables.by_name[obj.material], box, (cx, cy, cz, r), obj=oi))
+            parts.append(Part(KIND_SPHERE, -1, tables.by_name[obj.material], box, (cx, cy, cz, r), obj=oi,
+                              name=obj.name))
             continue
         sd = object_files[oi]
         gltf = Path(sd.path).suffix.lower() in GLTF_EXTENSIONS
@@ -277,7 +286,7 @@ def assemble(shot, scene: SceneData | None, object_files: dict, texture_file=Non
                 if mirrored:
                     arrays = _reversed(arrays)
             m = builder.add(*arrays)
-            parts.append(Part(KIND_MESH, m, override, _box(arrays[0]), obj=oi))
+            parts.append(Part(KIND_MESH, m, override, _box(arrays[0]), obj=oi, name=obj.name))
 
     if scene is not None:
         mat_rows = tables.file_materials(scene, True)
@@ -297,13 +306,13 @@ def assemble(shot, scene: SceneData | None, object_files: dict, texture_file=Non
                 pos, nrm, tan, mirrored = _placed(mesh, rest[node])
                 arrays = _mesh_arrays(mesh, mat_rows, tables.rows, tables.texrefs, pos, nrm, tan)
                 m = builder.add(*(_reversed(arrays) if mirrored else arrays))
-                parts.append(Part(KIND_MESH, m, -1, _box(arrays[0])))  # placed where it is
+                parts.append(Part(KIND_MESH, m, -1, _box(arrays[0]), name=spec.name))  # placed where it is
                 continue
             if spec.mesh not in mesh_index:
                 arrays = _mesh_arrays(mesh, mat_rows, tables.rows, tables.texrefs)
                 mesh_index[spec.mesh] = builder.add(*arrays)
             m = mesh_index[spec.mesh]
-            parts.append(Part(KIND_MESH, m, -1, _box(mesh.positions), node=node))
+            parts.append(Part(KIND_MESH, m, -1, _box(mesh.positions), node=node, name=spec.name))
 
     if texture_file is None:
         tex_pixels, tex_info = pack_images(tables.images)
@@ -318,7 +327,7 @@ def assemble(shot, scene: SceneData | None, object_files: dict, texture_file=Non
     return Assembly(
         meshes=builder, parts=parts, mats=np.ascontiguousarray(np.array(tables.rows, np.float64)),
         texrefs=np.ascontiguousarray(texrefs), tex_pixels=tex_pixels, tex_info=tex_info, scene=scene,
-        deforming=deforming,
+        deforming=deforming, mat_names=tuple(tables.names),
     )
 
 

@@ -39,6 +39,7 @@ _NAME = re.compile(r"[A-Za-z0-9_][A-Za-z0-9_.-]{0,99}")
 _GROUP = re.compile(r"[A-Za-z0-9_]{1,40}")  # a light group's name: a layer name group_<NAME>
 LAYERS = ("diffuse_direct", "diffuse_indirect", "specular_direct", "specular_indirect",
           "transmission", "emission", "background")  # engine/layers.py, LAYER_NAMES
+ID_MATTES = ("object", "material")  # engine/mattes.py, MATTE_KINDS
 _LABEL = re.compile(r"[A-Za-z0-9_.-]([A-Za-z0-9 _.-]{0,62}[A-Za-z0-9_.-])?")
 _MISSING = object()
 
@@ -313,6 +314,7 @@ class Shot:
     layers: tuple = ()  # [output] layers: light-path layers kept (names of LAYERS)
     light_groups: bool = False  # [output] light_groups: a layer per light group
     scene_groups: dict = field(default_factory=dict)  # [output] groups: scene file's light or material → group
+    id_mattes: tuple = ()  # [output] id_mattes: ID matte kinds kept (names of ID_MATTES)
     path: Path | None = None
     root: Path | None = None
     raw: dict = field(default_factory=dict, repr=False)
@@ -490,6 +492,16 @@ def _layer_list(v, key):
           bad[0] if bad else v)
 
 
+def _matte_list(v, key):
+    if isinstance(v, list) and all(isinstance(x, str) and x in ID_MATTES for x in v) and len(set(v)) == len(v):
+        return tuple(v)
+    bad = [x for x in v if not (isinstance(x, str) and x in ID_MATTES)] if isinstance(v, list) else None
+    if isinstance(v, list) and not bad:
+        _fail(key, f"a list of distinct ID matte kinds among {', '.join(ID_MATTES)}",
+              _Text(f'"{next(x for x in v if v.count(x) > 1)}" twice'))
+    _fail(key, f"a list of distinct ID matte kinds among {', '.join(ID_MATTES)}", bad[0] if bad else v)
+
+
 def _scene_groups(v, key):
     if not isinstance(v, dict):
         _fail(key, 'a table of scene-file light or material names and their light groups '
@@ -625,7 +637,8 @@ def parse_shot(data: dict, root=None, path=None) -> Shot:
     environment = _environment(_Table(data.get("environment", {}), "environment",
                                       {"color", "map", "strength", "rotate", "group"}), root)
 
-    output = _Table(data.get("output", {}), "output", {"denoise", "layers", "light_groups", "groups"},
+    output = _Table(data.get("output", {}), "output", {"denoise", "layers", "light_groups", "groups",
+                                                     "id_mattes"},
                     "a table [output]")
     mat_data = top.array("material", "an array of tables ([[material]] blocks)")
     materials = tuple(_material(_Table(d, label, {"name", "type", "color", "roughness", "ior", "emission",
@@ -656,6 +669,7 @@ def parse_shot(data: dict, root=None, path=None) -> Shot:
         layers=output.get("layers", _layer_list, ()),
         light_groups=output.get("light_groups", _boolean, False),
         scene_groups=output.get("groups", _scene_groups, {}),
+        id_mattes=output.get("id_mattes", _matte_list, ()),
         time_zero=top.get("time_zero", number("a frame number (may be negative or fractional)"), None),
         scene_light_scale=top.get("scene_light_scale", number("a multiplier >= 0", 0), 1.0),
         path=None if path is None else Path(path), root=None if root is None else Path(root),

@@ -71,6 +71,7 @@ class JobRun:
         self.pending: deque = deque()
         self.started = time.time()
         self.samples_merged = 0  # pixel-samples merged by this head process (for the rate)
+        self._manifest = None  # the names of the shot's ID mattes, read at the first frame write
         self.replan()
 
     def replan(self) -> None:
@@ -186,16 +187,20 @@ class JobRun:
         """The one writer of frame files: the tiles' films assembled (missing tiles empty)."""
         from ..engine.film import Film
         from ..engine.layers import layer_plan
+        from ..engine.mattes import manifest, matte_plan
         from ..frames import write_frame_files
 
         level, total = self.frame_totals(frame)
-        film = Film.zeros(self.shot.height, self.shot.width, layer_plan(self.shot)[0])
+        kinds = matte_plan(self.shot)
+        film = Film.zeros(self.shot.height, self.shot.width, layer_plan(self.shot)[0], kinds)
         for i, t in enumerate(self.tiles):
             acc = TileAccumulator.load(self.folder.tile(frame, i), t.w, t.h)
             if acc.film is not None:
                 film.add_into(acc.film, t.y0, t.x0)
+        if kinds and self._manifest is None:  # the names of the ID mattes: read once per job
+            self._manifest = manifest(self.shot)
         path = write_frame_files(Path(self.rec.out), self.shot, frame, film,
-                                 self.seconds.get(frame, 0.0), final=final)
+                                 self.seconds.get(frame, 0.0), final=final, manifest=self._manifest)
         self.written[frame] = level
         self.written_sum[frame] = total
         self.due.pop(frame, None)

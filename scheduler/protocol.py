@@ -25,7 +25,7 @@ Redis keys (prefix `lampyr:`):
 | `inflight` | hash | head | batch id → current ticket |
 | `attempts` | hash | worker | batch id → starts so far (lampyr's own attempt counter) |
 | `lease:<batch>` | string, TTL | worker | `<worker>:<ticket>` while a worker renders the batch |
-| `result:<batch>:<ticket>` | string, TTL | worker | the batch's film as bytes (`engine.film.to_bytes`, 32 bits per value, with the shot's layers) |
+| `result:<batch>:<ticket>` | string, TTL | worker | the batch's film as bytes (`engine.film.to_bytes`, 32 bits per value, with the shot's layers and ID matte slots) |
 | `results` | list | worker | JSON notices: a result is ready, a batch was handed back part-way (`partial`, with `done`), or it raised |
 | `results:processing` | list | head | notices being merged (kept until the merge is on disk) |
 | `results:aside` | list | head | JSON `{"notice", "reason", "at"}`: notices the head could not read, set aside |
@@ -47,10 +47,11 @@ from dataclasses import asdict, dataclass
 
 from ..errors import LampyrError
 
-PROTOCOL_VERSION = 5  # 2: `partial` result notices; 3: scenes as `scene:`/`blob:` keys, no bundles;
+PROTOCOL_VERSION = 6  # 2: `partial` result notices; 3: scenes as `scene:`/`blob:` keys, no bundles;
 # 4: the environment map's `rotate` turns by the right-hand rule (a version-3 worker turns it the
 # other way, so its samples must not be merged with a version-4 worker's); 5: results are film
-# bytes of format 2 (float32 values, the shot's light-path layers and light groups)
+# bytes of format 2 (float32 values, the shot's light-path layers and light groups); 6: film
+# bytes of format 3 (with the shot's ID matte slots)
 TASK_RENDER = "lampyr.render_batch"
 QUEUE = "lampyr"
 PREFIX = "lampyr:"

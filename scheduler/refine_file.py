@@ -50,7 +50,11 @@ def refine_frame_file(path: Path, shot_path: Path, samples: int, noise: float | 
                              f"and {shot_path} asks for [{', '.join(renderer.layer_names)}]; refine "
                              "with the shot file the frame was rendered from ([output] layers, "
                              "light_groups)")
-    extra = Film.zeros(h, w, renderer.layer_names)
+    if renderer.matte_kinds != film.matte_kinds:
+        raise FrameFileError(f"{path}: the frame holds the ID mattes [{', '.join(film.matte_kinds)}] "
+                             f"and {shot_path} asks for [{', '.join(renderer.matte_kinds)}]; refine "
+                             "with the shot file the frame was rendered from ([output] id_mattes)")
+    extra = Film.zeros(h, w, renderer.layer_names, renderer.matte_kinds)
     refined = 0
     tiles = tiles_for(w, h, tile_size)
     start = time.perf_counter()
@@ -82,7 +86,9 @@ def refine_frame_file(path: Path, shot_path: Path, samples: int, noise: float | 
             from ..engine.denoise import denoise_film
 
             denoised = denoise_film(merged)
-        write_frame(path, merged, attrs, denoised)
+        from ..engine.mattes import manifest
+
+        write_frame(path, merged, attrs, denoised, manifest(shot))
         from ..engine.preview import write_preview
 
         write_preview(path.with_suffix(".png"), merged if denoised is None else denoised)

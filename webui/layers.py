@@ -46,6 +46,8 @@ COLOUR_FIXED = ("beauty", "denoised", "albedo")
 DATA_LAYERS = ("normal", "depth", "variance")
 # channel-name prefixes of the frame's own channels: not offered as extra colour layers
 OWN_PREFIXES = ("var", "albedo", "denoised", "N")
+# ID matte layers (engine/mattes.py: matte_<kind>00, 01, ...) hold ids and coverages, not colours
+MATTE_LAYER = re.compile(r"matte_[a-z]+[0-9]{2}")
 REC709 = (0.2126, 0.7152, 0.0722)  # ITU-R BT.709 luminance weights
 VARIANCE_PERCENTILE = 99.0
 THUMB_WIDTH = 96  # px: the strip's cells are about this wide
@@ -82,7 +84,7 @@ def layers_from_channels(names) -> list[str]:
                    key=lambda layer: (layer.startswith("group_"), layer))
     for layer in extra:
         if (layer not in OWN_PREFIXES and layer not in COLOUR_FIXED + DATA_LAYERS
-                and LAYER_NAME.fullmatch(layer) and has(*(f"{layer}.{c}" for c in "RGB"))):
+                and not MATTE_LAYER.fullmatch(layer) and LAYER_NAME.fullmatch(layer) and has(*(f"{layer}.{c}" for c in "RGB"))):
             out.append(layer)
     if has("albedo.R", "albedo.G", "albedo.B"):
         out.append("albedo")

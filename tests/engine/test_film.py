@@ -223,12 +223,14 @@ def test_bytes_round_trip_exactly(smp):
 
 def test_bytes_hold_the_sums_and_little_more():
     # 17 values per pixel (5 counts and scalar sums + 4 colours), float64 for the head's disk and
-    # float32 on the wire, a 23-byte header and a 4-byte CRC (docs/design.md, film bytes)
-    assert len(to_bytes(Film.zeros(7, 9))) == 7 * 9 * 17 * 8 + 23 + 4
-    assert len(to_bytes(Film.zeros(7, 9), bits=32)) == 7 * 9 * 17 * 4 + 23 + 4
+    # float32 on the wire, a 25-byte header and a 4-byte CRC (docs/design.md, film bytes)
+    assert len(to_bytes(Film.zeros(7, 9))) == 7 * 9 * 17 * 8 + 25 + 4
+    assert len(to_bytes(Film.zeros(7, 9), bits=32)) == 7 * 9 * 17 * 4 + 25 + 4
     # each layer adds 3 values per pixel and its name (a length byte and the UTF-8 bytes)
     names = ("diffuse_direct", "group_key")
-    assert len(to_bytes(Film.zeros(7, 9, names))) == 7 * 9 * 23 * 8 + 23 + 15 + 10 + 4
+    assert len(to_bytes(Film.zeros(7, 9, names))) == 7 * 9 * 23 * 8 + 25 + 15 + 10 + 4
+    # each ID matte kind adds 8 (id, coverage) slots per pixel and its name
+    assert len(to_bytes(Film.zeros(7, 9, (), ("object",)))) == 7 * 9 * 33 * 8 + 25 + 7 + 4
 
 
 def test_float32_bytes_round_the_sums_to_float32(smp):
@@ -253,6 +255,23 @@ def test_version_1_bytes_are_still_read(smp):
     body += b"".join(np.ascontiguousarray(getattr(film, f), dtype="<f8").tobytes() for f in FIELDS)
     back = from_bytes(body + struct.pack("<I", zlib.crc32(body)))
     assert fields_equal(back, film) and back.layer_names == ()
+
+
+def test_version_2_bytes_are_still_read(smp):
+    # the format before ID mattes (bits and layers, no matte kinds or slots): tile accumulators
+    # written by an older head
+    import struct
+    import zlib
+
+    film = accumulate(smp)
+    h, w = film.shape
+    body = struct.pack("<8sHHII", b"LMPFILM\x00", 2, len(FIELDS), h, w) + struct.pack("<BH", 64, 1)
+    body += bytes([len(b"emission")]) + b"emission"
+    body += b"".join(np.ascontiguousarray(getattr(film, f), dtype="<f8").tobytes() for f in FIELDS)
+    body += np.full((h, w, 1, 3), 0.5).tobytes()
+    back = from_bytes(body + struct.pack("<I", zlib.crc32(body)))
+    assert fields_equal(back, film) and back.layer_names == ("emission",)
+    assert np.all(back.layers == 0.5) and back.matte_kinds == ()
 
 
 def _corrupt(kind: str, data: bytes) -> bytes:

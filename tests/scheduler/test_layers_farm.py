@@ -54,7 +54,7 @@ def test_results_travel_as_float32_with_their_layers(tiny_shot):
     assert k == 10  # seven classes, group_other, group_key, group_sky
     names = sum(1 + len(n) for n in whole.layer_names)
     for bits in (32, 64):
-        assert len(to_bytes(whole, bits=bits)) == 23 + names + 16 * 12 * (17 + 3 * k) * bits // 8 + 4
+        assert len(to_bytes(whole, bits=bits)) == 25 + names + 16 * 12 * (17 + 3 * k) * bits // 8 + 4
     merged = merge(*halves)
     assert merged.layer_names == whole.layer_names
     _close(merged.layers, whole.layers)
