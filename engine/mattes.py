@@ -241,20 +241,62 @@ def rank(ids: np.ndarray, cov: np.ndarray, keep: int):
 
 
 def merge_slots(ids_a, cov_a, ids_b, cov_b):
-    """The slots of a and b merged: coverage added by id, the largest kept (`rank`). Arrays
-    (..., S); a given id appears at most once in each input's last axis."""
-    keep = ids_a.shape[-1]
-    cov_a = cov_a.copy()
-    ids_b = ids_b.copy()
-    cov_b = cov_b.copy()
-    for j in range(ids_b.shape[-1]):
-        bj = ids_b[..., j:j + 1]
-        same = (ids_a == bj) & (bj != 0.0)
-        cov_a += np.where(same, cov_b[..., j:j + 1], 0.0)
-        found = same.any(axis=-1)
-        ids_b[..., j][found] = 0.0
-        cov_b[..., j][found] = 0.0
-    return rank(np.concatenate([ids_a, ids_b], -1), np.concatenate([cov_a, cov_b], -1), keep)
+    """The slots of a and b merged: coverage added by id, the largest kept as `rank` orders
+    them. Arrays (..., S) float64 (b may have another S); a given id appears at most once in each
+    input's last axis. Returns new C-contiguous (ids, cov) of a's shape."""
+    shape = ids_a.shape
+    out_ids = np.zeros(shape)
+    out_cov = np.zeros(shape)
+    if ids_a.size:
+        _merge_pixels(np.ascontiguousarray(ids_a).reshape(-1, shape[-1]),
+                      np.ascontiguousarray(cov_a).reshape(-1, shape[-1]),
+                      np.ascontiguousarray(ids_b).reshape(-1, ids_b.shape[-1]),
+                      np.ascontiguousarray(cov_b).reshape(-1, ids_b.shape[-1]),
+                      out_ids.reshape(-1, shape[-1]), out_cov.reshape(-1, shape[-1]))
+    return out_ids, out_cov
+
+
+@njit(cache=True)
+def _merge_pixels(ids_a, cov_a, ids_b, cov_b, out_ids, out_cov):
+    """merge_slots per row (a pixel and kind): gather a's entries, add b's by id, sort by
+    coverage (largest first, then by id), keep the first S."""
+    keep = ids_a.shape[1]
+    ids = np.empty(keep + ids_b.shape[1])
+    cov = np.empty(keep + ids_b.shape[1])
+    for p in range(ids_a.shape[0]):
+        k = 0
+        for s in range(keep):
+            if ids_a[p, s] != 0.0 and cov_a[p, s] > 0.0:
+                ids[k] = ids_a[p, s]
+                cov[k] = cov_a[p, s]
+                k += 1
+        for s in range(ids_b.shape[1]):
+            i = ids_b[p, s]
+            c = cov_b[p, s]
+            if i == 0.0 or not c > 0.0:
+                continue
+            q = 0
+            while q < k and ids[q] != i:
+                q += 1
+            if q < k:
+                cov[q] += c
+            else:
+                ids[k] = i
+                cov[k] = c
+                k += 1
+        for q in range(1, k):  # insertion sort: k is at most a few dozen
+            ci = ids[q]
+            cc = cov[q]
+            r = q - 1
+            while r >= 0 and (cov[r] < cc or (cov[r] == cc and ids[r] > ci)):
+                ids[r + 1] = ids[r]
+                cov[r + 1] = cov[r]
+                r -= 1
+            ids[r + 1] = ci
+            cov[r + 1] = cc
+        for s in range(min(k, keep)):
+            out_ids[p, s] = ids[s]
+            out_cov[p, s] = cov[s]
 
 
 def reference_merge(pairs_a, pairs_b, keep: int = MATTE_SLOTS):
