@@ -227,11 +227,11 @@ def merge(a: Film, b: Film) -> Film:
     if a.shape != b.shape:
         raise FilmDataError(f"cannot merge films of shapes {a.shape} and {b.shape}")
     _same_layers(a, b)
-    ids, cov = a.matte_ids, a.matte_cov
+    ids, cov = a.matte_ids.copy(), a.matte_cov.copy()
     if a.matte_kinds:
         ids, cov = merge_slots(a.matte_ids, a.matte_cov, b.matte_ids, b.matte_cov)
     return Film(**{f: getattr(a, f) + getattr(b, f) for f in FIELDS}, layers=a.layers + b.layers,
-                layer_names=a.layer_names, **a._mattes(ids.copy(), cov.copy()))
+                layer_names=a.layer_names, **a._mattes(ids, cov))
 
 
 def _same_layers(a: Film, b: Film) -> None:

@@ -223,21 +223,13 @@ def reference_coverage(sample_ids, slots: int = MATTE_SLOTS):
     return np.array(ids), np.array(cov)
 
 
-def _take(a, order):
-    return np.take_along_axis(a, order, axis=-1)
-
-
 def rank(ids: np.ndarray, cov: np.ndarray, keep: int):
     """(ids, cov) with the last axis ordered by coverage, largest first (equal coverage: smaller
-    id first), empty slots (id 0 or no coverage) last as zeros, cut to `keep` entries."""
-    empty = (ids == 0.0) | ~(cov > 0.0)
-    ids = np.where(empty, 0.0, ids)
-    cov = np.where(empty, 0.0, cov)
-    order = np.argsort(ids, axis=-1, kind="stable")
-    ids, cov = _take(ids, order), _take(cov, order)
-    order = np.argsort(-cov, axis=-1, kind="stable")
-    return (np.ascontiguousarray(_take(ids, order)[..., :keep]),
-            np.ascontiguousarray(_take(cov, order)[..., :keep]))
+    id first), empty slots (id 0 or no coverage) last as zeros, cut to `keep` entries: a merge
+    with nothing."""
+    nothing = np.zeros(ids.shape[:-1] + (0,))
+    ids, cov = merge_slots(ids, cov, nothing, nothing)
+    return np.ascontiguousarray(ids[..., :keep]), np.ascontiguousarray(cov[..., :keep])
 
 
 def merge_slots(ids_a, cov_a, ids_b, cov_b):
@@ -248,11 +240,13 @@ def merge_slots(ids_a, cov_a, ids_b, cov_b):
     out_ids = np.zeros(shape)
     out_cov = np.zeros(shape)
     if ids_a.size:
-        _merge_pixels(np.ascontiguousarray(ids_a).reshape(-1, shape[-1]),
-                      np.ascontiguousarray(cov_a).reshape(-1, shape[-1]),
-                      np.ascontiguousarray(ids_b).reshape(-1, ids_b.shape[-1]),
-                      np.ascontiguousarray(cov_b).reshape(-1, ids_b.shape[-1]),
-                      out_ids.reshape(-1, shape[-1]), out_cov.reshape(-1, shape[-1]))
+        rows = ids_a.size // shape[-1]
+        sa, sb = (rows, shape[-1]), (rows, ids_b.shape[-1])
+        _merge_pixels(np.ascontiguousarray(ids_a, np.float64).reshape(sa),
+                      np.ascontiguousarray(cov_a, np.float64).reshape(sa),
+                      np.ascontiguousarray(ids_b, np.float64).reshape(sb),
+                      np.ascontiguousarray(cov_b, np.float64).reshape(sb),
+                      out_ids.reshape(sa), out_cov.reshape(sa))
     return out_ids, out_cov
 
 

@@ -495,3 +495,19 @@ def test_no_mattes_by_default(tmp_path):
     assert shot.id_mattes == ()
     film = render_frame(shot, 1)
     assert film.matte_kinds == () and film.matte_ids.shape == (3, 4, 0, 8)
+
+
+def test_the_web_page_does_not_offer_matte_channel_sets_as_colour_layers(tmp_path):
+    # webui/layers.py finds colour layers by their .R/.G/.B channels; a matte set has them too,
+    # but holds ids and coverages
+    from lampyr.engine.exr import write_frame
+    from lampyr.engine.render import render_frame
+    from lampyr.webui.layers import channel_names, layers_from_channels
+
+    shot = _two(tmp_path, samples=2)
+    path = tmp_path / "two.0001.exr"
+    write_frame(path, render_frame(shot, 1), {"frame": 1})
+    names = channel_names(path)
+    assert "matte_object00.R" in names and "matte_material02.A" in names
+    offered = layers_from_channels(names)
+    assert "beauty" in offered and not any(x.startswith("matte_") for x in offered)
