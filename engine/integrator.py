@@ -31,6 +31,7 @@ import math
 import numpy as np
 from numba import njit, prange
 
+from .borrowing import borrowing
 from .bsdf import bsdf_eval, bsdf_sample, build_frame, has_nonspecular_lobe, needs_outward_normal
 from .camera import camera_ray
 from .layers import deposit, env_group, material_group, sampled_group, shares
@@ -93,7 +94,7 @@ def _thin(rm):
     return rm[M_TYPE] == PBR and rm[M_TRANSMISSION] > 0.0 and rm[M_THICKNESS] <= 0.0
 
 
-@njit(cache=True)
+@borrowing()
 def shadow_transmittance(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack, surf, rm):
     """(tr, tg, tb): the fraction of light that travels from o along unit d over (0, tmax).
 
@@ -149,7 +150,7 @@ def shadow_transmittance(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, sta
     return 0.0, 0.0, 0.0
 
 
-@njit(cache=True)
+@borrowing()
 def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, rr_start,
                pixel, fx, fy, index, stack_top, stack, surf, rm, surf_shadow, rm_shadow, split, lay):
     """One camera sample: (Lr, Lg, Lb, hit, albedo rgb, normal xyz, depth, the first hit's

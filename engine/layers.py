@@ -30,6 +30,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
+from .borrowing import borrowing
 from .fresnel import diffuse_fresnel, fresnel_dielectric
 from .lights import _light_material, _search
 from .lobes import ROUGH_COAT_BASE, SMOOTH_ROUGHNESS
@@ -120,7 +121,7 @@ def material_group(S, mid):
     return int(S.mats[mid, M_GROUP])
 
 
-@njit(cache=True)
+@borrowing()
 def sampled_group(S, u_sel):
     """The light group of the light `lights.sample_light` picks with the number u_sel (the same
     choice, made again)."""

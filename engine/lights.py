@@ -25,6 +25,7 @@ import math
 import numpy as np
 from numba import njit
 
+from .borrowing import borrowing
 from .material_table import M_EMISSION
 from .punctual import sample_punctual
 from .scene import KIND_SPHERE, point_to_world, tri_corners
@@ -64,7 +65,7 @@ def _env_pixel(S, dx, dy, dz):
     return row, col, math.sin(theta)
 
 
-@njit(cache=True)
+@borrowing()
 def env_radiance(S, dx, dy, dz):
     """Radiance arriving from direction d (unit) out of the environment: 3 floats."""
     if S.env_params[0] == 0.0:
@@ -76,7 +77,7 @@ def env_radiance(S, dx, dy, dz):
     return px[0] * k, px[1] * k, px[2] * k
 
 
-@njit(cache=True)
+@borrowing()
 def env_pdf(S, dx, dy, dz):
     """Solid-angle pdf of sampling direction d from the environment (choice excluded)."""
     if S.env_params[0] == 0.0:
@@ -92,7 +93,7 @@ def env_pdf(S, dx, dy, dz):
     return p_row * p_col * w * h / (2.0 * math.pi * math.pi * sin_t)
 
 
-@njit(cache=True)
+@borrowing()
 def env_sample(S, u1, u2):
     """A direction from the environment: (dx, dy, dz, pdf) with pdf in solid angle."""
     if S.env_params[0] == 0.0:
@@ -194,7 +195,7 @@ def sphere_solid_pdf(cx, cy, cz, r, px, py, pz, qx, qy, qz, nx, ny, nz):
     return _area_to_solid(px, py, pz, qx, qy, qz, nx, ny, nz, 4.0 * math.pi * r * r)
 
 
-@njit(cache=True)
+@borrowing()
 def light_pdf(S, inst, k, px, py, pz, qx, qy, qz, nx, ny, nz, time_u):
     """Pdf (solid angle at p, choice included) that NEE picks point q (normal n) on inst."""
     base = S.inst_light_base[inst]
@@ -231,7 +232,7 @@ def _light_material(S, inst, k):
     return S.tri_mat[k]
 
 
-@njit(cache=True)
+@borrowing()
 def sample_light(S, px, py, pz, time_u, u_sel, u1, u2):
     """Pick a light and a point on it as seen from p.
 

@@ -22,6 +22,7 @@ from typing import NamedTuple
 import numpy as np
 from numba import njit
 
+from .borrowing import borrowing
 from .intersect import ray_box, ray_sphere
 from .transforms import placement_at, quat_rotate
 from .wide_bvh import intersect_wide, intersect_wide_at, occluded_wide, occluded_wide_at
@@ -146,7 +147,7 @@ def point_to_world(motion, moving, time_u, px, py, pz):
     return wx + tx, wy + ty, wz + tz
 
 
-@njit(cache=True)
+@borrowing()
 def intersect_instance(S, i, ox, oy, oz, dx, dy, dz, tmax, time_u, stack):
     """Closest hit of a world ray with instance i: (t, k, u, v); k = -1 on a miss.
 
@@ -182,7 +183,7 @@ def _skips(S, i, visit):
     return (S.inst_passable[i] == 1) == (visit == VISIT_SOLID)
 
 
-@njit(cache=True)
+@borrowing()
 def intersect_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack, visit=VISIT_ALL):
     """Closest hit in the scene: (t, instance, k, u, v); instance = -1 on a miss.
 
@@ -234,7 +235,7 @@ def intersect_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack, v
     return best_t, best_i, best_k, best_u, best_v
 
 
-@njit(cache=True)
+@borrowing()
 def occluded_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack, visit=VISIT_ALL):
     """True if anything lies on the ray strictly before tmax (shadow rays; early exit);
     visit: which instances to test (VISIT_*)."""

@@ -27,6 +27,7 @@ import math
 import numpy as np
 from numba import njit
 
+from .borrowing import borrowing
 from .material_table import (
     M_ALPHA, M_ALPHA_CUTOFF, M_ALPHA_MODE, M_CLEARCOAT, M_CLEARCOAT_ROUGHNESS, M_COLOR, M_EMISSION, M_METALLIC,
     M_ROUGHNESS, M_SPECULAR, M_SPECULAR_COLOR, M_TEX_BASE, M_TEX_CLEARCOAT, M_TEX_CLEARCOAT_ROUGHNESS, M_TEX_EMISSIVE,
@@ -59,7 +60,7 @@ def hit_material(S, inst, k):
     return S.tri_mat[k]
 
 
-@njit(cache=True)
+@borrowing()
 def hit_surface(S, inst, k, u, v, px, py, pz, time_u, surf):
     """Fill `surf` for the hit (instance inst, triangle k, barycentrics u, v) at world point p."""
     motion = S.inst_motion[inst]
@@ -154,7 +155,7 @@ def _scale(S, row, tex_col, channel, rm, col, surf):
         rm[col] *= _texture(S, ref, surf)[channel]
 
 
-@njit(cache=True)
+@borrowing()
 def resolve_material(S, mid, surf, rm):
     """Copy material row `mid` into `rm` with its textures applied; returns the coverage alpha
     (base colour alpha × factor; 1 for the legacy types)."""
@@ -187,7 +188,7 @@ def resolve_material(S, mid, surf, rm):
     return alpha
 
 
-@njit(cache=True)
+@borrowing()
 def apply_normal_map(S, row, surf):
     """Bend the shading normal in `surf` by the material's normal map, if it has one and the
     mesh has UVs and tangents (glTF 2.0 section 3.9.3)."""
@@ -220,7 +221,7 @@ def apply_normal_map(S, row, surf):
         surf[SF_NS], surf[SF_NS + 1], surf[SF_NS + 2] = ox / on, oy / on, oz / on
 
 
-@njit(cache=True)
+@borrowing()
 def lifted_origin(S, inst, k, u, v, px, py, pz, time_u):
     """The world point on the smooth surface the vertex normals describe, above the flat hit p
     (Hanika 2021; see the module docstring). p itself for spheres and meshes without normals."""
@@ -250,7 +251,7 @@ def lifted_origin(S, inst, k, u, v, px, py, pz, time_u):
     return point_to_world(S.inst_motion[inst], S.inst_moving[inst], time_u, ox, oy, oz)
 
 
-@njit(cache=True)
+@borrowing()
 def emission_at(S, mid, inst, k, u, v):
     """Emitted radiance (r, g, b) of material row `mid` at barycentrics (u, v) of triangle k of
     instance inst (k < 0: a sphere): the factor, times the emissive texture where there is one."""
@@ -291,7 +292,7 @@ def _uv_at(S, ref, k, u, v):
     return w0 * a[col] + u * b[col] + v * c[col], w0 * a[col + 1] + u * b[col + 1] + v * c[col + 1]
 
 
-@njit(cache=True)
+@borrowing()
 def normals_hug_face(S, inst, k, time_u, min_cos):
     """True when every vertex normal of triangle k lies within acos(min_cos) of the triangle's
     own normal: a mesh that approximates a smooth surface, whose shading may be trusted where it

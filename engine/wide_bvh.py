@@ -35,6 +35,7 @@ from typing import NamedTuple
 import numpy as np
 from numba import njit, prange
 
+from .borrowing import borrowing
 from .bvh import BVH, _leaf, _ray_frame
 from .intersect import BOX_WIDEN, inverse
 
@@ -199,7 +200,7 @@ def _order(ka, ea, ha, kb, eb, hb):
             ka if sw else kb, ea if sw else eb, ha if sw else hb)
 
 
-@njit(cache=True)
+@borrowing()
 def intersect_wide(box, meta, tris, node_base, tri_base, ox, oy, oz, dx, dy, dz, tmin, tmax, stack):
     """Closest hit in (tmin, tmax) of one wide mesh BVH: (t, k, u, v), as bvh.intersect_mesh.
 
@@ -210,7 +211,7 @@ def intersect_wide(box, meta, tris, node_base, tri_base, ox, oy, oz, dx, dy, dz,
                              ox, oy, oz, dx, dy, dz, tmin, tmax, stack)
 
 
-@njit(cache=True)
+@borrowing()
 def intersect_wide_at(box, meta, tris, tris_end, node_base, tri_base, end_base, w,
                       ox, oy, oz, dx, dy, dz, tmin, tmax, stack):
     """`intersect_wide` for a mesh that may deform (see bvh.intersect_mesh_at)."""
@@ -290,14 +291,14 @@ def intersect_wide_at(box, meta, tris, tris_end, node_base, tri_base, end_base, 
                 break
 
 
-@njit(cache=True)
+@borrowing()
 def occluded_wide(box, meta, tris, node_base, tri_base, ox, oy, oz, dx, dy, dz, tmin, tmax, stack):
     """True if any triangle of the mesh is hit in (tmin, tmax): shadow rays, first hit wins."""
     return occluded_wide_at(box, meta, tris, tris[:0], node_base, tri_base, 0, 0.0,
                             ox, oy, oz, dx, dy, dz, tmin, tmax, stack)
 
 
-@njit(cache=True)
+@borrowing()
 def occluded_wide_at(box, meta, tris, tris_end, node_base, tri_base, end_base, w,
                      ox, oy, oz, dx, dy, dz, tmin, tmax, stack):
     """`occluded_wide` for a mesh that may deform (see bvh.intersect_mesh_at)."""
