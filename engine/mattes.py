@@ -310,15 +310,43 @@ def frame_channels(film) -> dict[str, np.ndarray]:
     """The frame file's matte channels: per kind and rank, the id (float32 bits as the convention
     stores them) and the coverage normalised by the pixel's samples (so the ranks add up to A)."""
     planes = {}
-    n = film.n[..., None]
+    h, w = film.n.shape
     for m, kind in enumerate(film.matte_kinds):
-        ids, cov = rank(film.matte_ids[:, :, m], film.matte_cov[:, :, m], MATTE_RANKS)
-        frac = np.zeros_like(cov)
-        np.divide(cov, n, out=frac, where=np.broadcast_to(n > 0, cov.shape))
+        ids = np.zeros((MATTE_RANKS, h, w), np.float32)
+        frac = np.zeros((MATTE_RANKS, h, w), np.float32)
+        _rank_planes(film.matte_ids, film.matte_cov, film.n, m, ids, frac)
         for r, (cid, ccov) in enumerate(rank_channels(layer_name(kind))):
-            planes[cid] = np.ascontiguousarray(ids[..., r], dtype=np.float32)
-            planes[ccov] = np.ascontiguousarray(frac[..., r], dtype=np.float32)
+            planes[cid] = ids[r]
+            planes[ccov] = frac[r]
     return planes
+
+
+@njit(cache=True)
+def _rank_planes(ids, cov, n, m, out_ids, out_frac):
+    """Per pixel, kind m's slots ranked as `rank` orders them, the first R written as planes
+    out_ids[r] (the id) and out_frac[r] (coverage / n; 0 where n is 0)."""
+    slots = ids.shape[3]
+    pi = np.empty(slots)
+    pc = np.empty(slots)
+    for y in range(ids.shape[0]):
+        for x in range(ids.shape[1]):
+            k = 0
+            for s in range(slots):
+                if ids[y, x, m, s] != 0.0 and cov[y, x, m, s] > 0.0:
+                    ci = ids[y, x, m, s]
+                    cc = cov[y, x, m, s]
+                    r = k - 1
+                    while r >= 0 and (pc[r] < cc or (pc[r] == cc and pi[r] > ci)):
+                        pi[r + 1] = pi[r]
+                        pc[r + 1] = pc[r]
+                        r -= 1
+                    pi[r + 1] = ci
+                    pc[r + 1] = cc
+                    k += 1
+            scale = 1.0 / n[y, x] if n[y, x] > 0.0 else 0.0
+            for r in range(min(k, out_ids.shape[0])):
+                out_ids[r, y, x] = pi[r]
+                out_frac[r, y, x] = pc[r] * scale
 
 
 def read_channels(planes: dict, kinds, n: np.ndarray, path) -> tuple[np.ndarray, np.ndarray]:
