@@ -511,3 +511,37 @@ def test_the_web_page_does_not_offer_matte_channel_sets_as_colour_layers(tmp_pat
     assert "matte_object00.R" in names and "matte_material02.A" in names
     offered = layers_from_channels(names)
     assert "beauty" in offered and not any(x.startswith("matte_") for x in offered)
+
+
+def test_scene_file_nodes_and_materials_without_names_get_stable_ones(tmp_path):
+    # glTF 2.0 names are optional; the reader calls an unnamed node node<index> and an unnamed
+    # material material<index> (docs/shot-file.md, ID mattes). Two instances of one unit quad,
+    # facing the camera at depth 4: each projects to a square of side 1/4 on the image plane at
+    # distance 1 (similar triangles), whose height is 2 tan(fov / 2).
+    from examples.gltf_builder import GltfBuilder
+    from lampyr.engine.mattes import manifest, name_id
+    from lampyr.engine.render import render_frame
+
+    from .gltf_files import QUAD_FACES, QUAD_NORMALS, QUAD_POSITIONS, QUAD_UVS
+
+    b = GltfBuilder()
+    mat = b.add_material(base_color=[0.5, 0.5, 0.5, 1.0])
+    mesh = b.add_mesh([b.primitive(QUAD_POSITIONS, QUAD_NORMALS, QUAD_UVS, indices=QUAD_FACES, material=mat)])
+    b.add_node(mesh=mesh, translation=[-1.5, -0.5, -4.0])
+    b.add_node("right", mesh=mesh, translation=[0.5, -0.5, -4.0])
+    b.save(tmp_path / "quads.gltf")
+    spp = 32
+    shot = load(tmp_path, 'scene = "quads.gltf"\n' + shot_text(
+        MATTES, width=W, height=H, samples=spp, camera=f"position = [0, 0, 0]\ntarget = [0, 0, -1]\nfov = {FOV}"))
+    names = manifest(shot)
+    assert names["object"] == ["node0", "right"] and "material0" in names["material"]
+    film = render_frame(shot, 1)
+    half = math.tan(math.radians(FOV) / 2)
+    want = (1 / 4) ** 2 / (2 * half * 2 * half * W / H)
+    for name in ("node0", "right"):
+        c = film.matte_coverage("object", name_id(name))
+        se = math.sqrt(float(np.sum(c * (1 - c))) / spp) / (W * H)
+        assert abs(float(c.mean()) - want) < 5 * se + 1e-3 * want, (name, float(c.mean()), want)
+    both = film.matte_coverage("material", name_id("material0"))
+    np.testing.assert_allclose(both * film.n, film.alpha_sum, rtol=1e-12)  # one material, every hit
+    assert film.alpha_sum.any()
