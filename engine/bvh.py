@@ -32,6 +32,9 @@ STACK_SIZE = 64
 # Past this depth the builder splits at object medians: no tree is deeper than
 # MEDIAN_DEPTH + log2(n) < STACK_SIZE, so a traversal stack of 64 entries always suffices.
 MEDIAN_DEPTH = 32
+# The smallest subtree build_bvh hands to a thread of its own by default (rule of thumb: a few
+# thousand primitives take ~1 ms, well above the cost of starting a parallel loop).
+SUBTREE_MIN = 4096
 
 
 class BVH(NamedTuple):
@@ -70,27 +73,46 @@ def _up(x):
     return np.nextafter(f, np.float32(np.inf)) if f < x else f
 
 
+# rows of the deferred-subtree table (`_build_range`)
+SUB_START = 0
+SUB_END = 1
+SUB_NODE = 2
+SUB_DEPTH = 3
+
+
 @njit(cache=True)
-def _build(lo, hi, cen, leaf_size, max_leaf, trav_cost, bins, median_depth, node_lo, node_hi, node_a,
-           node_count, node_axis, order):
-    n = lo.shape[0]
-    for i in range(n):
-        order[i] = i
+def _build_range(lo, hi, cen, s0, e0, depth0, node0, defer, leaf_size, max_leaf, trav_cost, bins, median_depth,
+                 node_lo, node_hi, node_a, node_count, node_axis, order, deferred):
+    """Build the subtree over primitives order[s0:e0] at depth depth0, its root at node node0 and
+    its nodes after it in depth-first order (left child at i + 1); returns (next free node, number
+    of subtrees deferred).
+
+    defer > 0: a node of more than leaf_size and at most `defer` primitives is not built here: its
+    (start, end, node, depth) goes into the next row of `deferred` (SUB_* columns) and 2·cnt − 1
+    nodes, the most a subtree of cnt primitives can take, are kept free for it. When `deferred`
+    is full, nodes are built here instead."""
     bcount = np.zeros((3, bins), np.int64)
     bbox = np.empty((3, bins, 6), np.float64)
     right_area = np.empty(bins, np.float64)
     # task stack: (start, end, parent to patch with our index or -1, depth)
     task = np.empty((256, 4), np.int64)
-    task[0, 0], task[0, 1], task[0, 2], task[0, 3] = 0, n, -1, 0
+    task[0, 0], task[0, 1], task[0, 2], task[0, 3] = s0, e0, -1, depth0
     ntask = 1
-    m = 0
+    m = node0
+    ndef = 0
     while ntask > 0:
         ntask -= 1
         s, e, parent, depth = task[ntask, 0], task[ntask, 1], task[ntask, 2], task[ntask, 3]
         node = m
-        m += 1
         if parent >= 0:
             node_a[parent] = node
+        if leaf_size < e - s <= defer and ndef < deferred.shape[0]:
+            deferred[ndef, SUB_START], deferred[ndef, SUB_END] = s, e
+            deferred[ndef, SUB_NODE], deferred[ndef, SUB_DEPTH] = node, depth
+            ndef += 1
+            m += 2 * (e - s) - 1
+            continue
+        m += 1
         # bounds of the primitives and of their centroids
         bx0 = by0 = bz0 = cx0 = cy0 = cz0 = np.inf
         bx1 = by1 = bz1 = cx1 = cy1 = cz1 = -np.inf
@@ -192,11 +214,55 @@ def _build(lo, hi, cen, leaf_size, max_leaf, trav_cost, bins, median_depth, node
         task[ntask, 0], task[ntask, 1], task[ntask, 2], task[ntask, 3] = mid, e, node, depth + 1
         task[ntask + 1, 0], task[ntask + 1, 1], task[ntask + 1, 2], task[ntask + 1, 3] = s, mid, -1, depth + 1
         ntask += 2
-    return m
+    return m, ndef
+
+
+@njit(cache=True, parallel=True)
+def _build_deferred(lo, hi, cen, deferred, count, leaf_size, max_leaf, trav_cost, bins, median_depth,
+                    node_lo, node_hi, node_a, node_count, node_axis, order):
+    """Build the deferred subtrees side by side on numba's threads. Each one writes only its own
+    rows of `order` and its own block of nodes, so the result is the same for any thread count."""
+    for i in prange(count):
+        _build_range(lo, hi, cen, deferred[i, SUB_START], deferred[i, SUB_END], deferred[i, SUB_DEPTH],
+                     deferred[i, SUB_NODE], 0, leaf_size, max_leaf, trav_cost, bins, median_depth,
+                     node_lo, node_hi, node_a, node_count, node_axis, order, deferred[:0])
+
+
+@njit(cache=True)
+def _compact(node_lo, node_hi, node_a, node_count, node_axis, used):
+    """Renumber the nodes reachable from the root 0 in depth-first order (left child first),
+    dropping the unused rows of the deferred blocks; returns the compacted arrays."""
+    new = np.full(used, -1, np.int64)
+    stack = np.empty(256, np.int64)
+    stack[0] = 0
+    sp = 1
+    m = 0
+    while sp > 0:  # preorder: a node, then its left subtree (at old i + 1), then its right one
+        sp -= 1
+        i = stack[sp]
+        new[i] = m
+        m += 1
+        if node_count[i] == 0:
+            stack[sp] = node_a[i]
+            stack[sp + 1] = i + 1
+            sp += 2
+    lo = np.empty((m, 3), np.float32)
+    hi = np.empty((m, 3), np.float32)
+    a = np.empty(m, np.int32)
+    count = np.empty(m, np.int32)
+    axis = np.empty(m, np.int8)
+    for i in range(used):
+        j = new[i]
+        if j < 0:
+            continue
+        lo[j], hi[j] = node_lo[i], node_hi[i]
+        count[j], axis[j] = node_count[i], node_axis[i]
+        a[j] = node_a[i] if node_count[i] > 0 else new[node_a[i]]
+    return lo, hi, a, count, axis
 
 
 def build_bvh(lo, hi, leaf_size: int = 4, bins: int = 16, max_leaf: int = 0, trav_cost: float = 4.0,
-              median_depth: int = MEDIAN_DEPTH) -> BVH:
+              median_depth: int = MEDIAN_DEPTH, subtree_size: int | None = None) -> BVH:
     """Binned-SAH BVH over primitive boxes. lo, hi: (n, 3) float64, n >= 1.
 
     leaf_size: a node with at most this many primitives always becomes a leaf.
@@ -208,6 +274,10 @@ def build_bvh(lo, hi, leaf_size: int = 4, bins: int = 16, max_leaf: int = 0, tra
       instances (a top level built with it rendered the courtyard 35% slower).
     bins: centroid slots per axis; median_depth: depth from which object-median splits bound
       the tree's height (so a traversal stack of STACK_SIZE entries always suffices).
+    subtree_size: the top of the tree is built in this thread; below it, subtrees of at most
+      this many primitives are built side by side on numba's threads (None: n / 64, at least
+      SUBTREE_MIN; 0: the whole tree in this thread). Every split is decided from the node's own
+      primitives alone, so the tree is the same for any value and any thread count.
     """
     lo = np.ascontiguousarray(lo, np.float64)
     hi = np.ascontiguousarray(hi, np.float64)
@@ -216,18 +286,28 @@ def build_bvh(lo, hi, leaf_size: int = 4, bins: int = 16, max_leaf: int = 0, tra
         raise ValueError(f"build_bvh needs (n >= 1, 3) bounds, got {lo.shape} and {hi.shape}")
     if not (np.isfinite(lo).all() and np.isfinite(hi).all()):
         raise ValueError("build_bvh needs finite bounds (a NaN or inf vertex?)")
+    if subtree_size is None:
+        subtree_size = max(SUBTREE_MIN, n // 64)
+    if subtree_size >= n:
+        subtree_size = 0  # one subtree would be the whole tree
     size = max(2 * n - 1, 1)
     node_lo = np.empty((size, 3), np.float32)
     node_hi = np.empty((size, 3), np.float32)
     node_a = np.empty(size, np.int32)
     node_count = np.empty(size, np.int32)
     node_axis = np.zeros(size, np.int8)
-    order = np.empty(n, np.int32)
+    order = np.arange(n, dtype=np.int32)
     cen = (lo + hi) * 0.5  # allocated here, not in numba, so tracemalloc sees the whole build
-    m = _build(lo, hi, cen, int(leaf_size), int(max_leaf), float(trav_cost), int(bins), int(median_depth),
-               node_lo, node_hi, node_a, node_count, node_axis, order)
-    return BVH(node_lo[:m].copy(), node_hi[:m].copy(), node_a[:m].copy(), node_count[:m].copy(),
-               node_axis[:m].copy(), order)
+    # room for the subtrees' table: beyond it nodes are built in this thread (same tree)
+    deferred = np.empty((64 + 8 * (n // max(subtree_size, 1)) if subtree_size > 0 else 0, 4), np.int64)
+    args = (int(leaf_size), int(max_leaf), float(trav_cost), int(bins), int(median_depth),
+            node_lo, node_hi, node_a, node_count, node_axis, order)
+    m, ndef = _build_range(lo, hi, cen, 0, n, 0, 0, int(subtree_size), *args, deferred)
+    if ndef == 0:
+        return BVH(node_lo[:m].copy(), node_hi[:m].copy(), node_a[:m].copy(), node_count[:m].copy(),
+                   node_axis[:m].copy(), order)
+    _build_deferred(lo, hi, cen, deferred, ndef, *args)
+    return BVH(*_compact(node_lo, node_hi, node_a, node_count, node_axis, m), order)
 
 
 def sah_cost(bvh: BVH, c_trav: float = 1.0, c_isect: float = 1.0) -> float:
@@ -239,6 +319,31 @@ def sah_cost(bvh: BVH, c_trav: float = 1.0, c_isect: float = 1.0) -> float:
     area = e[:, 0] * e[:, 1] + e[:, 1] * e[:, 2] + e[:, 2] * e[:, 0]
     weight = np.where(bvh.count > 0, c_isect * bvh.count, c_trav)
     return float((weight * area).sum() / area[0])
+
+
+@njit(cache=True, parallel=True)
+def _corner_bounds(corners, lo, hi):
+    for i in prange(corners.shape[0]):
+        for ax in range(3):
+            a = corners[i, 0, ax]
+            b = a
+            for c in range(1, corners.shape[1]):
+                x = corners[i, c, ax]
+                a = min(a, x)
+                b = max(b, x)
+            lo[i, ax] = a
+            hi[i, ax] = b
+
+
+def corner_bounds(corners) -> tuple[np.ndarray, np.ndarray]:
+    """The boxes of polygons given by their corners: corners (n, k, 3) float64 (k = 3 for a
+    triangle, 6 for a triangle in two poses) -> (lo, hi), each (n, 3) float64; the same values as
+    corners.min(axis=1) and corners.max(axis=1), in one pass on numba's threads."""
+    corners = np.ascontiguousarray(corners, np.float64)
+    lo = np.empty((corners.shape[0], 3))
+    hi = np.empty((corners.shape[0], 3))
+    _corner_bounds(corners, lo, hi)
+    return lo, hi
 
 
 def pack_triangles(vertices, faces, order, dtype=np.float32) -> np.ndarray:

@@ -25,7 +25,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .bvh import build_bvh, pack_triangles
+from .bvh import build_bvh, corner_bounds, pack_triangles
 from .wide_bvh import collapse_bvh, empty_wide, wide_views
 
 ATTR_NORMAL = 1
@@ -87,7 +87,7 @@ class MeshTableBuilder:
             tri = np.concatenate([tri, end], axis=1)  # boxes bound both poses
         # SAH termination (bigger leaves where they are cheaper) pays for meshes: +10 % on
         # incoherent rays in bench/rays.py; the small top level keeps plain leaves
-        bvh = build_bvh(tri.min(axis=1), tri.max(axis=1), max_leaf=16, trav_cost=4.0)
+        bvh = build_bvh(*corner_bounds(tri), max_leaf=16, trav_cost=4.0)
         order = np.asarray(bvh.order)
         attr = 0
         nv = len(v)

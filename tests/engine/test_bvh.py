@@ -388,3 +388,48 @@ def test_barycentrics_reconstruct_the_hit_point(mesh):
             tri = mesh.tris[k].astype(float)
             p = (1 - u - v) * tri[0] + u * tri[1] + v * tri[2]
             np.testing.assert_allclose(p, o[i] + t * d[i], atol=1e-9)
+
+
+def _boxes(name):
+    """(lo, hi) float64 boxes of a test mesh's triangles, or of the adversarial chain above."""
+    if name == "chain":
+        x = 2.0 ** -np.arange(1000.0)
+        lo = np.stack([x, np.zeros_like(x), np.zeros_like(x)], 1)
+        return lo, lo + 1e-300
+    m = MAKERS[name]()
+    tri = np.asarray(m.vertices, np.float64)[np.asarray(m.faces)]
+    return tri.min(axis=1), tri.max(axis=1)
+
+
+@pytest.mark.parametrize("threads", [1, 2])
+@pytest.mark.parametrize("subtree_size", [5, 64, 1500])
+@pytest.mark.parametrize("name", ["bumpy", "soup", "chain"])
+@pytest.mark.parametrize("term", [False, True])
+def test_subtrees_built_side_by_side_give_the_tree_of_one_thread(name, subtree_size, threads, term):
+    """The tree built in one thread (subtree_size=0) is the reference: handing subtrees to
+    threads must change no node, no order and no numbering, whatever their size and count."""
+    import numba
+
+    lo, hi = _boxes(name)
+    kw = dict(max_leaf=16, trav_cost=4.0) if term else {}
+    one = build_bvh(lo, hi, subtree_size=0, **kw)
+    before = numba.get_num_threads()
+    numba.set_num_threads(min(threads, numba.config.NUMBA_NUM_THREADS))
+    try:
+        split = build_bvh(lo, hi, subtree_size=subtree_size, **kw)
+    finally:
+        numba.set_num_threads(before)
+    for field in BVH._fields:
+        np.testing.assert_array_equal(getattr(split, field), getattr(one, field), err_msg=field)
+
+
+@pytest.mark.parametrize("poses", [1, 2])
+def test_corner_bounds_equal_numpy_min_and_max(poses):
+    """The reference is numpy's own reduction over the corners (min and max are exact)."""
+    from lampyr.engine.bvh import corner_bounds
+
+    rng = np.random.default_rng(11)
+    corners = rng.normal(size=(5000, 3 * poses, 3)) * rng.uniform(1e-3, 1e3, (5000, 1, 1))
+    lo, hi = corner_bounds(corners)
+    np.testing.assert_array_equal(lo, corners.min(axis=1))
+    np.testing.assert_array_equal(hi, corners.max(axis=1))
