@@ -24,6 +24,10 @@ One scanline part, ZIP compression (lossless; float32 survives bit for bit), per
                       sees more ids than are kept); the header attribute `lampyr.mattes` lists
                       the kinds, and `cryptomatte/<key>/name`, `hash`, `conversion` and
                       `manifest` (JSON: name -> hex id) describe each layer as the convention asks
+  oddhalf.R/G/B FLOAT  the mean of the samples whose sample index is odd (the film's odd half,
+                      engine/film.py; docs/denoising.md), 0 where there are none
+  oddhalf.spp  UINT   how many samples that mean holds; a file without these two (written before
+                      lampyr kept the halves) reads back with every sample in the even half
   denoised.R/G/B FLOAT  optional: the mean through the denoiser (engine/denoise.py), written
                       when a frame is complete; NOT an unbiased estimate, so `read_frame`
                       ignores it (merging and refining never see it); `read_denoised` reads it
@@ -60,6 +64,8 @@ NORMAL = ("N.X", "N.Y", "N.Z")
 FLOAT_CHANNELS = BEAUTY + ("A",) + VARIANCE + ALBEDO + NORMAL + ("Z",)
 UINT_CHANNELS = ("spp", "hits", "dropped")
 DENOISED = ("denoised.R", "denoised.G", "denoised.B")
+ODD = ("oddhalf.R", "oddhalf.G", "oddhalf.B")
+ODD_COUNT = "oddhalf.spp"
 CHANNELS = FLOAT_CHANNELS + UINT_CHANNELS
 
 
@@ -118,6 +124,8 @@ def frame_channels(film: Film) -> dict[str, np.ndarray]:
     planes["spp"] = _counts(film.n, "n")
     planes["hits"] = _counts(film.hits, "hits")
     planes["dropped"] = _counts(film.dropped, "dropped")
+    put(ODD, _mean_of(film.odd_sum, film.odd_n))
+    planes[ODD_COUNT] = _counts(film.odd_n, "odd_n")
     for i, name in enumerate(film.layer_names):
         put(layer_channels(name), _mean_of(film.layers[:, :, i], film.n))
     planes.update(mattes.frame_channels(film))
@@ -216,7 +224,8 @@ def read_frame(path) -> tuple[Film, dict[str, str]]:
             names = str(header.get(PREFIX + "layers", "") or "")
             layer_names = tuple(x for x in names.split(",") if x)
             kinds = tuple(x for x in str(header.get(PREFIX + "mattes", "") or "").split(",") if x)
-            wanted = set(CHANNELS) | {c for x in layer_names for c in layer_channels(x)}
+            wanted = set(CHANNELS) | set(ODD) | {ODD_COUNT}
+            wanted |= {c for x in layer_names for c in layer_channels(x)}
             wanted |= {c for k in kinds for pair in mattes.rank_channels(mattes.layer_name(k)) for c in pair}
             planes = {name: (ch.type(), np.array(ch.pixels))  # other channels (denoised) ignored
                       for name, ch in exr.channels().items() if name in wanted}
@@ -254,6 +263,16 @@ def read_frame(path) -> tuple[Film, dict[str, str]]:
     matte_ids, matte_cov = mattes.read_channels(planes, kinds, n, path)
     mean, var = get(BEAUTY), get(VARIANCE)
     n3 = n[..., None]
+    odd_n = odd_sum = None  # a file written before the halves: every sample in the even half
+    if ODD_COUNT in planes and all(c in planes for c in ODD):
+        if planes[ODD_COUNT][0] != OpenEXR.UINT:
+            raise FrameFileError(f"{path}: channel {ODD_COUNT} should be UINT counts")
+        odd_n = planes[ODD_COUNT][1].astype(np.float64)
+        odd_mean = get(ODD)
+        if odd_n.shape != n.shape or not np.isfinite(odd_mean).all() or (odd_n > n).any():
+            raise FrameFileError(f"{path}: channels {', '.join(ODD + (ODD_COUNT,))} are not an "
+                                 "odd half of the frame's samples")
+        odd_sum = odd_mean * odd_n[..., None]
     film = Film(
         n=n,
         rgb_sum=mean * n3,
@@ -265,6 +284,8 @@ def read_frame(path) -> tuple[Film, dict[str, str]]:
         depth_sum=planes["Z"][1].astype(np.float64) * hits,
         hits=hits,
         dropped=planes["dropped"][1].astype(np.float64),
+        odd_n=odd_n,
+        odd_sum=odd_sum,
         layers=None if lay is None else np.ascontiguousarray(lay * n3[..., None]),
         layer_names=layer_names,
         matte_ids=matte_ids,

@@ -9,6 +9,12 @@ Conventions per pixel (n = samples kept, hits = samples whose camera ray hit geo
   like the beauty's coverage); normal = normal_sum normalised; depth = depth_sum / hits.
 Samples whose radiance was NaN or infinite are not in any sum; `dropped` counts them.
 
+Half-frames (docs/denoising.md, "A noise goal for the denoised frame"): `odd_n` and `odd_sum`
+count and sum the kept samples whose sample index is odd. The rest (n - odd_n, rgb_sum - odd_sum)
+is the other half. The two halves hold disjoint samples, so their means are independent
+estimates of the pixel; samples merged from an older film (which kept no halves) count in the
+even half, which keeps the halves disjoint.
+
 Layers (light-path layers and light groups, engine/layers.py): `layers` (h, w, K, 3) holds one
 Σ L per name of `layer_names`, merged like every other sum; a layer's mean is its sum / n. A film
 of a shot that keeps no layers has K = 0.
@@ -34,8 +40,8 @@ from .mattes import MATTE_KINDS, MATTE_SLOTS, merge_slots
 # 0.0722 B), the same as IEC 61966-2-1's Y row for linear sRGB (from memory).
 LUMA_709 = np.array([0.2126, 0.7152, 0.0722])
 
-FORMAT_VERSION = 3  # 2: layers and 32-bit transport; 3: ID mattes; versions 1 (float64, no
-# layers) and 2 (no ID mattes) are still read
+FORMAT_VERSION = 4  # 2: layers and 32-bit transport; 3: ID mattes; 4: the odd half (odd_n,
+# odd_sum); versions 1 (float64, no layers), 2 (no ID mattes) and 3 (no odd half) are still read
 _MAGIC = b"LMPFILM\x00"
 _HEAD = struct.Struct("<8sHHII")  # magic, version, field count, h, w
 _HEAD2 = struct.Struct("<BH")  # version 2: bits per value (32 or 64), layer count
@@ -63,6 +69,8 @@ class Film:
     depth_sum: np.ndarray  # (h, w) Σ first-hit ray distance
     hits: np.ndarray  # (h, w) samples whose camera ray hit geometry
     dropped: np.ndarray  # (h, w) NaN / inf samples thrown away
+    odd_n: np.ndarray | None = None  # (h, w) samples kept whose sample index is odd; None: zeros
+    odd_sum: np.ndarray | None = None  # (h, w, 3) Σ L of those samples; None: zeros
     layers: np.ndarray | None = None  # (h, w, K, 3) Σ L per layer; None: zeros
     layer_names: tuple = ()  # the K layers' names, in order
     matte_ids: np.ndarray | None = None  # (h, w, M, S) ids (float32 values); None: zeros
@@ -73,6 +81,9 @@ class Film:
         if np.ndim(self.n) != 2:
             raise FilmDataError(f"film.n: expected an (h, w) array, got shape {np.shape(self.n)}")
         h, w = self.n.shape
+        for name, shape in (("odd_n", (h, w)), ("odd_sum", (h, w, 3))):
+            if getattr(self, name) is None:
+                object.__setattr__(self, name, np.zeros(shape))
         names = tuple(self.layer_names)
         if len(set(names)) != len(names) or not all(isinstance(x, str) and x for x in names):
             raise FilmDataError(f"film.layer_names: expected distinct names, got {names!r}")
@@ -187,6 +198,14 @@ class Film:
         out[self.n < 2] = np.inf
         return out
 
+    def halves(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """(even mean, odd mean, even count, odd count): (h, w, 3), (h, w, 3), (h, w), (h, w).
+        The even half is every kept sample not counted in the odd half; a mean is 0 where its
+        count is 0."""
+        n_even = np.maximum(self.n - self.odd_n, 0.0)
+        even = _ratio(self.rgb_sum - self.odd_sum, n_even[..., None])
+        return even, _ratio(self.odd_sum, self.odd_n[..., None]), n_even, self.odd_n
+
     def alpha(self) -> np.ndarray:
         """(h, w) coverage in [0, 1]; 0 where n == 0."""
         return _ratio(self.alpha_sum, self.n)
@@ -212,7 +231,9 @@ class Film:
 
 FIELDS = tuple(f.name for f in fields(Film)
                if f.name not in ("layers", "layer_names", "matte_ids", "matte_cov", "matte_kinds"))
-RGB_FIELDS = frozenset({"rgb_sum", "rgb_sq", "albedo_sum", "normal_sum"})
+RGB_FIELDS = frozenset({"rgb_sum", "rgb_sq", "albedo_sum", "normal_sum", "odd_sum"})
+HALF_FIELDS = ("odd_n", "odd_sum")  # format 4 on; formats 1 to 3 hold the fields before them
+_OLD_FIELDS = tuple(f for f in FIELDS if f not in HALF_FIELDS)
 
 
 def _ratio(num: np.ndarray, den: np.ndarray) -> np.ndarray:
@@ -262,13 +283,14 @@ def add_into(dst: Film, src: Film, y0: int, x0: int) -> None:
 
 # -- bytes for transport (Redis) and the head's tile accumulators -------------------------------
 #
-# Layout (version 3), little-endian: magic "LMPFILM\0", u16 format version, u16 field count,
+# Layout (version 4), little-endian: magic "LMPFILM\0", u16 format version, u16 field count,
 # u32 h, u32 w, u8 bits per value (32 or 64), u16 layer count K, then K layer names (u8 length,
 # UTF-8), u8 ID matte kind count M, u8 slots per kind S, the M kinds' names (u8 length, UTF-8),
 # then every field of FIELDS in order, the layers (h, w, K, 3), the matte ids (h, w, M, S) and
 # coverages (h, w, M, S) as raw float32 or float64 C-order, then a CRC-32 (zlib.crc32) of
-# everything before it. Version 2 (no M, S, kinds or mattes) and version 1 (no bits, no layers,
-# float64) are still read. Ids are float32 values, exact in either width.
+# everything before it. FIELDS ends with the odd half (odd_n, odd_sum), new in version 4: version
+# 3 (9 fields, no odd half), version 2 (no M, S, kinds or mattes) and version 1 (no bits, no
+# layers, float64) are still read, their samples all in the even half. Ids are float32 values, exact in either width.
 #
 # Workers send 32 bits (a batch's sums need no more: the head merges in float64 and its tile
 # accumulators keep 64 bits, so long merges do not lose precision); the counts stay exact up to
@@ -276,7 +298,7 @@ def add_into(dst: Film, src: Film, y0: int, x0: int) -> None:
 
 
 def to_bytes(film: Film, bits: int = 64) -> bytes:
-    """The film as bytes: (17 + 3K + 2MS) values per pixel of bits / 8 bytes each, plus a
+    """The film as bytes: (21 + 3K + 2MS) values per pixel of bits / 8 bytes each, plus a
     25-byte header, the layer and kind names and a 4-byte checksum; see the layout above."""
     if bits not in (32, 64):
         raise ValueError(f"bits: 32 or 64, got {bits!r}")
@@ -325,9 +347,11 @@ def from_bytes(data: bytes) -> Film:
     magic, version, count, h, w = _HEAD.unpack_from(data)
     if magic != _MAGIC:
         raise FilmDataError("film bytes: not a lampyr film (bad magic)")
-    if version not in (1, 2, FORMAT_VERSION) or count != len(FIELDS):
+    stored = FIELDS if version >= 4 else _OLD_FIELDS
+    if version not in (1, 2, 3, FORMAT_VERSION) or count != len(stored):
         raise FilmDataError(f"film bytes: format version {version} with {count} fields; this "
-                            f"lampyr reads versions 1 to {FORMAT_VERSION} with {len(FIELDS)} fields")
+                            f"lampyr reads versions 1 to 3 with {len(_OLD_FIELDS)} fields and "
+                            f"{FORMAT_VERSION} with {len(FIELDS)}")
     (crc,) = _CRC.unpack_from(data, len(data) - _CRC.size)
     if zlib.crc32(memoryview(data)[:-_CRC.size]) != crc:
         raise FilmDataError(f"film bytes: checksum mismatch in a {w}x{h} film (corrupted)")
@@ -347,14 +371,14 @@ def from_bytes(data: bytes) -> Film:
         kinds, offset = _names(data, offset + _HEAD3.size, m, "ID matte kind")
     width = bits // 8
     dtype = "<f4" if bits == 32 else "<f8"
-    sizes = [h * w * (3 if f in RGB_FIELDS else 1) for f in FIELDS] + [h * w * len(names) * 3] \
+    sizes = [h * w * (3 if f in RGB_FIELDS else 1) for f in stored] + [h * w * len(names) * 3] \
         + [h * w * len(kinds) * slots] * 2
     want = offset + width * sum(sizes) + _CRC.size
     if len(data) != want:
         raise FilmDataError(f"film bytes: a {w}x{h} film takes {want} bytes, got {len(data)} "
                             "(truncated or padded)")
     arrays = {}
-    for f, size in zip(FIELDS + ("layers", "matte_ids", "matte_cov"), sizes):
+    for f, size in zip(stored + ("layers", "matte_ids", "matte_cov"), sizes):
         flat = np.frombuffer(data, dtype=dtype, count=size, offset=offset)
         shape = ((h, w, len(names), 3) if f == "layers" else (h, w, len(kinds), slots)
                  if f.startswith("matte_") else (h, w, 3) if f in RGB_FIELDS else (h, w))

@@ -439,7 +439,7 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
 def render_tile(S, cam, aperture, width, height, frame, seed, mode, max_bounces, rr_start,
                 x0, y0, tile_w, tile_h, first, count,
                 n, rgb_sum, rgb_sq, alpha_sum, albedo_sum, normal_sum, depth_sum, hits, dropped,
-                split, slots, layers, matte_src, inst_ids, mat_ids, matte_ids, matte_cov):
+                odd_n, odd_sum, split, slots, layers, matte_src, inst_ids, mat_ids, matte_ids, matte_cov):
     """Add samples [first, first+count) of the tile's pixels into the given sums.
 
     The sums are (tile_h, tile_w[, 3]) float64 arrays (see film.Film); row 0 of the tile is
@@ -448,7 +448,8 @@ def render_tile(S, cam, aperture, width, height, frame, seed, mode, max_bounces,
     film's layer sums (K = 0 and split = 0 when the shot keeps none). matte_src (M,): per ID
     matte kind, mattes.KIND_OBJECT (the first hit's instance's id from inst_ids) or KIND_MATERIAL
     (its material row's from mat_ids); matte_ids, matte_cov (tile_h, tile_w, M, S) the film's
-    slots (mattes.add_coverage; M = 0 when the shot keeps none).
+    slots (mattes.add_coverage; M = 0 when the shot keeps none). odd_n, odd_sum: the count and
+    Σ L of the kept samples whose index is odd (the film's odd half, docs/denoising.md).
     """
     for ty in prange(tile_h):
         stack_top = np.empty(STACK_SIZE, np.int32)
@@ -480,6 +481,11 @@ def render_tile(S, cam, aperture, width, height, frame, seed, mode, max_bounces,
                 rgb_sq[ty, tx, 0] += lr * lr
                 rgb_sq[ty, tx, 1] += lg * lg
                 rgb_sq[ty, tx, 2] += lb * lb
+                if s & 1:
+                    odd_n[ty, tx] += 1.0
+                    odd_sum[ty, tx, 0] += lr
+                    odd_sum[ty, tx, 1] += lg
+                    odd_sum[ty, tx, 2] += lb
                 if split:
                     for i in range(slots.shape[0]):
                         k = slots[i]

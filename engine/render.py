@@ -72,7 +72,7 @@ class FrameRenderer:
             self.frame, int(shot.seed), SAMPLER_MODES[shot.sampler], int(shot.bounces), int(shot.roulette),
             tile.x0, tile.y0, tile.w, tile.h, int(first), int(count),
             film.n, film.rgb_sum, film.rgb_sq, film.alpha_sum, film.albedo_sum, film.normal_sum,
-            film.depth_sum, film.hits, film.dropped, self._split, self._slots, film.layers,
+            film.depth_sum, film.hits, film.dropped, film.odd_n, film.odd_sum, self._split, self._slots, film.layers,
             self._matte_src, self._inst_ids, self._mat_ids, film.matte_ids, film.matte_cov,
         )
         return film

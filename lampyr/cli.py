@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 import os
 import sys
 import time
@@ -433,32 +434,54 @@ def retry(job, frames, head_addr, state):
     click.echo(f"retrying failed batches of {job}")
 
 
+def _positive_goal(ctx, param, value):
+    """A noise goal: a finite number above 0, or one line naming the option (exit status 2)."""
+    if value is None:
+        return None
+    try:
+        goal = float(value)
+    except ValueError:
+        goal = math.nan
+    if not (math.isfinite(goal) and goal > 0):
+        raise UsageError(f"refine --{param.name.replace('_', '-')}: expected a number above 0 (a "
+                         f"relative error, e.g. 0.02 for 2 %), got {value!r}")
+    return goal
+
+
 @cli.command()
 @click.argument("target")
 @click.option("--samples", type=click.IntRange(1, 1_048_576), required=True,
               help="Samples per pixel to reach.")
 @click.option("--noise", type=click.FloatRange(0, None, min_open=True), default=None,
               help="Only tiles whose relative standard error (luminance, mean over the tile) is above this.")
+@click.option("--denoised-noise", "denoised_noise", default=None, metavar="E", callback=_positive_goal,
+              help="Only tiles whose denoised frame's relative error (from its two denoised "
+                   "half-frames, docs/denoising.md) is above E.")
 @click.option("--shot", "shot_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
               help="With a frame file as TARGET: the shot it was rendered from.")
 @click.option("--tile", "tile_size", type=click.IntRange(1, 4096), default=32, show_default=True,
               help="With a frame file as TARGET: tile edge to refine by (the render's tiles or a multiple).")
 @click.option("--head", "head_addr", default=None, help=_HEAD_HELP)
 @click.option("--state", type=click.Path(file_okay=False, path_type=Path), default=None, help=_STATE_HELP)
-def refine(target, samples, noise, shot_path, tile_size, head_addr, state):
+def refine(target, samples, noise, denoised_noise, shot_path, tile_size, head_addr, state):
     """Add samples up to --samples, keeping what is rendered.
 
     TARGET is a job on the farm, or a frame file (.exr) refined here from --shot alone.
     """
+    if noise is not None and denoised_noise is not None:
+        raise UsageError("refine: give --noise (the raw frame's goal) or --denoised-noise (the "
+                         "denoised frame's goal), not both")
     if target.lower().endswith(".exr"):
         from .scheduler.refine_file import refine_frame_file
 
         if shot_path is None:
             raise UsageError("refine FRAME.exr needs --shot SHOT (the shot the frame was rendered from)")
-        res = refine_frame_file(Path(target), shot_path, samples, noise, tile_size)
+        res = refine_frame_file(Path(target), shot_path, samples, noise, tile_size,
+                                denoised_noise=denoised_noise)
         click.echo(f"refined {res['tiles']} of {res['of']} tile(s) of {target} to {samples} samples per pixel")
         return
-    _job_command("refine", target, head_addr, state, samples=samples, noise=noise)
+    goal = {} if denoised_noise is None else {"denoised_noise": denoised_noise}
+    _job_command("refine", target, head_addr, state, samples=samples, noise=noise, **goal)
     click.echo(f"refining {target} to {samples} samples per pixel")
 
 

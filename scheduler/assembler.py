@@ -25,6 +25,7 @@ from pathlib import Path
 
 from .accumulator import TileAccumulator, header_noise_known, read_header, samples_held, tile_noise
 from .jobs import JobFolder, JobRecord
+from .tilestore import TileStore
 from .planner import plan_batches
 from .protocol import Batch, parse_batch_id
 
@@ -39,7 +40,7 @@ class JobRun:
     """A job as the head runs it: record, shot, tiles, which batches are done, frames written."""
 
     def __init__(self, state: Path, rec: JobRecord, partial_frames: bool = True, *,
-                 durable: bool = True, rewrite_every: float = REWRITE_EVERY):
+                 durable: bool = True, rewrite_every: float = REWRITE_EVERY, store=None):
         from ..engine.render import tiles_for
         from ..engine.shot import load_shot
 
@@ -47,6 +48,8 @@ class JobRun:
         self.partial_frames = partial_frames
         self.durable = durable  # False: tile files are not fsynced (a scratch state folder)
         self.rewrite_every = rewrite_every
+        # the tiles in memory, written in groups (shared by the head's jobs; tilestore.py)
+        self.store = store if store is not None else TileStore(fsync=durable)
         self.partial_at: dict[int, float] = {}  # frame → time.monotonic() of its last partial write
         self.due: dict[int, float] = {}  # frame → when its held-back rewrite is due
         self.folder = JobFolder(state, rec.id)
@@ -72,6 +75,9 @@ class JobRun:
         self.started = time.time()
         self.samples_merged = 0  # pixel-samples merged by this head process (for the rate)
         self._manifest = None  # the names of the shot's ID mattes, read at the first frame write
+        # frame → (its tiles' denoised errors, the lowest spp they were measured at), from its
+        # last denoised write (engine/dual_buffer.py) or that file's header, read when first asked
+        self.denoised: dict[int, tuple[list, int]] = {}
         self.replan()
 
     def replan(self) -> None:
@@ -113,20 +119,30 @@ class JobRun:
         return not _remainders(b, self.held[(b.frame, b.tile)])
 
     def merge(self, b, film, seconds: float, sync_folder: bool = True) -> bool:
-        """Fold a batch's film into its tile accumulator on disk; False when already held."""
+        """Fold a batch's film into its tile accumulator; False when already held. The tile is
+        written to disk at the store's next commit: here at once, unless `sync_folder` is False
+        (the results owner commits a whole group of merges, then removes their notices)."""
         t = self.tiles[b.tile]
-        acc = TileAccumulator.load(self.folder.tile(b.frame, b.tile), t.w, t.h)
+        key = (b.frame, b.tile)
+        path = self.folder.tile(b.frame, b.tile)
+        acc = self.store.get(path, t.w, t.h)
         if not acc.add(film, b.first, b.count):
-            self.held[(b.frame, b.tile)] = acc.ranges
+            self.held[key] = list(acc.ranges)
             return False
-        noise = tile_noise(acc.film)  # the film in memory, no reread
-        acc.save(sync_folder, noise, fsync=self.durable)
-        self.held[(b.frame, b.tile)] = acc.ranges
+        self.store.stage(acc, lambda noise: self.noise.__setitem__(key, noise))
+        if sync_folder:
+            failed = self.store.commit()
+            if path in failed:
+                raise failed[path]
+        self.held[key] = list(acc.ranges)
         self.seconds[b.frame] = self.seconds.get(b.frame, 0.0) + seconds
         self.samples_merged += t.w * t.h * b.count
-        self.noise[(b.frame, b.tile)] = noise
         self.dirty.add(b.frame)
         return True
+
+    def reread_tile(self, frame: int, tile: int) -> None:
+        """The tile's file could not be written: what it holds is what its file says."""
+        self.held[(frame, tile)] = read_header(self.folder.tile(frame, tile))[0]
 
     def frame_level(self, frame: int) -> int:
         """The fewest samples a tile of `frame` holds, not counting tiles that hold none because
@@ -194,13 +210,17 @@ class JobRun:
         kinds = matte_plan(self.shot)
         film = Film.zeros(self.shot.height, self.shot.width, layer_plan(self.shot)[0], kinds)
         for i, t in enumerate(self.tiles):
-            acc = TileAccumulator.load(self.folder.tile(frame, i), t.w, t.h)
-            if acc.film is not None:
-                film.add_into(acc.film, t.y0, t.x0)
+            part = self.store.film(self.folder.tile(frame, i), t.w, t.h)
+            if part is not None:
+                film.add_into(part, t.y0, t.x0)
         if kinds and self._manifest is None:  # the names of the ID mattes: read once per job
             self._manifest = manifest(self.shot)
+        report: dict = {}
         path = write_frame_files(Path(self.rec.out), self.shot, frame, film,
-                                 self.seconds.get(frame, 0.0), final=final, manifest=self._manifest)
+                                 self.seconds.get(frame, 0.0), final=final, manifest=self._manifest,
+                                 tiles=self.tiles, report=report)
+        if "denoised_errors" in report:
+            self.denoised[frame] = (report["denoised_errors"], level)
         self.written[frame] = level
         self.written_sum[frame] = total
         self.due.pop(frame, None)
@@ -274,6 +294,33 @@ class JobRun:
             for i in range(len(self.tiles)):
                 e = self.noise.get((f, i))
                 if e is None or e > goal:
+                    out.append((f, i))
+        return out
+
+
+    def denoised_error(self, frame: int, tile: int) -> tuple[float, int] | None:
+        """(the tile's denoised error, the spp it was measured at), or None when not known: from
+        the frame's last denoised write, else from its frame file's header (read once)."""
+        if frame not in self.denoised:
+            from ..frames import frame_path, read_errors
+
+            path = frame_path(Path(self.rec.out), self.shot.name, frame)
+            found = read_errors(path)
+            if found is None or len(found[0]) != len(self.tiles):
+                return None
+            self.denoised[frame] = ([float("inf") if e is None else e for e in found[0]], found[1])
+        errors, at = self.denoised[frame]
+        e = errors[tile]
+        return None if e is None or e == float("inf") else (e, at)
+
+    def denoised_noisy_tiles(self, goal: float) -> list[tuple[int, int]]:
+        """(frame, tile) whose denoised error is above `goal`, or not known yet (a frame not yet
+        written complete and denoised)."""
+        out = []
+        for f in self.frames:
+            for i in range(len(self.tiles)):
+                known = self.denoised_error(f, i)
+                if known is None or known[0] > goal:
                     out.append((f, i))
         return out
 

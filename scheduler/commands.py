@@ -64,6 +64,7 @@ class Context:
     partial_frames: bool = True
     durable: bool = True  # see JobRun
     rewrite_every: float = REWRITE_EVERY
+    store: object = None  # the head's tiles in memory (tilestore.TileStore), shared by its jobs
 
 
 COMMANDS: dict = {}
@@ -76,7 +77,7 @@ def command(fn):
 
 def job_run(ctx: Context, rec) -> JobRun:
     return JobRun(ctx.state, rec, ctx.partial_frames, durable=ctx.durable,
-                  rewrite_every=ctx.rewrite_every)
+                  rewrite_every=ctx.rewrite_every, store=ctx.store)
 
 
 def _run(ctx: Context, job: str) -> JobRun:
@@ -236,15 +237,16 @@ def cancel(ctx: Context, job: str) -> None:
 
 @command
 def refine(ctx: Context, job: str, samples: int, noise: float | None = None,
-           frames: list | None = None) -> None:
+           frames: list | None = None, denoised_noise: float | None = None) -> None:
     """Add samples up to `samples` per pixel, in the job's batch size: to every tile, or with a
-    `noise` goal only to tiles whose relative standard error is above it; with `frames` (a list
-    of frame numbers) only to the tiles of those frames."""
+    `noise` goal only to tiles whose relative standard error is above it, or with a
+    `denoised_noise` goal only to tiles whose denoised error (docs/denoising.md) is above it or
+    not known yet; with `frames` (a list of frame numbers) only to the tiles of those frames."""
     from .planner import sample_ranges
 
     run = _run(ctx, job)
     samples = int(samples)
-    if noise is None and frames is None:
+    if noise is None and denoised_noise is None and frames is None:
         if samples <= run.rec.samples:
             return
         run.rec.ranges = list(run.rec.ranges) + sample_ranges(run.rec.samples, samples,
@@ -253,6 +255,8 @@ def refine(ctx: Context, job: str, samples: int, noise: float | None = None,
     else:
         if noise is not None:
             tiles = run.noisy_tiles(float(noise))
+        elif denoised_noise is not None:
+            tiles = run.denoised_noisy_tiles(float(denoised_noise))
         else:
             tiles = [(f, i) for f in run.frames for i in range(len(run.tiles))]
         if frames is not None:
@@ -269,6 +273,7 @@ def refine(ctx: Context, job: str, samples: int, noise: float | None = None,
     again = job_run(ctx, run.rec)
     again.written = dict(run.written)
     again.written_sum = dict(run.written_sum)
+    again.denoised = dict(run.denoised)
     ctx.runs[job] = again
     ctx.dispatch.skip_in_flight(again)
 

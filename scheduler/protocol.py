@@ -47,11 +47,12 @@ from dataclasses import asdict, dataclass
 
 from ..errors import LampyrError
 
-PROTOCOL_VERSION = 6  # 2: `partial` result notices; 3: scenes as `scene:`/`blob:` keys, no bundles;
+PROTOCOL_VERSION = 7  # 2: `partial` result notices; 3: scenes as `scene:`/`blob:` keys, no bundles;
 # 4: the environment map's `rotate` turns by the right-hand rule (a version-3 worker turns it the
 # other way, so its samples must not be merged with a version-4 worker's); 5: results are film
 # bytes of format 2 (float32 values, the shot's light-path layers and light groups); 6: film
-# bytes of format 3 (with the shot's ID matte slots)
+# bytes of format 3 (with the shot's ID matte slots); 7: film bytes of format 4 (with the odd
+# half-frame's count and sum) and `refine` may carry `denoised_noise`
 TASK_RENDER = "lampyr.render_batch"
 QUEUE = "lampyr"
 PREFIX = "lampyr:"

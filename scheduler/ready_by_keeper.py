@@ -16,7 +16,9 @@ The policy itself is `ready_by.plan_night`; the throughput is `forecast.Forecast
 the farm in dispatch order: a ready-by job gets the capacity left after the remaining work of
 the jobs queued before it. Tile noise is the mean relative standard error of the tile's
 luminance (`Film.rel_noise`, as `refine --noise` judges it), which the head keeps per tile as
-it merges (`JobRun.noise`, see progress.py); no accumulator is read for it.
+it merges (`JobRun.noise`, see progress.py); no accumulator is read for it. When every tile of
+the job has a denoised error (its frames were written complete and denoised, docs/denoising.md:
+`JobRun.denoised_error`), the plan aims at that instead: the delivered frame is the denoised one.
 """
 
 from __future__ import annotations
@@ -152,11 +154,17 @@ class ReadyByKeeper:
     def tile_states(self, run, inflight: dict) -> list[TileState]:
         ends = sorted({a + c for a, c in run.rec.ranges})
         out = []
+        denoised = {(f, i): run.denoised_error(f, i) for f in run.frames
+                    for i in range(len(run.tiles))}
+        if any(v is None for v in denoised.values()):
+            denoised = None  # not known for every tile: the raw noise, one scale for all
         for f in run.frames:
             for i, t in enumerate(run.tiles):
                 held = samples_held(run.held[(f, i)])
                 noise = run.noise.get((f, i))  # measured at the last merge, at `held` samples
                 at = held if noise is not None else 0
+                if denoised is not None:  # measured at the frame's last denoised write
+                    noise, at = denoised[(f, i)]
                 px = t.w * t.h
                 extra = run.rec.extra.get(f"{f}/{i}", ())
                 steps = tuple(sorted(set(ends) | {a + c for a, c in extra}))

@@ -27,10 +27,13 @@ def frame_number(path: Path, attrs: dict) -> int:
 
 
 def refine_frame_file(path: Path, shot_path: Path, samples: int, noise: float | None = None,
-                      tile_size: int = 32, progress=None) -> dict:
+                      tile_size: int = 32, progress=None, denoised_noise: float | None = None) -> dict:
     """Add samples to the frame file `path` up to `samples` per pixel, tile by tile; with a
-    `noise` goal only to tiles whose mean relative standard error is above it. Rewrites the
-    file (atomically) and returns {"tiles": refined, "of": total}."""
+    `noise` goal only to tiles whose mean relative standard error is above it; with a
+    `denoised_noise` goal only to tiles whose denoised error (engine/dual_buffer.py, measured
+    from the frame's two denoised half-frames before any sample is added) is above it. Rewrites
+    the file (atomically) and returns {"tiles": refined, "of": total, "errors": the tiles'
+    denoised errors or None}."""
     from ..engine.exr import read_frame, write_frame
     from ..engine.film import Film, merge
     from ..engine.render import FrameRenderer, tiles_for
@@ -58,7 +61,12 @@ def refine_frame_file(path: Path, shot_path: Path, samples: int, noise: float | 
     refined = 0
     tiles = tiles_for(w, h, tile_size)
     start = time.perf_counter()
-    for t in tiles:
+    errors = None
+    if denoised_noise is not None:
+        from ..engine.dual_buffer import tile_errors
+
+        errors = tile_errors(film, tiles)
+    for k, t in enumerate(tiles):
         held = held_all[t.y0:t.y0 + t.h, t.x0:t.x0 + t.w]
         lo, hi = int(held.min()), int(held.max())
         if lo != hi:
@@ -70,6 +78,8 @@ def refine_frame_file(path: Path, shot_path: Path, samples: int, noise: float | 
             part = film.rel_noise()[t.y0:t.y0 + t.h, t.x0:t.x0 + t.w]
             if float(np.mean(part)) <= noise:
                 continue
+        if errors is not None and errors[k] <= denoised_noise:
+            continue
         extra.add_into(renderer.render(t, lo, samples - lo), t.y0, t.x0)
         refined += 1
         if progress:
@@ -92,4 +102,5 @@ def refine_frame_file(path: Path, shot_path: Path, samples: int, noise: float | 
         from ..engine.preview import write_preview
 
         write_preview(path.with_suffix(".png"), merged if denoised is None else denoised)
-    return {"tiles": refined, "of": len(tiles)}
+    return {"tiles": refined, "of": len(tiles),
+            "errors": None if errors is None else [float(e) for e in errors]}

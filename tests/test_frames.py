@@ -9,7 +9,7 @@ import OpenEXR
 import pytest
 from PIL import Image
 
-from lampyr.engine.exr import CHANNELS, DENOISED
+from lampyr.engine.exr import CHANNELS, DENOISED, ODD, ODD_COUNT
 from lampyr.engine.preview import to_8bit
 from lampyr.engine.shot import parse_shot_text
 from lampyr.frames import write_frame_files
@@ -39,7 +39,10 @@ def test_a_final_frame_has_the_denoised_layer(tmp_path, film):
     assert all(c in got and got[c].dtype == np.float32 for c in DENOISED)
 
 
-@pytest.mark.parametrize("name", CHANNELS)
+STORED = CHANNELS + ODD + (ODD_COUNT,)  # the odd half-frame too (docs/denoising.md)
+
+
+@pytest.mark.parametrize("name", STORED)
 def test_denoising_leaves_every_frame_channel_bit_identical(tmp_path, film, name):
     # RGBA and the rest stay the unbiased mean: the same as a frame written with denoise off
     on = channels(write(tmp_path, film, TINY_SHOT, folder="on"))
@@ -49,13 +52,13 @@ def test_denoising_leaves_every_frame_channel_bit_identical(tmp_path, film, name
 
 def test_denoise_false_writes_no_denoised_layer(tmp_path, film):
     got = channels(write(tmp_path, film, TINY_SHOT + "\n[output]\ndenoise = false\n"))
-    assert sorted(got) == sorted(CHANNELS)
+    assert sorted(got) == sorted(STORED)
 
 
 def test_an_intermediate_rewrite_is_not_denoised(tmp_path, film):
     # the head rewrites a frame as its tiles grow; only the complete frame is denoised
     got = channels(write(tmp_path, film, TINY_SHOT, final=False))
-    assert sorted(got) == sorted(CHANNELS)
+    assert sorted(got) == sorted(STORED)
 
 
 @pytest.mark.parametrize("final, layer", [(True, DENOISED), (False, ("R", "G", "B"))])

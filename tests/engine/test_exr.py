@@ -8,8 +8,8 @@ import numpy as np
 import OpenEXR
 import pytest
 
-from lampyr.engine.exr import (CHANNELS, DENOISED, UINT_CHANNELS, read_denoised, read_frame,
-                               write_frame)
+from lampyr.engine.exr import (CHANNELS, DENOISED, ODD, ODD_COUNT, UINT_CHANNELS, read_denoised,
+                               read_frame, write_frame)
 from lampyr.engine.film import FIELDS, Film, merge
 from lampyr.errors import FrameFileError
 
@@ -65,7 +65,8 @@ def test_channel_is_stored_with_its_pixel_type(written, name):
 
 def test_no_other_channels_are_stored(written):
     _, channels = openexr_read(written[0])
-    assert sorted(channels) == sorted(CHANNELS)
+    # and the odd half-frame's mean and count (docs/denoising.md)
+    assert sorted(channels) == sorted(CHANNELS + ODD + (ODD_COUNT,))
 
 
 def test_compression_is_lossless_zip(written):
