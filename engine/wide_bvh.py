@@ -38,6 +38,7 @@ from numba import njit, prange
 from .borrowing import borrowing
 from .bvh import BVH, _leaf, _ray_frame
 from .intersect import BOX_WIDEN, inverse
+from .wide_slabs import slabs4
 
 WIDTH = 4
 BOX_LO = 0  # rows of `box`: lo x, y, z
@@ -165,7 +166,8 @@ def collapse_bvh(bvh: BVH) -> WideBVH:
 @njit(cache=True, inline="always")
 def _slab(box, nd, j, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax):
     """Slab test of child slot j of node nd, as `intersect.ray_box_at` computes it; nx, ny, nz:
-    the rows of the near planes (BOX_HI + axis where the direction is negative)."""
+    the rows of the near planes (BOX_HI + axis where the direction is negative). The readable
+    reference of wide_slabs.slabs4, which the traversals use (all four slots at once)."""
     tn = tmin
     tf = tmax
     t0 = (box[nd, nx, j] - ox) * idx
@@ -233,10 +235,9 @@ def intersect_wide_at(box, meta, tris, tris_end, node_base, tri_base, end_base, 
     while True:
         if entry >= 0:
             nd = np.uint64(entry)
-            h0, k0 = _slab(box, nd, 0, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, best_t)
-            h1, k1 = _slab(box, nd, 1, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, best_t)
-            h2, k2 = _slab(box, nd, 2, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, best_t)
-            h3, k3 = _slab(box, nd, 3, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, best_t)
+            # the four children's slab tests at once (wide_slabs.py; the same bits as _slab)
+            mask, k0, k1, k2, k3 = slabs4(box, nd, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, best_t)
+            h0, h1, h2, h3 = (mask & 1) != 0, (mask & 2) != 0, (mask & 4) != 0, (mask & 8) != 0
             # an empty slot never passes a slab test of a finite ray; a NaN ray passes every
             # one, so empty slots are also masked by their count
             h0 = h0 and meta[nd, np.uint64(ROW_COUNT), 0] >= 0
@@ -318,10 +319,8 @@ def occluded_wide_at(box, meta, tris, tris_end, node_base, tri_base, end_base, w
     while True:
         if entry >= 0:
             nd = np.uint64(entry)
-            h0, k0 = _slab(box, nd, 0, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax)
-            h1, k1 = _slab(box, nd, 1, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax)
-            h2, k2 = _slab(box, nd, 2, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax)
-            h3, k3 = _slab(box, nd, 3, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax)
+            mask, k0, k1, k2, k3 = slabs4(box, nd, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax)
+            h0, h1, h2, h3 = (mask & 1) != 0, (mask & 2) != 0, (mask & 4) != 0, (mask & 8) != 0
             if sp <= room:
                 if h3 and meta[nd, ROW_COUNT, 3] >= 0:
                     stack[sp] = _entry(meta, nd, 3, node_base)
