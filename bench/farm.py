@@ -13,10 +13,12 @@ Celery's own task rate. Prints tables; compares side by side in one run (ratios)
    Beside it, the CPU seconds of each process of the farm: what the head, Redis, the worker's
    supervisor, Celery's parent and the pool processes cost. With --repeat N the two alternate
    (engine, farm, farm, engine, ...), so a neighbour's load lands on both.
-2. Head capacity: a real Head (in this process) driven by synthetic workers (processes answering
-   every queued batch at once with a precomputed 64 × 64 film) — merged batches per second —
-   beside the rate of Celery's own no-op task (a solo worker, the farm's Celery settings) on the
-   same Redis server, in the same run.
+2. Head capacity: a real Head (in this process, its frames written by their own thread as
+   `lampyr head` runs) driven by synthetic workers (processes answering every queued batch at
+   once with a precomputed 64 × 64 film) — merged batches per second, until the last batch is
+   merged and until the job is done (its one frame written and denoised) — and the head's CPU
+   seconds, beside the rate of Celery's own no-op task (a solo worker, the farm's Celery
+   settings) on the same Redis server, in the same run.
 """
 
 from __future__ import annotations
@@ -288,7 +290,10 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path) -> dict:
     for a in (DEMO.parent / "assets").iterdir():
         shutil.copy(a, tmp / "assets" / a.name)
     blob = _film_blob()
-    head = Head(tmp / "state", server.url, lease_seconds=120)
+    try:  # frames written by their own thread, as `lampyr head` runs
+        head = Head(tmp / "state", server.url, lease_seconds=120, frame_thread=True)
+    except TypeError:  # a head from before the frame writer
+        head = Head(tmp / "state", server.url, lease_seconds=120)
     head.start()
     r.set(P.k_host("synthetic"), json.dumps({"name": "synthetic", "cores": synthetic}))
     side = 64 * n_tiles_side
@@ -304,14 +309,20 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path) -> dict:
     for p in procs:
         p.start()
     time.sleep(1.0)  # the synthetic workers are up before the clock starts
-    start = time.perf_counter()
-    while head.job_state(run) != "done":
+    start, cpu = time.perf_counter(), time.process_time()
+    merged = None  # when the last batch was merged (its notice removed); the job is done once
+    while head.job_state(run) != "done":  # its frames are written too
         head.step()
+        if merged is None and not run.pending and not head.dispatcher.inflight(run.rec.id):
+            merged = time.perf_counter() - start
     seconds = time.perf_counter() - start
+    cpu = time.process_time() - cpu  # the head's process: its loop and its frame writer
     stop.set()
     for p in procs:
         p.join()
-    return {"batches": total, "seconds": seconds, "rate": total / seconds}
+    merged = merged or seconds
+    return {"batches": total, "seconds": seconds, "rate": total / seconds, "merged": merged,
+            "merge_rate": total / merged, "cpu": cpu}
 
 
 def noop_worker_main(url: str) -> None:
@@ -334,7 +345,7 @@ def noop_worker_main(url: str) -> None:
 
 def celery_noop_rate(server, n: int, tmp: Path) -> dict:
     """Tasks per second of Celery's own no-op task, sent as the head sends batches."""
-    from lampyr.scheduler.dispatch import make_sender
+    from lampyr.scheduler.sending import make_sender
 
     r = redis.Redis.from_url(server.url)
     r.delete(NOOP_DONE)
@@ -389,9 +400,14 @@ def capacity(args) -> None:
         ["Celery sends alone (the head's sender)", noop["tasks"], "",
          f"{noop['send_rate']:.0f}"],
         [f"head: 64×64 batches queued, answered, merged ({args.capacity_tiles}² tiles)",
+         cap["batches"], f"{cap['merged']:.2f}", f"{cap['merge_rate']:.0f}"],
+        ["head: the same until the job is done (its frame written and denoised)",
          cap["batches"], f"{cap['seconds']:.2f}", f"{cap['rate']:.0f}"],
     ])
-    print(f"head / Celery no-op: {cap['rate'] / noop['rate']:.2f}; goal ≥ 400 merged batches/s")
+    print(f"head CPU seconds (loop and frame writer): {cap['cpu']:.2f}, "
+          f"{1e3 * cap['cpu'] / cap['batches']:.1f} ms a batch")
+    print(f"head merged / Celery no-op: {cap['merge_rate'] / noop['rate']:.2f}; goal ≥ 400 "
+          "merged batches/s")
 
 
 # -- optional: pool layouts (one process, two, solo with two threads) --------------------------

@@ -19,6 +19,7 @@ disk keep everything merged.
 from __future__ import annotations
 
 import logging
+import threading
 import time
 from collections import deque
 from pathlib import Path
@@ -34,6 +35,7 @@ log = logging.getLogger("lampyr.head")
 # seconds between two rewrites of a frame that is not complete yet (rule of thumb: often enough
 # to watch a frame grow, rarely enough that EXR and PNG writing stays a small share of the head)
 REWRITE_EVERY = 5.0
+_record_lock = threading.Lock()  # job.json is written whole by one thread at a time
 
 
 class JobRun:
@@ -95,7 +97,8 @@ class JobRun:
         )
 
     def save(self) -> None:
-        self.folder.save(self.rec)
+        with _record_lock:  # the frame writer thread may save it too (stop_with_error)
+            self.folder.save(self.rec)
 
     def fail_batch(self, bid: str, text: str) -> None:
         """Mark a batch failed for good (retry queues it again) and write its frame without it."""
@@ -233,28 +236,30 @@ class JobRun:
         them with `all_now` (the head passes it when nothing of the job is pending or in flight:
         no more samples are coming, and a status of `failed` or `cancelled` must find every
         merged sample in the frame files)."""
-        if not self.due:
-            return True
-        now = time.monotonic()
-        ready = sorted(f for f, at in self.due.items() if all_now or at <= now)
-        for f in ready:
-            del self.due[f]
-        return self.write_frames(ready, force=True) if ready else True
+        with frame_lock(self.rec.id):
+            if not self.due:
+                return True
+            now = time.monotonic()
+            ready = sorted(f for f, at in list(self.due.items()) if all_now or at <= now)
+            for f in ready:
+                del self.due[f]
+            return self.write_frames(ready, force=True) if ready else True
 
     def write_frames(self, frames, held: bool = False, force: bool = False) -> bool:
         """Write the frames that grew (held: as `write_held_frame`); an error stops the job with
         its reason instead of reaching the head's loop. False when a frame could not be written."""
-        for f in frames:
-            try:
-                if held:
-                    self.write_held_frame(f)
-                else:
-                    self.write_frame_if_grown(f, force)
-            except Exception as err:  # noqa: BLE001 — any failure is this job's, not the head's
-                self.stop_with_error(f"cannot write frame {f} into {self.rec.out}: "
-                                     f"{_one_line(err)}")
-                return False
-        return True
+        with frame_lock(self.rec.id):
+            for f in frames:
+                try:
+                    if held:
+                        self.write_held_frame(f)
+                    else:
+                        self.write_frame_if_grown(f, force)
+                except Exception as err:  # noqa: BLE001 — any failure is this job's, not the head's
+                    self.stop_with_error(f"cannot write frame {f} into {self.rec.out}: "
+                                         f"{_one_line(err)}")
+                    return False
+            return True
 
     def settle_written(self) -> None:
         """At start-up: a frame file at least as new as every tile file of its frame holds what
@@ -323,6 +328,17 @@ class JobRun:
                 if known is None or known[0] > goal:
                     out.append((f, i))
         return out
+
+
+_FRAME_LOCKS: dict[str, threading.RLock] = {}
+_LOCKS_LOCK = threading.Lock()
+
+
+def frame_lock(job: str) -> threading.RLock:
+    """The lock a job's frame writing holds (the head's loop and its frame writer thread,
+    framewriter.py, may both write; one frame of a job at a time, and its record saved whole)."""
+    with _LOCKS_LOCK:
+        return _FRAME_LOCKS.setdefault(job, threading.RLock())
 
 
 def _remainders(b: Batch, ranges) -> list[Batch]:

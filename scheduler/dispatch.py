@@ -21,17 +21,9 @@ import time
 from . import heartbeats
 from . import protocol as P
 from .leases import Inflight, LeaseKeeper
+from .sending import publish
 
 log = logging.getLogger("lampyr.head")
-
-
-def make_sender(url: str):
-    """A Celery app used only to send TASK_RENDER messages (no result backend)."""
-    from celery import Celery
-
-    app = Celery("lampyr-head", set_as_current=False)
-    app.conf.update(P.celery_settings(url))
-    return app
 
 
 class Dispatcher:
@@ -91,15 +83,29 @@ class Dispatcher:
     # -- sending ------------------------------------------------------------------------------
 
     def send(self, b: P.Batch) -> None:
-        run = self.runs[b.job]
-        self.hold_files(run)
-        ticket = self.tickets.get(b.id, 0) + 1
-        self.tickets[b.id] = ticket
-        self.r.hset(P.K_INFLIGHT, b.id, ticket)
-        task = P.RenderTask(P.PROTOCOL_VERSION, b, ticket, run.rec.bundle, run.rec.shot,
-                            run.rec.overrides)
-        self.sender.send_task(P.TASK_RENDER, args=[task.to_json()], queue=P.QUEUE)
-        self.leases.add(b, ticket)
+        self.send_group([b])
+
+    def send_group(self, batches: list) -> None:
+        """Queue `batches` under new tickets: their tickets in one round trip, then their
+        messages in one group (sending.py). Raises when Redis refuses, with none of them taken
+        for sent (the caller keeps them where they were)."""
+        tickets = {}
+        for b in batches:
+            tickets[b.id] = self.tickets.get(b.id, 0) + 1
+        self.tickets.update(tickets)
+        payloads = []
+        held = set()
+        for b in batches:
+            run = self.runs[b.job]
+            if b.job not in held:
+                self.hold_files(run)
+                held.add(b.job)
+            payloads.append(P.RenderTask(P.PROTOCOL_VERSION, b, tickets[b.id], run.rec.bundle,
+                                         run.rec.shot, run.rec.overrides).to_json())
+        self.r.hset(P.K_INFLIGHT, mapping=tickets)  # current before any worker can see a message
+        publish(self.sender, payloads)
+        for b in batches:
+            self.leases.add(b, tickets[b.id])
 
     def requeue(self, b: P.Batch) -> None:
         """Send `b` again under a new ticket. When the send fails (Redis full, gone) the batch
@@ -117,28 +123,31 @@ class Dispatcher:
             raise
 
     def fill(self, admit=lambda run, b: True) -> int:
-        """Queue pending batches while fewer than `cores + 2` wait unclaimed in the queue.
-        admit(run, b): False keeps the batch aside (the ready-by keeper's plan)."""
+        """Queue pending batches while fewer than `cores + 2` wait unclaimed in the queue, in one
+        group. admit(run, b): False keeps the batch aside (the ready-by keeper's plan)."""
         room = max(2, self.free_cores() + 2) - self.leases.waiting()
-        sent = 0
         order = sorted((run for run in self.runs.values() if run.pending and not run.rec.paused
                         and not run.rec.cancelled and not run.rec.error),
                        key=lambda run: (-run.rec.priority, run.rec.submitted))
+        chosen, ids = [], set()
         for run in order:
-            while run.pending and sent < room:
+            while run.pending and len(chosen) < room:
                 b = run.pending.popleft()
-                if run.is_done(b) or b.id in self.leases:
+                if run.is_done(b) or b.id in self.leases or b.id in ids:
                     continue
                 if not admit(run, b):
                     continue
-                try:
-                    self.send(b)
-                except BaseException:  # e.g. Redis at its memory cap: the batch stays pending
-                    if b.id not in self.leases:
-                        run.pending.appendleft(b)
-                    raise
-                sent += 1
-        return sent
+                chosen.append(b)
+                ids.add(b.id)
+        if not chosen:
+            return 0
+        try:
+            self.send_group(chosen)
+        except BaseException:  # e.g. Redis at its memory cap: the batches stay pending, in order
+            for b in reversed(chosen):
+                self.runs[b.job].pending.appendleft(b)
+            raise
+        return len(chosen)
 
     def free_cores(self) -> int:
         """Cores of the live workers that can take work now (re-read once a second): a worker

@@ -44,7 +44,8 @@ from . import commands
 from . import protocol as P
 from .accumulator import write_atomic
 from .assembler import REWRITE_EVERY, JobRun
-from .dispatch import Dispatcher, make_sender
+from .dispatch import Dispatcher
+from .sending import make_sender
 from .history import HistoryRecorder
 from .jobs import JobFolder, list_jobs
 from .metrics import HeadCounters
@@ -54,6 +55,8 @@ from .progress import ProgressPublisher
 from .ready_by_keeper import ReadyByKeeper
 from .results import Results, set_aside_undecodable
 from .scenes import SceneKeeper
+from .tilestore import TileStore
+from .framewriter import FrameWriter
 from .submit import submit_request  # noqa: F401  (the client side of `commands.submit`)
 
 log = logging.getLogger("lampyr.head")
@@ -68,13 +71,16 @@ class Head:
     lease_seconds: how long a silent worker keeps its batches; max_attempts: starts of a batch
     (crashes, lost leases, errors) before it is marked failed; archive_after: seconds after its
     end a job folds away (None: never); durable: False skips fsyncing tile files (a scratch
-    state folder); rewrite_every: seconds between two rewrites of a frame not complete yet.
+    state folder); rewrite_every: seconds between two rewrites of a frame not complete yet;
+    frame_thread: frames are written by a thread of their own (framewriter.py) while the loop
+    goes on merging — what `lampyr head` and `lampyr render` run; False writes them inside the
+    turn that merged their samples, so a caller driving `step()` by hand finds them written.
     """
 
     def __init__(self, state: Path, url: str, lease_seconds: float = 120.0, max_attempts: int = 3,
                  redis_server=None, partial_frames: bool = True,
                  archive_after: float | None = ARCHIVE_AFTER, durable: bool = True,
-                 rewrite_every: float = REWRITE_EVERY):
+                 rewrite_every: float = REWRITE_EVERY, frame_thread: bool = False):
         from .store import connect
 
         self.state = Path(state)
@@ -91,9 +97,12 @@ class Head:
         self.scenes = SceneKeeper(self.r, self.jobs, self._busy_jobs)
         self.dispatcher = Dispatcher(self.r, make_sender(url), self.jobs, max_attempts,
                                      self.metrics, self.scenes.hold)
-        self.results = Results(self.r, self.jobs, self.dispatcher, self.metrics)
+        self.tiles = TileStore(fsync=durable)  # the tiles in memory, written in groups
+        self.frame_writer = FrameWriter(frame_thread)  # frame rewrites off the merge path
+        self.results = Results(self.r, self.jobs, self.dispatcher, self.metrics, self.tiles,
+                               self.frame_writer)
         self.commands = commands.Context(self.state, self.r, self.jobs, self.dispatcher,
-                                         partial_frames, durable, rewrite_every)
+                                         partial_frames, durable, rewrite_every, self.tiles)
         self.ready_by = ReadyByKeeper(self.jobs, self.dispatcher, self.r)
         self.progress = ProgressPublisher()  # per-frame / per-tile summary for the web page
         self.history = HistoryRecorder()  # throughput per minute, workers last seen
@@ -193,8 +202,11 @@ class Head:
         self.ready_by.tick()
         busy |= self.dispatch() > 0
         for run in self.jobs.values():  # frame rewrites held back (JobRun.rewrite_every)
-            if run.due:  # the in-flight scan below only for a job with a rewrite held back
-                run.write_due(all_now=not run.pending and not self.dispatcher.inflight(run.rec.id))
+            due = list(run.due.values())  # the frame writer's thread edits it
+            if due:  # the in-flight scan below only for a job with a rewrite held back
+                all_now = not run.pending and not self.dispatcher.inflight(run.rec.id)
+                if all_now or min(due) <= now:
+                    self.frame_writer.write_due(run, all_now)
         self.hold_files()
         self.publish()
         return busy
@@ -233,6 +245,12 @@ class Head:
     # -- status -----------------------------------------------------------------------------
 
     def job_state(self, run: JobRun) -> str:
+        state = self._job_state(run)
+        if state in ENDED and self.frame_writer.busy(run):
+            return "running"  # ended once its frames hold every merged sample
+        return state
+
+    def _job_state(self, run: JobRun) -> str:
         if run.rec.cancelled:
             return "cancelled"
         if run.rec.error:

@@ -70,7 +70,7 @@ def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: in
                 start_new_session=True, cwd=state, preexec_fn=die_with_parent())
         # the state folder is scratch, removed at the end: its tile files need no fsync
         head = Head(state, server.url, lease_seconds=60, redis_server=server, partial_frames=False,
-                    durable=False)
+                    durable=False, frame_thread=True)
         head.start()
 
         def run_head():

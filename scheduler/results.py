@@ -25,7 +25,7 @@ from __future__ import annotations
 import json
 import logging
 import time
-from dataclasses import replace
+from dataclasses import dataclass, replace
 
 from . import protocol as P
 
@@ -97,8 +97,13 @@ class Results:
     """runs: the head's job table; dispatch: the `Dispatcher` (leases, requeue, fail);
     metrics: the head's counters."""
 
-    def __init__(self, r, runs: dict, dispatch, metrics):
+    def __init__(self, r, runs: dict, dispatch, metrics, tiles=None, frames=None):
+        from .framewriter import FrameWriter
+        from .tilestore import TileStore
+
         self.r = r
+        self.tiles = tiles if tiles is not None else TileStore()  # the group commit
+        self.frames = frames if frames is not None else FrameWriter(threaded=False)
         self.runs = runs
         self.dispatch = dispatch
         self.metrics = metrics
@@ -123,8 +128,6 @@ class Results:
     def take(self, limit: int = 256) -> int:
         import redis
 
-        from .accumulator import fsync_folder
-
         r = self.r
         self._unpark()
         raws, self.early = self.early, []
@@ -145,25 +148,34 @@ class Results:
         from .store import transient_errors
 
         lost = transient_errors()
-        folders, frames, finished = set(), set(), []
+        frames, finished, staged = set(), [], []
         for (raw, note), data in zip(notes, blobs):
             try:
-                self._one(note, data, folders, frames, finished)
+                merged = self._one(note, data, frames, finished)
             except lost:
                 raise  # Redis went away: the notices stay in processing, taken again (reconcile)
             except (OSError, redis.exceptions.RedisError) as err:  # the disk or Redis, not it
                 self._park(raw, note, err)
             except Exception as err:  # noqa: BLE001 — a bad result fails its batch, not the head
                 self._bad(note, err, finished)
-        for folder in folders:
-            fsync_folder(folder)
+            else:
+                if merged is not None:
+                    staged.append((raw, note, merged))
+        # the group commit: every tile merged into above is on disk before any notice goes
+        failed = self.tiles.commit()
+        for raw, note, merged in staged:
+            if merged.path in failed:
+                self._undo(merged, finished)
+                self._park(raw, note, failed[merged.path])
+            elif merged.pixels:
+                self.metrics.merged(merged.pixels)
         by_job: dict[str, list] = {}
         for job, frame in sorted(frames):
             by_job.setdefault(job, []).append(frame)
         for job, fs in by_job.items():
             run = self.runs.get(job)
             if run is not None:
-                run.write_frames(fs)
+                self.frames.write(run, fs)  # by the frame writer's thread (framewriter.py)
         pipe = r.pipeline(transaction=False)
         if finished:
             pipe.hdel(P.K_INFLIGHT, *finished)
@@ -173,6 +185,25 @@ class Results:
                 pipe.delete(P.k_result(note["batch"], note["ticket"]))
         pipe.execute()
         return len(raws)
+
+    def _undo(self, merged: "Merged", finished: list) -> None:
+        """The tile of a merged notice could not be written: what the merge changed in the
+        head's tables goes back (its lease, its remainder), and the tile holds what its file
+        holds."""
+        run, bid = merged.run, merged.bid
+        while bid in finished:
+            finished.remove(bid)
+        if merged.entry is not None and bid not in self.dispatch.leases:
+            self.dispatch.leases.table[bid] = merged.entry
+        if merged.rest is not None:
+            try:
+                run.pending.remove(merged.rest)
+            except ValueError:
+                pass
+        try:
+            run.reread_tile(merged.frame, merged.tile)
+        except Exception as err:  # noqa: BLE001 — an unreadable file: the job stops anyway
+            log.error("batch %s: cannot read its tile file again: %s", bid, _one_line(err))
 
     def _park(self, raw: bytes, note: dict, err: Exception) -> None:
         """Keep a notice (and its result) in processing for later: the head's disk refused it
@@ -201,38 +232,35 @@ class Results:
             if self.r.lrem(P.K_PROCESSING, 1, raw):
                 self.r.lpush(P.K_RESULTS, raw)
 
-    def _one(self, note: dict, data, folders: set, frames: set, finished: list) -> None:
+    def _one(self, note: dict, data, frames: set, finished: list) -> "Merged | None":
+        """Handle one notice; a result or part merged in memory (or held already) comes back
+        as a `Merged`, to be committed with its group."""
         from ..engine.film import from_bytes
 
         bid, ticket = note["batch"], note["ticket"]
         job, frame = P.parse_batch_id(bid)[:2]
         run = self.runs.get(job)
         if run is None or run.rec.cancelled:
-            return
+            return None
         entry = self.dispatch.leases.get(bid)
         if note["kind"] == "partial":
-            taken, merged = self._take_back(run, entry, ticket, note, data)
-            if merged and run.durable:
-                folders.add(run.folder.tile(entry.batch.frame, entry.batch.tile).parent)
-                frames.add((job, frame))
-            if taken:
-                finished.append(bid)
-            return
+            return self._take_back(run, entry, ticket, note, data, frames, finished)
         if note["kind"] == "error":
             self._on_error(run, bid, ticket, str(note.get("error", "?")))
-            return
+            return None
         b = entry.batch if entry else batch_of(run, bid)
         if data is not None and b is not None:
-            if run.merge(b, from_bytes(data), float(note.get("seconds", 0.0)), sync_folder=False):
-                self.metrics.merged(b.w * b.h * b.count)
-                if run.durable:
-                    folders.add(run.folder.tile(b.frame, b.tile).parent)
+            merged = run.merge(b, from_bytes(data), float(note.get("seconds", 0.0)),
+                               sync_folder=False)
             # also when held already (a replay): its frame may not have been written before
             frames.add((job, frame))
-            self.dispatch.leases.pop(bid)
+            popped = self.dispatch.leases.pop(bid)
             finished.append(bid)
-        elif data is None and entry is not None and entry.ticket == ticket:
+            return Merged(run, bid, b.frame, b.tile, run.folder.tile(b.frame, b.tile), popped,
+                          None, b.w * b.h * b.count if merged else 0)
+        if data is None and entry is not None and entry.ticket == ticket:
             self.dispatch.requeue(entry.batch)  # the result expired or was lost
+        return None
 
     def _bad(self, note: dict, err: Exception, finished: list) -> None:
         """A result that could not be decoded or merged: its batch fails with the reason."""
@@ -254,30 +282,36 @@ class Results:
             self.dispatch.leases.pop(bid)
         finished.append(bid)
 
-    def _take_back(self, run, entry, ticket: int, note: dict, data) -> tuple[bool, bool]:
+    def _take_back(self, run, entry, ticket: int, note: dict, data, frames: set,
+                   finished: list) -> "Merged | None":
         """A batch handed back part-way: merge the samples [first, first + done) it holds and
-        queue the rest first. Returns (taken, merged). The notice of a dispatch the head has
-        replaced is skipped whole: the newer dispatch renders the whole batch."""
+        queue the rest first. The notice of a dispatch the head has replaced is skipped whole:
+        the newer dispatch renders the whole batch."""
         from ..engine.film import from_bytes
 
         if entry is None or entry.ticket != ticket:
-            return False, False
+            return None
         b = entry.batch
         done = max(0, min(int(note.get("done", 0)), b.count))
         if done and data is None:  # the part expired or was lost: the whole batch again
             self.dispatch.requeue(b)
-            return False, False
+            return None
         part = replace(b, count=done)
         merged = bool(done) and run.merge(part, from_bytes(data), float(note.get("seconds", 0.0)),
                                           sync_folder=False)
-        if merged:
-            self.metrics.merged(b.w * b.h * done)
         self.dispatch.leases.pop(b.id)
+        rest = None
         if done < b.count:
-            run.pending.appendleft(replace(b, first=b.first + done, count=b.count - done))
+            rest = replace(b, first=b.first + done, count=b.count - done)
+            run.pending.appendleft(rest)
+        finished.append(b.id)
         log.info("batch %s handed back by %s with %d of %d samples", b.id,
                  note.get("worker", "?"), done, b.count)
-        return True, merged
+        if not done:
+            return None
+        frames.add((b.job, b.frame))
+        return Merged(run, b.id, b.frame, b.tile, run.folder.tile(b.frame, b.tile), entry, rest,
+                      b.w * b.h * done if merged else 0)
 
     def _on_error(self, run, bid: str, ticket: int, error: str) -> None:
         entry = self.dispatch.leases.get(bid)
@@ -285,6 +319,22 @@ class Results:
             return  # a message the head had already replaced
         self.metrics.batch_errors += 1
         self.dispatch.give_up_or_requeue(run, entry.batch, error)
+
+
+@dataclass
+class Merged:
+    """A notice merged in memory, waiting for its group's commit: what to undo if its tile
+    cannot be written (the lease entry taken, the remainder queued) and what to count if it
+    can (pixel-samples newly merged; 0 for a range held already)."""
+
+    run: object
+    bid: str
+    frame: int
+    tile: int
+    path: object
+    entry: object
+    rest: object
+    pixels: int
 
 
 def batch_of(run, bid: str) -> P.Batch | None:

@@ -59,7 +59,7 @@ def run_head(state: Path, redis_url: str | None = None, listen: str = "127.0.0.1
 
         head = Head(state, redis_url, lease_seconds=lease_seconds, max_attempts=max_attempts,
                     archive_after=ARCHIVE_AFTER if archive_after is None else archive_after,
-                    redis_server=server)
+                    redis_server=server, frame_thread=True)
         head.start()
         if metrics is not None:
             from .metrics import MetricsServer
