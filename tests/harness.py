@@ -23,7 +23,10 @@ FAKES-JSON is an object with any of:
 - "user_pids": [pid, …] — only these processes (and their children) count as the machine's
   user's CPU load;
 - "hold_frame_write": {"after": n, "marker": path} — the head writes n frame files at a ready-by
-  stop, then creates `marker` and waits there forever (for the test's SIGKILL).
+  stop, then creates `marker` and waits there forever (for the test's SIGKILL);
+- "hold_commit": {"after": n, "marker": path} — the head renames n tile files of a group commit
+  into place (scheduler/tilestore.py), then creates `marker` and waits there forever, before the
+  group's other tiles and before removing any notice.
 """
 
 from __future__ import annotations
@@ -154,6 +157,7 @@ def install_worker_fakes(fakes: dict) -> None:
 # -- the head ----------------------------------------------------------------------------------
 
 def install_head_fakes(fakes: dict) -> None:
+    hold_in_commit(fakes.get("hold_commit"))
     hold = fakes.get("hold_frame_write")
     if not hold:
         return
@@ -171,6 +175,27 @@ def install_head_fakes(fakes: dict) -> None:
         written.append(frame)
 
     ready_by_keeper.write_held_frame = write_then_hold
+
+
+def hold_in_commit(hold: dict | None) -> None:
+    """A head that stops for good in the middle of a group commit of tile files: after
+    `after` tiles are renamed into place, before the others and before any notice is removed."""
+    if not hold:
+        return
+    from lampyr.scheduler import tilestore
+
+    real = tilestore._rename
+    renamed = []
+
+    def rename_then_hold(tmp, path):
+        real(tmp, path)
+        renamed.append(path)
+        if len(renamed) >= int(hold["after"]):
+            Path(hold["marker"]).write_text(f"holding after {len(renamed)} tile(s)\n")
+            while True:
+                time.sleep(3600)
+
+    tilestore._rename = rename_then_hold
 
 
 def main(argv: list[str]) -> None:

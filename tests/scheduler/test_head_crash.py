@@ -115,3 +115,53 @@ def test_a_command_error_stays_in_status_after_later_publishes(farm, tiny_shot):
     text = farm.cli("status", job, "--head", farm.url).stdout
     assert "priority" in text and "high" in text
     assert farm.head_proc.poll() is None
+
+
+def test_a_head_killed_in_the_middle_of_a_group_commit_merges_every_batch_once(farm, tiny_shot,
+                                                                               tmp_path):
+    """docs/design.md, invariants 3 and 4: the head writes the tiles of a group of results
+    together and removes their notices only after; killed (SIGKILL) with half the group's tiles
+    renamed into place, the restarted head merges the others and drops the replays of those on
+    disk, so every sample range counts once."""
+    from lampyr.engine.exr import read_frame
+    from lampyr.engine.render import tiles_for
+    from lampyr.engine.shot import load_shot
+    from lampyr.scheduler.accumulator import read_header
+
+    from .farmtools import assert_same_image, frame_mean, reference_mean
+    from .test_head_faults import render
+
+    marker = tmp_path / "holding"
+    farm.start_head(fakes={"hold_commit": {"after": 2, "marker": str(marker)}})
+    out = tmp_path / "out"
+    job = farm.submit(tiny_shot, "--out", out, *LAYOUT)
+    wait_for(lambda: taken(farm, job), what="the head to take the job")
+    r = redis.Redis.from_url(farm.url)
+    shot = load_shot(tiny_shot)
+    tiles = tiles_for(shot.width, shot.height, 8)
+    assert len(tiles) == 4
+    # frame 1's first pass, the four tiles' results arriving together: one group of four
+    batches = [P.Batch(job, 1, i, 0, 1, t.x0, t.y0, t.w, t.h) for i, t in enumerate(tiles)]
+    for b in batches:
+        r.set(P.k_result(b.id, 1), render(tiny_shot, b))
+    r.rpush(P.K_RESULTS, *[P.result_notice(b.id, 1, "w", 0.1) for b in batches])
+    wait_for(marker.exists, timeout=60, what="the head to stop inside its group commit")
+    folder = farm.state / "jobs" / job / "tiles" / "0001"
+    held = [read_header(folder / f"{i:05d}.acc")[0] for i in range(4)]
+    assert sorted(map(len, held)) == [0, 0, 1, 1]  # two tiles on disk, two not yet
+    assert r.llen(P.K_PROCESSING) == 4 and r.llen(P.K_RESULTS) == 0  # no notice removed yet
+    os.killpg(farm.head_proc.pid, signal.SIGKILL)
+    restart_head(farm)
+    farm.start_worker("a")
+    st = farm.wait(job, timeout=180)
+    assert st["state"] == "done" and not st["failed"] and st["frames_done"] == 2
+    assert r.llen(P.K_PROCESSING) == 0 and r.llen(P.K_RESULTS) == 0
+    plan = [(0, 1), (1, 3), (4, 3), (7, 1)]  # LAYOUT: 8 spp as a first pass of 1, then 3s
+    for f in (1, 2):
+        for i in range(4):
+            path = farm.state / "jobs" / job / "tiles" / f"{f:04d}" / f"{i:05d}.acc"
+            assert read_header(path)[0] == plan, (f, i)
+        film, _ = read_frame(out / f"tiny.{f:04d}.exr")
+        assert (film.n == 8).all()  # 8 samples a pixel: none lost, none counted twice
+        # the same samples as the engine alone renders (invariant 1), up to float32 rounding
+        assert_same_image(frame_mean(out, "tiny", f), reference_mean(tiny_shot, f))
