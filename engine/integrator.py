@@ -42,7 +42,7 @@ from .material_table import (
     MATERIAL_SIZE, PBR, passable,
 )
 from .pbr import pbr_absorption, pbr_thin_transmittance
-from .sampler import sample_dim
+from .sampler import group_state, group_value, pixel_key
 from .scene import FLAG_PASSABLE, VISIT_PASSABLE, VISIT_SOLID, intersect_scene, occluded_scene
 from .scene_data import ALPHA_BLEND, ALPHA_MASK
 from .surface import (
@@ -60,6 +60,8 @@ MAX_PASSES = 16  # thin walls a path passes straight through, beyond its bounces
 SMOOTH_MESH_COS = 0.866
 DIMS_PER_BOUNCE = 8
 FIRST_BOUNCE_DIM = 8
+# a vertex's dimensions are two whole groups of four (sampler.group_state)
+assert FIRST_BOUNCE_DIM % 4 == 0 and DIMS_PER_BOUNCE == 8
 
 
 @njit(cache=True, inline="always")
@@ -160,11 +162,14 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
     hit's surface and resolved material (surface.py), and the same for shadow rays' tests,
     allocated once per thread. split: bits of layers.SPLIT_*; when not 0 every contribution is
     also added into `lay` (rows of layers.py), which the caller zeroed."""
-    jx = sample_dim(seed, frame, pixel, index, 0, mode)
-    jy = sample_dim(seed, frame, pixel, index, 1, mode)
-    lu = sample_dim(seed, frame, pixel, index, 2, mode)
-    lv = sample_dim(seed, frame, pixel, index, 3, mode)
-    time_u = sample_dim(seed, frame, pixel, index, 4, mode)
+    # sample values come in groups of four dimensions that share their scrambling (sampler.py)
+    key = pixel_key(seed, frame, pixel)
+    g = group_state(key, index, 0, mode)
+    jx = group_value(g, 0, mode)
+    jy = group_value(g, 1, mode)
+    lu = group_value(g, 2, mode)
+    lv = group_value(g, 3, mode)
+    time_u = group_value(group_state(key, index, 1, mode), 4, mode)
     ox, oy, oz, dx, dy, dz = camera_ray(cam, aperture, width, height, fx + jx, fy + jy, lu, lv, time_u)
 
     lr = 0.0
@@ -193,7 +198,10 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
         base = FIRST_BOUNCE_DIM + DIMS_PER_BOUNCE * vertex
         unscattered = bounce == 0  # nothing has scattered the ray yet (thin walls pass it on)
         # the next surface the ray stops at: cut-outs and uncovered parts are passed
-        u_cover = sample_dim(seed, frame, pixel, index, base + 7, mode)
+        # this vertex's dimensions: base .. base + 3 (BSDF, roulette), base + 4 .. base + 7
+        # (light, coverage); base is a multiple of 4, so each four are one group
+        g_light = group_state(key, index, (base + 4) >> 2, mode)
+        u_cover = group_value(g_light, base + 7, mode)
         t = 0.0
         travelled = 0.0  # along this segment, past every layer passed (for absorption)
         inst = -1
@@ -313,9 +321,9 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
 
         # next-event estimation
         if not last and has_nonspecular_lobe(rm):
-            u1 = sample_dim(seed, frame, pixel, index, base + 4, mode)
-            u2 = sample_dim(seed, frame, pixel, index, base + 5, mode)
-            u_sel = sample_dim(seed, frame, pixel, index, base + 6, mode)
+            u1 = group_value(g_light, base + 4, mode)
+            u2 = group_value(g_light, base + 5, mode)
+            u_sel = group_value(g_light, base + 6, mode)
             wx, wy, wz, dist, er, eg, eb, pl, delta = sample_light(S, px, py, pz, time_u, u_sel, u1, u2)
             cos_g = wx * gx + wy * gy + wz * gz
             if pl > 0.0 and (er > 0.0 or eg > 0.0 or eb > 0.0):
@@ -380,9 +388,10 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
                                     sampled_group(S, u_sel))
 
         # continue the path by sampling the BSDF
-        u1 = sample_dim(seed, frame, pixel, index, base + 0, mode)
-        u2 = sample_dim(seed, frame, pixel, index, base + 1, mode)
-        u0 = sample_dim(seed, frame, pixel, index, base + 2, mode)
+        g_bsdf = group_state(key, index, base >> 2, mode)
+        u1 = group_value(g_bsdf, base + 0, mode)
+        u2 = group_value(g_bsdf, base + 1, mode)
+        u0 = group_value(g_bsdf, base + 2, mode)
         wix, wiy, wiz, wr, wg, wb, pdf, is_delta = bsdf_sample(rm, wox, woy, woz, u0, u1, u2)
         passes = is_delta and _thin(rm) and wiz * woz < 0.0  # straight through a thin wall
         if not (wr > 0.0 or wg > 0.0 or wb > 0.0) or (last and not passes):
@@ -426,7 +435,7 @@ def trace_path(S, cam, aperture, width, height, frame, seed, mode, max_bounces, 
         bounce += 1
         if bounce >= rr_start:
             q = min(0.95, max(br, max(bg, bb)))
-            if sample_dim(seed, frame, pixel, index, base + 3, mode) >= q:
+            if group_value(g_bsdf, base + 3, mode) >= q:
                 break
             br /= q
             bg /= q

@@ -184,6 +184,32 @@ def sample_dim(seed, frame, pixel, index, dim, mode=SOBOL):
 
 
 @njit(cache=True)
+def group_state(key, index, group, mode=SOBOL):
+    """What the four dimensions 4·group .. 4·group + 3 of sample `index` share, for
+    `group_value`: (group seed, shuffled index) in SOBOL mode, (the sample's key, 0) in RANDOM
+    mode. key: the pixel's `pixel_key`. A path draws its values in groups of four, so this
+    spares three of every four group seeds and index shuffles; the values are `sample_dim`'s."""
+    idx = np.uint64(index)
+    if mode == RANDOM:
+        return hash_combine(key, idx), np.uint64(0)
+    if mode != SOBOL:
+        raise ValueError("sampler mode must be SOBOL (0) or RANDOM (1)")
+    group_seed = hash_combine(hash_combine(key, group), idx >> np.uint64(32))
+    return group_seed, nested_uniform_scramble(idx & _M32, group_seed)
+
+
+@njit(cache=True)
+def group_value(state, dim, mode=SOBOL):
+    """Dimension `dim` of the sample whose group state (for group dim // 4) is `state` ->
+    float64 in [0, 1), the same bits as sample_dim."""
+    seed, shuffled = state
+    if mode == RANDOM:
+        return float(hash_combine(seed, dim)) * _TO_UNIT
+    d = dim & 3
+    return float(nested_uniform_scramble(sobol_u32(shuffled, d), hash_combine(seed, d + 1))) * _TO_UNIT
+
+
+@njit(cache=True)
 def fill_samples(seed, frame, pixel, first, first_dim, mode, out):
     """out[i, j] = sample_dim(seed, frame, pixel, first + i, first_dim + j, mode).
 
