@@ -80,6 +80,7 @@ class JobRun:
         # frame → (its tiles' denoised errors, the lowest spp they were measured at), from its
         # last denoised write (engine/dual_buffer.py) or that file's header, read when first asked
         self.denoised: dict[int, tuple[list, int]] = {}
+        self._no_errors: dict[int, int] = {}  # frame → mtime_ns of its file, read with no errors
         self.replan()
 
     def replan(self) -> None:
@@ -310,8 +311,15 @@ class JobRun:
             from ..frames import frame_path, read_errors
 
             path = frame_path(Path(self.rec.out), self.shot.name, frame)
+            try:
+                stamp = path.stat().st_mtime_ns
+            except OSError:
+                return None
+            if self._no_errors.get(frame) == stamp:  # this file was read and holds none
+                return None
             found = read_errors(path)
             if found is None or len(found[0]) != len(self.tiles):
+                self._no_errors[frame] = stamp
                 return None
             self.denoised[frame] = ([float("inf") if e is None else e for e in found[0]], found[1])
         errors, at = self.denoised[frame]

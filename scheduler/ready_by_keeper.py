@@ -154,10 +154,13 @@ class ReadyByKeeper:
     def tile_states(self, run, inflight: dict) -> list[TileState]:
         ends = sorted({a + c for a, c in run.rec.ranges})
         out = []
-        denoised = {(f, i): run.denoised_error(f, i) for f in run.frames
-                    for i in range(len(run.tiles))}
-        if any(v is None for v in denoised.values()):
-            denoised = None  # not known for every tile: the raw noise, one scale for all
+        denoised: dict | None = {}
+        for key in ((f, i) for f in run.frames for i in range(len(run.tiles))):
+            known = run.denoised_error(*key)
+            if known is None:  # not known for every tile: the raw noise, one scale for all
+                denoised = None
+                break
+            denoised[key] = known
         for f in run.frames:
             for i, t in enumerate(run.tiles):
                 held = samples_held(run.held[(f, i)])
