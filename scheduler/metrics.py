@@ -16,7 +16,7 @@ import json
 import threading
 import time
 from collections import deque
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field, fields
 
 from . import protocol as P
 
@@ -53,10 +53,10 @@ class HeadCounters:
         return (len(self._recent) / span, sum(n for _, n in self._recent) / span)
 
     def as_dict(self) -> dict:
-        d = asdict(self)
-        d.pop("_recent")
-        d.pop("born")
-        return d
+        # the counters only: dataclasses.asdict would deep-copy the minute of merges in _recent
+        # (12 000 entries at 200 batches/s), 29 ms at every snapshot, four times a second
+        return {f.name: getattr(self, f.name) for f in fields(self)
+                if f.name not in ("_recent", "born")}
 
 
 def snapshot(head) -> dict:
