@@ -27,7 +27,7 @@ samples go where they lower the frame's error most; a dark tile's noise counts a
 shows against the frame's brightness. (Measured: ranking tiles by their error relative to their
 own luminance sent samples to dark corners and made the frame's error worse than uniform
 sampling on one of the two test scenes; see docs/denoising.md.) Assumptions, each only approximately true:
-  1. the two halves are independent (disjoint samples; invariant 1 of docs/design.md) and are
+  1. the two halves are independent (disjoint samples; docs/design.md, invariant 1) and are
      denoised with the same guides (the whole frame's albedo and normal), so only their colour
      noise differs;
   2. the denoiser acts on a half as it acts on the whole frame, its output's variance falling as
@@ -96,3 +96,25 @@ def tile_errors(film, tiles, denoised=None, halves=None, eps: float = EPS, **den
             continue
         out[k] = float(np.sqrt(vt.mean()) / scale)
     return out
+
+
+def tile_targets(errors, held, goal: float, cap: int) -> np.ndarray:
+    """Samples per pixel each tile should reach for a denoised-error goal: a tile whose error e
+    (measured at `held` spp) is above `goal` gets held · e / goal, rounded up, at most `cap`; the
+    others keep what they hold; a tile whose error is not known (inf, NaN) gets `cap`.
+
+    Samples in proportion to the error: under the Monte Carlo error law (a tile's squared error
+    c / n) this is Neyman's optimum allocation of stratified sampling (J. Neyman, "On the two
+    different aspects of the representative method", J. Royal Statistical Society 97, 1934; from
+    memory), n proportional to each stratum's standard deviation, which makes the frame's summed
+    squared error the least for the samples spent; the goal sets how many are spent. One round
+    does not bring a tile to the goal (its error falls to about sqrt(e · goal)); refining again
+    with the same goal goes on."""
+    e = np.asarray(errors, np.float64)
+    held = np.broadcast_to(np.asarray(held, np.float64), e.shape)
+    out = held.copy()
+    unknown = ~np.isfinite(e)
+    above = ~unknown & (e > goal)
+    out[above] = np.ceil(held[above] * e[above] / goal - 1e-9)
+    out[unknown] = cap
+    return np.maximum(np.minimum(out, cap), held).astype(np.int64)

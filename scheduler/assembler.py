@@ -326,15 +326,21 @@ class JobRun:
         e = errors[tile]
         return None if e is None or e == float("inf") else (e, at)
 
-    def denoised_noisy_tiles(self, goal: float) -> list[tuple[int, int]]:
-        """(frame, tile) whose denoised error is above `goal`, or not known yet (a frame not yet
-        written complete and denoised)."""
+    def denoised_targets(self, goal: float, cap: int) -> list[tuple[tuple[int, int], int]]:
+        """((frame, tile), samples per pixel to reach) of the tiles whose denoised error is above
+        `goal`, each in proportion to its error (engine/dual_buffer.py, `tile_targets`: the spp it
+        was measured at · error / goal, at most `cap`), and `cap` for tiles whose error is not
+        known yet (a frame not yet written complete and denoised)."""
+        from ..engine.dual_buffer import tile_targets
+
         out = []
         for f in self.frames:
             for i in range(len(self.tiles)):
                 known = self.denoised_error(f, i)
-                if known is None or known[0] > goal:
-                    out.append((f, i))
+                if known is None:
+                    out.append(((f, i), int(cap)))
+                elif known[0] > goal:
+                    out.append(((f, i), int(tile_targets([known[0]], [known[1]], goal, cap)[0])))
         return out
 
 

@@ -240,8 +240,9 @@ def refine(ctx: Context, job: str, samples: int, noise: float | None = None,
            frames: list | None = None, denoised_noise: float | None = None) -> None:
     """Add samples up to `samples` per pixel, in the job's batch size: to every tile, or with a
     `noise` goal only to tiles whose relative standard error is above it, or with a
-    `denoised_noise` goal only to tiles whose denoised error (docs/denoising.md) is above it or
-    not known yet; with `frames` (a list of frame numbers) only to the tiles of those frames."""
+    `denoised_noise` goal only to tiles whose denoised error (docs/denoising.md) is above it, in
+    proportion to it (at most `samples`), or not known yet (up to `samples`); with `frames` (a
+    list of frame numbers) only to the tiles of those frames."""
     from .planner import sample_ranges
 
     run = _run(ctx, job)
@@ -254,20 +255,20 @@ def refine(ctx: Context, job: str, samples: int, noise: float | None = None,
         run.rec.samples = samples
     else:
         if noise is not None:
-            tiles = run.noisy_tiles(float(noise))
-        elif denoised_noise is not None:
-            tiles = run.denoised_noisy_tiles(float(denoised_noise))
+            tiles = [(key, samples) for key in run.noisy_tiles(float(noise))]
+        elif denoised_noise is not None:  # each in proportion to its denoised error
+            tiles = run.denoised_targets(float(denoised_noise), samples)
         else:
-            tiles = [(f, i) for f in run.frames for i in range(len(run.tiles))]
+            tiles = [((f, i), samples) for f in run.frames for i in range(len(run.tiles))]
         if frames is not None:
             chosen = {int(f) for f in frames}
-            tiles = [(f, i) for f, i in tiles if f in chosen]
-        for f, i in tiles:
+            tiles = [((f, i), n) for (f, i), n in tiles if f in chosen]
+        for (f, i), target in tiles:
             key = f"{f}/{i}"
             have = run.tile_target(f, i)
-            if samples > have:
+            if target > have:
                 run.rec.extra[key] = list(run.rec.extra.get(key, [])) + sample_ranges(
-                    have, samples, run.rec.batch_samples)
+                    have, target, run.rec.batch_samples)
     run.rec.ended = None
     run.save()
     again = job_run(ctx, run.rec)

@@ -31,9 +31,10 @@ def refine_frame_file(path: Path, shot_path: Path, samples: int, noise: float | 
     """Add samples to the frame file `path` up to `samples` per pixel, tile by tile; with a
     `noise` goal only to tiles whose mean relative standard error is above it; with a
     `denoised_noise` goal only to tiles whose denoised error (engine/dual_buffer.py, measured
-    from the frame's two denoised half-frames before any sample is added) is above it. Rewrites
-    the file (atomically) and returns {"tiles": refined, "of": total, "errors": the tiles'
-    denoised errors or None}."""
+    from the frame's two denoised half-frames before any sample is added) is above it, each in
+    proportion to its error (`dual_buffer.tile_targets`: held · error / goal, at most `samples`).
+    Rewrites the file (atomically) and returns {"tiles": refined, "of": total, "errors": the
+    tiles' denoised errors or None}."""
     from ..engine.exr import read_frame, write_frame
     from ..engine.film import Film, merge
     from ..engine.render import FrameRenderer, tiles_for
@@ -61,26 +62,27 @@ def refine_frame_file(path: Path, shot_path: Path, samples: int, noise: float | 
     refined = 0
     tiles = tiles_for(w, h, tile_size)
     start = time.perf_counter()
-    errors = None
+    errors = targets = None
     if denoised_noise is not None:
-        from ..engine.dual_buffer import tile_errors
+        from ..engine.dual_buffer import tile_errors, tile_targets
 
         errors = tile_errors(film, tiles)
+        lows = [int(held_all[t.y0:t.y0 + t.h, t.x0:t.x0 + t.w].min()) for t in tiles]
+        targets = tile_targets(errors, lows, denoised_noise, samples)
     for k, t in enumerate(tiles):
         held = held_all[t.y0:t.y0 + t.h, t.x0:t.x0 + t.w]
         lo, hi = int(held.min()), int(held.max())
         if lo != hi:
             raise FrameFileError(f"{path}: pixels of tile at ({t.x0}, {t.y0}) hold {lo} to {hi} "
                                  f"samples; refine with --tile matching the tiles it was rendered in")
-        if lo >= samples:
+        goal_spp = samples if targets is None else int(targets[k])
+        if lo >= goal_spp:
             continue
         if noise is not None:
             part = film.rel_noise()[t.y0:t.y0 + t.h, t.x0:t.x0 + t.w]
             if float(np.mean(part)) <= noise:
                 continue
-        if errors is not None and errors[k] <= denoised_noise:
-            continue
-        extra.add_into(renderer.render(t, lo, samples - lo), t.y0, t.x0)
+        extra.add_into(renderer.render(t, lo, goal_spp - lo), t.y0, t.x0)
         refined += 1
         if progress:
             progress(refined, len(tiles))
