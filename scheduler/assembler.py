@@ -159,7 +159,7 @@ class JobRun:
 
     def _failed_and_empty(self, frame: int) -> set[int]:
         out = set()
-        for bid in self.rec.failed:
+        for bid in list(self.rec.failed):  # the loop may add one while a frame is written
             _, f, i, _, _ = parse_batch_id(bid)
             if f == frame and not self.held.get((f, i)):
                 out.add(i)

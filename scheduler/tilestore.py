@@ -4,8 +4,9 @@ Merging a batch used to read its tile's float64 file, add the film and rewrite t
 fsync of its own: about 12 ms a batch on a 64 × 64 tile, most of it the read, the rewrite and the
 fsync. A `TileStore` keeps recently merged tiles in memory (bounded by `cap_bytes`, least
 recently used first out), so a merge is an addition in memory, and `commit()` writes every tile
-merged into since the last commit together: each file written beside its old one, the new files
-fsynced in parallel, renamed over the old ones, and each folder fsynced once. The caller (the
+merged into since the last commit together: each file written beside its old one, fsynced and
+renamed over it, several files at once on threads (they mostly wait on the disk), then each
+folder fsynced once. The caller (the
 results owner, `results.py`) removes the workers' notices only after `commit()` has returned
 with their tiles on disk, so docs/design.md invariant 4 holds per group: a head killed at any
 moment finds every notice whose tile is not on disk still in `results:processing`, and replays
@@ -33,7 +34,9 @@ from .accumulator import TileAccumulator, fsync_folder, tile_noise
 # bytes of tile films kept in memory (rule of thumb: ~250 64 × 64 float64 tiles of 688 KB, a
 # 1024 × 1024 frame's worth; a farm head has memory to spare, a render machine has the workers)
 CAP_BYTES = 192 * 2**20
-FSYNC_THREADS = 8  # fsyncs in flight at once (measured here: 1.4–2 ms a file grouped, 5 alone)
+# tile files written at once: writing, fsyncing and renaming mostly wait on the disk (measured
+# here: fsyncs 1.4–2 ms a file side by side against 5 ms one after the other)
+WRITE_THREADS = 8
 
 
 class TileStore:
@@ -104,43 +107,21 @@ class TileStore:
             accs = {p: self._tiles[p] for p in dirty}
         if not accs:
             return {}
-        failed: dict[Path, OSError] = {}
-        noises, staged = {}, []  # staged: (path, tmp, fd)
-        for path, acc in accs.items():
-            noises[path] = tile_noise(acc.film)
-            tmp = path.with_name(path.name + ".tmp")
-            try:
-                data = acc.to_bytes(noises[path])
-                path.parent.mkdir(parents=True, exist_ok=True)
-                fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o644)
-                try:
-                    _write_all(fd, data)
-                except BaseException:
-                    os.close(fd)
-                    raise
-            except OSError as err:
-                failed[path] = err
-                _unlink(tmp)
-                continue
-            staged.append((path, tmp, fd))
-        if self.fsync and staged:
+        items = list(accs.items())
+        if len(items) > 1:  # writes, fsyncs and renames wait on the disk: side by side
             if self._pool is None:
-                self._pool = ThreadPoolExecutor(FSYNC_THREADS, thread_name_prefix="tile-fsync")
-            errors = list(self._pool.map(_fsync, [fd for _, _, fd in staged]))
+                self._pool = ThreadPoolExecutor(WRITE_THREADS, thread_name_prefix="tile-write")
+            done = list(self._pool.map(lambda item: _write_tile(*item, self.fsync), items))
         else:
-            errors = [None] * len(staged)
-        folders = set()
-        for (path, tmp, fd), err in zip(staged, errors):
-            os.close(fd)
+            done = [_write_tile(*items[0], self.fsync)]
+        failed: dict[Path, OSError] = {}
+        noises, folders = {}, set()
+        for (path, _), (noise, err) in zip(items, done):
+            noises[path] = noise
             if err is None:
-                try:
-                    _rename(tmp, path)
-                    folders.add(path.parent)
-                    continue
-                except OSError as again:
-                    err = again
-            failed[path] = err
-            _unlink(tmp)
+                folders.add(path.parent)
+            else:
+                failed[path] = err
         if self.fsync:
             for folder in folders:
                 fsync_folder(folder)
@@ -188,18 +169,32 @@ def _size(acc: TileAccumulator) -> int:
                if hasattr(getattr(film, f), "nbytes"))
 
 
+def _write_tile(path: Path, acc: TileAccumulator, fsync: bool):
+    """Replace one tile file (written beside, fsynced, renamed); (noise, None) or (noise, the
+    OSError) when the disk refused it."""
+    noise = tile_noise(acc.film)
+    tmp = path.with_name(path.name + ".tmp")
+    try:
+        data = acc.to_bytes(noise)
+        path.parent.mkdir(parents=True, exist_ok=True)
+        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o644)
+        try:
+            _write_all(fd, data)
+            if fsync:
+                os.fsync(fd)
+        finally:
+            os.close(fd)
+        _rename(tmp, path)
+    except OSError as err:
+        _unlink(tmp)
+        return noise, err
+    return noise, None
+
+
 def _write_all(fd: int, data: bytes) -> None:
     view = memoryview(data)
     while view:
         view = view[os.write(fd, view):]
-
-
-def _fsync(fd: int) -> OSError | None:
-    try:
-        os.fsync(fd)
-    except OSError as err:
-        return err
-    return None
 
 
 def _rename(tmp: Path, path: Path) -> None:

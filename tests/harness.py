@@ -25,8 +25,9 @@ FAKES-JSON is an object with any of:
 - "hold_frame_write": {"after": n, "marker": path} — the head writes n frame files at a ready-by
   stop, then creates `marker` and waits there forever (for the test's SIGKILL);
 - "hold_commit": {"after": n, "marker": path} — the head renames n tile files of a group commit
-  into place (scheduler/tilestore.py), then creates `marker` and waits there forever, before the
-  group's other tiles and before removing any notice.
+  into place (scheduler/tilestore.py); at the next rename it creates `marker` and waits there
+  forever (every thread of the commit with it), before the group's other tiles and before
+  removing any notice.
 """
 
 from __future__ import annotations
@@ -34,6 +35,7 @@ from __future__ import annotations
 import json
 import os
 import sys
+import threading
 import time
 from pathlib import Path
 
@@ -186,14 +188,16 @@ def hold_in_commit(hold: dict | None) -> None:
 
     real = tilestore._rename
     renamed = []
+    lock = threading.Lock()  # the group's files are renamed on several threads
 
     def rename_then_hold(tmp, path):
-        real(tmp, path)
-        renamed.append(path)
-        if len(renamed) >= int(hold["after"]):
-            Path(hold["marker"]).write_text(f"holding after {len(renamed)} tile(s)\n")
-            while True:
-                time.sleep(3600)
+        with lock:  # the other threads wait here too: no rename after the n-th
+            if len(renamed) >= int(hold["after"]):
+                Path(hold["marker"]).write_text(f"holding after {len(renamed)} tile(s)\n")
+                while True:
+                    time.sleep(3600)
+            real(tmp, path)
+            renamed.append(path)
 
     tilestore._rename = rename_then_hold
 
