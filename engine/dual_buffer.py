@@ -24,9 +24,11 @@ luminance,
 with Y the denoised frame's luminance. Relative to the frame, not the tile: a goal E met by every
 tile bounds the whole frame's relative RMS noise, sqrt(mean_frame(v)) / mean_frame(Y), by E, so
 samples go where they lower the frame's error most; a dark tile's noise counts as much as it
-shows against the frame's brightness. (Measured: ranking tiles by their error relative to their
-own luminance sent samples to dark corners and made the frame's error worse than uniform
-sampling on one of the two test scenes; see docs/denoising.md.) Assumptions, each only approximately true:
+shows against the frame's brightness. (Measured with an all-or-nothing allocation: ranking tiles
+by their error relative to their own luminance sent samples to dark corners and gained nothing
+over uniform sampling on one of the two test scenes; see docs/denoising.md.)
+
+Assumptions, each only approximately true:
   1. the two halves are independent (disjoint samples; docs/design.md, invariant 1) and are
      denoised with the same guides (the whole frame's albedo and normal), so only their colour
      noise differs;

@@ -6,7 +6,7 @@ pixel at 8 spp and then each 16 px tile raised as `refine --denoised-noise E` ra
 (engine/dual_buffer.py: its estimated denoised error measured, and `tile_targets`, samples in
 proportion to the error), with the goal E set as low as the same budget allows: targeted spends
 at most the samples uniform does. Both are denoised as frame files are.
-(bench/denoised_noise.py measured this on seeds 1 to 12; the test draws other seeds, from 101.) Both are denoised as frame files are.
+(bench/denoised_noise.py measured this on seeds 1 to 12; the test draws other seeds, from 101.)
 The error is the relative RMSE of the denoised frame against an independent high-sample render
 (another seed), the reference's own variance of the mean taken away (as tests/engine/
 test_denoise.py measures it). The check: over K independent seeds, the mean of the paired
