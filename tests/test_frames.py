@@ -69,3 +69,11 @@ def test_the_png_preview_shows_the_denoised_picture_when_there_is_one(tmp_path, 
     want = to_8bit(np.stack([got[c] for c in layer], -1))
     png = np.asarray(Image.open(io.BytesIO(path.with_suffix(".png").read_bytes())).convert("RGB"))
     assert np.array_equal(png, want)
+
+
+def test_the_layer_picker_does_not_offer_the_odd_half(tmp_path, film):
+    # the odd half-frame is bookkeeping for the denoised error (docs/denoising.md), not a layer
+    from lampyr.webui.layers import layers_from_channels
+
+    got = channels(write(tmp_path, film, TINY_SHOT))
+    assert all(c in got for c in ODD) and "oddhalf" not in layers_from_channels(got)

@@ -45,7 +45,7 @@ LAYER_NAME = re.compile(r"[A-Za-z][A-Za-z0-9_]{0,63}")
 COLOUR_FIXED = ("beauty", "denoised", "albedo")
 DATA_LAYERS = ("normal", "depth", "variance")
 # channel-name prefixes of the frame's own channels: not offered as extra colour layers
-OWN_PREFIXES = ("var", "albedo", "denoised", "N")
+OWN_PREFIXES = ("var", "albedo", "denoised", "N", "oddhalf")  # oddhalf: docs/denoising.md
 # ID matte layers (engine/mattes.py: matte_<kind>00, 01, ...) hold ids and coverages, not colours
 MATTE_LAYER = re.compile(r"matte_[a-z]+[0-9]{2}")
 REC709 = (0.2126, 0.7152, 0.0722)  # ITU-R BT.709 luminance weights
