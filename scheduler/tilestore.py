@@ -8,10 +8,10 @@ merged into since the last commit together: each file written beside its old one
 renamed over it, several files at once on threads (they mostly wait on the disk), then each
 folder fsynced once. The caller (the
 results owner, `results.py`) removes the workers' notices only after `commit()` has returned
-with their tiles on disk, so docs/design.md invariant 4 holds per group: a head killed at any
+with their tiles on disk, so docs/design.md, invariant 4 holds per group: a head killed at any
 moment finds every notice whose tile is not on disk still in `results:processing`, and replays
 it; a tile that was renamed before the kill already holds the notice's range, so the replay
-changes nothing (invariant 3). Every file is replaced whole (rename), never half.
+changes nothing (docs/design.md, invariant 3). Every file is replaced whole (rename), never half.
 
 A tile whose file could not be written (an OSError: a full disk, a folder become a file) is
 dropped from memory, so its next merge starts again from what its file holds; `commit()` returns

@@ -163,5 +163,6 @@ def test_a_head_killed_in_the_middle_of_a_group_commit_merges_every_batch_once(f
             assert read_header(path)[0] == plan, (f, i)
         film, _ = read_frame(out / f"tiny.{f:04d}.exr")
         assert (film.n == 8).all()  # 8 samples a pixel: none lost, none counted twice
-        # the same samples as the engine alone renders (invariant 1), up to float32 rounding
+        # the same samples as the engine alone renders (docs/design.md, invariant 1), to float32
+        # rounding
         assert_same_image(frame_mean(out, "tiny", f), reference_mean(tiny_shot, f))
