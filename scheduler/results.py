@@ -1,10 +1,13 @@
 """Results: taking the workers' notices, guarding each one, merging, taking back a part.
 
 `Results.take()` moves up to `limit` notices from `results` to `results:processing` (one Lua
-script: a turn with no notice costs one short round trip), merges them
-as one group commit (every tile file written and fsynced, their folders fsynced once, frames
-rewritten) and only then removes them: a head killed mid-merge finds them again, and a replayed
-result is dropped because its tile already holds that sample range.
+script: a turn with no notice costs one short round trip), merges them into the tiles held in
+memory, writes those tiles as one group commit (`tilestore.py`: each tile file written beside,
+fsynced and renamed, their folders fsynced once) and only then removes them: a head killed
+mid-merge finds them again, and a replayed result is dropped because its tile already holds that
+sample range. The frames that grew are handed to the frame writer (`framewriter.py`). A notice
+whose tile the disk refused is kept, and what its merge changed in the head's tables is undone
+(`Merged`, `_undo`).
 
 No notice can stop the head. Each is handled inside a guard:
 - a notice that cannot be decoded (not JSON, no batch id the head can read) is set aside in
