@@ -128,6 +128,7 @@ class TileStore:
         with self._lock:
             for path in failed:
                 self._drop(path)
+            self._shrink()  # tiles kept past the cap while they waited for this commit
         for path, on_commit in dirty.items():
             if path not in failed and on_commit is not None:
                 on_commit(noises[path])
@@ -150,8 +151,12 @@ class TileStore:
         self._tiles[path] = acc
         self._sizes[path] = _size(acc)
         self._bytes += self._sizes[path]
-        while self._bytes > self.cap_bytes and len(self._tiles) > 1:
-            victim = next((p for p in self._tiles if p not in self._dirty and p != path), None)
+        self._shrink(keep=path)
+
+    def _shrink(self, keep: Path | None = None) -> None:
+        """Least recently used first, down to the cap; never a tile not yet written."""
+        while self._bytes > self.cap_bytes and self._tiles:
+            victim = next((p for p in self._tiles if p not in self._dirty and p != keep), None)
             if victim is None:
                 break  # every tile kept is waiting for its commit
             self._drop(victim)

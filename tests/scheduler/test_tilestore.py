@@ -1,0 +1,78 @@
+"""The head's tiles in memory and their group commit (scheduler/tilestore.py), on a real disk.
+Reference for the sums: numpy's own addition of the same arrays (docs/design.md, invariant 2)."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from lampyr.engine.film import Film
+from lampyr.scheduler.accumulator import TileAccumulator, read_header
+from lampyr.scheduler.tilestore import TileStore
+
+
+def film(seed: int, n: int = 2) -> Film:
+    f = Film.zeros(8, 8)
+    f.n[:] = n
+    f.rgb_sum[:] = np.random.default_rng(seed).random((8, 8, 3))
+    f.rgb_sq[:] = f.rgb_sum ** 2
+    return f
+
+
+def test_a_merge_reaches_the_disk_at_the_commit_and_not_before(tmp_path):
+    store = TileStore()
+    path = tmp_path / "tiles" / "0001" / "00000.acc"
+    a, b = film(1), film(2)
+    acc = store.get(path, 8, 8)
+    assert acc.add(a, 0, 2)
+    noise = []
+    store.stage(acc, noise.append)
+    assert not path.exists() and store.dirty == 1
+    assert store.commit() == {}
+    assert store.dirty == 0 and len(noise) == 1
+    acc = store.get(path, 8, 8)
+    assert acc.add(b, 2, 2)
+    store.stage(acc)
+    assert read_header(path)[0] == [(0, 2)]  # the file still holds the first merge alone
+    assert store.commit() == {}
+    on_disk = TileAccumulator.load(path, 8, 8)
+    assert on_disk.ranges == [(0, 2), (2, 2)]
+    np.testing.assert_array_equal(on_disk.film.rgb_sum, a.rgb_sum + b.rgb_sum)
+    np.testing.assert_array_equal(on_disk.film.n, np.full((8, 8), 4.0))
+    assert not list(path.parent.glob("*.tmp"))  # written beside, then renamed over
+
+
+def test_memory_stays_under_its_cap_but_never_drops_a_tile_not_yet_written(tmp_path):
+    one = film(0).rgb_sum.nbytes  # a lower bound of a tile's size in memory
+    store = TileStore(cap_bytes=1)  # smaller than any tile: only unwritten tiles stay
+    paths = [tmp_path / f"{i:05d}.acc" for i in range(4)]
+    for i, p in enumerate(paths):
+        acc = store.get(p, 8, 8)
+        acc.add(film(i), 0, 2)
+        store.stage(acc)
+    assert store.dirty == 4 and len(store._tiles) == 4 and store._bytes >= 4 * one
+    assert store.commit() == {}
+    assert len(store._tiles) == 0 and store._bytes == 0  # written: they may go, and went
+    acc = store.get(paths[0], 8, 8)  # read back from its file
+    assert acc.ranges == [(0, 2)] and len(store._tiles) == 1
+
+
+def test_a_tile_the_disk_refuses_is_reported_and_read_again_from_its_file(tmp_path):
+    store = TileStore()
+    good, bad = tmp_path / "a" / "00000.acc", tmp_path / "b" / "00000.acc"
+    for p in (good, bad):
+        acc = store.get(p, 8, 8)
+        acc.add(film(3), 0, 2)
+        store.stage(acc)
+    assert store.commit() == {}
+    for p in (good, bad):
+        acc = store.get(p, 8, 8)
+        acc.add(film(4), 2, 2)
+        store.stage(acc)
+    bad.unlink()
+    bad.parent.rmdir()
+    bad.parent.write_text("the tiles' folder became a file")  # every write into it: OSError
+    failed = store.commit()
+    assert list(failed) == [bad] and isinstance(failed[bad], OSError)
+    assert read_header(good)[0] == [(0, 2), (2, 2)]  # the other tile of the group is written
+    # the refused tile left memory: its next merge starts from what its file holds
+    assert bad not in store._tiles and good in store._tiles
