@@ -256,7 +256,7 @@ class JobRun:
                         self.write_held_frame(f)
                     else:
                         self.write_frame_if_grown(f, force)
-                except Exception as err:  # noqa: BLE001 — any failure is this job's, not the head's
+                except Exception as err:  # noqa: BLE001 — this job's failure, not the head's
                     self.stop_with_error(f"cannot write frame {f} into {self.rec.out}: "
                                          f"{_one_line(err)}")
                     return False
