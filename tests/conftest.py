@@ -111,14 +111,14 @@ def tiny_shot(tmp_path) -> Path:
 HEAVY_SHOT = (TINY_SHOT.replace('name = "tiny"', 'name = "heavy"')
               .replace("frames = [1, 2]", "frames = [1, 1]")
               .replace("width = 16", "width = 32").replace("height = 12", "height = 24")
-              .replace("samples = 8", "samples = 2048"))
+              .replace("samples = 8", "samples = 8192"))
 
 
 @pytest.fixture
 def heavy_shot(tmp_path) -> Path:
-    """The tiny scene as one 32 × 24 px frame at 2048 spp, named "heavy": with the farm tests'
-    HEAVY_LAYOUT (tests/scheduler/farmtools.py) a first pass of 128 samples, then one batch of
-    1920 that takes 10 s or more on one core — several production chunks."""
+    """The tiny scene as one 32 × 24 px frame at 8192 spp, named "heavy": with the farm tests'
+    HEAVY_LAYOUT (tests/scheduler/farmtools.py) a first pass of 512 samples, then one batch of
+    7680 that takes about 10 s on one core — several production chunks."""
     path = tmp_path / "shot" / "heavy.toml"
     path.parent.mkdir(parents=True, exist_ok=True)
     path.write_text(HEAVY_SHOT)

@@ -193,8 +193,9 @@ def test_film_bytes_carry_the_slots_exactly(tmp_path):
         assert back.matte_kinds == ("object", "material")
         assert np.array_equal(back.matte_ids, film.matte_ids)
         assert np.array_equal(back.matte_cov, film.matte_cov)
-    # 17 values per pixel, 2 kinds × 8 slots × (id, coverage) more (docs/design.md, film bytes)
-    assert len(to_bytes(film, bits=32)) == 25 + (1 + 6) + (1 + 8) + 12 * (17 + 32) * 4 + 4
+    # 21 values per pixel (format 4: the odd half's count and sum among them), 2 kinds × 8 slots ×
+    # (id, coverage) more (docs/design.md, film bytes)
+    assert len(to_bytes(film, bits=32)) == 25 + (1 + 6) + (1 + 8) + 12 * (21 + 32) * 4 + 4
     doubled = merge(film, film)
     assert np.array_equal(doubled.matte_ids, film.matte_ids)
     assert np.array_equal(doubled.matte_cov, 2 * film.matte_cov)

@@ -49,12 +49,12 @@ def test_results_travel_as_float32_with_their_layers(tiny_shot):
     path = _layered(tiny_shot)
     halves = [from_bytes(to_bytes(_direct(path, a, 4), bits=32)) for a in (0, 4)]
     whole = _direct(path, 0, 8)
-    # 17 + 3K float32 values per pixel (docs/design.md, film bytes)
+    # 21 + 3K float32 values per pixel (docs/design.md, film bytes)
     k = len(whole.layer_names)
     assert k == 10  # seven classes, group_other, group_key, group_sky
     names = sum(1 + len(n) for n in whole.layer_names)
     for bits in (32, 64):
-        assert len(to_bytes(whole, bits=bits)) == 25 + names + 16 * 12 * (17 + 3 * k) * bits // 8 + 4
+        assert len(to_bytes(whole, bits=bits)) == 25 + names + 16 * 12 * (21 + 3 * k) * bits // 8 + 4
     merged = merge(*halves)
     assert merged.layer_names == whole.layer_names
     _close(merged.layers, whole.layers)
