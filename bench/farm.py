@@ -276,16 +276,19 @@ def _film_blob() -> bytes:
         return to_bytes(film)
 
 
-def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path) -> dict:
-    """Drive a real Head (in this process) with synthetic workers answering from the queue."""
+def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise: bool = True) -> dict:
+    """Drive a real Head (in this process) with synthetic workers answering from the queue;
+    denoise: the shot's `[output] denoise` (the frame's denoised layer and half-frame errors)."""
     import multiprocessing as mp
 
     from lampyr.scheduler import protocol as P
     from lampyr.scheduler.head import Head, submit_request
 
     r = redis.Redis.from_url(server.url)
+    tmp = tmp / ("denoised" if denoise else "raw")
+    tmp.mkdir(parents=True, exist_ok=True)
     shot = tmp / "cap.toml"
-    shot.write_text(DEMO.read_text())
+    shot.write_text(DEMO.read_text() + ("" if denoise else "\n[output]\ndenoise = false\n"))
     (tmp / "assets").mkdir(exist_ok=True)
     for a in (DEMO.parent / "assets").iterdir():
         shutil.copy(a, tmp / "assets" / a.name)
@@ -392,6 +395,11 @@ def capacity(args) -> None:
         cap = head_capacity(server, args.capacity_tiles, 64, tmp)
     finally:
         server.stop()
+    server = EmbeddedRedis(tmp / "redis-raw").start()  # a farm of its own for the second head
+    try:
+        raw = head_capacity(server, args.capacity_tiles, 64, tmp, denoise=False)
+    finally:
+        server.stop()
         shutil.rmtree(tmp, ignore_errors=True)
     print(f"\n2. Head capacity against Celery's own task rate (one embedded Redis; load average "
           f"{load_line()})")
@@ -404,7 +412,13 @@ def capacity(args) -> None:
          cap["batches"], f"{cap['merged']:.2f}", f"{cap['merge_rate']:.0f}"],
         ["head: the same until the job is done (its frame written and denoised)",
          cap["batches"], f"{cap['seconds']:.2f}", f"{cap['rate']:.0f}"],
+        ["head, shot without denoising ([output] denoise = false): merged",
+         raw["batches"], f"{raw['merged']:.2f}", f"{raw['merge_rate']:.0f}"],
+        ["head, shot without denoising: until the job is done",
+         raw["batches"], f"{raw['seconds']:.2f}", f"{raw['rate']:.0f}"],
     ])
+    print(f"merge rate with denoising on / off: {cap['merge_rate'] / raw['merge_rate']:.2f} (goal >= 0.9); "
+          f"to the job's end: {cap['rate'] / raw['rate']:.2f}")
     print(f"head CPU seconds (loop and frame writer): {cap['cpu']:.2f}, "
           f"{1e3 * cap['cpu'] / cap['batches']:.1f} ms a batch")
     print(f"head merged / Celery no-op: {cap['merge_rate'] / noop['rate']:.2f}; goal ≥ 400 "
