@@ -38,61 +38,17 @@ import numpy as np
 ROOT = Path(__file__).resolve().parent.parent
 DEMO = ROOT / "examples" / "courtyard" / "courtyard.toml"
 sys.path.insert(0, str(Path(__file__).resolve().parent))
+sys.path.insert(0, str(ROOT))
 from tables import print_table  # noqa: E402  (bench/ is run as scripts, not a package)
+
+from tests.engine.test_denoise import NOISY_SHOT, relative_rmse  # noqa: E402  (one scene, one measure)
 
 BASE, UNIFORM, TILE = 8, 20, 16  # spp: the first pass, uniform; tile edge
 POLICIES = ("in proportion", "top half to 32")
 
-BOUNCE = """\
-name = "bounce"
-frames = 1
-[image]
-width = 96
-height = 48
-[sampling]
-samples = 8
-bounces = 5
-seed = 7
-[camera]
-position = [0.0, 1.0, 4.0]
-target = [0.0, 0.8, 0.0]
-fov = 40.0
-[environment]
-color = [0.0, 0.0, 0.0]
-[[material]]
-name = "white"
-type = "diffuse"
-color = [0.7, 0.7, 0.7]
-[[material]]
-name = "lamp"
-type = "diffuse"
-color = [0.0, 0.0, 0.0]
-emission = [16.0, 12.0, 8.0]
-[[object]]
-name = "ball"
-material = "white"
-sphere = { center = [0.0, 0.8, 0.0], radius = 0.8 }
-[[object]]
-name = "lamp"
-material = "lamp"
-sphere = { center = [0.0, 0.9, -1.3], radius = 0.25 }
-[[object]]
-name = "floor"
-material = "white"
-sphere = { center = [0.0, -100.0, 0.0], radius = 100.0 }
-[[object]]
-name = "wall"
-material = "white"
-sphere = { center = [0.0, 0.0, -102.0], radius = 100.0 }
-"""
-
-
-def relative_rmse(image, ref) -> float:
-    """sqrt(mean((x - ref)^2) - mean(var(ref mean))) / sqrt(mean(ref^2))."""
-    r = ref.mean()
-    ref_var = ref.variance() / np.maximum(ref.n, 1)[..., None]
-    mse = np.mean((np.asarray(image, np.float64) - r) ** 2) - np.mean(ref_var)
-    return float(np.sqrt(max(mse, 0.0)) / np.sqrt(np.mean(r ** 2)))
+# the denoising tests' mostly indirectly lit room (tests/engine/test_denoise.py), 48 rows so the
+# 16 px tiles cover it evenly
+BOUNCE = NOISY_SHOT.replace("height = 54", "height = 48")
 
 
 def all_ways(shot, seed: int):
