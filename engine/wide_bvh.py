@@ -23,8 +23,10 @@ The traversals compute the slab tests exactly as `intersect.ray_box` does (float
 distance widened after Ize 2013), choosing each axis's near plane by the sign of the ray's
 direction instead of swapping, visit the hit children nearest first and keep the entry
 distance of every pushed child on the stack, so a child that lies beyond the closest hit found
-since is dropped when popped without reading its node. The binary traversals of bvh.py stay as
-the readable reference; tests/engine/test_wide_bvh.py checks that both agree.
+since is dropped when popped without reading its node. A leaf's triangles are tested four at a
+time (wide_triangles.py), with the same hits as one by one in row order; a deforming mesh's
+still one by one. The binary traversals of bvh.py stay as the readable reference;
+tests/engine/test_wide_bvh.py checks that both agree.
 """
 
 from __future__ import annotations
@@ -39,6 +41,7 @@ from .borrowing import borrowing
 from .bvh import BVH, _leaf, _ray_frame
 from .intersect import BOX_WIDEN, inverse
 from .wide_slabs import slabs4
+from .wide_triangles import any_in_leaf, closest_in_leaf
 
 WIDTH = 4
 BOX_LO = 0  # rows of `box`: lo x, y, z
@@ -278,11 +281,16 @@ def intersect_wide_at(box, meta, tris, tris_end, node_base, tri_base, end_base, 
             nd = s // np.uint64(WIDTH)
             js = s % np.uint64(WIDTH)
             first = tbase + np.int64(meta[nd, ROW_CHILD, js])
-            for k in range(first, first + np.int64(meta[nd, ROW_COUNT, js])):
-                h, t, u, v = _leaf(tris, tris_end, np.uint64(k), k + shift, w, kx, ky, kz, okx, oky, okz,
-                                   sx, sy, sz, tmin, best_t)
-                if h:
-                    best_t, best_k, best_u, best_v = t, k, u, v
+            last = first + np.int64(meta[nd, ROW_COUNT, js])
+            if tris_end.shape[0] == 0:  # four triangles at a time (wide_triangles.py; same hits)
+                best_t, best_k, best_u, best_v = closest_in_leaf(tris, first, last, kx, ky, kz, okx, oky, okz,
+                                                                 sx, sy, sz, tmin, best_t, best_k, best_u, best_v)
+            else:
+                for k in range(first, last):
+                    h, t, u, v = _leaf(tris, tris_end, np.uint64(k), k + shift, w, kx, ky, kz, okx, oky, okz,
+                                       sx, sy, sz, tmin, best_t)
+                    if h:
+                        best_t, best_k, best_u, best_v = t, k, u, v
         while True:  # pop the next entry that still begins before the closest hit
             if sp == 0:
                 return best_t, best_k, best_u, best_v
@@ -339,11 +347,16 @@ def occluded_wide_at(box, meta, tris, tris_end, node_base, tri_base, end_base, w
             nd = s // np.uint64(WIDTH)
             js = s % np.uint64(WIDTH)
             first = tbase + np.int64(meta[nd, ROW_CHILD, js])
-            for k in range(first, first + np.int64(meta[nd, ROW_COUNT, js])):
-                h, t, u, v = _leaf(tris, tris_end, np.uint64(k), k + shift, w, kx, ky, kz, okx, oky, okz,
-                                   sx, sy, sz, tmin, tmax)
-                if h:
+            last = first + np.int64(meta[nd, ROW_COUNT, js])
+            if tris_end.shape[0] == 0:
+                if any_in_leaf(tris, first, last, kx, ky, kz, okx, oky, okz, sx, sy, sz, tmin, tmax):
                     return True
+            else:
+                for k in range(first, last):
+                    h, t, u, v = _leaf(tris, tris_end, np.uint64(k), k + shift, w, kx, ky, kz, okx, oky, okz,
+                                       sx, sy, sz, tmin, tmax)
+                    if h:
+                        return True
         if sp == 0:
             return False
         sp -= 1
