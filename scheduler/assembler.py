@@ -42,13 +42,17 @@ class JobRun:
     """A job as the head runs it: record, shot, tiles, which batches are done, frames written."""
 
     def __init__(self, state: Path, rec: JobRecord, partial_frames: bool = True, *,
-                 durable: bool = True, rewrite_every: float = REWRITE_EVERY, store=None):
+                 durable: bool = True, rewrite_every: float = REWRITE_EVERY, store=None,
+                 denoised_errors: bool = True):
         from ..engine.render import tiles_for
         from ..engine.shot import load_shot
 
         self.rec = rec
         self.partial_frames = partial_frames
         self.durable = durable  # False: tile files are not fsynced (a scratch state folder)
+        # False: a frame written denoised gets no denoised errors (its two half-frames are not
+        # denoised), unless the job has a ready-by time, whose planner reads them
+        self.denoised_errors = denoised_errors
         self.rewrite_every = rewrite_every
         # the tiles in memory, written in groups (shared by the head's jobs; tilestore.py)
         self.store = store if store is not None else TileStore(fsync=durable)
@@ -70,6 +74,8 @@ class JobRun:
                 self.held[(f, i)] = ranges
                 self.noise[(f, i)] = noise
         self.dirty: set[int] = set(self.frames)  # frames merged into since progress was published
+        self.changes = 0  # counts the edits of `held` (the head's status is published on change)
+        self._sums: tuple = (None, (0, 0), 0)  # (key, pixel_samples(), frames_done()) cached
         self.written: dict[int, int] = {}  # frame → its lowest tile sample count when written
         self.written_sum: dict[int, int] = {}  # frame → samples of all its tiles when written
         self.seconds: dict[int, float] = {f: 0.0 for f in self.frames}
@@ -130,6 +136,7 @@ class JobRun:
         key = (b.frame, b.tile)
         path = self.folder.tile(b.frame, b.tile)
         acc = self.store.get(path, t.w, t.h)
+        self.changes += 1
         if not acc.add(film, b.first, b.count):
             self.held[key] = list(acc.ranges)
             return False
@@ -147,6 +154,7 @@ class JobRun:
     def reread_tile(self, frame: int, tile: int) -> None:
         """The tile's file could not be written: what it holds is what its file says."""
         self.held[(frame, tile)] = read_header(self.folder.tile(frame, tile))[0]
+        self.changes += 1
 
     def frame_level(self, frame: int) -> int:
         """The fewest samples a tile of `frame` holds, not counting tiles that hold none because
@@ -220,9 +228,10 @@ class JobRun:
         if kinds and self._manifest is None:  # the names of the ID mattes: read once per job
             self._manifest = manifest(self.shot)
         report: dict = {}
+        measure = self.denoised_errors or self.rec.ready_by is not None
         path = write_frame_files(Path(self.rec.out), self.shot, frame, film,
                                  self.seconds.get(frame, 0.0), final=final, manifest=self._manifest,
-                                 tiles=self.tiles, report=report)
+                                 tiles=self.tiles if measure else None, report=report)
         if "denoised_errors" in report:
             self.denoised[frame] = (report["denoised_errors"], level)
         self.written[frame] = level
@@ -282,15 +291,25 @@ class JobRun:
                 self.written[f], self.written_sum[f] = self.frame_totals(f)
 
     def frames_done(self) -> int:
-        return sum(1 for f in self.frames if self.frame_complete(f) and f in self.written)
+        return self._counts()[2]
 
     def pixel_samples(self) -> tuple[int, int]:
         """(pixel-samples held, pixel-samples planned)."""
-        held = sum(samples_held(r) * self.tiles[i].w * self.tiles[i].h
-                   for (f, i), r in self.held.items())
-        total = sum(self.tile_target(f, i) * t.w * t.h
-                    for f in self.frames for i, t in enumerate(self.tiles))
-        return held, total
+        return self._counts()[1]
+
+    def _counts(self) -> tuple:
+        """(key, pixel_samples(), frames_done()), counted again only when what they depend on
+        changed: a sum over every tile of the job, asked for at every status publish."""
+        key = (self.changes, self.rec.samples, len(self.rec.extra),
+               sum(len(v) for v in self.rec.extra.values()), len(self.written))
+        if self._sums[0] != key:
+            held = sum(samples_held(r) * self.tiles[i].w * self.tiles[i].h
+                       for (f, i), r in self.held.items())
+            total = sum(self.tile_target(f, i) * t.w * t.h
+                        for f in self.frames for i, t in enumerate(self.tiles))
+            done = sum(1 for f in self.frames if self.frame_complete(f) and f in self.written)
+            self._sums = (key, (held, total), done)
+        return self._sums
 
     def noisy_tiles(self, goal: float) -> list[tuple[int, int]]:
         """(frame, tile) whose mean relative standard error (luminance) is above `goal`, or not

@@ -65,6 +65,7 @@ class Context:
     durable: bool = True  # see JobRun
     rewrite_every: float = REWRITE_EVERY
     store: object = None  # the head's tiles in memory (tilestore.TileStore), shared by its jobs
+    denoised_errors: bool = True  # see JobRun
 
 
 COMMANDS: dict = {}
@@ -77,7 +78,8 @@ def command(fn):
 
 def job_run(ctx: Context, rec) -> JobRun:
     return JobRun(ctx.state, rec, ctx.partial_frames, durable=ctx.durable,
-                  rewrite_every=ctx.rewrite_every, store=ctx.store)
+                  rewrite_every=ctx.rewrite_every, store=ctx.store,
+                  denoised_errors=ctx.denoised_errors)
 
 
 def _run(ctx: Context, job: str) -> JobRun:

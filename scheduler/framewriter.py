@@ -34,6 +34,7 @@ class FrameWriter:
         self._cond = threading.Condition()
         self._thread: threading.Thread | None = None
         self._closed = False
+        self.finished = 0  # requests written so far (the head publishes a job's end on change)
 
     def write(self, run, frames) -> None:
         """Write `frames` of `run` that grew (`JobRun.write_frames`)."""
@@ -64,6 +65,7 @@ class FrameWriter:
     def _add(self, run, frames=(), due=None) -> None:
         if not self.threaded:
             _write(run, set(frames), due)
+            self.finished += 1
             return
         with self._cond:
             job = run.rec.id
@@ -94,6 +96,7 @@ class FrameWriter:
             finally:
                 with self._cond:
                     self._busy.discard(job)
+                    self.finished += 1
                     self._cond.notify_all()
 
 

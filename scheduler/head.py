@@ -63,6 +63,9 @@ log = logging.getLogger("lampyr.head")
 
 ENDED = ("done", "failed", "cancelled")
 ARCHIVE_AFTER = 30 * 24 * 3600.0  # seconds after its end a job folds into the archive
+# seconds between two status publishes while nothing changes (rule of thumb: the web page and
+# `lampyr status` poll about once a second; the metrics endpoint calls a head silent after 10 s)
+PUBLISH_IDLE_EVERY = 1.0
 
 
 class Head:
@@ -74,13 +77,17 @@ class Head:
     state folder); rewrite_every: seconds between two rewrites of a frame not complete yet;
     frame_thread: frames are written by a thread of their own (framewriter.py) while the loop
     goes on merging — what `lampyr head` and `lampyr render` run; False writes them inside the
-    turn that merged their samples, so a caller driving `step()` by hand finds them written.
+    turn that merged their samples, so a caller driving `step()` by hand finds them written;
+    denoised_errors: False writes complete frames without their tiles' denoised errors (the two
+    half-frames are then not denoised; docs/denoising.md) unless a job has a ready-by time —
+    `lampyr render`, whose head no one can ask for a `refine` afterwards.
     """
 
     def __init__(self, state: Path, url: str, lease_seconds: float = 120.0, max_attempts: int = 3,
                  redis_server=None, partial_frames: bool = True,
                  archive_after: float | None = ARCHIVE_AFTER, durable: bool = True,
-                 rewrite_every: float = REWRITE_EVERY, frame_thread: bool = False):
+                 rewrite_every: float = REWRITE_EVERY, frame_thread: bool = False,
+                 denoised_errors: bool = True):
         from .store import connect
 
         self.state = Path(state)
@@ -102,12 +109,15 @@ class Head:
         self.results = Results(self.r, self.jobs, self.dispatcher, self.metrics, self.tiles,
                                self.frame_writer)
         self.commands = commands.Context(self.state, self.r, self.jobs, self.dispatcher,
-                                         partial_frames, durable, rewrite_every, self.tiles)
+                                         partial_frames, durable, rewrite_every, self.tiles,
+                                         denoised_errors)
         self.ready_by = ReadyByKeeper(self.jobs, self.dispatcher, self.r)
         self.progress = ProgressPublisher()  # per-frame / per-tile summary for the web page
         self.history = HistoryRecorder()  # throughput per minute, workers last seen
         self.epoch = None
         self._status_at = 0.0
+        self._unpublished = True  # a turn did something since the last publish
+        self._published = None  # what the last publish saw (`_signature`)
         self._epoch_at = 0.0
         self._fold_at = 0.0
 
@@ -208,6 +218,7 @@ class Head:
                 if all_now or min(due) <= now:
                     self.frame_writer.write_due(run, all_now)
         self.hold_files()
+        self._unpublished |= busy
         self.publish()
         return busy
 
@@ -294,13 +305,23 @@ class Head:
         st.update(self.ready_by.status(run))  # ready_by, ready_by_reached, forecast
         return st
 
-    def publish(self, force: bool = False, every: float = 0.25) -> None:
+    def publish(self, force: bool = False, every: float = 0.25,
+                idle_every: float = PUBLISH_IDLE_EVERY) -> None:
         """Every job's status, replaced whole in one transaction (a reader sees the old status
-        or the new one, never none), with the progress, metrics and history of this turn."""
+        or the new one, never none), with the progress, metrics and history of this turn: at
+        most every `every` seconds while something changes (a turn that carried out a command,
+        merged, queued; a frame written; a lease taken or lost), else every `idle_every`
+        seconds (the metrics' `updated`, the rates, the ready-by forecast)."""
         now = time.monotonic()
         if not force and now - self._status_at < every:
             return
+        signature = self._signature()
+        if (not force and not self._unpublished and signature == self._published
+                and now - self._status_at < idle_every):
+            return
         self._status_at = now
+        self._unpublished = False
+        self._published = signature
         errors = commands.errors(self.r)
         states = {job: self.job_state(run) for job, run in self.jobs.items()}
         self._note_ends(states)
@@ -313,11 +334,20 @@ class Head:
                                                    "error": reason, "failed": [],
                                                    "frames": 0, "frames_done": 0})
                 pipe.zadd(P.K_JOBS, {job: 0}, nx=True)
-        publish_metrics(pipe, metrics_snapshot(self))
+        publish_metrics(pipe, metrics_snapshot(self, states))
         self.progress.publish(self.jobs, self.dispatcher.leased_tiles(), pipe, force)
         self.history.record(self, pipe)
         pipe.execute()
         self._fold(force)
+
+    def _signature(self) -> tuple:
+        """What a status publish shows that can change between turns without a busy turn."""
+        m = self.metrics
+        return (m.batches_merged, m.batch_errors, m.batches_failed, m.lease_expiries,
+                len(self.leases), self.leases.waiting(), self.frame_writer.finished,
+                tuple((job, run.changes, len(run.pending), run.rec.paused, run.rec.cancelled,
+                       run.rec.error, len(run.rec.failed), id(run))
+                      for job, run in self.jobs.items()))
 
     # -- ends of jobs -------------------------------------------------------------------------
 

@@ -68,9 +68,11 @@ def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: in
                 env=dict(os.environ, LAMPYR_HEAD=server.worker_url),  # not on the command line
                 stdin=subprocess.DEVNULL, stdout=log, stderr=subprocess.STDOUT,
                 start_new_session=True, cwd=state, preexec_fn=die_with_parent())
-        # the state folder is scratch, removed at the end: its tile files need no fsync
+        # the state folder is scratch, removed at the end: its tile files need no fsync; and no
+        # one can ask this head for a refine, so its frames need no denoised errors (two more
+        # denoisings a frame; `lampyr refine FRAME.exr --denoised-noise` measures them itself)
         head = Head(state, server.url, lease_seconds=60, redis_server=server, partial_frames=False,
-                    durable=False, frame_thread=True)
+                    durable=False, frame_thread=True, denoised_errors=False)
         head.start()
 
         def run_head():

@@ -59,12 +59,13 @@ class HeadCounters:
                 if f.name not in ("_recent", "born")}
 
 
-def snapshot(head) -> dict:
-    """The numbers the endpoint shows, from a running `Head` (plain JSON-able values)."""
+def snapshot(head, job_states: dict | None = None) -> dict:
+    """The numbers the endpoint shows, from a running `Head` (plain JSON-able values);
+    job_states: job → state, when the caller has them (else asked of the head)."""
     batches_per_s, samples_per_s = head.metrics.rates()
     states: dict[str, int] = {}
-    for run in head.jobs.values():
-        s = head.job_state(run)
+    for job, run in head.jobs.items():
+        s = job_states[job] if job_states is not None else head.job_state(run)
         states[s] = states.get(s, 0) + 1
     rendering = sum(1 for e in head.leases.table.values() if e.leased)
     return {
