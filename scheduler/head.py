@@ -172,8 +172,9 @@ class Head:
     # -- the loop ---------------------------------------------------------------------------
 
     def run(self, stop=lambda: False, idle: float = 0.2) -> None:
-        """Turns until `stop()`; after a turn with nothing to do the head sleeps in Redis for up
-        to `idle` seconds, woken at once by a worker's notice (`Results.wait`)."""
+        """Turns until `stop()`; after a turn with nothing to do, or one that took every notice
+        waiting, the head sleeps in Redis for up to `idle` seconds, woken at once by a worker's
+        notice (`Results.wait`), instead of a turn that would find nothing."""
         from .store import transient_errors
 
         lost = transient_errors()
@@ -188,7 +189,7 @@ class Head:
                     self.reconcile()
                     down = False
                 busy = self.step()
-                if not busy:
+                if not busy or self.results.drained:  # no notice left when the turn took them
                     self.results.wait(idle)
             except lost as err:
                 log.warning("Redis unreachable (%s); retrying", err)

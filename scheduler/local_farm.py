@@ -104,7 +104,10 @@ def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: in
             if st is not None and "tile_size" in st:  # published by the head, not the submit
                 if on_progress and st.get("pixel_samples_total"):
                     on_progress(st["pixel_samples_done"], st["pixel_samples_total"])
-                for d in job_frames(r, job):  # a frame is "done" once written (complete only)
+                # a frame is "done" once written (complete only); the summaries are read only
+                # when the status counts a frame more written than this loop has seen
+                ready = st.get("frames_done", 0) > len(seen) or st["state"] == "done"
+                for d in job_frames(r, job) if ready else ():
                     f = d["frame"]
                     if f not in seen and d["state"] == "done":
                         seen.add(f)

@@ -112,6 +112,7 @@ class Results:
         self.metrics = metrics
         self.parked: dict[bytes, str] = {}  # notice → its job (left in results:processing)
         self.early: list[bytes] = []  # notices `wait()` moved to processing, for the next take
+        self.drained = False  # the last take found fewer notices than it could take
         self._move = r.register_script(_MOVE)
 
     def wait(self, seconds: float) -> bool:
@@ -136,6 +137,7 @@ class Results:
         raws, self.early = self.early, []
         if len(raws) < limit:  # one step in Redis, whatever the count (none: nothing to pack)
             raws += self._move(keys=[P.K_RESULTS, P.K_PROCESSING], args=[limit - len(raws)])
+        self.drained = len(raws) < limit
         if not raws:
             return 0
         notes = []
