@@ -316,7 +316,7 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise:
     merged = None  # when the last batch was merged (its notice removed); the job is done once
     while head.job_state(run) != "done":  # its frames are written too
         # as Head.run: a turn with nothing to do, or that took every notice, sleeps in Redis
-        if not head.step() or getattr(head.results, "drained", False):
+        if not head.step() or head.results.drained:
             head.results.wait(0.05)
         if merged is None and not run.pending and not head.dispatcher.inflight(run.rec.id):
             merged = time.perf_counter() - start
