@@ -492,6 +492,12 @@ def pools(args) -> None:
 
 
 def main() -> None:
+    try:  # as every `lampyr` command does (lampyr/allocator.py): the head here and the engine alone
+        from lampyr.allocator import keep_large_blocks
+    except ImportError:  # a checkout from before it
+        pass
+    else:
+        keep_large_blocks()
     if len(sys.argv) == 3 and sys.argv[1] == "--engine-alone":
         return engine_alone_main(sys.argv[2])
     if len(sys.argv) == 2 and sys.argv[1] == "--noop-worker":

@@ -11,6 +11,7 @@ from pathlib import Path
 import click
 
 from . import __version__
+from .allocator import keep_large_blocks
 from .errors import LampyrError, UsageError
 
 
@@ -503,6 +504,7 @@ cancel = _simple_job_command("cancel", "Drop JOB's remaining work; frames writte
 
 
 def main(argv=None) -> None:
+    keep_large_blocks()  # films of a few hundred KB, reused instead of page-faulted in again
     try:
         cli.main(args=argv, prog_name="lampyr", standalone_mode=False)
     except click.exceptions.Abort:

@@ -23,6 +23,7 @@ import socket
 import sys
 import time
 
+from ..allocator import keep_large_blocks
 from ..scheduler import protocol as P
 
 _CTX = {}
@@ -108,6 +109,7 @@ def run_celery(url: str, cores: int, pool: str, name: str, gate_folder: str | No
     from .politeness import lower_priority
 
     prepare_environment(pool, cores)
+    keep_large_blocks()  # before the pool starts: its processes inherit it (lampyr/allocator.py)
     if not normal_priority:
         lower_priority()  # before the pool starts: its processes inherit it
     quiet_connection_logs()
