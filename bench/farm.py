@@ -492,12 +492,9 @@ def pools(args) -> None:
 
 
 def main() -> None:
-    try:  # as every `lampyr` command does (lampyr/allocator.py): the head here and the engine alone
-        from lampyr.allocator import keep_large_blocks
-    except ImportError:  # a checkout from before it
-        pass
-    else:
-        keep_large_blocks()
+    from lampyr.allocator import keep_large_blocks
+
+    keep_large_blocks()  # as every `lampyr` command does: for the head here and the engine alone
     if len(sys.argv) == 3 and sys.argv[1] == "--engine-alone":
         return engine_alone_main(sys.argv[2])
     if len(sys.argv) == 2 and sys.argv[1] == "--noop-worker":
