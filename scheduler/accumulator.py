@@ -78,9 +78,9 @@ def tile_noise(film) -> float | None:
     (`Film.rel_noise`, what `refine --noise` compares with); None when unknown."""
     if film is None:
         return None
-    import numpy as np
+    from ..engine.film_noise import film_mean_rel_noise  # np.mean(film.rel_noise()), one pass
 
-    value = float(np.mean(film.rel_noise()))
+    value = film_mean_rel_noise(film)
     return round(value, 6) if math.isfinite(value) else None
 
 
@@ -143,12 +143,16 @@ class TileAccumulator:
 
     def to_bytes(self, noise=_UNKNOWN) -> bytes:
         """noise: the film's `tile_noise` when the caller has it (else computed here)."""
-        from ..engine.film import to_bytes
+        return b"".join(self.to_parts(noise))
+
+    def to_parts(self, noise=_UNKNOWN) -> list:
+        """`to_bytes` in pieces, the film's arrays uncopied (`engine.film.to_parts`)."""
+        from ..engine.film import to_parts
 
         noise = tile_noise(self.film) if noise is _UNKNOWN else noise
         head = json.dumps({"ranges": self.ranges, "w": self.w, "h": self.h,
                            "noise": noise}).encode()
-        return MAGIC + struct.pack("<I", len(head)) + head + to_bytes(self.film)
+        return [MAGIC + struct.pack("<I", len(head)) + head] + to_parts(self.film)
 
     def holds(self, first: int, count: int) -> bool:
         return overlaps(self.ranges, first, count)

@@ -35,6 +35,11 @@ log = logging.getLogger("lampyr.head")
 # seconds between two rewrites of a frame that is not complete yet (rule of thumb: often enough
 # to watch a frame grow, rarely enough that EXR and PNG writing stays a small share of the head)
 REWRITE_EVERY = 5.0
+# the largest share of the frame writer's time that partial rewrites of one frame may take: after
+# a partial rewrite that took t seconds, the next waits at least t / REWRITE_SHARE (rule of thumb:
+# a tenth). A demo frame (0.05 s) keeps the 5 s above; a 1536 × 1536 frame (2.3 s of EXR, PNG and
+# assembly on one core, all of it taken from merging on a two-core head) is rewritten every 23 s.
+REWRITE_SHARE = 0.1
 _record_lock = threading.Lock()  # job.json is written whole by one thread at a time
 
 
@@ -43,7 +48,7 @@ class JobRun:
 
     def __init__(self, state: Path, rec: JobRecord, partial_frames: bool = True, *,
                  durable: bool = True, rewrite_every: float = REWRITE_EVERY, store=None,
-                 denoised_errors: bool = True):
+                 denoised_errors: bool = True, rewrite_share: float = REWRITE_SHARE):
         from ..engine.render import tiles_for
         from ..engine.shot import load_shot
 
@@ -54,9 +59,11 @@ class JobRun:
         # denoised), unless the job has a ready-by time, whose planner reads them
         self.denoised_errors = denoised_errors
         self.rewrite_every = rewrite_every
+        self.rewrite_share = rewrite_share
         # the tiles in memory, written in groups (shared by the head's jobs; tilestore.py)
         self.store = store if store is not None else TileStore(fsync=durable)
         self.partial_at: dict[int, float] = {}  # frame → time.monotonic() of its last partial write
+        self.partial_gap: dict[int, float] = {}  # frame → seconds from it to the next (see above)
         self.due: dict[int, float] = {}  # frame → when its held-back rewrite is due
         self.folder = JobFolder(state, rec.id)
         shot = load_shot(self.folder.bundle / rec.shot)
@@ -189,8 +196,9 @@ class JobRun:
 
     def write_frame_if_grown(self, frame: int, force: bool = False) -> Path | None:
         """Rewrite the frame file when its lowest tile sample count grew (or `force`). A frame
-        not yet complete is rewritten at most once per `rewrite_every` seconds: a growth sooner
-        is held back until then (`write_due`); a complete frame is written at once."""
+        not yet complete is rewritten at most once per `rewrite_every` seconds, and no sooner
+        than its last partial rewrite's duration / `rewrite_share` after it: a growth sooner is
+        held back until then (`write_due`); a complete frame is written at once."""
         if self.frame_level(frame) == 0 or not (force or self.grown(frame)):
             return None
         complete = self.frame_complete(frame)
@@ -198,8 +206,9 @@ class JobRun:
             return None
         if not complete and not force:
             at = self.partial_at.get(frame)
-            if at is not None and time.monotonic() - at < self.rewrite_every:
-                self.due.setdefault(frame, at + self.rewrite_every)
+            gap = self.partial_gap.get(frame, self.rewrite_every)
+            if at is not None and time.monotonic() - at < gap:
+                self.due.setdefault(frame, at + gap)
                 return None
         # denoised only when complete (its pass done): the intermediate rewrites stay cheap
         return self.write_frame(frame, final=complete)
@@ -218,6 +227,7 @@ class JobRun:
         from ..engine.mattes import manifest, matte_plan
         from ..frames import write_frame_files
 
+        began = time.monotonic()
         level, total = self.frame_totals(frame)
         kinds = matte_plan(self.shot)
         film = Film.zeros(self.shot.height, self.shot.width, layer_plan(self.shot)[0], kinds)
@@ -238,7 +248,9 @@ class JobRun:
         self.written_sum[frame] = total
         self.due.pop(frame, None)
         if not final:
-            self.partial_at[frame] = time.monotonic()
+            self.partial_at[frame] = now = time.monotonic()
+            took = now - began  # assembly, EXR and PNG
+            self.partial_gap[frame] = max(self.rewrite_every, took / self.rewrite_share)
         return path
 
     def write_due(self, all_now: bool = False) -> bool:

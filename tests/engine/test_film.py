@@ -7,7 +7,7 @@ import pytest
 from scipy import stats
 
 from lampyr.engine.film import (FIELDS, RGB_FIELDS, Film, FilmDataError, add_into,
-                                from_bytes, merge, to_bytes)
+                                from_bytes, merge, to_bytes, to_parts)
 from lampyr.errors import LampyrError
 
 H, W = 5, 6
@@ -236,6 +236,26 @@ def test_bytes_hold_the_sums_and_little_more():
     assert len(to_bytes(Film.zeros(7, 9, names))) == 7 * 9 * 27 * 8 + 25 + 15 + 10 + 4
     # each ID matte kind adds 8 (id, coverage) slots per pixel and its name
     assert len(to_bytes(Film.zeros(7, 9, (), ("object",)))) == 7 * 9 * 37 * 8 + 25 + 7 + 4
+
+
+@pytest.mark.parametrize("bits", [32, 64])
+def test_the_pieces_are_the_bytes_and_their_checksum_is_zlibs_crc32_of_the_body(smp, bits):
+    import zlib
+
+    film = accumulate(smp)
+    parts = to_parts(film, bits)
+    data = b"".join(parts)
+    assert data == to_bytes(film, bits)
+    # the checksum, built piece by piece, is zlib's CRC-32 of everything before it at once
+    assert int.from_bytes(data[-4:], "little") == zlib.crc32(data[:-4])
+
+
+def test_float64_pieces_are_the_films_own_memory_not_copies(smp):
+    film = accumulate(smp)
+    parts = to_parts(film)
+    for name in ("rgb_sum", "n"):
+        assert any(np.shares_memory(np.frombuffer(p, np.uint8), getattr(film, name))
+                   for p in parts if isinstance(p, memoryview))
 
 
 def test_float32_bytes_round_the_sums_to_float32(smp):

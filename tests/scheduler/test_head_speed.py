@@ -59,6 +59,36 @@ def test_a_frame_not_complete_is_rewritten_at_most_once_per_rewrite_every(redis_
     assert (frame_spp(path) == 8).all() and run.frame_complete(1)
 
 
+@pytest.mark.parametrize("share", [0.1, 0.5])
+def test_a_slow_partial_rewrite_holds_the_next_one_back_by_its_duration_over_the_share(
+        redis_url, tmp_path, tiny_shot, monkeypatch, share):
+    """A partial rewrite's CPU is taken from merging: after one that took t seconds the next
+    waits t / rewrite_share (here t >= 0.4 s, made slow by a sleeping writer)."""
+    import lampyr.frames
+
+    real = lampyr.frames.write_frame_files
+
+    def slow(*args, **kwargs):
+        time.sleep(0.4)
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(lampyr.frames, "write_frame_files", slow)
+    head = Head(tmp_path / "state", redis_url, rewrite_every=0.2)
+    head.start()
+    job = submit_request(head.r, tiny_shot, {}, str(tmp_path / "out"), tile_size=8,
+                         batch_samples=3)
+    head.take_commands()
+    run = head.jobs[job]
+    run.rewrite_share = share
+    merge_range(run, 1, 0, 1)  # the first pass, written at once, slowly
+    merge_range(run, 1, 1, 3)
+    assert 1 in run.due  # grown, held back well past rewrite_every's 0.2 s
+    assert 0.4 / share <= run.due[1] - run.partial_at[1] < 0.4 / share + 1.0
+    time.sleep(0.3)
+    run.write_due()
+    assert (frame_spp(tmp_path / "out" / "tiny.0001.exr") == 1).all()
+
+
 @pytest.mark.parametrize("partial, ranges", [
     (True, [(0, 1), (1, 3), (4, 3), (7, 1)]),  # docs/farm.md: a first pass of 1/16, at least 1
     (False, [(0, 3), (3, 3), (6, 2)]),  # frames written only complete: no first pass

@@ -4,6 +4,7 @@ Reference for the sums: numpy's own addition of the same arrays (docs/design.md,
 from __future__ import annotations
 
 import numpy as np
+import pytest
 
 from lampyr.engine.film import Film
 from lampyr.scheduler.accumulator import TileAccumulator, read_header
@@ -76,3 +77,35 @@ def test_a_tile_the_disk_refuses_is_reported_and_read_again_from_its_file(tmp_pa
     assert read_header(good)[0] == [(0, 2), (2, 2)]  # the other tile of the group is written
     # the refused tile left memory: its next merge starts from what its file holds
     assert bad not in store._tiles and good in store._tiles
+
+
+def short_writev(calls):
+    """os.writev that writes at most 1000 bytes of its first piece per call, as a kernel may."""
+    import os
+
+    real = os.writev
+
+    def writev(fd, buffers):
+        calls.append(len(buffers))
+        return real(fd, [memoryview(buffers[0])[:1000]])
+    return writev
+
+
+@pytest.mark.parametrize("how", ["writev", "short writes", "no writev"])
+def test_a_tile_file_holds_exactly_its_bytes_however_the_system_writes(tmp_path, monkeypatch,
+                                                                       how):
+    import os
+
+    calls = []
+    if how == "short writes":
+        monkeypatch.setattr(os, "writev", short_writev(calls))
+    elif how == "no writev":  # as on Windows
+        monkeypatch.delattr(os, "writev")
+    store = TileStore()
+    path = tmp_path / "tiles" / "0001" / "00000.acc"
+    acc = store.get(path, 8, 8)
+    acc.add(film(1), 0, 2)
+    store.stage(acc)
+    assert store.commit() == {}
+    assert path.read_bytes() == acc.to_bytes(read_header(path)[1])
+    assert (len(calls) > 5) == (how == "short writes")
