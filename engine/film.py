@@ -44,7 +44,7 @@ FORMAT_VERSION = 4  # 2: layers and 32-bit transport; 3: ID mattes; 4: the odd h
 # odd_sum); versions 1 (float64, no layers), 2 (no ID mattes) and 3 (no odd half) are still read
 _MAGIC = b"LMPFILM\x00"
 _HEAD = struct.Struct("<8sHHII")  # magic, version, field count, h, w
-_HEAD2 = struct.Struct("<BH")  # version 2: bits per value (32 or 64), layer count
+_HEAD2 = struct.Struct("<BH")  # version 2: bits per value (32 or 64; 0: MIXED), layer count
 _HEAD3 = struct.Struct("<BB")  # version 3: ID matte kind count, slots per kind
 _CRC = struct.Struct("<I")
 
@@ -292,14 +292,38 @@ def add_into(dst: Film, src: Film, y0: int, x0: int) -> None:
 # 3 (9 fields, no odd half), version 2 (no M, S, kinds or mattes) and version 1 (no bits, no
 # layers, float64) are still read, their samples all in the even half. Ids are float32 values, exact in either width.
 #
-# Workers send 32 bits (a batch's sums need no more: the head merges in float64 and its tile
-# accumulators keep 64 bits, so long merges do not lose precision); the counts stay exact up to
-# 2^24 samples of one pixel in one batch.
+# Workers send 32 bits (a batch's sums need no more: the head merges in float64, so long merges
+# do not lose precision); the counts stay exact up to 2^24 samples of one pixel in one batch.
+#
+# Version 5 is version 4 with bits = 0 (MIXED), what the head's tile files hold: the radiance
+# sums (WIDE: rgb_sum, rgb_sq, odd_sum, the layers) in float64, on which unbiased merging and the
+# variance (Σ L² − (Σ L)² / n, a difference of large numbers) rest, the rest in float32: counts
+# (n, hits, dropped, odd_n, alpha_sum, matte coverages; integers, exact in float32 below 2^24,
+# EXACT_COUNT), the first-hit albedo, normal and depth sums (denoiser guides, rounded to float32
+# in the frame file anyway) and the matte ids (float32 values). 120 bytes a pixel instead of 168:
+# a 64 × 64 tile file is 491 KB instead of 688 KB, and every batch the head merges rewrites one.
+# A film whose counts reach 2^24 is written with 64 bits (version 4) instead.
+
+
+MIXED = 0  # `bits` of the head's tile files: float64 radiance sums, float32 the rest (version 5)
+MIXED_VERSION = 5
+WIDE = frozenset({"rgb_sum", "rgb_sq", "odd_sum", "layers"})
+COUNTS = ("n", "hits", "dropped", "odd_n", "alpha_sum", "matte_cov")
+EXACT_COUNT = 2.0 ** 24  # every integer below it is a float32 (IEEE 754 binary32: 24-bit significand)
+
+
+def _dtypes(bits: int, stored=FIELDS) -> list:
+    """The little-endian dtype of each stored array, in order (fields, layers, ids, coverages)."""
+    names = stored + ("layers", "matte_ids", "matte_cov")
+    if bits == MIXED:
+        return [np.dtype("<f8" if f in WIDE else "<f4") for f in names]
+    return [np.dtype("<f4" if bits == 32 else "<f8")] * len(names)
 
 
 def to_bytes(film: Film, bits: int = 64) -> bytes:
-    """The film as bytes: (21 + 3K + 2MS) values per pixel of bits / 8 bytes each, plus a
-    25-byte header, the layer and kind names and a 4-byte checksum; see the layout above."""
+    """The film as bytes: (21 + 3K + 2MS) values per pixel of bits / 8 bytes each (MIXED: the
+    WIDE sums of 8, the rest of 4), plus a 25-byte header, the layer and kind names and a 4-byte
+    checksum; see the layout above."""
     return b"".join(to_parts(film, bits))
 
 
@@ -309,18 +333,21 @@ def to_parts(film: Film, bits: int = 64) -> list:
     the checksum. For a writer that hands them to the file whole (`os.writev`): a 64 × 64
     float64 tile is 688 KB, and joining it first was a copy of every byte. The arrays must not
     change until the pieces are written (films are merged into new arrays, never in place)."""
-    if bits not in (32, 64):
-        raise ValueError(f"bits: 32 or 64, got {bits!r}")
+    if bits not in (32, 64, MIXED):
+        raise ValueError(f"bits: 32, 64 or MIXED (0), got {bits!r}")
+    if bits == MIXED and any(getattr(film, f).size and getattr(film, f).max() >= EXACT_COUNT
+                             for f in COUNTS):
+        bits = 64  # a count float32 would round
     h, w = film.shape
-    dtype = np.dtype("<f4" if bits == 32 else "<f8")
-    head = [_HEAD.pack(_MAGIC, FORMAT_VERSION, len(FIELDS), h, w),
+    version = MIXED_VERSION if bits == MIXED else FORMAT_VERSION
+    head = [_HEAD.pack(_MAGIC, version, len(FIELDS), h, w),
             _HEAD2.pack(bits, len(film.layer_names))]
     head += [_name_bytes(name) for name in film.layer_names]
     head.append(_HEAD3.pack(len(film.matte_kinds), film.matte_ids.shape[3]))
     head += [_name_bytes(k) for k in film.matte_kinds]
     parts = [b"".join(head)]
     arrays = [a for _, a in film._arrays()] + [film.layers, film.matte_ids, film.matte_cov]
-    for a in arrays:
+    for a, dtype in zip(arrays, _dtypes(bits)):
         a = np.ascontiguousarray(a, dtype=dtype)
         if a.size:
             parts.append(memoryview(a).cast("B"))
@@ -362,10 +389,10 @@ def from_bytes(data: bytes) -> Film:
     if magic != _MAGIC:
         raise FilmDataError("film bytes: not a lampyr film (bad magic)")
     stored = FIELDS if version >= 4 else _OLD_FIELDS
-    if version not in (1, 2, 3, FORMAT_VERSION) or count != len(stored):
+    if version not in (1, 2, 3, FORMAT_VERSION, MIXED_VERSION) or count != len(stored):
         raise FilmDataError(f"film bytes: format version {version} with {count} fields; this "
                             f"lampyr reads versions 1 to 3 with {len(_OLD_FIELDS)} fields and "
-                            f"{FORMAT_VERSION} with {len(FIELDS)}")
+                            f"{FORMAT_VERSION} to {MIXED_VERSION} with {len(FIELDS)}")
     (crc,) = _CRC.unpack_from(data, len(data) - _CRC.size)
     if zlib.crc32(memoryview(data)[:-_CRC.size]) != crc:
         raise FilmDataError(f"film bytes: checksum mismatch in a {w}x{h} film (corrupted)")
@@ -375,27 +402,27 @@ def from_bytes(data: bytes) -> Film:
             raise FilmDataError("film bytes: truncated header")
         bits, k = _HEAD2.unpack_from(data, offset)
         offset += _HEAD2.size
-        if bits not in (32, 64):
-            raise FilmDataError(f"film bytes: {bits} bits per value; expected 32 or 64")
+        if bits not in ((MIXED,) if version == MIXED_VERSION else (32, 64)):
+            raise FilmDataError(f"film bytes: {bits} bits per value in format version {version};"
+                                f" expected {'0' if version == MIXED_VERSION else '32 or 64'}")
         names, offset = _names(data, offset, k, "layer")
     if version >= 3:
         if len(data) < offset + _HEAD3.size + _CRC.size:
             raise FilmDataError("film bytes: truncated header")
         m, slots = _HEAD3.unpack_from(data, offset)
         kinds, offset = _names(data, offset + _HEAD3.size, m, "ID matte kind")
-    width = bits // 8
-    dtype = "<f4" if bits == 32 else "<f8"
+    dtypes = _dtypes(bits, stored)
     sizes = [h * w * (3 if f in RGB_FIELDS else 1) for f in stored] + [h * w * len(names) * 3] \
         + [h * w * len(kinds) * slots] * 2
-    want = offset + width * sum(sizes) + _CRC.size
+    want = offset + sum(n * d.itemsize for n, d in zip(sizes, dtypes)) + _CRC.size
     if len(data) != want:
         raise FilmDataError(f"film bytes: a {w}x{h} film takes {want} bytes, got {len(data)} "
                             "(truncated or padded)")
     arrays = {}
-    for f, size in zip(stored + ("layers", "matte_ids", "matte_cov"), sizes):
+    for f, size, dtype in zip(stored + ("layers", "matte_ids", "matte_cov"), sizes, dtypes):
         flat = np.frombuffer(data, dtype=dtype, count=size, offset=offset)
         shape = ((h, w, len(names), 3) if f == "layers" else (h, w, len(kinds), slots)
                  if f.startswith("matte_") else (h, w, 3) if f in RGB_FIELDS else (h, w))
         arrays[f] = flat.astype(np.float64).reshape(shape)
-        offset += width * size
+        offset += dtype.itemsize * size
     return Film(**arrays, layer_names=tuple(names), matte_kinds=tuple(kinds))

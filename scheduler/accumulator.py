@@ -6,7 +6,9 @@ renamed), so after a crash it holds either the ranges before a merge or after it
 A batch whose range the file already holds — or overlaps — is dropped: every batch counts once.
 
 File layout: 8 bytes magic `LAMPACC1`, 4 bytes little-endian header length n, n bytes JSON header
-`{"ranges": [[first, count], ...], "w": w, "h": h, "noise": e}`, then `engine.film.to_bytes(film)`.
+`{"ranges": [[first, count], ...], "w": w, "h": h, "noise": e}`, then
+`engine.film.to_bytes(film, MIXED)` (float64 radiance sums, float32 counts and guides; files
+written before it hold float64 throughout and are still read).
 `noise` (the tile's mean relative noise, see `tile_noise`; absent in files written before it
 existed) lets a head start read only the headers (`read_header`), never the films.
 """
@@ -147,12 +149,12 @@ class TileAccumulator:
 
     def to_parts(self, noise=_UNKNOWN) -> list:
         """`to_bytes` in pieces, the film's arrays uncopied (`engine.film.to_parts`)."""
-        from ..engine.film import to_parts
+        from ..engine.film import MIXED, to_parts  # float64 radiance sums, float32 the rest
 
         noise = tile_noise(self.film) if noise is _UNKNOWN else noise
         head = json.dumps({"ranges": self.ranges, "w": self.w, "h": self.h,
                            "noise": noise}).encode()
-        return [MAGIC + struct.pack("<I", len(head)) + head] + to_parts(self.film)
+        return [MAGIC + struct.pack("<I", len(head)) + head] + to_parts(self.film, MIXED)
 
     def holds(self, first: int, count: int) -> bool:
         return overlaps(self.ranges, first, count)

@@ -198,7 +198,7 @@ def _write_tile(path: Path, acc: TileAccumulator, fsync: bool):
 
 def _write_parts(fd: int, parts) -> None:
     """Write the byte pieces in order: one writev(2) where there is one (no joined copy of a
-    tile's 688 KB), else one write at a time; a short write goes on where it stopped."""
+    tile's 491 KB), else one write at a time; a short write goes on where it stopped."""
     views = [v for v in (memoryview(p).cast("B") for p in parts) if len(v)]
     if not hasattr(os, "writev"):
         for view in views:

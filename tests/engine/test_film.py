@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from lampyr.engine.film import (FIELDS, RGB_FIELDS, Film, FilmDataError, add_into,
-                                from_bytes, merge, to_bytes, to_parts)
+from lampyr.engine.film import (FIELDS, MIXED, RGB_FIELDS, WIDE, Film, FilmDataError,
+                                add_into, from_bytes, merge, to_bytes, to_parts)
 from lampyr.errors import LampyrError
 
 H, W = 5, 6
@@ -256,6 +256,54 @@ def test_float64_pieces_are_the_films_own_memory_not_copies(smp):
     for name in ("rgb_sum", "n"):
         assert any(np.shares_memory(np.frombuffer(p, np.uint8), getattr(film, name))
                    for p in parts if isinstance(p, memoryview))
+
+
+def mixed_film(smp) -> Film:
+    film = accumulate(smp)
+    film.odd_n[:] = film.n // 2
+    film.odd_sum[:] = film.rgb_sum / 3.0
+    film.dropped[0, 1] = 2.0
+    return film
+
+
+def test_mixed_bytes_keep_the_radiance_sums_in_float64_and_round_the_rest_to_float32(smp):
+    film = mixed_film(smp)
+    back = from_bytes(to_bytes(film, MIXED))
+    for f in FIELDS:  # numpy's own float32 rounding is the reference for the narrow fields
+        want = getattr(film, f) if f in WIDE else getattr(film, f).astype(np.float32)
+        np.testing.assert_array_equal(getattr(back, f), want, err_msg=f)
+    for f in ("n", "hits", "dropped", "odd_n", "alpha_sum"):  # counts: exact
+        np.testing.assert_array_equal(getattr(back, f), getattr(film, f), err_msg=f)
+
+
+def test_mixed_bytes_take_120_bytes_a_pixel_against_168():
+    # 9 radiance values of 8 bytes (rgb_sum, rgb_sq, odd_sum) and 12 others of 4; a layer is
+    # radiance (3 × 8), an ID matte kind's 8 slots of (id, coverage) are float32 (8 × 2 × 4)
+    assert len(to_bytes(Film.zeros(7, 9), MIXED)) == 7 * 9 * 120 + 25 + 4
+    names = ("diffuse_direct",)
+    assert len(to_bytes(Film.zeros(7, 9, names, ("object",)), MIXED)) == \
+        7 * 9 * (120 + 24 + 64) + 25 + 15 + 7 + 4
+
+
+@pytest.mark.parametrize("field", ["n", "hits", "dropped", "alpha_sum"])
+def test_a_count_float32_would_round_makes_the_whole_film_64_bits(smp, field):
+    film = mixed_film(smp)
+    big = 2.0 ** 24 + 1.0  # the first integer float32 cannot hold (IEEE 754 binary32)
+    getattr(film, field)[2, 3] = big
+    data = to_bytes(film, MIXED)
+    assert data == to_bytes(film, 64)
+    assert getattr(from_bytes(data), field)[2, 3] == big
+
+
+def test_mixed_bytes_claiming_a_uniform_width_are_refused(smp):
+    import struct
+    import zlib
+
+    data = bytearray(to_bytes(mixed_film(smp), MIXED))
+    data[20] = 64  # the bits byte, after the 20-byte first header
+    body = bytes(data[:-4])
+    with pytest.raises(FilmDataError, match="bits per value in format version 5"):
+        from_bytes(body + struct.pack("<I", zlib.crc32(body)))
 
 
 def test_float32_bytes_round_the_sums_to_float32(smp):

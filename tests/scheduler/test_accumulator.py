@@ -57,6 +57,29 @@ def test_the_file_names_the_ranges_it_holds(renderer, tmp_path):
     assert not list(tmp_path.glob("*.tmp"))
 
 
+def test_a_tile_file_keeps_the_radiance_sums_whole_and_the_guides_as_float32(renderer, tmp_path):
+    acc = TileAccumulator(tmp_path / "t.acc", TILE.w, TILE.h)
+    acc.add(renderer.render(TILE, 0, 5), 0, 5)
+    acc.save()
+    back = TileAccumulator.load(tmp_path / "t.acc", TILE.w, TILE.h).film
+    for f in ("rgb_sum", "rgb_sq", "odd_sum", "n", "hits", "alpha_sum"):  # exact
+        np.testing.assert_array_equal(getattr(back, f), getattr(acc.film, f), err_msg=f)
+    for f in ("albedo_sum", "normal_sum", "depth_sum"):  # numpy's float32 rounding
+        np.testing.assert_array_equal(getattr(back, f), getattr(acc.film, f).astype(np.float32))
+
+
+def test_a_tile_file_of_float64_throughout_is_still_read(renderer, tmp_path):
+    from lampyr.engine.film import to_bytes
+
+    film = renderer.render(TILE, 0, 4)
+    head = json.dumps({"ranges": [[0, 4]], "w": TILE.w, "h": TILE.h, "noise": None}).encode()
+    (tmp_path / "t.acc").write_bytes(MAGIC + struct.pack("<I", len(head)) + head
+                                     + to_bytes(film, 64))  # as heads before the mixed widths
+    back = TileAccumulator.load(tmp_path / "t.acc", TILE.w, TILE.h)
+    assert back.ranges == [(0, 4)]
+    np.testing.assert_array_equal(back.film.albedo_sum, film.albedo_sum)
+
+
 def test_a_missing_file_is_an_empty_tile(tmp_path):
     acc = TileAccumulator.load(tmp_path / "none.acc", 8, 8)
     assert acc.ranges == [] and acc.film is None
