@@ -312,14 +312,19 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise:
     for p in procs:
         p.start()
     time.sleep(1.0)  # the synthetic workers are up before the clock starts
-    start, cpu = time.perf_counter(), time.process_time()
+    start, cpu, jiffies = time.perf_counter(), time.process_time(), machine_jiffies()
     merged = None  # when the last batch was merged (its notice removed); the job is done once
+    turns = 0  # turns that had work (notices, commands or batches to send), until the last merge
     while head.job_state(run) != "done":  # its frames are written too
         # as Head.run: a turn with nothing to do, or that took every notice, sleeps in Redis
-        if not head.step() or head.results.drained:
+        busy = head.step()
+        if not busy or head.results.drained:
             head.results.wait(0.05)
-        if merged is None and not run.pending and not head.dispatcher.inflight(run.rec.id):
-            merged = time.perf_counter() - start
+        if merged is None:
+            turns += busy
+            if not run.pending and not head.dispatcher.inflight(run.rec.id):
+                merged = time.perf_counter() - start
+                jiffies = busy_share(jiffies, machine_jiffies())
     seconds = time.perf_counter() - start
     cpu = time.process_time() - cpu  # the head's process: its loop and its frame writer
     stop.set()
@@ -327,7 +332,48 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise:
         p.join()
     merged = merged or seconds
     return {"batches": total, "seconds": seconds, "rate": total / seconds, "merged": merged,
-            "merge_rate": total / merged, "cpu": cpu}
+            "merge_rate": total / merged, "cpu": cpu, "turns": turns,
+            "busy": jiffies if isinstance(jiffies, float) else None}
+
+
+def machine_jiffies():
+    """(busy, total) clock ticks of every core since boot (Linux's /proc/stat); None elsewhere."""
+    try:
+        with open("/proc/stat") as f:
+            ticks = [int(x) for x in f.readline().split()[1:9]]
+    except (OSError, ValueError):
+        return None
+    idle = ticks[3] + ticks[4]  # idle and iowait (proc(5))
+    return sum(ticks) - idle, sum(ticks)
+
+
+def busy_share(before, after):
+    """The share of the machine's core time that was busy between two `machine_jiffies`."""
+    if before is None or after is None or after[1] == before[1]:
+        return None
+    return (after[0] - before[0]) / (after[1] - before[1])
+
+
+def disk_tile_ms(tmp: Path, count: int = 64) -> float:
+    """Milliseconds a tile file of the head (64 × 64, as its group commit writes it: noise,
+    encoding, write, fsync, rename, on its writer threads) takes when the disk does nothing else:
+    the second of two commits of `count` tiles, per tile."""
+    from lampyr.engine.film import from_bytes
+    from lampyr.scheduler.tilestore import TileStore
+
+    film = from_bytes(_film_blob())
+    store = TileStore()
+    seconds = 0.0
+    for first in (0, 4):
+        for i in range(count):
+            acc = store.get(tmp / "disk" / f"{i:05d}.acc", 64, 64)
+            acc.add(film, first, 4)
+            store.stage(acc)
+        began = time.perf_counter()
+        store.commit()
+        seconds = time.perf_counter() - began
+    store.close()
+    return 1e3 * seconds / count
 
 
 def noop_worker_main(url: str) -> None:
@@ -394,6 +440,7 @@ def capacity(args) -> None:
     try:
         noop = celery_noop_rate(server, args.noop_tasks, tmp)
         cap = head_capacity(server, args.capacity_tiles, 64, tmp)
+        disk = disk_tile_ms(tmp)
     finally:
         server.stop()
     server = EmbeddedRedis(tmp / "redis-raw").start()  # a farm of its own for the second head
@@ -422,6 +469,12 @@ def capacity(args) -> None:
           f"to the job's end: {cap['rate'] / raw['rate']:.2f}")
     print(f"head CPU seconds (loop and frame writer): {cap['cpu']:.2f}, "
           f"{1e3 * cap['cpu'] / cap['batches']:.1f} ms a batch")
+    busy = "n/a" if cap["busy"] is None else f"{100 * cap['busy']:.0f} %"
+    print(f"until the last merge: {cap['turns']} busy turns of the head's loop, "
+          f"{cap['batches'] / max(cap['turns'], 1):.1f} batches a turn; the machine busy {busy} "
+          f"of its {os.cpu_count()} cores' time")
+    print(f"the disk alone: a tile file of the group commit {disk:.2f} ms "
+          f"({1e3 / disk:.0f} tiles/s, the merge rate's bound with a tile written per batch)")
     print(f"head merged / Celery no-op: {cap['merge_rate'] / noop['rate']:.2f}; goal ≥ 400 "
           "merged batches/s")
 
