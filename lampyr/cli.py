@@ -155,8 +155,10 @@ def _job_or_fail(r, job):
 
 @cli.command()
 @click.option("--state", type=click.Path(file_okay=False, path_type=Path), default=None, help=_STATE_HELP)
-@click.option("--redis", "redis_url", default=None, metavar="URL",
-              help="Use this Redis instead of starting an embedded one.")
+@click.option("--redis", "redis_url", default=None, metavar="URL", envvar="LAMPYR_REDIS",
+              show_envvar=True,
+              help="Use this Redis instead of starting an embedded one. Its password is best "
+                   "given in LAMPYR_REDIS: a command line is readable by every user.")
 @click.option("--listen", default="127.0.0.1", show_default=True, metavar="ADDR",
               help="Address the embedded Redis binds to; beyond loopback a password is generated.")
 @click.option("--port", type=click.IntRange(0, 65535), default=0,
@@ -190,9 +192,15 @@ def head(state, redis_url, listen, port, lease_seconds, max_attempts, metrics_po
     state = state or default_state()
     maxmemory = None if redis_memory is None else parse_size(redis_memory)
     if redis_url is not None:
-        from .scheduler.address import check_address
+        from .scheduler.address import check_address, has_password
 
-        redis_url = check_address(redis_url, "--redis")
+        given = click.get_current_context().get_parameter_source("redis_url")
+        from_env = given is click.core.ParameterSource.ENVIRONMENT
+        redis_url = check_address(redis_url, "LAMPYR_REDIS" if from_env else "--redis")
+        if not from_env and has_password(redis_url):
+            click.echo("lampyr head: the password in --redis is readable by every user of this "
+                       "machine (ps, /proc); give the address in LAMPYR_REDIS instead "
+                       "(deploy/INSTALL.md, \"A Redis of your own\")", err=True)
 
     def ready(workers, commands):
         click.echo(f"lampyr head: state in {state}")

@@ -86,6 +86,16 @@ def check_address(text: str, where: str) -> str:
     return text
 
 
+def has_password(url: str) -> bool:
+    """Whether a farm address carries a password (redis://USER:PASSWORD@…, or ?password=)."""
+    from redis.connection import parse_url
+
+    try:
+        return bool(parse_url(url).get("password"))
+    except ValueError:
+        return False
+
+
 def _read(path: Path) -> str | None:
     """The text of one of the files above; None when there is none; NoFarm naming it when it is
     there but cannot be read (another user's folder, a folder in its place, not text)."""

@@ -182,9 +182,9 @@ class Farm:
         """Start `lampyr head` (extra: more command-line arguments; fakes: see
         tests/harness.py); returns the farm's URL."""
         args = ["head", "--state", self.state, "--lease", lease, "--attempts", attempts, *extra]
-        if not embedded:
-            args += ["--redis", self.url]
-        self.head_proc = self._spawn(args, "head.log", fakes=fakes)
+        # the Redis of its own in the environment, as deploy/INSTALL.md says, not on a command line
+        env = None if embedded else {"LAMPYR_REDIS": self.url}
+        self.head_proc = self._spawn(args, "head.log", env=env, fakes=fakes)
         give_up_at = time.monotonic() + 60
         while True:
             log = (self.tmp / "head.log").read_text(errors="replace")
