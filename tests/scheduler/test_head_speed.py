@@ -36,14 +36,19 @@ def merge_range(run, frame: int, first: int, count: int) -> None:
     run.write_frames([frame])
 
 
-def test_a_frame_not_complete_is_rewritten_at_most_once_per_rewrite_every(redis_url, tmp_path,
-                                                                          tiny_shot):
-    head = Head(tmp_path / "state", redis_url, rewrite_every=3.0)
+def started_job(redis_url, tmp_path, tiny_shot, rewrite_every: float):
+    """(head, job run) of the tiny shot (8 px tiles, batches of 3) on a started in-process head."""
+    head = Head(tmp_path / "state", redis_url, rewrite_every=rewrite_every)
     head.start()
     job = submit_request(head.r, tiny_shot, {}, str(tmp_path / "out"), tile_size=8,
                          batch_samples=3)
     head.take_commands()
-    run = head.jobs[job]
+    return head, head.jobs[job]
+
+
+def test_a_frame_not_complete_is_rewritten_at_most_once_per_rewrite_every(redis_url, tmp_path,
+                                                                          tiny_shot):
+    head, run = started_job(redis_url, tmp_path, tiny_shot, rewrite_every=3.0)
     path = tmp_path / "out" / "tiny.0001.exr"
     merge_range(run, 1, 0, 1)  # the first pass: the frame's first file, at once
     assert (frame_spp(path) == 1).all()
@@ -73,12 +78,7 @@ def test_a_slow_partial_rewrite_holds_the_next_one_back_by_its_duration_over_the
         return real(*args, **kwargs)
 
     monkeypatch.setattr(lampyr.frames, "write_frame_files", slow)
-    head = Head(tmp_path / "state", redis_url, rewrite_every=0.2)
-    head.start()
-    job = submit_request(head.r, tiny_shot, {}, str(tmp_path / "out"), tile_size=8,
-                         batch_samples=3)
-    head.take_commands()
-    run = head.jobs[job]
+    head, run = started_job(redis_url, tmp_path, tiny_shot, rewrite_every=0.2)
     run.rewrite_share = share
     merge_range(run, 1, 0, 1)  # the first pass, written at once, slowly
     merge_range(run, 1, 1, 3)
