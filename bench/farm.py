@@ -312,8 +312,8 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise:
     for p in procs:
         p.start()
     time.sleep(1.0)  # the synthetic workers are up before the clock starts
-    start, cpu, jiffies = time.perf_counter(), time.process_time(), machine_jiffies()
-    merged = None  # when the last batch was merged (its notice removed); the job is done once
+    start, cpu, ticks = time.perf_counter(), time.process_time(), machine_jiffies()
+    merged, busy_share_merging = None, None  # when the last batch was merged (its notice removed); the job is done once
     turns = 0  # turns that had work (notices, commands or batches to send), until the last merge
     while head.job_state(run) != "done":  # its frames are written too
         # as Head.run: a turn with nothing to do, or that took every notice, sleeps in Redis
@@ -324,7 +324,7 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise:
             turns += busy
             if not run.pending and not head.dispatcher.inflight(run.rec.id):
                 merged = time.perf_counter() - start
-                jiffies = busy_share(jiffies, machine_jiffies())
+                busy_share_merging = busy_share(ticks, machine_jiffies())
     seconds = time.perf_counter() - start
     cpu = time.process_time() - cpu  # the head's process: its loop and its frame writer
     stop.set()
@@ -333,7 +333,7 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise:
     merged = merged or seconds
     return {"batches": total, "seconds": seconds, "rate": total / seconds, "merged": merged,
             "merge_rate": total / merged, "cpu": cpu, "turns": turns,
-            "busy": jiffies if isinstance(jiffies, float) else None}
+            "busy": busy_share_merging}
 
 
 def machine_jiffies():

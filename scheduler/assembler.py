@@ -37,8 +37,8 @@ log = logging.getLogger("lampyr.head")
 REWRITE_EVERY = 5.0
 # the largest share of the frame writer's time that partial rewrites of one frame may take: after
 # a partial rewrite that took t seconds, the next waits at least t / REWRITE_SHARE (rule of thumb:
-# a tenth). A demo frame (0.05 s) keeps the 5 s above; a 1536 × 1536 frame (2.3 s of EXR, PNG and
-# assembly on one core, all of it taken from merging on a two-core head) is rewritten every 23 s.
+# a tenth). A demo frame (0.05 s) keeps the 5 s above; a 1536 × 1536 frame (2.3 s of EXR and PNG
+# writing on one core, all of it taken from merging on a two-core head) is rewritten every 23 s.
 REWRITE_SHARE = 0.1
 _record_lock = threading.Lock()  # job.json is written whole by one thread at a time
 

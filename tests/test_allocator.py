@@ -13,8 +13,9 @@ import sys
 
 import pytest
 
-# a tile's film encoded as the head does (lampyr/allocator.py): parts joined, then a checksum
-# appended, two large buffers alive at once and freed at once, 200 times
+# a tile's film encoded as the head encoded it when the thresholds were measured (a body joined
+# from parts, then a copy with a checksum appended): two 688 KB buffers alive at once and freed
+# at once, 200 times
 _PROBE = """
 import json, resource, sys
 from lampyr.allocator import keep_large_blocks
