@@ -7,7 +7,7 @@ Prints, for one icosphere (subdivisions 8: 1.31 M faces; 6 with --small: 82 k):
   2. Mrays/s for the same rays through both, coherent (a pinhole camera looking at the mesh)
      and incoherent (random origins inside the sphere, random directions), on one thread
      and on all cores, with the ratio lampyr / Embree. lampyr runs three ways: the binary tree
-     (bvh.py, the readable reference), the same with SAH termination, and the four-wide tree
+     (bvh.py, the readable reference), the same with SAH termination, and the eight-wide tree
      collapsed from it (wide_bvh.py), which is what the renderer traverses.
 
 Single-thread rates are taken from process CPU time (best of several interleaved repeats) so a
@@ -140,7 +140,7 @@ def run(report=print_table, small: bool = False, repeats: int = 3) -> dict:
                            f"{kept * per_m / 2**20:.0f}", f"{len(bvh.lo):,}"])
         if name == "lampyr":
             numbers = {"build_s": t_build, "build_peak_bytes_per_tri": mem / n_tri}
-    # the renderer's tree: the terminated binary one collapsed four-wide (its order and
+    # the renderer's tree: the terminated binary one collapsed eight-wide (its order and
     # triangles are the binary tree's; the renderer keeps only the wide nodes and triangles)
     bvh, tris = trees["lampyr+term"]
     t0 = time.perf_counter()

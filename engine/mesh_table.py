@@ -38,8 +38,8 @@ ATTR_TANGENT = 8
 class MeshTable:
     """Concatenated bottom-level arrays (shapes in the module docstring); M meshes, T triangles."""
 
-    blas_box: np.ndarray  # (N, 8, 4) float32 four-wide nodes (wide_bvh.py)
-    blas_meta: np.ndarray  # (N, 8, 4) int32 view of blas_box
+    blas_box: np.ndarray  # (N, 8, 8) float32 eight-wide nodes (wide_bvh.py)
+    blas_meta: np.ndarray  # (N, 8, 8) int32 view of blas_box
     tris: np.ndarray  # (T, 3, 3) float32
     tri_mat: np.ndarray  # (T,) int32
     tri_vtx: np.ndarray  # (T, 3) int32

@@ -3,7 +3,7 @@
 The compiled scene is a two-level hierarchy, kept as a NamedTuple of plain arrays (which numba
 caches well, where a jitclass argument misses the cache on every run):
 
-* bottom level: one four-wide BVH (wide_bvh.py) per mesh in its own object space, all
+* bottom level: one eight-wide BVH (wide_bvh.py) per mesh in its own object space, all
   concatenated (`blas_*`, `tris`, with per-mesh node and triangle offsets), built once per shot
   and shared by every frame;
 * top level: a BVH over *instances* (a mesh or an analytic sphere, with a material and a
@@ -33,8 +33,8 @@ KIND_SPHERE = 1
 
 class Scene(NamedTuple):
     # bottom level, object space (float32 geometry)
-    blas_box: np.ndarray  # (N, 8, 4) float32 four-wide nodes (wide_bvh.py)
-    blas_meta: np.ndarray  # (N, 8, 4) int32 view of blas_box: child rows and counts
+    blas_box: np.ndarray  # (N, 8, 8) float32 eight-wide nodes (wide_bvh.py)
+    blas_meta: np.ndarray  # (N, 8, 8) int32 view of blas_box: child rows and counts
     tris: np.ndarray  # (T, 3, 3) float32, in leaf order per mesh
     mesh_node_base: np.ndarray  # (M,) int64
     mesh_tri_base: np.ndarray  # (M,) int64

@@ -1,19 +1,25 @@
-"""Four-wide BVH: the binary SAH tree of bvh.py collapsed so that a node holds up to four
+"""Eight-wide BVH: the binary SAH tree of bvh.py collapsed so that a node holds up to eight
 children, their boxes side by side, and traversals over it.
 
 Collapsing: each wide node starts from the two children of a binary node and repeatedly opens
-the child of largest surface area that is not a leaf, until it has four children or only
+the child of largest surface area that is not a leaf, until it has eight children or only
 leaves (the greedy collapse of Wald, Benthin and Boulos, "Getting rid of packets", IEEE
 Symposium on Interactive Ray Tracing 2008, and Dammertz, Hanika and Keller, "Shallow bounding
 volume hierarchies for fast SIMD ray tracing of incoherent rays", EGSR 2008). Leaves and
 triangles are those of the binary tree, in the same order, so `pack_triangles` serves both.
 
-A tree is a `WideBVH`: one (W, 8, 4) block per node, nodes in depth-first order with the root
-at 0, read through two views of the same memory, so a node is one 128-byte record (two cache
-lines) and a visit touches nothing else:
+Why eight: a ray's way down is a chain of dependent loads, one node after the other, and on a
+mesh larger than the caches each is a wait on memory. Eight children a node instead of four
+take an incoherent ray inside the 1.31 M-triangle sphere of bench/rays.py through 8.9 nodes
+instead of 13.9, for the same leaves; measured on one thread it casts 1.1–1.3× the rays a
+second of the four-wide tree, camera rays about the same (0.95–1.0×).
+
+A tree is a `WideBVH`: one (W, 8, WIDTH) block per node, nodes in depth-first order with the
+root at 0, read through two views of the same memory, so a node is one 256-byte record (four
+cache lines) and a visit touches nothing else:
 
 * `box` float32: rows lo x, lo y, lo z, hi x, hi y, hi z (BOX_LO + axis, BOX_HI + axis);
-  column j is child slot j, so the four boxes of a node lie side by side;
+  column j is child slot j, so the children's boxes lie side by side;
 * `meta` int32, rows ROW_CHILD and ROW_COUNT (rows 0-5 are the boxes' bits): an interior
   child's node index (local, root = 0) and 0; a leaf's first triangle row (local) and its
   triangle count; for an unused slot 0 and SLOT_EMPTY (its box is empty, lo = +inf and
@@ -23,9 +29,11 @@ The traversals compute the slab tests exactly as `intersect.ray_box` does (float
 distance widened after Ize 2013), choosing each axis's near plane by the sign of the ray's
 direction instead of swapping, visit the hit children nearest first and keep the entry
 distance of every pushed child on the stack, so a child that lies beyond the closest hit found
-since is dropped when popped without reading its node. A leaf's triangles are tested four at a
-time (wide_triangles.py), with the same hits as one by one in row order; a deforming mesh's
-still one by one. The binary traversals of bvh.py stay as the readable reference;
+since is dropped when popped without reading its node. One child entered is visited at once,
+two are ordered by one comparison, more are inserted in order into the stack (a ray enters
+one or two children of most nodes). A leaf's triangles are tested four at a time
+(wide_triangles.py), with the same hits as one by one in row order; a deforming mesh's still
+one by one. The binary traversals of bvh.py stay as the readable reference;
 tests/engine/test_wide_bvh.py checks that both agree.
 """
 
@@ -36,37 +44,44 @@ from typing import NamedTuple
 
 import numpy as np
 from numba import njit, prange
+from numba.cpython.unsafe.numbers import trailing_zeros
 
 from .borrowing import borrowing
 from .bvh import BVH, _leaf, _ray_frame
 from .intersect import BOX_WIDEN, inverse
-from .wide_slabs import slabs4
+from .wide_slabs import slab_test
 from .wide_triangles import any_in_leaf, closest_in_leaf
 
-WIDTH = 4
+WIDTH = 8
 BOX_LO = 0  # rows of `box`: lo x, y, z
 BOX_HI = 3  # hi x, y, z
 SLOT_EMPTY = -1
 ROW_CHILD = 6
 ROW_COUNT = 7
 # Traversal stack entries. A binary tree from build_bvh is less than 64 levels deep, so its
-# wide tree is too, and a wide node pushes at most 4 entries and pops one: 3 * 64 + 4 suffice.
-WIDE_STACK = 3 * 64 + 4
+# wide tree is too, and a wide node pushes at most WIDTH entries and pops one.
+WIDE_STACK = (WIDTH - 1) * 64 + WIDTH
+# where in the traversal scratch the slab test leaves its WIDTH entry distances
+DIST_AT = 2 * WIDE_STACK
+
+slabs = slab_test(WIDTH)  # the children's slab tests as one vector computation (wide_slabs.py)
+HALF = WIDTH // 2
+slabs_half = slab_test(HALF, WIDTH)  # the same on the first half: a node of at most HALF children
 
 
 class WideBVH(NamedTuple):
-    box: np.ndarray  # (W, 8, 4) float32
-    meta: np.ndarray  # (W, 8, 4) int32, a view of the same memory as box
+    box: np.ndarray  # (W, 8, WIDTH) float32
+    meta: np.ndarray  # (W, 8, WIDTH) int32, a view of the same memory as box
 
 
 def wide_views(box) -> WideBVH:
-    """The two views of a node array: (box, its int32 view); box: (W, 8, 4) float32."""
+    """The two views of a node array: (box, its int32 view); box: (W, 8, WIDTH) float32."""
     box = np.ascontiguousarray(box, np.float32)
     return WideBVH(box, box.view(np.int32))
 
 
 def empty_wide() -> WideBVH:
-    """One node of four empty slots: a stand-in where there are no meshes."""
+    """One node of empty slots: a stand-in where there are no meshes."""
     box = np.zeros((1, 8, WIDTH), np.float32)
     box[0, BOX_LO:BOX_LO + 3] = np.inf
     box[0, BOX_HI:BOX_HI + 3] = -np.inf
@@ -77,9 +92,10 @@ def empty_wide() -> WideBVH:
 
 @njit(cache=True)
 def traversal_stack():
-    """Scratch for the wide traversals: (2 * WIDE_STACK,) float64 holding (entry distance,
-    entry) pairs. Allocate one per thread or chunk of rays and reuse it for every ray."""
-    return np.empty(2 * WIDE_STACK, np.float64)
+    """Scratch for the wide traversals: (2 * WIDE_STACK + WIDTH,) float64 holding (entry
+    distance, entry) pairs, then a node's entry distances at DIST_AT. Allocate one per thread or
+    chunk of rays and reuse it for every ray."""
+    return np.empty(2 * WIDE_STACK + WIDTH, np.float64)
 
 
 # ------------------------------------------------------------------------------------------
@@ -108,7 +124,7 @@ def _collapse(lo, hi, a, count, box, meta):
         ntodo = 1
         nk = 0
     while True:
-        if nk == 0:  # take the next binary interior node and open it up to four children
+        if nk == 0:  # take the next binary interior node and open it up to WIDTH children
             if ntodo == 0:
                 break
             ntodo -= 1
@@ -154,7 +170,7 @@ def _collapse(lo, hi, a, count, box, meta):
 
 
 def collapse_bvh(bvh: BVH) -> WideBVH:
-    """The four-wide tree of a binary tree from `build_bvh` (same leaves, same triangle order)."""
+    """The wide tree of a binary tree from `build_bvh` (same leaves, same triangle order)."""
     m = len(bvh.lo)
     size = max(1, m)  # every wide node but the root replaces at least one binary interior node
     box = np.empty((size, 8, WIDTH), np.float32)
@@ -170,7 +186,7 @@ def collapse_bvh(bvh: BVH) -> WideBVH:
 def _slab(box, nd, j, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax):
     """Slab test of child slot j of node nd, as `intersect.ray_box_at` computes it; nx, ny, nz:
     the rows of the near planes (BOX_HI + axis where the direction is negative). The readable
-    reference of wide_slabs.slabs4, which the traversals use (all four slots at once)."""
+    reference of `slabs` (wide_slabs.py), which the traversals use (every slot at once)."""
     tn = tmin
     tf = tmax
     t0 = (box[nd, nx, j] - ox) * idx
@@ -195,14 +211,6 @@ def _entry(meta, nd, j, base):
     if c == 0:
         return np.int64(base) + np.int64(meta[nd, ROW_CHILD, j])
     return -1 - (np.int64(nd) * WIDTH + j)
-
-
-@njit(cache=True, inline="always")
-def _order(ka, ea, ha, kb, eb, hb):
-    """One compare-exchange of a sorting network: the nearer (key) first."""
-    sw = kb < ka
-    return (kb if sw else ka, eb if sw else ea, hb if sw else ha,
-            ka if sw else kb, ea if sw else eb, ha if sw else hb)
 
 
 @borrowing()
@@ -231,51 +239,57 @@ def intersect_wide_at(box, meta, tris, tris_end, node_base, tri_base, end_base, 
     fx, fy, fz = np.uint64(3) - nx, np.uint64(5) - ny, np.uint64(7) - nz
     tbase = np.int64(tri_base)
     shift = np.int64(end_base) - np.int64(tri_base)
-    room = stack.shape[0] // 2 - WIDTH
-    inf = math.inf
+    room = WIDE_STACK - WIDTH
     sp = 0
     entry = np.int64(node_base)
     while True:
         if entry >= 0:
             nd = np.uint64(entry)
-            # the four children's slab tests at once (wide_slabs.py; the same bits as _slab)
-            mask, k0, k1, k2, k3 = slabs4(box, nd, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, best_t)
-            h0, h1, h2, h3 = (mask & 1) != 0, (mask & 2) != 0, (mask & 4) != 0, (mask & 8) != 0
-            # an empty slot never passes a slab test of a finite ray; a NaN ray passes every
-            # one, so empty slots are also masked by their count
-            h0 = h0 and meta[nd, np.uint64(ROW_COUNT), 0] >= 0
-            h1 = h1 and meta[nd, ROW_COUNT, 1] >= 0
-            h2 = h2 and meta[nd, ROW_COUNT, 2] >= 0
-            h3 = h3 and meta[nd, ROW_COUNT, 3] >= 0
-            nh = int(h0) + int(h1) + int(h2) + int(h3)
-            if nh == 1:  # one child: enter it without touching the stack
-                j = 0 if h0 else (1 if h1 else (2 if h2 else 3))
-                entry = _entry(meta, nd, j, node_base)
-                continue
-            if nh > 1:
-                e0 = _entry(meta, nd, 0, node_base)
-                e1 = _entry(meta, nd, 1, node_base)
-                e2 = _entry(meta, nd, 2, node_base)
-                e3 = _entry(meta, nd, 3, node_base)
-                k0, k1, k2, k3 = (k0 if h0 else inf), (k1 if h1 else inf), (k2 if h2 else inf), (k3 if h3 else inf)
-                # sort the four by entry distance (a five-exchange network), push farthest first
-                k0, e0, h0, k1, e1, h1 = _order(k0, e0, h0, k1, e1, h1)
-                k2, e2, h2, k3, e3, h3 = _order(k2, e2, h2, k3, e3, h3)
-                k0, e0, h0, k2, e2, h2 = _order(k0, e0, h0, k2, e2, h2)
-                k1, e1, h1, k3, e3, h3 = _order(k1, e1, h1, k3, e3, h3)
-                k1, e1, h1, k2, e2, h2 = _order(k1, e1, h1, k2, e2, h2)
-                if sp <= room:  # a full stack (never, for trees build_bvh makes) drops them
-                    if h3:
-                        stack[2 * sp], stack[2 * sp + 1] = k3, e3
-                        sp += 1
-                    if h2:
-                        stack[2 * sp], stack[2 * sp + 1] = k2, e2
-                        sp += 1
-                    if h1:
-                        stack[2 * sp], stack[2 * sp + 1] = k1, e1
-                        sp += 1
+            # the children's slab tests at once (wide_slabs.py; the same bits as _slab)
+            if meta[nd, np.uint64(ROW_COUNT), np.uint64(HALF)] == SLOT_EMPTY:
+                mask = slabs_half(box, nd, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, best_t, stack,
+                                  DIST_AT)
+            else:
+                mask = slabs(box, nd, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, best_t, stack, DIST_AT)
+            if mask != 0:
+                j0 = np.uint64(trailing_zeros(mask))
+                rest = mask & (mask - 1)
+                # an empty slot never passes a slab test of a finite ray; a NaN ray passes every
+                # one, so empty slots are also told by their count (the general case below)
+                c0 = meta[nd, np.uint64(ROW_COUNT), j0]
+                if rest == 0 and c0 >= 0:  # one child: enter it without touching the stack
+                    entry = _entry(meta, nd, j0, node_base)
+                    continue
+                j1 = np.uint64(trailing_zeros(rest))
+                if rest & (rest - 1) == 0 and c0 >= 0 and meta[nd, np.uint64(ROW_COUNT), j1] >= 0 and sp <= room:
+                    # two: push the farther, enter the nearer
+                    k0, k1 = stack[np.uint64(DIST_AT) + j0], stack[np.uint64(DIST_AT) + j1]
+                    e0, e1 = _entry(meta, nd, j0, node_base), _entry(meta, nd, j1, node_base)
+                    if k1 < k0:
+                        k0, e0, k1, e1 = k1, e1, k0, e0
+                    stack[2 * sp], stack[2 * sp + 1] = k1, e1
+                    sp += 1
                     entry = e0
                     continue
+                if sp <= room:  # more: push them, then bring the nearest to the top (a full
+                    base = sp  # stack, never for trees build_bvh makes, drops them)
+                    m = mask
+                    near = sp
+                    while m != 0:
+                        j = np.uint64(trailing_zeros(m))
+                        m &= m - 1
+                        if meta[nd, np.uint64(ROW_COUNT), j] < 0:
+                            continue
+                        k = stack[np.uint64(DIST_AT) + j]
+                        stack[2 * sp], stack[2 * sp + 1] = k, _entry(meta, nd, j, node_base)
+                        if k < stack[2 * near] or sp == base:
+                            near = sp
+                        sp += 1
+                    if sp > base:
+                        top = sp - 1
+                        k, e = stack[2 * near], stack[2 * near + 1]
+                        stack[2 * near], stack[2 * near + 1] = stack[2 * top], stack[2 * top + 1]
+                        stack[2 * top], stack[2 * top + 1] = k, e
         else:  # a leaf
             s = np.uint64(-1 - entry)
             nd = s // np.uint64(WIDTH)
@@ -321,27 +335,23 @@ def occluded_wide_at(box, meta, tris, tris_end, node_base, tri_base, end_base, w
     fx, fy, fz = np.uint64(3) - nx, np.uint64(5) - ny, np.uint64(7) - nz
     tbase = np.int64(tri_base)
     shift = np.int64(end_base) - np.int64(tri_base)
-    room = stack.shape[0] - WIDTH
+    room = DIST_AT - WIDTH
     sp = 0
     entry = np.int64(node_base)
     while True:
         if entry >= 0:
             nd = np.uint64(entry)
-            mask, k0, k1, k2, k3 = slabs4(box, nd, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax)
-            h0, h1, h2, h3 = (mask & 1) != 0, (mask & 2) != 0, (mask & 4) != 0, (mask & 8) != 0
+            if meta[nd, np.uint64(ROW_COUNT), np.uint64(HALF)] == SLOT_EMPTY:
+                m = slabs_half(box, nd, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax, stack, DIST_AT)
+            else:
+                m = slabs(box, nd, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax, stack, DIST_AT)
             if sp <= room:
-                if h3 and meta[nd, ROW_COUNT, 3] >= 0:
-                    stack[sp] = _entry(meta, nd, 3, node_base)
-                    sp += 1
-                if h2 and meta[nd, ROW_COUNT, 2] >= 0:
-                    stack[sp] = _entry(meta, nd, 2, node_base)
-                    sp += 1
-                if h1 and meta[nd, ROW_COUNT, 1] >= 0:
-                    stack[sp] = _entry(meta, nd, 1, node_base)
-                    sp += 1
-                if h0 and meta[nd, np.uint64(ROW_COUNT), 0] >= 0:
-                    stack[sp] = _entry(meta, nd, 0, node_base)
-                    sp += 1
+                while m != 0:  # every child entered, in any order: the first hit ends it
+                    j = np.uint64(trailing_zeros(m))
+                    m &= m - 1
+                    if meta[nd, np.uint64(ROW_COUNT), j] >= 0:
+                        stack[sp] = _entry(meta, nd, j, node_base)
+                        sp += 1
         else:
             s = np.uint64(-1 - entry)
             nd = s // np.uint64(WIDTH)

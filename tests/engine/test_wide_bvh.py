@@ -1,4 +1,4 @@
-"""The four-wide BVH (engine/wide_bvh.py) against its readable reference, the binary traversal of
+"""The wide BVH (engine/wide_bvh.py, eight children a node) against its readable reference, the binary traversal of
 engine/bvh.py, and against Embree (through embreex) on the same rays.
 
 Sources:
@@ -138,7 +138,7 @@ def test_empty_slots_are_empty_boxes(tree):
     for i, j in zip(*np.nonzero(empty)):
         assert np.isposinf(w.box[i, BOX_LO:BOX_LO + 3, j]).all()
         assert np.isneginf(w.box[i, BOX_HI:BOX_HI + 3, j]).all()
-    if len(tree.f) > 4 * WIDTH:  # a big mesh opens its root to four children
+    if len(tree.f) > 4 * WIDTH:  # a big mesh opens its root to WIDTH children
         assert not empty[0].any()
 
 

@@ -12,13 +12,13 @@ import pytest
 from numba import njit
 
 from lampyr.engine.intersect import inverse
-from lampyr.engine.wide_bvh import BOX_HI, BOX_LO, _slab
-from lampyr.engine.wide_slabs import slabs4
+from lampyr.engine.wide_bvh import BOX_HI, BOX_LO, DIST_AT, WIDTH, _slab, slabs, traversal_stack
 
 
 @njit
 def _both(box, rays, tmin, tmax, out_vec, out_ref):
     """For every (node, ray): the vector test's (mask, tn j) and the scalar test's, per slot."""
+    scratch = traversal_stack()  # the vector test leaves its distances at DIST_AT
     for i in range(rays.shape[0]):
         ox, oy, oz, dx, dy, dz = rays[i, 0], rays[i, 1], rays[i, 2], rays[i, 3], rays[i, 4], rays[i, 5]
         idx, idy, idz = inverse(dx), inverse(dy), inverse(dz)
@@ -28,29 +28,30 @@ def _both(box, rays, tmin, tmax, out_vec, out_ref):
         fx, fy, fz = np.uint64(3) - nx, np.uint64(5) - ny, np.uint64(7) - nz
         for nd in range(box.shape[0]):
             node = np.uint64(nd)
-            mask, k0, k1, k2, k3 = slabs4(box, node, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz,
-                                         tmin, tmax)
-            ks = (k0, k1, k2, k3)
-            for j in range(4):
+            mask = slabs(box, node, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax,
+                         scratch, DIST_AT)
+            for j in range(WIDTH):
                 out_vec[i, nd, j, 0] = 1.0 if (mask >> j) & 1 else 0.0
-                out_vec[i, nd, j, 1] = ks[j]
+                out_vec[i, nd, j, 1] = scratch[DIST_AT + j]
                 h, k = _slab(box, node, j, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax)
                 out_ref[i, nd, j, 0] = 1.0 if h else 0.0
                 out_ref[i, nd, j, 1] = k
 
 
 def _nodes(rng, count):
-    """(count, 8, 4) float32 nodes of random boxes; slot 3 of every fourth node is empty
-    (lo = +inf, hi = -inf, as collapse_bvh leaves unused slots) and some boxes are flat."""
-    lo = rng.uniform(-2, 2, (count, 3, 4))
-    size = rng.exponential(1.0, (count, 3, 4))
-    size[rng.random((count, 3, 4)) < 0.1] = 0.0  # flat boxes
-    box = np.empty((count, 8, 4), np.float32)
+    """(count, 8, WIDTH) float32 nodes of random boxes; the last slot of every fourth node and
+    the last three of every third are empty (lo = +inf, hi = -inf, as collapse_bvh leaves unused
+    slots) and some boxes are flat."""
+    lo = rng.uniform(-2, 2, (count, 3, WIDTH))
+    size = rng.exponential(1.0, (count, 3, WIDTH))
+    size[rng.random((count, 3, WIDTH)) < 0.1] = 0.0  # flat boxes
+    box = np.empty((count, 8, WIDTH), np.float32)
     box[:, 0:3] = lo
     box[:, 3:6] = lo + size
     box[:, 6:8] = 0.0
-    box[::4, 0:3, 3] = np.inf
-    box[::4, 3:6, 3] = -np.inf
+    for step, slots in ((4, slice(WIDTH - 1, WIDTH)), (3, slice(WIDTH - 3, WIDTH))):
+        box[::step, 0:3, slots] = np.inf
+        box[::step, 3:6, slots] = -np.inf
     return box
 
 
@@ -69,7 +70,7 @@ def _rays(rng, count):
 def test_the_vector_test_gives_the_scalar_test_bits_in_every_lane(tmin, tmax):
     rng = np.random.default_rng(21)
     box, rays = _nodes(rng, 64), _rays(rng, 400)
-    vec = np.empty((len(rays), len(box), 4, 2))
+    vec = np.empty((len(rays), len(box), WIDTH, 2))
     ref = np.empty_like(vec)
     _both(box, rays, tmin, tmax, vec, ref)
     np.testing.assert_array_equal(vec[..., 0], ref[..., 0])
@@ -84,13 +85,13 @@ def test_entering_agrees_with_the_textbook_slab_test():
     rng = np.random.default_rng(22)
     box, rays = _nodes(rng, 32), _rays(rng, 300)[1:]
     rays = rays[np.all(rays[:, 3:] != 0.0, axis=1)]
-    vec = np.empty((len(rays), len(box), 4, 2))
+    vec = np.empty((len(rays), len(box), WIDTH, 2))
     _both(box, rays, 0.0, math.inf, vec, np.empty_like(vec))
     checked = 0
     for i, r in enumerate(rays):
         o, d = r[:3], r[3:]
         for nd in range(len(box)):
-            for j in range(4):
+            for j in range(WIDTH):
                 lo, hi = box[nd, 0:3, j].astype(float), box[nd, 3:6, j].astype(float)
                 if not np.all(lo <= hi):
                     assert vec[i, nd, j, 0] == 0.0  # an empty slot is never entered
