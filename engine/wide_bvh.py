@@ -9,10 +9,16 @@ volume hierarchies for fast SIMD ray tracing of incoherent rays", EGSR 2008). Le
 triangles are those of the binary tree, in the same order, so `pack_triangles` serves both.
 
 Why eight: a ray's way down is a chain of dependent loads, one node after the other, and on a
-mesh larger than the caches each is a wait on memory. Eight children a node instead of four
-take an incoherent ray inside the 1.31 M-triangle sphere of bench/rays.py through 8.9 nodes
-instead of 13.9, for the same leaves; measured on one thread it casts 1.1–1.3× the rays a
-second of the four-wide tree, camera rays about the same (0.95–1.0×).
+mesh larger than the caches each is a wait on memory (sampled with perf: a quarter of the time
+of four-wide traversal waited on a node's first load, a fifth on a leaf's first triangle).
+Eight children a node instead of four take an incoherent ray inside the 1.31 M-triangle sphere
+of bench/rays.py through 8.9 nodes instead of 13.9, for the same leaves. Measured on one thread
+against the four-wide tree, same rays, same hits (2026-12-03, best of 6-8 interleaved repeats):
+on 1.31 M triangles incoherent closest hits 1.09-1.24x the rays a second, shadow rays
+1.13-1.22x, rays leaving the surface 1.05-1.13x, camera rays 0.96-1.0x; on 20-82 k triangles
+1.11-1.21x, 1.14-1.33x, 1.09-1.22x and 0.83-0.88x (in the caches a node's eight float64 lanes
+cost more than the visits saved). Renders (bench/engine.py, courtyard and the 1.31 M-triangle
+sphere) did not change beyond this machine's noise (+-15 % from run to run).
 
 A tree is a `WideBVH`: one (W, 8, WIDTH) block per node, nodes in depth-first order with the
 root at 0, read through two views of the same memory, so a node is one 256-byte record (four
@@ -27,11 +33,12 @@ cache lines) and a visit touches nothing else:
 
 The traversals compute the slab tests exactly as `intersect.ray_box` does (float64, the far
 distance widened after Ize 2013), choosing each axis's near plane by the sign of the ray's
-direction instead of swapping, visit the hit children nearest first and keep the entry
+direction instead of swapping, visit the nearest hit child first and keep the entry
 distance of every pushed child on the stack, so a child that lies beyond the closest hit found
 since is dropped when popped without reading its node. One child entered is visited at once,
-two are ordered by one comparison, more are inserted in order into the stack (a ray enters
-one or two children of most nodes). A leaf's triangles are tested four at a time
+two are ordered by one comparison; of more, only the nearest is brought to the top (sorting
+them all was no faster). A node of at most four children (its slot HALF empty) is tested on
+four lanes. A leaf's triangles are tested four at a time
 (wide_triangles.py), with the same hits as one by one in row order; a deforming mesh's still
 one by one. The binary traversals of bvh.py stay as the readable reference;
 tests/engine/test_wide_bvh.py checks that both agree.

@@ -25,6 +25,7 @@ from lampyr.engine.bvh import build_bvh, cast, cast_occluded, pack_triangles
 from lampyr.engine.wide_bvh import (
     BOX_HI,
     BOX_LO,
+    HALF,
     ROW_CHILD,
     ROW_COUNT,
     SLOT_EMPTY,
@@ -140,6 +141,14 @@ def test_empty_slots_are_empty_boxes(tree):
         assert np.isneginf(w.box[i, BOX_HI:BOX_HI + 3, j]).all()
     if len(tree.f) > 4 * WIDTH:  # a big mesh opens its root to WIDTH children
         assert not empty[0].any()
+
+
+def test_trees_hold_both_full_and_half_empty_nodes():
+    """The traversals test a node whose slot HALF is empty on its first HALF lanes only; the
+    trees the hit tests below run on hold both kinds, so both ways are exercised."""
+    for name, kw in (("torus", {"max_leaf": 16, "trav_cost": 4.0}), ("icosphere", {})):
+        kinds = Tree(name, **kw).wide.meta[:, ROW_COUNT, HALF] == SLOT_EMPTY
+        assert kinds.any() and (~kinds).any(), name
 
 
 def test_views_share_memory(tree):

@@ -12,12 +12,13 @@ import pytest
 from numba import njit
 
 from lampyr.engine.intersect import inverse
-from lampyr.engine.wide_bvh import BOX_HI, BOX_LO, DIST_AT, WIDTH, _slab, slabs, traversal_stack
+from lampyr.engine.wide_bvh import BOX_HI, BOX_LO, DIST_AT, HALF, WIDTH, _slab, slabs, slabs_half, traversal_stack
 
 
 @njit
-def _both(box, rays, tmin, tmax, out_vec, out_ref):
-    """For every (node, ray): the vector test's (mask, tn j) and the scalar test's, per slot."""
+def _both(box, rays, tmin, tmax, out_vec, out_ref, half=False):
+    """For every (node, ray): the vector test's (mask, tn j) and the scalar test's, per slot;
+    half: the vector test of the first HALF slots (`slabs_half`), the others reported unentered."""
     scratch = traversal_stack()  # the vector test leaves its distances at DIST_AT
     for i in range(rays.shape[0]):
         ox, oy, oz, dx, dy, dz = rays[i, 0], rays[i, 1], rays[i, 2], rays[i, 3], rays[i, 4], rays[i, 5]
@@ -28,8 +29,13 @@ def _both(box, rays, tmin, tmax, out_vec, out_ref):
         fx, fy, fz = np.uint64(3) - nx, np.uint64(5) - ny, np.uint64(7) - nz
         for nd in range(box.shape[0]):
             node = np.uint64(nd)
-            mask = slabs(box, node, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax,
-                         scratch, DIST_AT)
+            if half:
+                mask = slabs_half(box, node, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax,
+                                  scratch, DIST_AT)
+                scratch[DIST_AT + HALF:DIST_AT + WIDTH] = tmin
+            else:
+                mask = slabs(box, node, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax,
+                             scratch, DIST_AT)
             for j in range(WIDTH):
                 out_vec[i, nd, j, 0] = 1.0 if (mask >> j) & 1 else 0.0
                 out_vec[i, nd, j, 1] = scratch[DIST_AT + j]
@@ -77,6 +83,21 @@ def test_the_vector_test_gives_the_scalar_test_bits_in_every_lane(tmin, tmax):
     entered = ref[..., 0] == 1.0
     assert entered.any() and (~entered).any()  # both outcomes occur
     np.testing.assert_array_equal(vec[..., 1][entered], ref[..., 1][entered])
+
+
+def test_the_half_test_gives_the_scalar_test_bits_in_the_first_half():
+    """A node of at most HALF children is tested on HALF lanes (wide_bvh's traversals): the
+    same bits as the scalar test there, nothing entered beyond."""
+    rng = np.random.default_rng(23)
+    box, rays = _nodes(rng, 64), _rays(rng, 400)
+    vec = np.empty((len(rays), len(box), WIDTH, 2))
+    ref = np.empty_like(vec)
+    _both(box, rays, 0.0, math.inf, vec, ref, True)
+    np.testing.assert_array_equal(vec[:, :, :HALF, 0], ref[:, :, :HALF, 0])
+    assert not vec[:, :, HALF:, 0].any()
+    entered = ref[:, :, :HALF, 0] == 1.0
+    assert entered.any() and (~entered).any()
+    np.testing.assert_array_equal(vec[:, :, :HALF, 1][entered], ref[:, :, :HALF, 1][entered])
 
 
 def test_entering_agrees_with_the_textbook_slab_test():
