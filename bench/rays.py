@@ -8,7 +8,9 @@ Prints, for one icosphere (subdivisions 8: 1.31 M faces; 6 with --small: 82 k):
      and incoherent (random origins inside the sphere, random directions), on one thread
      and on all cores, with the ratio lampyr / Embree. lampyr runs three ways: the binary tree
      (bvh.py, the readable reference), the same with SAH termination, and the eight-wide tree
-     collapsed from it (wide_bvh.py), which is what the renderer traverses.
+     collapsed from it (wide_bvh.py), which is what the renderer traverses;
+  3. Mrays/s of shadow rays (any hit in a segment) through the wide tree and Embree, the
+     incoherent rays cut short of their closest hit and past it.
 
 Single-thread rates are taken from process CPU time (best of several interleaved repeats) so a
 busy shared machine skews them less; all-core rates from wall time. Embree runs on all cores by
@@ -197,7 +199,50 @@ def run(report=print_table, small: bool = False, repeats: int = 3) -> dict:
     report("2. closest-hit Mrays/s (single thread: CPU time; all cores: wall time)",
            ["rays", "threads", "count", "lampyr", "lampyr+term", "wide", "Embree", "lampyr/Embree",
             "+term/Embree", "wide/Embree", "wide/+term", "hit fraction", "same hit/miss"], rows)
+    report("3. shadow rays (any hit), Mrays/s: the incoherent rays above cut just short of their closest "
+           "hit (a light in sight: the whole way is searched) and just past it (blocked)",
+           ["rays", "threads", "count", "wide", "Embree", "wide/Embree", "blocked fraction", "same answer"],
+           shadow_rows(wide, trees["lampyr+term"][1], scene, *sets["incoherent (inside)"], threads, repeats,
+                       numbers))
     return numbers
+
+
+def shadow_rows(wide, tris, scene, o, d, threads: int, repeats: int, numbers: dict) -> list[list]:
+    """Table rows of shadow rays through the wide tree and Embree; fills numbers."""
+    import numba
+
+    from lampyr.engine.wide_bvh import cast_wide, cast_wide_occluded
+
+    n = len(o)
+    t, k = np.empty(n), np.empty(n, np.int64)
+    cast_wide(wide, tris, o, d, t, k)
+    o32, d32 = o.astype(np.float32), d.astype(np.float32)
+    rows = []
+    for label, scale in (("incoherent, in sight", 0.999), ("incoherent, blocked", 1.001)):
+        tmax = np.where(k >= 0, t * scale, 1e30)
+        tmax32 = tmax.astype(np.float32)
+        out = np.empty(n, np.bool_)
+        for nt in sorted({1, threads}):
+            numba.set_num_threads(nt)
+            clock = time.process_time if nt == 1 else time.perf_counter
+            parts = np.array_split(np.arange(n), nt)
+            best = {"wide": math.inf, "Embree": math.inf}
+            with ThreadPoolExecutor(nt) as pool:
+                for _ in range(repeats):
+                    c0 = clock()
+                    cast_wide_occluded(wide, tris, o, d, tmax, out)
+                    best["wide"] = min(best["wide"], clock() - c0)
+                    c0 = clock()
+                    ge = np.concatenate(list(pool.map(
+                        lambda p: scene.run(o32[p], d32[p], dists=tmax32[p], query="OCCLUDED"), parts)))
+                    best["Embree"] = min(best["Embree"], clock() - c0)
+            rate = {key: n / x / 1e6 for key, x in best.items()}
+            numbers[f"shadow {label} wide {nt}t ratio"] = rate["wide"] / rate["Embree"]
+            rows.append([label, nt, f"{n:,}", f"{rate['wide']:.2f}", f"{rate['Embree']:.2f}",
+                         f"{rate['wide'] / rate['Embree']:.2f}", f"{out.mean():.2f}",
+                         f"{(out == (ge >= 0)).mean():.5f}"])
+        numba.set_num_threads(threads)
+    return rows
 
 
 def main(argv=None) -> None:
