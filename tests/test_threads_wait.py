@@ -59,6 +59,23 @@ def _run(mode: str, policy: str | None) -> dict:
     return result
 
 
+# The probe's serial work is 400 ms; a run that took this long was starved of cores by other
+# processes (a CI machine's neighbours), and its spinner with it: measured, 2.16 wall s and
+# 2.29 CPU s under load against 0.40 and 0.80 on a quiet machine.
+STARVED_WALL = 1.0
+ATTEMPTS = 4
+
+
+def _run_quiet(mode: str, policy: str | None) -> dict:
+    """`_run` until a run is not starved (at most ATTEMPTS runs); the least starved one."""
+    runs = []
+    for _ in range(ATTEMPTS):
+        runs.append(_run(mode, policy))
+        if runs[-1]["wall"] < STARVED_WALL:
+            break
+    return min(runs, key=lambda r: r["wall"])
+
+
 def test_importing_lampyr_sets_a_passive_wait_and_keeps_the_users_own():
     code = "import os, lampyr; print(os.environ['OMP_WAIT_POLICY'])"
     for given, expected in ((None, "PASSIVE"), ("ACTIVE", "ACTIVE")):
@@ -72,8 +89,8 @@ def test_importing_lampyr_sets_a_passive_wait_and_keeps_the_users_own():
 
 @pytest.mark.skipif((os.cpu_count() or 1) < 2, reason="needs a second core to spin on")
 def test_openmp_threads_sleep_between_parallel_loops_once_lampyr_is_imported():
-    spinning = _run("plain", "ACTIVE")
-    passive = _run("lampyr", None)
+    spinning = _run_quiet("plain", "ACTIVE")
+    passive = _run_quiet("lampyr", None)
     assert spinning["layer"] == passive["layer"] == "omp"
     # ACTIVE: the second thread spins through the 400 ms of serial work, about one more core
     # second a wall second (measured here: 0.80 CPU s in 0.40 s, the same with the policy unset);
