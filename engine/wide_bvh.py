@@ -220,6 +220,16 @@ def _entry(meta, nd, j, base):
     return -1 - (np.int64(nd) * WIDTH + j)
 
 
+@njit(cache=True, inline="always")
+def _children(box, meta, nd, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax, stack):
+    """The slab tests of node nd's children at once (wide_slabs.py; the same bits as _slab): the
+    mask of those entered, their entry distances left at stack[DIST_AT + j]. A node of at most
+    HALF children (its slot HALF empty) is tested on HALF lanes."""
+    if meta[nd, np.uint64(ROW_COUNT), np.uint64(HALF)] == SLOT_EMPTY:
+        return slabs_half(box, nd, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax, stack, DIST_AT)
+    return slabs(box, nd, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax, stack, DIST_AT)
+
+
 @borrowing()
 def intersect_wide(box, meta, tris, node_base, tri_base, ox, oy, oz, dx, dy, dz, tmin, tmax, stack):
     """Closest hit in (tmin, tmax) of one wide mesh BVH: (t, k, u, v), as bvh.intersect_mesh.
@@ -252,12 +262,7 @@ def intersect_wide_at(box, meta, tris, tris_end, node_base, tri_base, end_base, 
     while True:
         if entry >= 0:
             nd = np.uint64(entry)
-            # the children's slab tests at once (wide_slabs.py; the same bits as _slab)
-            if meta[nd, np.uint64(ROW_COUNT), np.uint64(HALF)] == SLOT_EMPTY:
-                mask = slabs_half(box, nd, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, best_t, stack,
-                                  DIST_AT)
-            else:
-                mask = slabs(box, nd, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, best_t, stack, DIST_AT)
+            mask = _children(box, meta, nd, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, best_t, stack)
             if mask != 0:
                 j0 = np.uint64(trailing_zeros(mask))
                 rest = mask & (mask - 1)
@@ -348,10 +353,7 @@ def occluded_wide_at(box, meta, tris, tris_end, node_base, tri_base, end_base, w
     while True:
         if entry >= 0:
             nd = np.uint64(entry)
-            if meta[nd, np.uint64(ROW_COUNT), np.uint64(HALF)] == SLOT_EMPTY:
-                m = slabs_half(box, nd, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax, stack, DIST_AT)
-            else:
-                m = slabs(box, nd, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax, stack, DIST_AT)
+            m = _children(box, meta, nd, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax, stack)
             if sp <= room:
                 while m != 0:  # every child entered, in any order: the first hit ends it
                     j = np.uint64(trailing_zeros(m))

@@ -32,7 +32,6 @@ def _both(box, rays, tmin, tmax, out_vec, out_ref, half=False):
             if half:
                 mask = slabs_half(box, node, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax,
                                   scratch, DIST_AT)
-                scratch[DIST_AT + HALF:DIST_AT + WIDTH] = tmin
             else:
                 mask = slabs(box, node, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax,
                              scratch, DIST_AT)
