@@ -31,8 +31,10 @@ cache lines) and a visit touches nothing else:
   triangle count; for an unused slot 0 and SLOT_EMPTY (its box is empty, lo = +inf and
   hi = -inf, so no slab test of a finite ray enters it).
 
-The traversals compute the slab tests exactly as `intersect.ray_box` does (float64, the far
-distance widened after Ize 2013), choosing each axis's near plane by the sign of the ray's
+The traversals compute the slab tests in float32, one fused multiply-add a plane, with terms
+rounded outwards so that no box the ray meets is missed and entry distances are lower bounds
+(wide_slabs.py; the float64 `intersect.ray_box` of the binary reference widens the far
+distance after Ize 2013 instead). They choose each axis's near plane by the sign of the ray's
 direction instead of swapping, visit the nearest hit child first and keep the entry
 distance of every pushed child on the stack, so a child that lies beyond the closest hit found
 since is dropped when popped without reading its node. One child entered is visited at once,
@@ -55,8 +57,7 @@ from numba.cpython.unsafe.numbers import trailing_zeros
 
 from .borrowing import borrowing
 from .bvh import BVH, _leaf, _ray_frame
-from .intersect import BOX_WIDEN, inverse
-from .wide_slabs import slab_test
+from .wide_slabs import A_FAR, A_NEAR, B_FAR, B_NEAR, fma32, interval32, ray_planes, slab_test
 from .wide_triangles import any_in_leaf, closest_in_leaf
 
 WIDTH = 8
@@ -190,25 +191,26 @@ def collapse_bvh(bvh: BVH) -> WideBVH:
 
 
 @njit(cache=True, inline="always")
-def _slab(box, nd, j, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax):
-    """Slab test of child slot j of node nd, as `intersect.ray_box_at` computes it; nx, ny, nz:
-    the rows of the near planes (BOX_HI + axis where the direction is negative). The readable
-    reference of `slabs` (wide_slabs.py), which the traversals use (every slot at once)."""
+def _slab(box, nd, j, nx, ny, nz, fx, fy, fz, planes, tmin, tmax):
+    """Slab test of child slot j of node nd in float32 (wide_slabs.py's docstring); nx, ny, nz:
+    the rows of the near planes (BOX_HI + axis where the direction is negative); planes: from
+    `ray_planes`; tmin, tmax: float32 from `interval32`. The readable reference of `slabs`
+    (wide_slabs.py), which the traversals use (every slot at once): (entered, entry distance)."""
     tn = tmin
     tf = tmax
-    t0 = (box[nd, nx, j] - ox) * idx
-    t1 = (box[nd, fx, j] - ox) * idx * BOX_WIDEN
+    t0 = fma32(box[nd, nx, j], planes[A_NEAR + 0], planes[B_NEAR + 0])
+    t1 = fma32(box[nd, fx, j], planes[A_FAR + 0], planes[B_FAR + 0])
     tn = t0 if t0 > tn else tn
     tf = t1 if t1 < tf else tf
-    t0 = (box[nd, ny, j] - oy) * idy
-    t1 = (box[nd, fy, j] - oy) * idy * BOX_WIDEN
+    t0 = fma32(box[nd, ny, j], planes[A_NEAR + 1], planes[B_NEAR + 1])
+    t1 = fma32(box[nd, fy, j], planes[A_FAR + 1], planes[B_FAR + 1])
     tn = t0 if t0 > tn else tn
     tf = t1 if t1 < tf else tf
-    t0 = (box[nd, nz, j] - oz) * idz
-    t1 = (box[nd, fz, j] - oz) * idz * BOX_WIDEN
+    t0 = fma32(box[nd, nz, j], planes[A_NEAR + 2], planes[B_NEAR + 2])
+    t1 = fma32(box[nd, fz, j], planes[A_FAR + 2], planes[B_FAR + 2])
     tn = t0 if t0 > tn else tn
     tf = t1 if t1 < tf else tf
-    return tn <= tf, tn
+    return tn <= tf, np.float64(tn)
 
 
 @njit(cache=True, inline="always")
@@ -221,13 +223,24 @@ def _entry(meta, nd, j, base):
 
 
 @njit(cache=True, inline="always")
-def _children(box, meta, nd, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax, stack):
+def _children(box, meta, nd, nx, ny, nz, fx, fy, fz, planes, tmin, tmax, stack):
     """The slab tests of node nd's children at once (wide_slabs.py; the same bits as _slab): the
     mask of those entered, their entry distances left at stack[DIST_AT + j]. A node of at most
-    HALF children (its slot HALF empty) is tested on HALF lanes."""
+    HALF children (its slot HALF empty) is tested on HALF lanes. tmin, tmax: float64."""
+    t0, t1 = interval32(tmin, tmax)
     if meta[nd, np.uint64(ROW_COUNT), np.uint64(HALF)] == SLOT_EMPTY:
-        return slabs_half(box, nd, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax, stack, DIST_AT)
-    return slabs(box, nd, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax, stack, DIST_AT)
+        return slabs_half(box, nd, nx, ny, nz, fx, fy, fz, planes, t0, t1, stack, DIST_AT)
+    return slabs(box, nd, nx, ny, nz, fx, fy, fz, planes, t0, t1, stack, DIST_AT)
+
+
+@njit(cache=True, inline="always")
+def _near_rows(planes):
+    """The rows of each axis's near and far planes, by the direction's sign:
+    (nx, ny, nz, fx, fy, fz) as uint64."""
+    nx = np.uint64(BOX_HI if planes[A_NEAR + 0] < 0.0 else BOX_LO)
+    ny = np.uint64(BOX_HI + 1 if planes[A_NEAR + 1] < 0.0 else BOX_LO + 1)
+    nz = np.uint64(BOX_HI + 2 if planes[A_NEAR + 2] < 0.0 else BOX_LO + 2)
+    return nx, ny, nz, np.uint64(3) - nx, np.uint64(5) - ny, np.uint64(7) - nz
 
 
 @borrowing()
@@ -248,12 +261,9 @@ def intersect_wide_at(box, meta, tris, tris_end, node_base, tri_base, end_base, 
     best_t, best_k, best_u, best_v = tmax, np.int64(-1), 0.0, 0.0
     if node_base < 0 or node_base >= box.shape[0]:  # an empty tree: nothing to hit
         return best_t, best_k, best_u, best_v
-    idx, idy, idz = inverse(dx), inverse(dy), inverse(dz)
+    planes = ray_planes(ox, oy, oz, dx, dy, dz)
     kx, ky, kz, okx, oky, okz, sx, sy, sz = _ray_frame(ox, oy, oz, dx, dy, dz)
-    nx = np.uint64(BOX_HI if idx < 0.0 else BOX_LO)
-    ny = np.uint64(BOX_HI + 1 if idy < 0.0 else BOX_LO + 1)
-    nz = np.uint64(BOX_HI + 2 if idz < 0.0 else BOX_LO + 2)
-    fx, fy, fz = np.uint64(3) - nx, np.uint64(5) - ny, np.uint64(7) - nz
+    nx, ny, nz, fx, fy, fz = _near_rows(planes)
     tbase = np.int64(tri_base)
     shift = np.int64(end_base) - np.int64(tri_base)
     room = WIDE_STACK - WIDTH
@@ -262,7 +272,7 @@ def intersect_wide_at(box, meta, tris, tris_end, node_base, tri_base, end_base, 
     while True:
         if entry >= 0:
             nd = np.uint64(entry)
-            mask = _children(box, meta, nd, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, best_t, stack)
+            mask = _children(box, meta, nd, nx, ny, nz, fx, fy, fz, planes, tmin, best_t, stack)
             if mask != 0:
                 j0 = np.uint64(trailing_zeros(mask))
                 rest = mask & (mask - 1)
@@ -339,12 +349,9 @@ def occluded_wide_at(box, meta, tris, tris_end, node_base, tri_base, end_base, w
     """`occluded_wide` for a mesh that may deform (see bvh.intersect_mesh_at)."""
     if node_base < 0 or node_base >= box.shape[0]:
         return False
-    idx, idy, idz = inverse(dx), inverse(dy), inverse(dz)
+    planes = ray_planes(ox, oy, oz, dx, dy, dz)
     kx, ky, kz, okx, oky, okz, sx, sy, sz = _ray_frame(ox, oy, oz, dx, dy, dz)
-    nx = np.uint64(BOX_HI if idx < 0.0 else BOX_LO)
-    ny = np.uint64(BOX_HI + 1 if idy < 0.0 else BOX_LO + 1)
-    nz = np.uint64(BOX_HI + 2 if idz < 0.0 else BOX_LO + 2)
-    fx, fy, fz = np.uint64(3) - nx, np.uint64(5) - ny, np.uint64(7) - nz
+    nx, ny, nz, fx, fy, fz = _near_rows(planes)
     tbase = np.int64(tri_base)
     shift = np.int64(end_base) - np.int64(tri_base)
     room = DIST_AT - WIDTH
@@ -353,7 +360,7 @@ def occluded_wide_at(box, meta, tris, tris_end, node_base, tri_base, end_base, w
     while True:
         if entry >= 0:
             nd = np.uint64(entry)
-            m = _children(box, meta, nd, nx, ny, nz, fx, fy, fz, ox, oy, oz, idx, idy, idz, tmin, tmax, stack)
+            m = _children(box, meta, nd, nx, ny, nz, fx, fy, fz, planes, tmin, tmax, stack)
             if sp <= room:
                 while m != 0:  # every child entered, in any order: the first hit ends it
                     j = np.uint64(trailing_zeros(m))
