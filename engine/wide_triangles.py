@@ -31,6 +31,7 @@ and are never candidates.
 
 from __future__ import annotations
 
+import numpy as np
 from llvmlite import ir
 from numba import njit, types
 from numba.extending import intrinsic
@@ -140,12 +141,21 @@ def _take(m, j, T, det, V, W, row, tmin, best_t, best_k, best_u, best_v):
 
 
 @njit(cache=True, inline="always")
+def _rows_left(g, last):
+    """The rows of a group starting at g: LANES, or fewer at the leaf's end. (Not the builtin
+    min: in the borrowing traversals it was compiled as a call, which spilled every vector
+    register around it, once a group; seen in the machine code under perf.)"""
+    n = last - g
+    return n if n < LANES else np.int64(LANES)
+
+
+@njit(cache=True, inline="always")
 def closest_in_leaf(tris, first, last, kx, ky, kz, okx, oky, okz, sx, sy, sz, tmin, best_t, best_k, best_u, best_v):
     """The closest hit among rows first .. last - 1 of `tris` and (best_t, best_k, best_u,
     best_v) so far: the same as testing the rows one by one with `sheared_triangle` in order."""
     for g in range(first, last, LANES):
         m, T0, T1, T2, T3, d0, d1, d2, d3, V0, V1, V2, V3, W0, W1, W2, W3 = triangles4(
-            tris, g, min(LANES, last - g), kx, ky, kz, okx, oky, okz, sx, sy, sz, tmin, best_t)
+            tris, g, _rows_left(g, last), kx, ky, kz, okx, oky, okz, sx, sy, sz, tmin, best_t)
         if m != 0:
             best_t, best_k, best_u, best_v = _take(m, 0, T0, d0, V0, W0, g, tmin, best_t, best_k, best_u, best_v)
             best_t, best_k, best_u, best_v = _take(m, 1, T1, d1, V1, W1, g + 1, tmin, best_t, best_k, best_u,
@@ -161,7 +171,7 @@ def closest_in_leaf(tris, first, last, kx, ky, kz, okx, oky, okz, sx, sy, sz, tm
 def any_in_leaf(tris, first, last, kx, ky, kz, okx, oky, okz, sx, sy, sz, tmin, tmax):
     """True when any of rows first .. last - 1 of `tris` is hit in (tmin, tmax)."""
     for g in range(first, last, LANES):
-        m = triangles4(tris, g, min(LANES, last - g), kx, ky, kz, okx, oky, okz, sx, sy, sz, tmin, tmax)[0]
+        m = triangles4(tris, g, _rows_left(g, last), kx, ky, kz, okx, oky, okz, sx, sy, sz, tmin, tmax)[0]
         if m != 0:
             return True
     return False
