@@ -31,6 +31,14 @@ the far distance):
   not through a NaN as the float64 test did.
 * tmin is rounded down and tmax up (by |t| · 2^-23) before they enter float32.
 
+Measured against the float64 test it replaced (one thread, the same rays through both in one
+process, 30-40 alternating rounds, median of the per-round ratios; same hits): camera rays
+1.05-1.08x, incoherent closest hits 1.03x on 82 k triangles and 0.98x on 1.31 M, shadow rays
+1.00x and 0.98x. Little, because a traversal mostly waits on memory (a node's and a leaf's first
+loads, sampled with perf), not on this arithmetic; kept for the camera rays and because the test
+is now an exact statement about rounding (tests/engine/test_wide_slabs.py checks it against
+rational arithmetic).
+
 The entry distances go to memory widened to float64 (`out[at:at + lanes]`), where the
 traversal reads the few lanes that entered by index; being lower bounds, a child popped later
 is dropped only when its box truly begins beyond the closest hit. Valid for tmin >= 0 (every
