@@ -11,9 +11,9 @@ reference), so each lane's result is the same bits:
   entered = tn <= tf                                              (false for NaN).
 
 `ray_planes` gives each axis's a and b once per ray: a ≈ 1/d, b ≈ -o/d. Why float32 and how it
-stays conservative: the node test is most of a traversal's arithmetic, and in float64 (the boxes
-widened, origin subtracted, then multiplied) eight lanes take two AVX registers and three
-operations a plane; in float32 they take one register and one operation. Rounding to float32
+stays conservative: in float64 (the boxes widened, origin subtracted, then multiplied) eight
+lanes take two AVX registers and three operations a plane; in float32 they take one register
+and one operation. Rounding to float32
 must never let a ray miss a box it passes through, so the terms are rounded outwards (bounds
 below; Ize, "Robust BVH Ray Traversal", JCGT 2(2), 2013, does the same for float64 by widening
 the far distance):
