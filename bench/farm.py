@@ -313,6 +313,7 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise:
         p.start()
     time.sleep(1.0)  # the synthetic workers are up before the clock starts
     start, cpu, ticks = time.perf_counter(), time.process_time(), machine_jiffies()
+    threads = thread_cpu()
     merged, busy_share_merging = None, None  # when the last batch was merged (its notice removed); the job is done once
     turns = 0  # turns that had work (notices, commands or batches to send), until the last merge
     while head.job_state(run) != "done":  # its frames are written too
@@ -327,13 +328,33 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise:
                 busy_share_merging = busy_share(ticks, machine_jiffies())
     seconds = time.perf_counter() - start
     cpu = time.process_time() - cpu  # the head's process: its loop and its frame writer
+    after = thread_cpu()
+    threads = {k: v - threads.get(k, 0.0) for k, v in after.items()}
     stop.set()
     for p in procs:
         p.join()
     merged = merged or seconds
     return {"batches": total, "seconds": seconds, "rate": total / seconds, "merged": merged,
             "merge_rate": total / merged, "cpu": cpu, "turns": turns,
-            "busy": busy_share_merging}
+            "busy": busy_share_merging, "threads": threads}
+
+
+def thread_cpu() -> dict:
+    """CPU seconds of this process's live threads by role: the head's loop (the main thread),
+    its tile writers (`tilestore.WRITE_THREADS`), its frame writer, the rest (psutil's
+    per-thread times, matched to Python's threads by their native ids)."""
+    import threading
+
+    import psutil
+
+    names = {t.native_id: t.name for t in threading.enumerate()}
+    out: dict[str, float] = {}
+    for t in psutil.Process().threads():
+        name = names.get(t.id, "")
+        role = ("loop" if name == "MainThread" else "tile writes" if name.startswith("tile-write")
+                else "frame writer" if name == "frame-writer" else "other (the denoiser's own, ...)")
+        out[role] = out.get(role, 0.0) + t.user_time + t.system_time
+    return out
 
 
 def machine_jiffies():
@@ -477,6 +498,9 @@ def capacity(args) -> None:
           f"to the job's end: {cap['rate'] / raw['rate']:.2f}")
     print(f"head CPU seconds (loop and frame writer): {cap['cpu']:.2f}, "
           f"{1e3 * cap['cpu'] / cap['batches']:.1f} ms a batch")
+    roles = ", ".join(f"{k} {v:.2f} s ({1e3 * v / cap['batches']:.1f} ms a batch)"
+                      for k, v in sorted(cap["threads"].items(), key=lambda kv: -kv[1]) if v >= 0.005)
+    print(f"  of which, by thread: {roles}")
     busy = "n/a" if cap["busy"] is None else f"{100 * cap['busy']:.0f} %"
     print(f"until the last merge: {cap['turns']} busy turns of the head's loop, "
           f"{cap['batches'] / max(cap['turns'], 1):.1f} batches a turn; the machine busy {busy} "
