@@ -86,6 +86,19 @@ def tile_noise(film) -> float | None:
     return round(value, 6) if math.isfinite(value) else None
 
 
+def load_noise_kernel() -> None:
+    """Load `tile_noise`'s compiled kernel now. A head renders nothing, so this is its process's
+    first numba call, which sets up numba's compiler first (its typing registries, a BLAS
+    check): 1.7 s of the head's loop in a `lampyr render` profiled here, paid by the first
+    group commit while the workers waited for their next batches. The head's start pays it
+    instead, while its workers are still starting."""
+    from ..engine.film import Film
+
+    film = Film.zeros(2, 2)
+    film.n[:] = 2.0
+    tile_noise(film)
+
+
 _UNKNOWN = object()
 
 

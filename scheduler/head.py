@@ -42,7 +42,7 @@ from pathlib import Path
 
 from . import commands
 from . import protocol as P
-from .accumulator import write_atomic
+from .accumulator import load_noise_kernel, write_atomic
 from .assembler import REWRITE_EVERY, JobRun
 from .dispatch import Dispatcher
 from .sending import make_sender
@@ -124,6 +124,7 @@ class Head:
     # -- start-up ---------------------------------------------------------------------------
 
     def start(self) -> None:
+        load_noise_kernel()  # not in the first group commit, in the middle of the first turns
         # the address may carry the farm's password: readable by the head's user only
         write_atomic(self.state / "head.json", json.dumps({"address": self.url}).encode(),
                      mode=0o600)
