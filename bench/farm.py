@@ -314,6 +314,7 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise:
     time.sleep(1.0)  # the synthetic workers are up before the clock starts
     start, cpu, ticks = time.perf_counter(), time.process_time(), machine_jiffies()
     threads = thread_cpu()
+    rest = others_cpu(server, procs)
     merged, busy_share_merging = None, None  # when the last batch was merged (its notice removed); the job is done once
     turns = 0  # turns that had work (notices, commands or batches to send), until the last merge
     while head.job_state(run) != "done":  # its frames are written too
@@ -326,6 +327,7 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise:
             if not run.pending and not head.dispatcher.inflight(run.rec.id):
                 merged = time.perf_counter() - start
                 busy_share_merging = busy_share(ticks, machine_jiffies())
+                rest = {k: v - rest.get(k, 0.0) for k, v in others_cpu(server, procs).items()}
     seconds = time.perf_counter() - start
     cpu = time.process_time() - cpu  # the head's process: its loop and its frame writer
     after = thread_cpu()
@@ -336,7 +338,22 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise:
     merged = merged or seconds
     return {"batches": total, "seconds": seconds, "rate": total / seconds, "merged": merged,
             "merge_rate": total / merged, "cpu": cpu, "turns": turns,
-            "busy": busy_share_merging, "threads": threads}
+            "busy": busy_share_merging, "threads": threads, "others": rest}
+
+
+def others_cpu(server, procs) -> dict:
+    """CPU seconds so far of the capacity run's other processes: the synthetic workers, Redis."""
+    import psutil
+
+    def seconds(pid):
+        try:
+            c = psutil.Process(pid).cpu_times()
+        except psutil.Error:
+            return 0.0
+        return c.user + c.system
+
+    return {"synthetic workers": sum(seconds(p.pid) for p in procs),
+            "Redis": seconds(server.proc.pid) if getattr(server, "proc", None) else 0.0}
 
 
 def thread_cpu() -> dict:
@@ -501,6 +518,8 @@ def capacity(args) -> None:
     roles = ", ".join(f"{k} {v:.2f} s ({1e3 * v / cap['batches']:.1f} ms a batch)"
                       for k, v in sorted(cap["threads"].items(), key=lambda kv: -kv[1]) if v >= 0.005)
     print(f"  of which, by thread: {roles}")
+    print("until the last merge, the other processes on these cores: " + ", ".join(
+        f"{k} {v:.2f} s" for k, v in cap["others"].items()) + f" (the merge took {cap['merged']:.2f} s)")
     busy = "n/a" if cap["busy"] is None else f"{100 * cap['busy']:.0f} %"
     print(f"until the last merge: {cap['turns']} busy turns of the head's loop, "
           f"{cap['batches'] / max(cap['turns'], 1):.1f} batches a turn; the machine busy {busy} "
