@@ -89,9 +89,8 @@ def tile_noise(film) -> float | None:
 def load_noise_kernel() -> None:
     """Load `tile_noise`'s compiled kernel now. A head renders nothing, so this is its process's
     first numba call, which sets up numba's compiler first (its typing registries, a BLAS
-    check): 1.7 s of the head's loop in a `lampyr render` profiled here, paid by the first
-    group commit while the workers waited for their next batches. The head's start pays it
-    instead, while its workers are still starting."""
+    check): in a profiled `lampyr render`, 1.7 s of the head's loop inside its first group
+    commit, with no batch merged or sent meanwhile. The head's start pays it instead."""
     from ..engine.film import Film
 
     film = Film.zeros(2, 2)

@@ -81,3 +81,26 @@ def test_without_a_layout_the_head_measures_one(head, tiny_shot):
     assert rec.tile_size in TILE_SIZES and 1 <= rec.batch_samples <= 8
     # a 16 × 12 shot renders in well under 10 s per tile: the whole range goes in few batches
     assert rec.ranges[-1][0] + rec.ranges[-1][1] == 8
+
+
+HEAD_START_ALONE = """
+import sys
+from lampyr.engine.film_noise import mean_rel_noise
+from lampyr.scheduler.head import Head
+
+before = len(mean_rel_noise.signatures)
+Head(sys.argv[1], sys.argv[2], lease_seconds=5).start()
+print(before, len(mean_rel_noise.signatures))
+"""
+
+
+def test_a_heads_start_loads_the_tile_noise_kernel_before_its_first_commit(redis_url, tmp_path):
+    # in a process of its own, as a head runs: numba's first call in a process sets up its
+    # compiler (seconds), which the first group commit would otherwise pay inside the loop
+    import subprocess
+    import sys
+
+    done = subprocess.run([sys.executable, "-c", HEAD_START_ALONE, str(tmp_path / "state"),
+                           redis_url], capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr[-2000:]
+    assert done.stdout.split() == ["0", "1"]
