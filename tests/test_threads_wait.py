@@ -61,9 +61,11 @@ def _run(mode: str, policy: str | None) -> dict:
 
 # The probe's serial work is 400 ms; a run that took this long was starved of cores by other
 # processes (a CI machine's neighbours), and its spinner with it: measured, 2.16 wall s and
-# 2.29 CPU s under load against 0.40 and 0.80 on a quiet machine.
+# 2.29 CPU s under load against 0.40 and 0.80 on a quiet machine. The suite runs in two test
+# processes (pyproject.toml), so the other one often holds a core: more tries to find a quiet
+# moment (each takes 0.5-2 s).
 STARVED_WALL = 1.0
-ATTEMPTS = 4
+ATTEMPTS = 10
 
 
 def _run_quiet(mode: str, policy: str | None) -> dict:
