@@ -29,6 +29,7 @@ import json
 import os
 import shutil
 import signal
+import statistics
 import subprocess
 import sys
 import tempfile
@@ -213,10 +214,8 @@ def render_vs_engine(args) -> None:
     _table(["run", "wall s (each run)", "best"], rows)
     e = [r["wall"] for r in runs["engine"]]
     f = [r["wall"] for r in runs["farm"]]
-    ratios = sorted(a / b for a, b in zip(e, f))
     pairs = " ".join(f"{a / b:.2f}" for a, b in zip(e, f))
-    middle = ratios[len(ratios) // 2] if len(ratios) % 2 else \
-        0.5 * (ratios[len(ratios) // 2 - 1] + ratios[len(ratios) // 2])
+    middle = statistics.median(a / b for a, b in zip(e, f))
     print(f"speed of lampyr render / engine alone: {min(e) / min(f):.2f} (best of each; "
           f"pair by pair {pairs}; median of the pairs {middle:.2f}); goal ≥ 0.95")
     eng = runs["engine"][0]
@@ -316,8 +315,7 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise:
         p.start()
     time.sleep(1.0)  # the synthetic workers are up before the clock starts
     start, cpu, ticks = time.perf_counter(), time.process_time(), machine_jiffies()
-    threads = thread_cpu()
-    rest = others_cpu(server, procs)
+    threads, rest_before, rest = thread_cpu(), others_cpu(server, procs), None
     merged, busy_share_merging = None, None  # when the last batch was merged (its notice removed); the job is done once
     turns = 0  # turns that had work (notices, commands or batches to send), until the last merge
     while head.job_state(run) != "done":  # its frames are written too
@@ -330,11 +328,11 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise:
             if not run.pending and not head.dispatcher.inflight(run.rec.id):
                 merged = time.perf_counter() - start
                 busy_share_merging = busy_share(ticks, machine_jiffies())
-                rest = {k: v - rest.get(k, 0.0) for k, v in others_cpu(server, procs).items()}
+                rest = cpu_since(rest_before, others_cpu(server, procs))
     seconds = time.perf_counter() - start
     cpu = time.process_time() - cpu  # the head's process: its loop and its frame writer
-    after = thread_cpu()
-    threads = {k: v - threads.get(k, 0.0) for k, v in after.items()}
+    threads = cpu_since(threads, thread_cpu())
+    rest = rest or cpu_since(rest_before, others_cpu(server, procs))
     stop.set()
     for p in procs:
         p.join()
@@ -342,6 +340,11 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise:
     return {"batches": total, "seconds": seconds, "rate": total / seconds, "merged": merged,
             "merge_rate": total / merged, "cpu": cpu, "turns": turns,
             "busy": busy_share_merging, "threads": threads, "others": rest}
+
+
+def cpu_since(before: dict, now: dict) -> dict:
+    """CPU seconds by name between two readings (a name first seen in `now` counts whole)."""
+    return {k: v - before.get(k, 0.0) for k, v in now.items()}
 
 
 def others_cpu(server, procs) -> dict:
@@ -516,7 +519,7 @@ def capacity(args) -> None:
     ])
     print(f"merge rate with denoising on / off: {cap['merge_rate'] / raw['merge_rate']:.2f} (goal >= 0.9); "
           f"to the job's end: {cap['rate'] / raw['rate']:.2f}")
-    print(f"head CPU seconds (loop and frame writer): {cap['cpu']:.2f}, "
+    print(f"head CPU seconds (its process, every thread): {cap['cpu']:.2f}, "
           f"{1e3 * cap['cpu'] / cap['batches']:.1f} ms a batch")
     roles = ", ".join(f"{k} {v:.2f} s ({1e3 * v / cap['batches']:.1f} ms a batch)"
                       for k, v in sorted(cap["threads"].items(), key=lambda kv: -kv[1]) if v >= 0.005)
