@@ -39,7 +39,9 @@ direction instead of swapping, visit the nearest hit child first and keep the en
 distance of every pushed child on the stack, so a child that lies beyond the closest hit found
 since is dropped when popped without reading its node. One child entered is visited at once,
 two are ordered by one comparison; of more, only the nearest is brought to the top (sorting
-them all was no faster). A node of at most four children (its slot HALF empty) is tested on
+them all was no faster). Every child entered but a lone interior one (entered at once) is asked
+for from memory as soon as it is known: its node record, or a leaf's triangle rows
+(prefetch.py). A node of at most four children (its slot HALF empty) is tested on
 four lanes. A leaf's triangles are tested four at a time
 (wide_triangles.py), with the same hits as one by one in row order; a deforming mesh's still
 one by one. The binary traversals of bvh.py stay as the readable reference;
@@ -57,6 +59,7 @@ from numba.cpython.unsafe.numbers import trailing_zeros
 
 from .borrowing import borrowing
 from .bvh import BVH, _leaf, _ray_frame
+from .prefetch import prefetch_leaf, prefetch_node
 from .wide_slabs import A_FAR, A_NEAR, B_FAR, B_NEAR, fma32, interval32, ray_planes, slab_test
 from .wide_triangles import any_in_leaf, closest_in_leaf
 
@@ -234,6 +237,17 @@ def _children(box, meta, nd, nx, ny, nz, fx, fy, fz, planes, tmin, tmax, stack):
 
 
 @njit(cache=True, inline="always")
+def _prefetch_child(box, meta, tris, nd, j, node_base, tbase):
+    """Ask early for what visiting child slot j of node nd will read (prefetch.py): an interior
+    child's node record, a leaf's triangle rows; nothing for an empty slot."""
+    c = meta[nd, np.uint64(ROW_COUNT), j]
+    if c == 0:
+        prefetch_node(box, np.int64(node_base) + np.int64(meta[nd, np.uint64(ROW_CHILD), j]), 1)
+    elif c > 0:
+        prefetch_leaf(tris, tbase + np.int64(meta[nd, np.uint64(ROW_CHILD), j]), c)
+
+
+@njit(cache=True, inline="always")
 def _near_rows(planes):
     """The rows of each axis's near and far planes, by the direction's sign:
     (nx, ny, nz, fx, fy, fz) as uint64."""
@@ -280,6 +294,8 @@ def intersect_wide_at(box, meta, tris, tris_end, node_base, tri_base, end_base, 
                 # one, so empty slots are also told by their count (the general case below)
                 c0 = meta[nd, np.uint64(ROW_COUNT), j0]
                 if rest == 0 and c0 >= 0:  # one child: enter it without touching the stack
+                    if c0 > 0:  # a leaf: its later groups of four asked for now (prefetch.py)
+                        prefetch_leaf(tris, tbase + np.int64(meta[nd, np.uint64(ROW_CHILD), j0]), c0)
                     entry = _entry(meta, nd, j0, node_base)
                     continue
                 j1 = np.uint64(trailing_zeros(rest))
@@ -287,6 +303,8 @@ def intersect_wide_at(box, meta, tris, tris_end, node_base, tri_base, end_base, 
                     # two: push the farther, enter the nearer
                     k0, k1 = stack[np.uint64(DIST_AT) + j0], stack[np.uint64(DIST_AT) + j1]
                     e0, e1 = _entry(meta, nd, j0, node_base), _entry(meta, nd, j1, node_base)
+                    _prefetch_child(box, meta, tris, nd, j0, node_base, tbase)
+                    _prefetch_child(box, meta, tris, nd, j1, node_base, tbase)
                     if k1 < k0:
                         k0, e0, k1, e1 = k1, e1, k0, e0
                     stack[2 * sp], stack[2 * sp + 1] = k1, e1
@@ -304,6 +322,7 @@ def intersect_wide_at(box, meta, tris, tris_end, node_base, tri_base, end_base, 
                             continue
                         k = stack[np.uint64(DIST_AT) + j]
                         stack[2 * sp], stack[2 * sp + 1] = k, _entry(meta, nd, j, node_base)
+                        _prefetch_child(box, meta, tris, nd, j, node_base, tbase)
                         if k < stack[2 * near] or sp == base:
                             near = sp
                         sp += 1
@@ -368,6 +387,7 @@ def occluded_wide_at(box, meta, tris, tris_end, node_base, tri_base, end_base, w
                     if meta[nd, np.uint64(ROW_COUNT), j] >= 0:
                         stack[sp] = _entry(meta, nd, j, node_base)
                         sp += 1
+                        _prefetch_child(box, meta, tris, nd, j, node_base, tbase)
         else:
             s = np.uint64(-1 - entry)
             nd = s // np.uint64(WIDTH)
