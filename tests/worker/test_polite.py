@@ -263,7 +263,10 @@ def test_the_head_queues_only_for_workers_that_can_take_work(redis_url, tmp_path
 def test_a_worker_killed_outright_leaves_nothing_running_and_its_batch_is_handed_back(
         farm, tiny_shot, tmp_path):
     farm.start_head()
-    proc = farm.start_worker("gone", fakes={"sample_delay": 1.0})
+    # 2.5 s between one-sample chunks: the stop must reach the batch before its last chunk
+    # starts, and a CI run with the other test process busy once took over 1 s to get it there
+    # (the batch finished whole: no hand-back)
+    proc = farm.start_worker("gone", fakes={"sample_delay": 2.5})
     job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
     wait_for(lambda: rendering_a_full_batch(farm.url, "gone"), what="a batch under way")
     tree = psutil.Process(proc.pid).children(recursive=True)
