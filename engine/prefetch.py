@@ -21,7 +21,7 @@ nothing for a lone interior child (entered at once), cut that to 3 %.
 The rows are row-major (C order) with the leading axis as the row. The prefetches are branch
 free: a fixed number of them, one per cache line from the line holding the rows' first byte,
 each address clamped to the line holding their last byte (a repeated line costs an
-instruction, no memory traffic), so no address outside the rows is formed. `line_addresses`
+instruction, no memory traffic), so no address outside the rows is formed. `rows_line_addresses`
 computes the same addresses into an array (for tests); `lines_of_rows` is the readable
 reference of the arithmetic.
 """
