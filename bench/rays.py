@@ -14,7 +14,9 @@ Prints, for one icosphere (subdivisions 8: 1.31 M faces; 6 with --small: 82 k):
 
 Single-thread rates are taken from process CPU time (best of several interleaved repeats) so a
 busy shared machine skews them less; all-core rates from wall time. Embree runs on all cores by
-splitting the rays over Python threads (embreex releases the GIL inside `run`).
+splitting the rays over Python threads (embreex releases the GIL inside `run`). Beside the ratio
+of the best rates, the wide tree against Embree is also given as the median of the rounds' own
+ratios (each round times both one after the other): `--repeats 9` or more for a steady reading.
 """
 
 from __future__ import annotations
@@ -22,6 +24,7 @@ from __future__ import annotations
 import argparse
 import math
 import os
+import statistics
 import sys
 import time
 from concurrent.futures import ThreadPoolExecutor
@@ -173,6 +176,7 @@ def run(report=print_table, small: bool = False, repeats: int = 3) -> dict:
             clock = time.process_time if nt == 1 else time.perf_counter
             parts = np.array_split(np.arange(n), nt)
             best = dict.fromkeys([*trees, "wide", "Embree"], math.inf)
+            pairs = []  # Embree's time / the wide tree's, round by round
             with ThreadPoolExecutor(nt) as pool:
                 for _ in range(repeats):  # interleaved, so a busy spell hits all alike
                     for name, (bvh, tris) in trees.items():
@@ -181,27 +185,33 @@ def run(report=print_table, small: bool = False, repeats: int = 3) -> dict:
                         best[name] = min(best[name], clock() - c0)
                     c0 = clock()
                     cast_wide(wide, trees["lampyr+term"][1], o, d, t_out, k_out)
-                    best["wide"] = min(best["wide"], clock() - c0)
+                    t_wide = clock() - c0
+                    best["wide"] = min(best["wide"], t_wide)
                     c0 = clock()
                     te = np.concatenate(list(pool.map(
                         lambda p: scene.run(o32[p], d32[p], query="DISTANCE"), parts)))
-                    best["Embree"] = min(best["Embree"], clock() - c0)
+                    t_embree = clock() - c0
+                    best["Embree"] = min(best["Embree"], t_embree)
+                    pairs.append(t_embree / t_wide)
             rate = {k: n / x / 1e6 for k, x in best.items()}
+            numbers[f"{label} wide {nt}t median ratio"] = statistics.median(pairs)
             agree = float(((k_out >= 0) == (te < 1e36)).mean())
             for name in [*trees, "wide"]:
                 numbers[f"{label} {name} {nt}t ratio"] = rate[name] / rate["Embree"]
             rows.append([label, nt, f"{n:,}", f"{rate['lampyr']:.2f}", f"{rate['lampyr+term']:.2f}",
                          f"{rate['wide']:.2f}", f"{rate['Embree']:.2f}", f"{rate['lampyr'] / rate['Embree']:.2f}",
                          f"{rate['lampyr+term'] / rate['Embree']:.2f}", f"{rate['wide'] / rate['Embree']:.2f}",
-                         f"{rate['wide'] / rate['lampyr+term']:.2f}", f"{(k_out >= 0).mean():.2f}",
-                         f"{agree:.5f}"])
+                         f"{statistics.median(pairs):.2f}", f"{rate['wide'] / rate['lampyr+term']:.2f}",
+                         f"{(k_out >= 0).mean():.2f}", f"{agree:.5f}"])
         numba.set_num_threads(threads)
     report("2. closest-hit Mrays/s (single thread: CPU time; all cores: wall time)",
            ["rays", "threads", "count", "lampyr", "lampyr+term", "wide", "Embree", "lampyr/Embree",
-            "+term/Embree", "wide/Embree", "wide/+term", "hit fraction", "same hit/miss"], rows)
+            "+term/Embree", "wide/Embree", "same, median of rounds", "wide/+term", "hit fraction",
+            "same hit/miss"], rows)
     report("3. shadow rays (any hit), Mrays/s: the incoherent rays above cut just short of their closest "
            "hit (a light in sight: the whole way is searched) and just past it (blocked)",
-           ["rays", "threads", "count", "wide", "Embree", "wide/Embree", "blocked fraction", "same answer"],
+           ["rays", "threads", "count", "wide", "Embree", "wide/Embree", "same, median of rounds", "blocked fraction",
+            "same answer"],
            shadow_rows(wide, trees["lampyr+term"][1], scene, *sets["incoherent (inside)"], threads, repeats,
                        numbers))
     return numbers
@@ -227,19 +237,23 @@ def shadow_rows(wide, tris, scene, o, d, threads: int, repeats: int, numbers: di
             clock = time.process_time if nt == 1 else time.perf_counter
             parts = np.array_split(np.arange(n), nt)
             best = {"wide": math.inf, "Embree": math.inf}
+            pairs = []
             with ThreadPoolExecutor(nt) as pool:
                 for _ in range(repeats):
                     c0 = clock()
                     cast_wide_occluded(wide, tris, o, d, tmax, out)
-                    best["wide"] = min(best["wide"], clock() - c0)
+                    t_wide = clock() - c0
+                    best["wide"] = min(best["wide"], t_wide)
                     c0 = clock()
                     ge = np.concatenate(list(pool.map(
                         lambda p: scene.run(o32[p], d32[p], dists=tmax32[p], query="OCCLUDED"), parts)))
-                    best["Embree"] = min(best["Embree"], clock() - c0)
+                    t_embree = clock() - c0
+                    best["Embree"] = min(best["Embree"], t_embree)
+                    pairs.append(t_embree / t_wide)
             rate = {key: n / x / 1e6 for key, x in best.items()}
             numbers[f"shadow {label} wide {nt}t ratio"] = rate["wide"] / rate["Embree"]
             rows.append([label, nt, f"{n:,}", f"{rate['wide']:.2f}", f"{rate['Embree']:.2f}",
-                         f"{rate['wide'] / rate['Embree']:.2f}", f"{out.mean():.2f}",
+                         f"{rate['wide'] / rate['Embree']:.2f}", f"{statistics.median(pairs):.2f}", f"{out.mean():.2f}",
                          f"{(out == (ge >= 0)).mean():.5f}"])
         numba.set_num_threads(threads)
     return rows
