@@ -39,9 +39,10 @@ direction instead of swapping, visit the nearest hit child first and keep the en
 distance of every pushed child on the stack, so a child that lies beyond the closest hit found
 since is dropped when popped without reading its node. One child entered is visited at once,
 two are ordered by one comparison; of more, only the nearest is brought to the top (sorting
-them all was no faster). Every child entered but a lone interior one (entered at once) is asked
-for from memory as soon as it is known: its node record, or a leaf's triangle rows
-(prefetch.py). A node of at most four children (its slot HALF empty) is tested on
+them all was no faster). What a child's visit will read, its node record or a leaf's triangle
+rows, is asked for from memory as soon as the child is known (prefetch.py): by the closest-hit
+traversal for every child entered but a lone interior one (entered at once), by the shadow
+traversal for every child it pushes. A node of at most four children (its slot HALF empty) is tested on
 four lanes. A leaf's triangles are tested four at a time
 (wide_triangles.py), with the same hits as one by one in row order; a deforming mesh's still
 one by one. The binary traversals of bvh.py stay as the readable reference;
