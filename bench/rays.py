@@ -252,6 +252,7 @@ def shadow_rows(wide, tris, scene, o, d, threads: int, repeats: int, numbers: di
                     pairs.append(t_embree / t_wide)
             rate = {key: n / x / 1e6 for key, x in best.items()}
             numbers[f"shadow {label} wide {nt}t ratio"] = rate["wide"] / rate["Embree"]
+            numbers[f"shadow {label} wide {nt}t median ratio"] = statistics.median(pairs)
             rows.append([label, nt, f"{n:,}", f"{rate['wide']:.2f}", f"{rate['Embree']:.2f}",
                          f"{rate['wide'] / rate['Embree']:.2f}", f"{statistics.median(pairs):.2f}", f"{out.mean():.2f}",
                          f"{(out == (ge >= 0)).mean():.5f}"])

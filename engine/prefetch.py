@@ -11,7 +11,8 @@ four are loaded one group at a time. `prefetch_node` and `prefetch_leaf` issue L
 work on the child visited first.
 
 Measured on one thread, the same rays and hits, paired alternating rounds of the traversal
-with and without (2026-12-03, medians of 30 per-round ratios): on the 1.31 M-triangle sphere of
+with and without (the previous commit's traversal copied beside this one; 2026-12-03, medians of
+30 per-round ratios): on the 1.31 M-triangle sphere of
 bench/rays.py, incoherent closest hits 1.17-1.23x as fast, camera rays 1.16-1.21x, shadow rays
 1.25x; on 82 k triangles 1.13x, 1.0x and 1.29x; on 5 k (in the caches) 1.0x, 0.97x and 1.07x.
 A first version that prefetched in a separate loop over the entered children cost 8-11 % on
@@ -21,9 +22,10 @@ nothing for a lone interior child (entered at once), cut that to 3 %.
 The rows are row-major (C order) with the leading axis as the row. The prefetches are branch
 free: a fixed number of them, one per cache line from the line holding the rows' first byte,
 each address clamped to the line holding their last byte (a repeated line costs an
-instruction, no memory traffic), so no address outside the rows is formed. `rows_line_addresses`
-computes the same addresses into an array (for tests); `lines_of_rows` is the readable
-reference of the arithmetic.
+instruction, no memory traffic), so no line is asked for that holds none of the rows (given
+count >= 1; the traversals pass a leaf's count, which is at least 1, or 1 for a node).
+`rows_line_addresses` computes the same addresses into an array (for tests); `lines_of_rows` is
+the readable reference of the arithmetic.
 """
 
 from __future__ import annotations

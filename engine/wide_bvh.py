@@ -42,11 +42,11 @@ two are ordered by one comparison; of more, only the nearest is brought to the t
 them all was no faster). What a child's visit will read, its node record or a leaf's triangle
 rows, is asked for from memory as soon as the child is known (prefetch.py): by the closest-hit
 traversal for every child entered but a lone interior one (entered at once), by the shadow
-traversal for every child it pushes. A node of at most four children (its slot HALF empty) is tested on
-four lanes. A leaf's triangles are tested four at a time
-(wide_triangles.py), with the same hits as one by one in row order; a deforming mesh's still
-one by one. The binary traversals of bvh.py stay as the readable reference;
-tests/engine/test_wide_bvh.py checks that both agree.
+traversal for every child it pushes (a child dropped when popped has then been fetched all the
+same). A node of at most four children (its slot HALF empty) is tested on four lanes. A leaf's
+triangles are tested four at a time (wide_triangles.py), with the same hits as one by one in row
+order; a deforming mesh's still one by one. The binary traversals of bvh.py stay as the
+readable reference; tests/engine/test_wide_bvh.py checks that both agree.
 """
 
 from __future__ import annotations

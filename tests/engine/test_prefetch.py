@@ -28,7 +28,8 @@ def _kernel(lines):
 @pytest.mark.parametrize("shape, dtype", [((300, 3, 3), np.float32), ((40, 8, 8), np.float32),
                                           ((500,), np.float64), ((64, 5), np.uint8)])
 @pytest.mark.parametrize("lines", [1, NODE_LINES, LEAF_LINES])
-def test_the_intrinsic_asks_for_the_reference_lines(shape, dtype, lines):
+@pytest.mark.parametrize("index", [np.int64, np.int32])  # the traversals pass int32 counts
+def test_the_intrinsic_asks_for_the_reference_lines(shape, dtype, lines, index):
     arr = np.zeros(shape, dtype)
     row = arr.itemsize * int(np.prod(shape[1:]))
     run = _kernel(lines)
@@ -37,7 +38,7 @@ def test_the_intrinsic_asks_for_the_reference_lines(shape, dtype, lines):
     for _ in range(200):
         first = int(rng.integers(0, shape[0]))
         count = int(rng.integers(1, shape[0] - first + 1))
-        run(arr, first, count, out)
+        run(arr, index(first), index(count), out)
         assert out.tolist() == lines_of_rows(arr.ctypes.data, first, count, row, lines)
 
 
