@@ -278,6 +278,31 @@ def _film_blob() -> bytes:
         return to_bytes(film)
 
 
+# the head loop's parts timed by `head_capacity` (wall seconds; owner attribute, method, label)
+PHASES = (("results", "take", "take notices, merge, commit (all of it)"),
+          ("tiles", "commit", "  of which the group commit (tile files written, fsynced)"),
+          ("dispatcher", "send_group", "send batches (tickets, Celery messages)"),
+          ("results", "wait", "sleep in Redis for the next notice"),
+          (None, "publish", "publish status"))
+
+
+def _time_phases(head) -> dict:
+    """Wrap the head's loop parts on these instances (not their classes) with wall timers."""
+    spent = {label: 0.0 for _, _, label in PHASES}
+    for owner, name, label in PHASES:
+        obj = head if owner is None else getattr(head, owner)
+        inner = getattr(obj, name)
+
+        def timed(*a, _inner=inner, _label=label, **k):
+            began = time.perf_counter()
+            try:
+                return _inner(*a, **k)
+            finally:
+                spent[_label] += time.perf_counter() - began
+        setattr(obj, name, timed)
+    return spent
+
+
 def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise: bool = True) -> dict:
     """Drive a real Head (in this process) with synthetic workers answering from the queue;
     denoise: the shot's `[output] denoise` (the frame's denoised layer and half-frame errors)."""
@@ -314,8 +339,10 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise:
     for p in procs:
         p.start()
     time.sleep(1.0)  # the synthetic workers are up before the clock starts
+    spent = _time_phases(head)
     start, cpu, ticks = time.perf_counter(), time.process_time(), machine_jiffies()
     threads, rest_before, rest = thread_cpu(), others_cpu(server, procs), None
+    phases = None
     merged, busy_share_merging = None, None  # when the last batch was merged (its notice removed); the job is done once
     turns = 0  # turns that had work (notices, commands or batches to send), until the last merge
     while head.job_state(run) != "done":  # its frames are written too
@@ -329,6 +356,7 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise:
                 merged = time.perf_counter() - start
                 busy_share_merging = busy_share(ticks, machine_jiffies())
                 rest = cpu_since(rest_before, others_cpu(server, procs))
+                phases = dict(spent)  # until the last merge
     seconds = time.perf_counter() - start
     cpu = time.process_time() - cpu  # the head's process: its loop and its frame writer
     threads = cpu_since(threads, thread_cpu())
@@ -339,7 +367,8 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise:
     merged = merged or seconds
     return {"batches": total, "seconds": seconds, "rate": total / seconds, "merged": merged,
             "merge_rate": total / merged, "cpu": cpu, "turns": turns,
-            "busy": busy_share_merging, "threads": threads, "others": rest}
+            "busy": busy_share_merging, "threads": threads, "others": rest,
+            "phases": phases or dict(spent)}
 
 
 def cpu_since(before: dict, now: dict) -> dict:
@@ -530,6 +559,8 @@ def capacity(args) -> None:
     print(f"until the last merge: {cap['turns']} busy turns of the head's loop, "
           f"{cap['batches'] / max(cap['turns'], 1):.1f} batches a turn; the machine busy {busy} "
           f"of its {os.cpu_count()} cores' time")
+    print(f"until the last merge ({cap['merged']:.2f} s), the head's loop by part (wall seconds): " + ", ".join(
+        f"{label.strip()} {v:.2f}" for label, v in cap["phases"].items()))
     print(f"the disk alone: a tile file of the group commit {disk:.2f} ms "
           f"({1e3 / disk:.0f} tiles/s, the merge rate's bound with a tile written per batch)")
     print(f"head merged / Celery no-op: {cap['merge_rate'] / noop['rate']:.2f}; goal ≥ 400 "
