@@ -18,7 +18,9 @@ Celery's own task rate. Prints tables; compares side by side in one run (ratios)
    once with a precomputed 64 × 64 film) — merged batches per second, until the last batch is
    merged and until the job is done (its one frame written and denoised) — and the head's CPU
    seconds, beside the rate of Celery's own no-op task (a solo worker, the farm's Celery
-   settings) on the same Redis server, in the same run.
+   settings) on the same Redis server, in the same run; and, until the last merge, the wall
+   seconds of the head loop's parts (taking and merging notices, the group commit within it,
+   sending, sleeping in Redis, publishing), timed on that head's own objects.
 """
 
 from __future__ import annotations
@@ -280,7 +282,7 @@ def _film_blob() -> bytes:
 
 # the head loop's parts timed by `head_capacity` (wall seconds; owner attribute, method, label)
 PHASES = (("results", "take", "take notices, merge, commit (all of it)"),
-          ("tiles", "commit", "  of which the group commit (tile files written, fsynced)"),
+          ("tiles", "commit", "of which the group commit (tile files written, fsynced)"),
           ("dispatcher", "send_group", "send batches (tickets, Celery messages)"),
           ("results", "wait", "sleep in Redis for the next notice"),
           (None, "publish", "publish status"))
@@ -560,7 +562,7 @@ def capacity(args) -> None:
           f"{cap['batches'] / max(cap['turns'], 1):.1f} batches a turn; the machine busy {busy} "
           f"of its {os.cpu_count()} cores' time")
     print(f"until the last merge ({cap['merged']:.2f} s), the head's loop by part (wall seconds): " + ", ".join(
-        f"{label.strip()} {v:.2f}" for label, v in cap["phases"].items()))
+        f"{label} {v:.2f}" for label, v in cap["phases"].items()))
     print(f"the disk alone: a tile file of the group commit {disk:.2f} ms "
           f"({1e3 / disk:.0f} tiles/s, the merge rate's bound with a tile written per batch)")
     print(f"head merged / Celery no-op: {cap['merge_rate'] / noop['rate']:.2f}; goal ≥ 400 "
