@@ -4,14 +4,20 @@ Merging a batch used to read its tile's float64 file, add the film and rewrite t
 fsync of its own: about 12 ms a batch on a 64 × 64 tile, most of it the read, the rewrite and the
 fsync. A `TileStore` keeps recently merged tiles in memory (bounded by `cap_bytes`, least
 recently used first out), so a merge is an addition in memory, and `commit()` writes every tile
-merged into since the last commit together: each file written beside its old one, fsynced and
-renamed over it, several files at once on threads (they mostly wait on the disk), then each
-folder fsynced once. The caller (the
-results owner, `results.py`) removes the workers' notices only after `commit()` has returned
+merged into since the last commit together: each file written over a spare file beside it,
+fsynced and exchanged with it in one step (`file_swap.py`: no blocks allocated or freed, which
+was most of a write's cost), several files at once on threads (they mostly wait on the disk),
+then each folder fsynced once. The caller (the results owner, `results.py`) removes the workers' notices only after `commit()` has returned
 with their tiles on disk, so docs/design.md, invariant 4 holds per group: a head killed at any
 moment finds every notice whose tile is not on disk still in `results:processing`, and replays
 it; a tile that was renamed before the kill already holds the notice's range, so the replay
-changes nothing (docs/design.md, invariant 3). Every file is replaced whole (rename), never half.
+changes nothing (docs/design.md, invariant 3). Every file is replaced whole (an exchange of names
+or a rename), never half.
+
+A tile keeps its spare file while it is in memory; the spare goes when the tile leaves memory and
+at `close()`. The frame writer's thread may read a tile file not in memory (`film()`) while the
+loop merges into that tile and writes it: a write finishing while such a read is on drops its
+spare, as the spare is then the file being read (`file_swap.py`).
 
 A tile whose file could not be written (an OSError: a full disk, a folder become a file) is
 dropped from memory, so its next merge starts again from what its file holds; `commit()` returns
@@ -23,12 +29,12 @@ commit, not at every merge, and handed to the owner's `on_commit` callback.
 
 from __future__ import annotations
 
-import os
 import threading
 from collections import OrderedDict
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
+from . import file_swap
 from .accumulator import TileAccumulator, fsync_folder, tile_noise
 
 # bytes of tile films kept in memory (rule of thumb: ~250 64 × 64 float64 tiles of 688 KB, a
@@ -42,11 +48,16 @@ WRITE_THREADS = 8
 class TileStore:
     """Tile accumulators by path, kept in memory, written in groups.
 
-    fsync: False skips every fsync (a scratch state folder no crash needs to find)."""
+    fsync: False skips every fsync (a scratch state folder no crash needs to find);
+    spares: False writes each tile file new and renames it over the old one, keeping no spare
+    (`file_swap.py`)."""
 
-    def __init__(self, cap_bytes: int = CAP_BYTES, fsync: bool = True):
+    def __init__(self, cap_bytes: int = CAP_BYTES, fsync: bool = True, spares: bool = True):
         self.cap_bytes = int(cap_bytes)
         self.fsync = fsync
+        self.spares = spares
+        self._spared: set[Path] = set()  # tiles with a spare file beside them
+        self._reading: dict[Path, int] = {}  # tile files being read by `film()` now
         self._tiles: OrderedDict[Path, TileAccumulator] = OrderedDict()
         self._dirty: dict[Path, object] = {}  # path → on_commit(noise) of its owner, or None
         self._sizes: dict[Path, int] = {}
@@ -76,9 +87,17 @@ class TileStore:
         path = Path(path)
         with self._lock:
             acc = self._tiles.get(path)
-        if acc is None:
-            acc = TileAccumulator.load(path, w, h)
-        return acc.film
+            if acc is None:  # a write meanwhile keeps no spare: it could be this file
+                self._reading[path] = self._reading.get(path, 0) + 1
+        if acc is not None:
+            return acc.film
+        try:
+            return TileAccumulator.load(path, w, h).film
+        finally:
+            with self._lock:
+                self._reading[path] -= 1
+                if not self._reading[path]:
+                    del self._reading[path]
 
     # -- merging and committing -------------------------------------------------------------
 
@@ -111,9 +130,9 @@ class TileStore:
         if len(items) > 1:  # writes, fsyncs and renames wait on the disk: side by side
             if self._pool is None:
                 self._pool = ThreadPoolExecutor(WRITE_THREADS, thread_name_prefix="tile-write")
-            done = list(self._pool.map(lambda item: _write_tile(*item, self.fsync), items))
+            done = list(self._pool.map(self._write, items))
         else:
-            done = [_write_tile(*items[0], self.fsync)]
+            done = [self._write(items[0])]
         failed: dict[Path, OSError] = {}
         noises, folders = {}, set()
         for (path, _), (noise, err) in zip(items, done):
@@ -141,9 +160,28 @@ class TileStore:
                 self._drop(Path(path))
 
     def close(self) -> None:
+        """Stop the writer threads and remove the spare files (the tiles stay in memory)."""
         if self._pool is not None:
             self._pool.shutdown(wait=True)
             self._pool = None
+        with self._lock:
+            spared, self._spared = self._spared, set()
+        for path in spared:
+            file_swap.drop_spare(path)
+
+    def _write(self, item) -> tuple:
+        """One tile of a commit, on a writer thread: (noise, None or the OSError)."""
+        path, acc = item
+        noise, err, kept = _write_tile(path, acc, self.fsync, self.spares)
+        if kept:
+            with self._lock:
+                # a reader may hold the file that became the spare: it must not be written over
+                kept = path not in self._reading and path in self._tiles
+                if kept:
+                    self._spared.add(path)
+            if not kept:
+                file_swap.drop_spare(path)
+        return noise, err
 
     # -- memory -----------------------------------------------------------------------------
 
@@ -162,8 +200,13 @@ class TileStore:
             self._drop(victim)
 
     def _drop(self, path: Path) -> None:
+        """Forget a tile (its file is the truth); its spare goes: a tile not in memory is not
+        written until it is read again, and a spare kept meanwhile would only take disk."""
         if self._tiles.pop(path, None) is not None:
             self._bytes -= self._sizes.pop(path)
+        if path in self._spared:
+            self._spared.discard(path)
+            file_swap.drop_spare(path)
 
 
 def _size(acc: TileAccumulator) -> int:
@@ -174,63 +217,17 @@ def _size(acc: TileAccumulator) -> int:
                if hasattr(getattr(film, f), "nbytes"))
 
 
-def _write_tile(path: Path, acc: TileAccumulator, fsync: bool):
-    """Replace one tile file (written beside, fsynced, renamed); (noise, None) or (noise, the
-    OSError) when the disk refused it."""
+def _write_tile(path: Path, acc: TileAccumulator, fsync: bool, use_spare: bool):
+    """Replace one tile file (`file_swap.replace`); (noise, None, spare kept) or (noise, the
+    OSError, False) when the disk refused it."""
     noise = tile_noise(acc.film)
-    tmp = path.with_name(path.name + ".tmp")
     try:
         parts = acc.to_parts(noise)
         path.parent.mkdir(parents=True, exist_ok=True)
-        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o644)
-        try:
-            _write_parts(fd, parts)
-            if fsync:
-                os.fsync(fd)
-        finally:
-            os.close(fd)
-        _rename(tmp, path)
+        kept = _replace(path, parts, fsync, use_spare)
     except OSError as err:
-        _unlink(tmp)
-        return noise, err
-    return noise, None
+        return noise, err, False
+    return noise, None, kept
 
 
-def _write_parts(fd: int, parts) -> None:
-    """Write the byte pieces in order: one writev(2) where there is one (no joined copy of a
-    tile's 491 KB), else one write at a time; a short write goes on where it stopped."""
-    views = [v for v in (memoryview(p).cast("B") for p in parts) if len(v)]
-    if not hasattr(os, "writev"):
-        for view in views:
-            while view:
-                view = view[os.write(fd, view):]
-        return
-    while views:
-        done = os.writev(fd, views[:_IOV_MAX])
-        while views and done >= len(views[0]):
-            done -= len(views.pop(0))
-        if done:
-            views[0] = views[0][done:]
-
-
-def _iov_max() -> int:
-    """Pieces one writev(2) takes: the system's IOV_MAX (1024 on Linux), at least POSIX's 16
-    (_XOPEN_IOV_MAX) where the system does not say."""
-    try:
-        return max(16, os.sysconf("SC_IOV_MAX"))
-    except (AttributeError, ValueError, OSError):
-        return 16
-
-
-_IOV_MAX = _iov_max()
-
-
-def _rename(tmp: Path, path: Path) -> None:
-    os.replace(tmp, path)  # atomic on POSIX and Windows: readers see the old file or the new
-
-
-def _unlink(path: Path) -> None:
-    try:
-        path.unlink()
-    except OSError:
-        pass
+_replace = file_swap.replace  # one name for the step the crash tests hold (tests/harness.py)

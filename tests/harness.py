@@ -181,25 +181,26 @@ def install_head_fakes(fakes: dict) -> None:
 
 def hold_in_commit(hold: dict | None) -> None:
     """A head that stops for good in the middle of a group commit of tile files: after
-    `after` tiles are renamed into place, before the others and before any notice is removed."""
+    `after` tiles are replaced on disk, before the others and before any notice is removed."""
     if not hold:
         return
     from lampyr.scheduler import tilestore
 
-    real = tilestore._rename
-    renamed = []
-    lock = threading.Lock()  # the group's files are renamed on several threads
+    real = tilestore._replace
+    replaced = []
+    lock = threading.Lock()  # the group's files are written on several threads
 
-    def rename_then_hold(tmp, path):
-        with lock:  # the other threads wait here too: no rename after the n-th
-            if len(renamed) >= int(hold["after"]):
-                Path(hold["marker"]).write_text(f"holding after {len(renamed)} tile(s)\n")
+    def replace_then_hold(path, *args):
+        with lock:  # the other threads wait here too: no file replaced after the n-th
+            if len(replaced) >= int(hold["after"]):
+                Path(hold["marker"]).write_text(f"holding after {len(replaced)} tile(s)\n")
                 while True:
                     time.sleep(3600)
-            real(tmp, path)
-            renamed.append(path)
+            kept = real(path, *args)
+            replaced.append(path)
+            return kept
 
-    tilestore._rename = rename_then_hold
+    tilestore._replace = replace_then_hold
 
 
 def main(argv: list[str]) -> None:

@@ -58,6 +58,24 @@ def test_frames_default_to_a_folder_per_job_under_the_state(farm, tiny_shot):
     assert (farm.state / "jobs" / job / "frames" / "tiny.0001.exr").exists()
 
 
+def test_a_head_stopped_cleanly_leaves_no_spare_file_beside_its_tiles(farm, tiny_shot):
+    """The group commit writes each tile over a spare kept beside it (scheduler/file_swap.py);
+    the spares are scratch, and a head stopped with SIGTERM removes them."""
+    from lampyr.scheduler.accumulator import read_header
+
+    farm.start_head()
+    farm.start_worker("a")
+    job = farm.submit(tiny_shot, *LAYOUT)
+    farm.wait(job)
+    tiles = farm.state / "jobs" / job / "tiles"
+    assert list(tiles.rglob("*.acc.spare"))  # tiles written more than once kept a spare
+    farm.head_proc.send_signal(signal.SIGTERM)
+    assert farm.head_proc.wait(60) == 0
+    assert not list(tiles.rglob("*.spare"))
+    files = sorted(tiles.rglob("*.acc"))
+    assert len(files) == 8 and all(sum(c for _, c in read_header(f)[0]) == 8 for f in files)
+
+
 def assert_heavy_frame_matches_engine(out, shot):
     assert_same_image(frame_mean(out, "heavy", 1), reference_mean(shot, 1))
 

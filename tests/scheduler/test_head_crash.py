@@ -121,7 +121,7 @@ def test_a_head_killed_in_the_middle_of_a_group_commit_merges_every_batch_once(f
                                                                                tmp_path):
     """docs/design.md, invariants 3 and 4: the head writes the tiles of a group of results
     together and removes their notices only after; killed (SIGKILL) with half the group's tiles
-    renamed into place, the restarted head merges the others and drops the replays of those on
+    replaced on disk, the restarted head merges the others and drops the replays of those on
     disk, so every sample range counts once."""
     from lampyr.engine.exr import read_frame
     from lampyr.engine.render import tiles_for

@@ -8,6 +8,7 @@ import pytest
 
 from lampyr.engine.film import Film
 from lampyr.scheduler.accumulator import TileAccumulator, read_header
+from lampyr.scheduler.file_swap import spare_of
 from lampyr.scheduler.tilestore import TileStore
 
 
@@ -39,7 +40,7 @@ def test_a_merge_reaches_the_disk_at_the_commit_and_not_before(tmp_path):
     assert on_disk.ranges == [(0, 2), (2, 2)]
     np.testing.assert_array_equal(on_disk.film.rgb_sum, a.rgb_sum + b.rgb_sum)
     np.testing.assert_array_equal(on_disk.film.n, np.full((8, 8), 4.0))
-    assert not list(path.parent.glob("*.tmp"))  # written beside, then renamed over
+    assert sorted(q.name for q in path.parent.iterdir()) == ["00000.acc", "00000.acc.spare"]
 
 
 def test_memory_stays_under_its_cap_but_never_drops_a_tile_not_yet_written(tmp_path):
@@ -109,3 +110,69 @@ def test_a_tile_file_holds_exactly_its_bytes_however_the_system_writes(tmp_path,
     assert store.commit() == {}
     assert path.read_bytes() == acc.to_bytes(read_header(path)[1])
     assert (len(calls) > 5) == (how == "short writes")
+
+
+def merge_and_commit(store, path, f, first):
+    acc = store.get(path, 8, 8)
+    assert acc.add(f, first, 2)
+    store.stage(acc)
+    assert store.commit() == {}
+
+
+@pytest.mark.parametrize("how", ["memory cap", "forget", "close"])
+def test_a_tile_keeps_a_spare_file_while_in_memory_and_not_after(tmp_path, how):
+    store = TileStore(cap_bytes=1 if how == "memory cap" else TileStore().cap_bytes)
+    path = tmp_path / "00000.acc"
+    merge_and_commit(store, path, film(1), 0)
+    merge_and_commit(store, path, film(2), 2)  # the second write keeps the first as its spare
+    if how == "memory cap":  # over the cap: written tiles leave memory at once
+        assert path not in store._tiles
+    else:
+        assert spare_of(path).exists()
+        store.forget(path) if how == "forget" else store.close()
+    assert not spare_of(path).exists()
+    assert read_header(path)[0] == [(0, 2), (2, 2)]
+
+
+def test_no_spare_is_kept_when_the_store_is_told_so(tmp_path):
+    store = TileStore(spares=False)
+    path = tmp_path / "00000.acc"
+    for i in range(3):
+        merge_and_commit(store, path, film(i), 2 * i)
+    assert [q.name for q in tmp_path.iterdir()] == ["00000.acc"]
+    assert read_header(path)[0] == [(0, 2), (2, 2), (4, 2)]
+
+
+def test_a_frame_read_from_a_tile_file_is_whole_while_the_loop_writes_that_tile_twice(
+        tmp_path, monkeypatch):
+    """The frame writer's thread reads a tile file not in memory (`film()`); meanwhile the loop
+    merges into that tile and commits it twice. The file the reader opened became the spare at
+    the first commit: the second must not write over it (the reader would get a mix)."""
+    import threading
+
+    path = tmp_path / "00000.acc"
+    store = TileStore()
+    first = film(1)
+    merge_and_commit(store, path, first, 0)
+    store.forget(path)  # on disk only: `film()` reads the file
+    opened, go = threading.Event(), threading.Event()
+
+    def slow_load(p, w, h):  # reads a little, waits, reads the rest of the same open file
+        with open(p, "rb") as f:
+            head = f.read(64)
+            opened.set()
+            assert go.wait(30)
+            return TileAccumulator.from_bytes(p, head + f.read())
+
+    monkeypatch.setattr(TileAccumulator, "load", staticmethod(slow_load))
+    got = {}
+    reader = threading.Thread(target=lambda: got.setdefault("film", store.film(path, 8, 8)))
+    reader.start()
+    assert opened.wait(30)
+    monkeypatch.undo()  # the loop reads the tile normally
+    merge_and_commit(store, path, film(2), 2)
+    merge_and_commit(store, path, film(3), 4)
+    go.set()
+    reader.join(30)
+    np.testing.assert_array_equal(got["film"].rgb_sum, first.rgb_sum)  # the first write, whole
+    assert read_header(path)[0] == [(0, 2), (2, 2), (4, 2)]
