@@ -76,7 +76,8 @@ def replace(path: Path, parts, fsync: bool = True, use_spare: bool = True) -> bo
     keeps no spare. True when a spare holding the old bytes is left beside `path`.
     An OSError leaves `path` as it was and no spare."""
     spare = spare_of(path)
-    flags = os.O_WRONLY | os.O_CREAT | (0 if use_spare else os.O_TRUNC)
+    # O_BINARY: Windows' C library would otherwise write \n as \r\n
+    flags = os.O_WRONLY | os.O_CREAT | getattr(os, "O_BINARY", 0) | (0 if use_spare else os.O_TRUNC)
     try:
         fd = os.open(spare, flags, 0o644)
         try:

@@ -7,10 +7,11 @@ recently used first out), so a merge is an addition in memory, and `commit()` wr
 merged into since the last commit together: each file written over a spare file beside it,
 fsynced and exchanged with it in one step (`file_swap.py`: no blocks allocated or freed, which
 was most of a write's cost), several files at once on threads (they mostly wait on the disk),
-then each folder fsynced once. The caller (the results owner, `results.py`) removes the workers' notices only after `commit()` has returned
-with their tiles on disk, so docs/design.md, invariant 4 holds per group: a head killed at any
-moment finds every notice whose tile is not on disk still in `results:processing`, and replays
-it; a tile that was renamed before the kill already holds the notice's range, so the replay
+then each folder fsynced once. The caller (the results owner, `results.py`) removes the
+workers' notices only after `commit()` has returned with their tiles on disk, so
+docs/design.md, invariant 4 holds per group: a head killed at any moment finds every notice
+whose tile is not on disk still in `results:processing`, and replays it; a tile that was
+replaced before the kill already holds the notice's range, so the replay
 changes nothing (docs/design.md, invariant 3). Every file is replaced whole (an exchange of names
 or a rename), never half.
 
