@@ -28,13 +28,15 @@ def default_state() -> Path:
     return (Path(xdg) if xdg else Path.home() / ".local" / "share") / "lampyr"
 
 
-def connect(url: str, check: bool = True):
-    """A redis client for `url`; with `check`, fail with one clear line when it cannot talk."""
+def connect(url: str, check: bool = True, read_size: int = 65536):
+    """A redis client for `url`; with `check`, fail with one clear line when it cannot talk.
+    read_size: the most bytes one read from the socket takes (redis-py's default: 64 KiB)."""
     import redis
 
     try:
         r = redis.Redis.from_url(url, socket_timeout=10, socket_connect_timeout=5,
-                                 health_check_interval=15, retry_on_timeout=True)
+                                 health_check_interval=15, retry_on_timeout=True,
+                                 socket_read_size=read_size)
     except ValueError as err:  # a scheme, host or port redis-py cannot read
         shown = redact(url) if "://" in url else url
         raise FarmError(f"not a farm address: {shown[:60]!r} ({err})") from None
