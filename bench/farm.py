@@ -18,9 +18,10 @@ Celery's own task rate. Prints tables; compares side by side in one run (ratios)
    once with a precomputed 64 × 64 film) — merged batches per second, until the last batch is
    merged and until the job is done (its one frame written and denoised) — and the head's CPU
    seconds, beside the rate of Celery's own no-op task (a solo worker, the farm's Celery
-   settings) on the same Redis server, in the same run; and, until the last merge, the wall
-   seconds of the head loop's parts (taking and merging notices, the group commit within it,
-   sending, sleeping in Redis, publishing), timed on that head's own objects.
+   settings) on the same Redis server, in the same run; and, until the last merge, the CPU
+   seconds of the head's threads (loop, tile writers, frame writer) and of the other processes,
+   and the wall seconds of the head loop's parts (taking and merging notices, the group commit
+   within it, sending, sleeping in Redis, publishing), timed on that head's own objects.
 """
 
 from __future__ import annotations
@@ -344,6 +345,7 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise:
     spent = _time_phases(head)
     start, cpu, ticks = time.perf_counter(), time.process_time(), machine_jiffies()
     threads, rest_before, rest = thread_cpu(), others_cpu(server, procs), None
+    threads_merging = None  # the head's threads until the last merge
     phases = None
     merged, busy_share_merging = None, None  # when the last batch was merged (its notice removed); the job is done once
     turns = 0  # turns that had work (notices, commands or batches to send), until the last merge
@@ -358,6 +360,7 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise:
                 merged = time.perf_counter() - start
                 busy_share_merging = busy_share(ticks, machine_jiffies())
                 rest = cpu_since(rest_before, others_cpu(server, procs))
+                threads_merging = cpu_since(threads, thread_cpu())
                 phases = dict(spent)  # until the last merge
     seconds = time.perf_counter() - start
     cpu = time.process_time() - cpu  # the head's process: its loop and its frame writer
@@ -370,6 +373,7 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise:
     return {"batches": total, "seconds": seconds, "rate": total / seconds, "merged": merged,
             "merge_rate": total / merged, "cpu": cpu, "turns": turns,
             "busy": busy_share_merging, "threads": threads, "others": rest,
+            "threads_merging": threads_merging or threads,
             "phases": phases or dict(spent)}
 
 
@@ -557,6 +561,9 @@ def capacity(args) -> None:
     print(f"  of which, by thread: {roles}")
     print("until the last merge, the other processes on these cores: " + ", ".join(
         f"{k} {v:.2f} s" for k, v in cap["others"].items()) + f" (the merge took {cap['merged']:.2f} s)")
+    print("until the last merge, the head's threads: " + ", ".join(
+        f"{k} {v:.2f} s" for k, v in sorted(cap["threads_merging"].items(), key=lambda kv: -kv[1])
+        if v >= 0.005))
     busy = "n/a" if cap["busy"] is None else f"{100 * cap['busy']:.0f} %"
     print(f"until the last merge: {cap['turns']} busy turns of the head's loop, "
           f"{cap['batches'] / max(cap['turns'], 1):.1f} batches a turn; the machine busy {busy} "
