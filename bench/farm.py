@@ -21,7 +21,9 @@ Celery's own task rate. Prints tables; compares side by side in one run (ratios)
    settings) on the same Redis server, in the same run; and, until the last merge, the CPU
    seconds of the head's threads (loop, tile writers, frame writer) and of the other processes,
    and the wall seconds of the head loop's parts (taking and merging notices, the group commit
-   within it, sending, sleeping in Redis, publishing), timed on that head's own objects.
+   within it, sending, sleeping in Redis, publishing), timed on that head's own objects. Then
+   the same head at 32 spp (a tile written 9 times), its tile files written over a spare and
+   exchanged (as it runs) against written new and renamed over, alternating.
 """
 
 from __future__ import annotations
@@ -306,16 +308,19 @@ def _time_phases(head) -> dict:
     return spent
 
 
-def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise: bool = True) -> dict:
+def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise: bool = True,
+                  samples: int = 8, spares: bool = True) -> dict:
     """Drive a real Head (in this process) with synthetic workers answering from the queue;
-    denoise: the shot's `[output] denoise` (the frame's denoised layer and half-frame errors)."""
+    denoise: the shot's `[output] denoise` (the frame's denoised layer and half-frame errors);
+    samples: per pixel, in batches of 4 after a first pass (8: 3 batches a tile, 32: 9);
+    spares: False writes every tile file new and renames it over (tilestore.py's `spares`)."""
     import multiprocessing as mp
 
     from lampyr.scheduler import protocol as P
     from lampyr.scheduler.head import Head, submit_request
 
     r = redis.Redis.from_url(server.url)
-    tmp = tmp / ("denoised" if denoise else "raw")
+    tmp = tmp / f"{'denoised' if denoise else 'raw'}-{samples}-{'spares' if spares else 'new'}"
     tmp.mkdir(parents=True, exist_ok=True)
     shot = tmp / "cap.toml"
     shot.write_text(DEMO.read_text() + ("" if denoise else "\n[output]\ndenoise = false\n"))
@@ -327,10 +332,12 @@ def head_capacity(server, n_tiles_side: int, synthetic: int, tmp: Path, denoise:
         head = Head(tmp / "state", server.url, lease_seconds=120, frame_thread=True)
     except TypeError:  # a head from before the frame writer
         head = Head(tmp / "state", server.url, lease_seconds=120)
+    if not spares:
+        head.tiles.spares = False
     head.start()
     r.set(P.k_host("synthetic"), json.dumps({"name": "synthetic", "cores": synthetic}))
     side = 64 * n_tiles_side
-    submit_request(r, shot, {"width": side, "height": side, "samples": 8, "frames": (1, 1)},
+    submit_request(r, shot, {"width": side, "height": side, "samples": samples, "frames": (1, 1)},
                    str(tmp / "out"), tile_size=64, batch_samples=4)
     head.take_commands()
     run = next(iter(head.jobs.values()))
@@ -535,6 +542,19 @@ def capacity(args) -> None:
         raw = head_capacity(server, args.capacity_tiles, 64, tmp, denoise=False)
     finally:
         server.stop()
+    # a tile written many times: over its spare file and exchanged, against written new and
+    # renamed over (tilestore.py); alternating, each on a farm of its own
+    steady = {True: [], False: []}
+    try:
+        for i in range(args.repeat_steady):
+            for spares in (True, False) if i % 2 == 0 else (False, True):
+                server = EmbeddedRedis(tmp / f"redis-steady-{i}-{spares}").start()
+                try:
+                    steady[spares].append(head_capacity(server, args.capacity_tiles, 64, tmp / str(i),
+                                                        denoise=False, samples=32, spares=spares))
+                finally:
+                    server.stop()
+    finally:
         shutil.rmtree(tmp, ignore_errors=True)
     print(f"\n2. Head capacity against Celery's own task rate (one embedded Redis; load average "
           f"{load_line()})")
@@ -552,6 +572,13 @@ def capacity(args) -> None:
         ["head, shot without denoising: until the job is done",
          raw["batches"], f"{raw['seconds']:.2f}", f"{raw['rate']:.0f}"],
     ])
+    print("\nA tile written many times (32 spp: 9 batches a tile, no denoising), its file written over a "
+          "spare and exchanged, or written new and renamed over")
+    _table(["tile files", "count", "merged/s (each run)", "group commits s (each run)"], [
+        [label, steady[spares][0]["batches"] if steady[spares] else 0,
+         " ".join(f"{c['merge_rate']:.0f}" for c in steady[spares]),
+         " ".join(f"{c['phases'][PHASES[1][2]]:.2f}" for c in steady[spares])]
+        for spares, label in ((True, "over a spare, exchanged"), (False, "new, renamed over"))])
     print(f"merge rate with denoising on / off: {cap['merge_rate'] / raw['merge_rate']:.2f} (goal >= 0.9); "
           f"to the job's end: {cap['rate'] / raw['rate']:.2f}")
     print(f"head CPU seconds (its process, every thread): {cap['cpu']:.2f}, "
@@ -659,6 +686,8 @@ def main() -> None:
     ap.add_argument("--repeat", type=int, default=1, help="runs of each, alternating")
     ap.add_argument("--capacity-tiles", type=int, default=16, help="tiles per image side")
     ap.add_argument("--noop-tasks", type=int, default=2000)
+    ap.add_argument("--repeat-steady", type=int, default=2,
+                    help="runs of each tile-file way at 32 spp, alternating")
     ap.add_argument("--skip-render", action="store_true")
     ap.add_argument("--skip-capacity", action="store_true")
     ap.add_argument("--pools", action="store_true", help="also compare pool layouts")
