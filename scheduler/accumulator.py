@@ -2,7 +2,8 @@
 
 One file per (frame, tile) under `<job>/tiles/<frame>/<tile>.acc` holds the tile's merged film
 and the sample ranges merged into it. A file is replaced atomically (written beside, fsynced,
-renamed), so after a crash it holds either the ranges before a merge or after it, never half.
+renamed or exchanged with its spare: `file_swap.py`), so after a crash it holds either the ranges
+before a merge or after it, never half.
 A batch whose range the file already holds — or overlaps — is dropped: every batch counts once.
 
 File layout: 8 bytes magic `LAMPACC1`, 4 bytes little-endian header length n, n bytes JSON header
@@ -38,8 +39,8 @@ def samples_held(ranges) -> int:
     return sum(c for _, c in ranges)
 
 
-def fsync_folder(folder: Path) -> None:
-    """Make the renames inside `folder` durable."""
+def fsync_folder(folder: Path) -> bool:
+    """Make the renames inside `folder` durable; False when the system refused."""
     try:
         dfd = os.open(folder, os.O_RDONLY)
         try:
@@ -47,7 +48,8 @@ def fsync_folder(folder: Path) -> None:
         finally:
             os.close(dfd)
     except OSError:
-        pass
+        return False
+    return True
 
 
 def write_atomic(path: Path, data: bytes, sync_folder: bool = True, mode: int = 0o644,

@@ -25,6 +25,7 @@ from collections import deque
 from pathlib import Path
 
 from .accumulator import TileAccumulator, header_noise_known, read_header, samples_held, tile_noise
+from .file_swap import drop_spares_in
 from .jobs import JobFolder, JobRecord
 from .tilestore import TileStore
 from .planner import plan_batches
@@ -73,6 +74,8 @@ class JobRun:
         self.held: dict[tuple[int, int], list] = {}
         self.noise: dict[tuple[int, int], float | None] = {}  # see progress.py
         for f in self.frames:
+            # spares a killed head left (file_swap.py); the tile store makes them again
+            drop_spares_in(self.folder.tile(f, 0).parent)
             for i, t in enumerate(self.tiles):
                 path = self.folder.tile(f, i)
                 ranges, noise = read_header(path)

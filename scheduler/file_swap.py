@@ -53,6 +53,11 @@ def _load_renameat2():
 _renameat2 = _load_renameat2()
 
 
+def exchange_available() -> bool:
+    """Whether this system has the exchange call at all (a file system may still refuse it)."""
+    return _renameat2 is not None
+
+
 def spare_of(path: Path) -> Path:
     return path.with_name(path.name + SPARE_SUFFIX)
 
@@ -103,6 +108,19 @@ def drop_spare(path: Path) -> None:
         spare_of(path).unlink()
     except OSError:
         pass
+
+
+def drop_spares_in(folder: Path) -> None:
+    """Remove every spare in `folder` (left by a head that was killed: nothing reads them)."""
+    try:
+        spares = list(folder.glob("*" + SPARE_SUFFIX))
+    except OSError:
+        return
+    for spare in spares:
+        try:
+            spare.unlink()
+        except OSError:
+            pass
 
 
 def write_parts(fd: int, parts) -> int:

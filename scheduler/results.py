@@ -2,8 +2,9 @@
 
 `Results.take()` moves up to `limit` notices from `results` to `results:processing` (one Lua
 script: a turn with no notice costs one short round trip), merges them into the tiles held in
-memory, writes those tiles as one group commit (`tilestore.py`: each tile file written beside,
-fsynced and renamed, their folders fsynced once) and only then removes them: a head killed
+memory, writes those tiles as one group commit (`tilestore.py`: each tile file written over a
+spare, fsynced and exchanged with it, their folders fsynced once) and only then removes them: a
+head killed
 mid-merge finds them again, and a replayed result is dropped because its tile already holds that
 sample range. The frames that grew are handed to the frame writer (`framewriter.py`). A notice
 whose tile the disk refused is kept, and what its merge changed in the head's tables is undone

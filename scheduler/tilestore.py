@@ -51,7 +51,8 @@ class TileStore:
 
     fsync: False skips every fsync (a scratch state folder no crash needs to find);
     spares: False writes each tile file new and renames it over the old one, keeping no spare
-    (`file_swap.py`)."""
+    (`file_swap.py`). `get`, `stage`, `commit` and `forget` are called from one thread (the
+    head's loop); `film` may be called from another (the frame writer) at any time."""
 
     def __init__(self, cap_bytes: int = CAP_BYTES, fsync: bool = True, spares: bool = True):
         self.cap_bytes = int(cap_bytes)
@@ -142,12 +143,17 @@ class TileStore:
                 folders.add(path.parent)
             else:
                 failed[path] = err
+        unsynced = set()
         if self.fsync:
-            for folder in folders:
-                fsync_folder(folder)
+            # a folder whose fsync failed may name the old files after a power cut: its tiles'
+            # spares (those old files) must not be written over in place
+            unsynced = {folder for folder in folders if not fsync_folder(folder)}
         with self._lock:
             for path in failed:
                 self._drop(path)
+            for path in [p for p in self._spared if p.parent in unsynced]:
+                self._spared.discard(path)
+                file_swap.drop_spare(path)
             self._shrink()  # tiles kept past the cap while they waited for this commit
         for path, on_commit in dirty.items():
             if path not in failed and on_commit is not None:

@@ -61,6 +61,7 @@ def test_frames_default_to_a_folder_per_job_under_the_state(farm, tiny_shot):
 def test_a_head_stopped_cleanly_leaves_no_spare_file_beside_its_tiles(farm, tiny_shot):
     """The group commit writes each tile over a spare kept beside it (scheduler/file_swap.py);
     the spares are scratch, and a head stopped with SIGTERM removes them."""
+    from lampyr.scheduler import file_swap
     from lampyr.scheduler.accumulator import read_header
 
     farm.start_head()
@@ -68,7 +69,8 @@ def test_a_head_stopped_cleanly_leaves_no_spare_file_beside_its_tiles(farm, tiny
     job = farm.submit(tiny_shot, *LAYOUT)
     farm.wait(job)
     tiles = farm.state / "jobs" / job / "tiles"
-    assert list(tiles.rglob("*.acc.spare"))  # tiles written more than once kept a spare
+    if file_swap.exchange_available():  # tiles written more than once kept a spare
+        assert list(tiles.rglob("*.acc.spare"))
     farm.head_proc.send_signal(signal.SIGTERM)
     assert farm.head_proc.wait(60) == 0
     assert not list(tiles.rglob("*.spare"))

@@ -45,7 +45,8 @@ def test_a_replaced_file_holds_the_new_bytes_and_its_spare_the_old(tmp_path):
     assert spare_of(path).read_bytes() == b"old bytes"
 
 
-@pytest.mark.parametrize("spare", [b"", b"x" * 100_000, b"torn \x00\x01 half-written spare"])
+@pytest.mark.parametrize("spare", [b"", b"x" * 100_000, b"torn \x00\x01 half-written spare"],
+                         ids=["empty", "longer", "torn"])
 def test_whatever_the_spare_held_the_file_holds_exactly_the_new_bytes(tmp_path, spare):
     """A spare left longer, shorter or torn (a crash while it was written) is written over and
     cut to length: nothing of it shows in the file."""
@@ -76,6 +77,45 @@ def test_a_write_the_disk_refuses_leaves_the_file_as_it_was_and_no_spare(tmp_pat
     with pytest.raises(OSError):
         replace(folder / "00000.acc", [b"new"])
     assert folder.read_text() == "a file where the folder should be"
+
+
+def test_a_rename_refused_after_the_spare_was_written_leaves_no_spare(tmp_path):
+    path = tmp_path / "00000.acc"
+    path.mkdir()
+    (path / "inside").write_text("a folder, not empty, where the file should be")
+    with pytest.raises(OSError):
+        replace(path, [b"new bytes"], use_spare=False)
+    assert not spare_of(path).exists() and (path / "inside").exists()
+
+
+@linux
+def test_where_the_kernel_refuses_the_exchange_the_spare_is_renamed_over(tmp_path, monkeypatch):
+    """RENAME_EXCHANGE with RENAME_NOREPLACE is invalid (the renameat2(2) manual page, from
+    memory: EINVAL), as a file system without the exchange answers: `replace` renames."""
+    monkeypatch.setattr(file_swap, "_RENAME_EXCHANGE", file_swap._RENAME_EXCHANGE | 1)
+    path = tmp_path / "00000.acc"
+    path.write_bytes(b"old bytes")
+    assert not file_swap.exchange(path, path)  # refused: nothing changed
+    assert not replace(path, [b"new bytes"])
+    assert path.read_bytes() == b"new bytes" and not spare_of(path).exists()
+
+
+@pytest.mark.parametrize("existing", [True, False], ids=["exchanged", "renamed"])
+def test_the_spare_is_on_disk_before_its_name_changes(tmp_path, monkeypatch, existing):
+    """fsync of the spare, then the exchange or rename: a crash between them leaves the old file
+    under the name, never a new one whose bytes are not on disk yet."""
+    calls = []
+    real_fsync, real_exchange, real_replace = os.fsync, file_swap.exchange, os.replace
+    monkeypatch.setattr(os, "fsync", lambda fd: (calls.append("fsync"), real_fsync(fd))[1])
+    monkeypatch.setattr(file_swap, "exchange",
+                        lambda a, b: (calls.append("exchange"), real_exchange(a, b))[1])
+    monkeypatch.setattr(os, "replace", lambda a, b: (calls.append("rename"), real_replace(a, b))[1])
+    path = tmp_path / "00000.acc"
+    if existing:
+        path.write_bytes(b"old bytes")
+    replace(path, [b"new bytes"])
+    assert calls[0] == "fsync" and len(calls) >= 2 and calls[1] in ("exchange", "rename")
+    assert path.read_bytes() == b"new bytes"
 
 
 @pytest.mark.parametrize("fsync", [True, False])

@@ -104,3 +104,40 @@ def test_a_heads_start_loads_the_tile_noise_kernel_before_its_first_commit(redis
                            redis_url], capture_output=True, text=True, timeout=300)
     assert done.returncode == 0, done.stderr[-2000:]
     assert done.stdout.split() == ["0", "1"]
+
+
+def test_a_starting_head_removes_the_spare_files_a_killed_head_left(head, tiny_shot, redis_url,
+                                                                     tmp_path):
+    """The group commit keeps a spare beside each tile in memory (scheduler/file_swap.py); a
+    head killed outright leaves them. They are never read: the next start removes them and
+    leaves the tile files alone."""
+    from lampyr.scheduler.accumulator import TileAccumulator
+    from lampyr.scheduler.jobs import JobFolder
+
+    job = submit(head, tiny_shot)
+    folder = JobFolder(tmp_path / "state", job)
+    tile = folder.tile(1, 0)
+    acc = TileAccumulator(tile, 8, 8)
+    acc.add(_film(), 0, 1)
+    acc.save()
+    left = [folder.tile(f, 0).with_name("00000.acc.spare") for f in (1, 2)]
+    for spare in left:
+        spare.parent.mkdir(parents=True, exist_ok=True)
+        spare.write_bytes(b"the old bytes of a tile, or half of them")
+    before = tile.read_bytes()
+    again = Head(tmp_path / "state", redis_url, lease_seconds=5)
+    again.start()
+    assert not any(spare.exists() for spare in left)
+    assert tile.read_bytes() == before and job in again.jobs
+
+
+def _film():
+    import numpy as np
+
+    from lampyr.engine.film import Film
+
+    f = Film.zeros(8, 8)
+    f.n[:] = 1
+    f.rgb_sum[:] = np.random.default_rng(5).random((8, 8, 3))
+    f.rgb_sq[:] = f.rgb_sum ** 2
+    return f
