@@ -2,8 +2,8 @@
 
 The behaviour is GNU libgomp's as the OpenMP API specification describes OMP_WAIT_POLICY: ACTIVE
 (or unset, for libgomp a spin before sleeping) keeps waiting threads on their cores; PASSIVE
-lets them sleep. Measured as the process's CPU seconds (getrusage(2)) over many short parallel
-loops with serial work between them, in a fresh process each time."""
+lets them sleep. Measured as CPU seconds per thread (psutil) over many short parallel loops
+with serial work between them, in a fresh process each time."""
 
 from __future__ import annotations
 
@@ -32,9 +32,20 @@ except ValueError as err:  # numba: "No threading layer could be loaded" (no lib
     print(json.dumps({"layer": None, "error": str(err)}))
     sys.exit(0)
 layer = numba.threading_layer()
+import psutil, threading
+me = threading.get_native_id()
 def cpu():
     r = resource.getrusage(resource.RUSAGE_SELF)
     return r.ru_utime + r.ru_stime
+def by_thread():  # (the main thread's, the other threads') CPU seconds so far
+    main = others = 0.0
+    for t in psutil.Process().threads():
+        if t.id == me:
+            main += t.user_time + t.system_time
+        else:
+            others += t.user_time + t.system_time
+    return main, others
+m0, o0 = by_thread()
 start, c0 = time.perf_counter(), cpu()
 for _ in range(400):
     touch(a)
@@ -42,7 +53,9 @@ for _ in range(400):
     while time.perf_counter() - t < 0.001:  # 1 ms of serial work between parallel loops
         pass
 wall = time.perf_counter() - start
-print(json.dumps({"layer": layer, "wall": wall, "cpu": cpu() - c0}))
+m1, o1 = by_thread()
+print(json.dumps({"layer": layer, "wall": wall, "cpu": cpu() - c0, "main": m1 - m0,
+                  "others": o1 - o0}))
 """
 
 
@@ -96,7 +109,11 @@ def test_openmp_threads_sleep_between_parallel_loops_once_lampyr_is_imported():
     assert spinning["layer"] == passive["layer"] == "omp"
     # ACTIVE: the second thread spins through the 400 ms of serial work, about one more core
     # second a wall second (measured here: 0.80 CPU s in 0.40 s, the same with the policy unset);
-    # PASSIVE: it sleeps (0.41 CPU s in 0.42 s). Tolerances: rule of thumb, as a loaded machine
-    # takes cores from the spinner too.
-    assert spinning["cpu"] > 1.2 * spinning["wall"], spinning
-    assert passive["cpu"] < 0.75 * spinning["cpu"], (passive, spinning)
+    # PASSIVE: it sleeps (0.41 CPU s in 0.42 s). A loaded machine takes cores from both threads
+    # alike (a CI run at 0.93 wall s spun only 1.10 CPU s, and failed a judge of CPU against
+    # wall), so the judge is the OpenMP thread's CPU against the main thread's (psutil, per
+    # thread), which starving does not change. Measured here, quiet: spinning 0.41 against
+    # 0.41 s, sleeping 0.00 against 0.41 s; with two busy processes on both cores: spinning
+    # 1.31 against 1.24 s, sleeping 0.00 against 0.42 s. Tolerances: rule of thumb.
+    assert spinning["others"] > 0.5 * spinning["main"], spinning
+    assert passive["others"] < 0.25 * passive["main"], passive
