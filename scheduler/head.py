@@ -67,8 +67,8 @@ ARCHIVE_AFTER = 30 * 24 * 3600.0  # seconds after its end a job folds into the a
 # `lampyr status` poll about once a second; the metrics endpoint calls a head silent after 10 s)
 PUBLISH_IDLE_EVERY = 1.0
 # bytes one socket read of the head's Redis client takes: a 64 × 64 tile's result is ~344 KB, which
-# 64 KiB reads (redis-py's default) fetch in six pieces, each copied again (measured: 0.57 against
-# 0.69 ms of CPU a result; small replies cost the same)
+# 64 KiB reads (redis-py's default) fetch in six pieces, each copied again (measured: 0.57-0.62
+# against 0.67-0.73 ms of CPU a result; small replies cost the same within noise)
 RESULT_READ_SIZE = 512 * 1024
 
 

@@ -152,8 +152,7 @@ class TileStore:
             for path in failed:
                 self._drop(path)
             for path in [p for p in self._spared if p.parent in unsynced]:
-                self._spared.discard(path)
-                file_swap.drop_spare(path)
+                self._drop_spare(path)
             self._shrink()  # tiles kept past the cap while they waited for this commit
         for path, on_commit in dirty.items():
             if path not in failed and on_commit is not None:
@@ -211,6 +210,9 @@ class TileStore:
         written until it is read again, and a spare kept meanwhile would only take disk."""
         if self._tiles.pop(path, None) is not None:
             self._bytes -= self._sizes.pop(path)
+        self._drop_spare(path)
+
+    def _drop_spare(self, path: Path) -> None:
         if path in self._spared:
             self._spared.discard(path)
             file_swap.drop_spare(path)

@@ -118,12 +118,11 @@ def test_the_spare_is_on_disk_before_its_name_changes(tmp_path, monkeypatch, exi
     assert path.read_bytes() == b"new bytes"
 
 
+@linux
 @pytest.mark.parametrize("fsync", [True, False])
 def test_the_spare_is_written_in_place_not_made_again(tmp_path, fsync):
     """The point of the spare: after the first exchange no new file is made for a write, so the
     file system allocates nothing (the two inodes alternate between the two names)."""
-    if not sys.platform.startswith("linux"):
-        pytest.skip("renameat2 is Linux's")
     path = tmp_path / "00000.acc"
     path.write_bytes(b"v0")
     inodes = set()
