@@ -36,7 +36,7 @@ from .skinning import SPACE_WORLD, deformed_vertices
 from .bvh import build_bvh
 from .textures import srgb_table
 from .transforms import apply_placement, pack_placement, placement_at
-from .wide_bvh import wide_views
+from .wide_bvh import concat_nodes
 
 MOTION_STEPS = 8  # instants per shutter at which motion bounds are taken
 LUMA = np.array([0.2126, 0.7152, 0.0722])  # Rec. 709 luminance weights (ITU-R BT.709)
@@ -236,7 +236,7 @@ def _concat(a: MeshTable, b: MeshTable) -> MeshTable:
     n_nodes = len(a.blas_box)
     n_tris = len(a.tris)
     n_verts = len(a.vtx_n)
-    nodes = wide_views(np.concatenate([a.blas_box, b.blas_box]))
+    nodes = concat_nodes([a.blas_box, b.blas_box])
     return MeshTable(
         blas_box=nodes.box, blas_meta=nodes.meta, tris=np.concatenate([a.tris, b.tris]),
         tri_mat=np.concatenate([a.tri_mat, b.tri_mat]),

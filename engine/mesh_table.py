@@ -26,7 +26,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .bvh import build_bvh, corner_bounds, pack_triangles
-from .wide_bvh import collapse_bvh, empty_wide, wide_views
+from .wide_bvh import collapse_bvh, concat_nodes, empty_wide
 
 ATTR_NORMAL = 1
 ATTR_UV0 = 2
@@ -141,7 +141,7 @@ class MeshTableBuilder:
             return np.ascontiguousarray(np.concatenate(arrs).astype(dtype, copy=False)) if arrs \
                 else np.zeros(shape, dtype)
 
-        nodes = wide_views(np.concatenate([p["wide"].box for p in parts])) if parts else empty_wide()
+        nodes = concat_nodes([p["wide"].box for p in parts]) if parts else empty_wide()
         return MeshTable(
             blas_box=nodes.box,
             blas_meta=nodes.meta,

@@ -36,7 +36,7 @@ from numba.core import cgutils
 from numba.extending import intrinsic
 
 LINE = 64  # bytes in a cache line (x86-64 and the common ARM cores)
-NODE_LINES = 5  # a 256-byte node record: 4 lines, 5 where it does not start on a line
+NODE_LINES = 4  # a 256-byte node record, aligned to 256 bytes (wide_bvh.NODE_ALIGN): 4 lines
 LEAF_LINES = 10  # a leaf of 16 triangle rows (576 bytes) spans at most 10 lines
 # llvm.prefetch operands: a read (0), the highest temporal locality (3: keep it in every cache
 # level), the data cache (1)

@@ -32,7 +32,11 @@ from lampyr.engine.wide_bvh import (
     WIDTH,
     cast_wide,
     cast_wide_occluded,
+    NODE_ALIGN,
+    NODE_BYTES,
     collapse_bvh,
+    concat_nodes,
+    empty_wide,
     intersect_wide,
     intersect_wide_at,
     traversal_stack,
@@ -158,6 +162,30 @@ def test_views_share_memory(tree):
     assert (again.meta == w.meta).all()
 
 
+def _records_aligned(w):
+    return w.box.ctypes.data % NODE_ALIGN == 0 and w.box.strides[0] == NODE_BYTES
+
+
+@pytest.mark.parametrize("skew", [0, 4, 16, 48, 144])
+def test_every_node_array_starts_its_records_on_the_alignment(tree, skew):
+    """A record is then exactly NODE_BYTES / 64 cache lines, the lines prefetch.NODE_LINES
+    asks for (x86-64 and the common ARM cores: 64-byte lines)."""
+    raw = np.zeros(tree.wide.box.nbytes + skew + NODE_ALIGN, np.uint8)
+    start = -raw.ctypes.data % NODE_ALIGN + skew
+    skewed = raw[start:start + tree.wide.box.nbytes].view(np.float32).reshape(tree.wide.box.shape)
+    skewed[...] = tree.wide.box
+    made = {"collapse_bvh": tree.wide, "wide_views": wide_views(skewed),
+            "concat_nodes": concat_nodes([skewed, tree.wide.box]), "empty_wide": empty_wide()}
+    for name, w in made.items():
+        assert _records_aligned(w), name
+    assert (made["wide_views"].meta == tree.wide.meta).all()  # the bits (rows 6-7 are integers)
+    assert (made["concat_nodes"].meta[len(skewed):] == tree.wide.meta).all()
+
+
+def test_an_aligned_node_array_is_not_copied(tree):
+    assert wide_views(tree.wide.box).box is tree.wide.box
+
+
 # ------------------------------------------------------------------------------------------
 # traversal against the binary reference and against Embree
 
@@ -227,7 +255,7 @@ def test_occluded_agrees_with_the_reference_and_the_closest_hit(tree):
 
 def test_offsets_address_concatenated_trees():
     a, b = Tree("icosphere"), Tree("torus")
-    nodes = wide_views(np.concatenate([a.wide.box, b.wide.box]))
+    nodes = concat_nodes([a.wide.box, b.wide.box])
     tris = np.concatenate([a.tris, b.tris])
     o, d = rays(200, 25)
     _, _, t, k = both(b, o, d)
