@@ -15,8 +15,9 @@ Prints, for one icosphere (subdivisions 8: 1.31 M faces; 6 with --small: 82 k):
 Single-thread rates are taken from process CPU time (best of several interleaved repeats) so a
 busy shared machine skews them less; all-core rates from wall time. Embree runs on all cores by
 splitting the rays over Python threads (embreex releases the GIL inside `run`). Beside the ratio
-of the best rates, the wide tree against Embree is also given as the median of the rounds' own
-ratios (each round times both one after the other): `--repeats 9` or more for a steady reading.
+of the best rates, the wide tree against Embree is also given as the median and quartiles of the
+rounds' own ratios (each round times both one after the other): `--repeats 9` or more for a
+steady reading, and several runs apart in time, since the ratio moves with the machine.
 """
 
 from __future__ import annotations
@@ -71,6 +72,15 @@ def peak_rss_delta(fn):
     dt = time.perf_counter() - t0
     peak = (_rss_kib("VmHWM") - base) * 1024 if base is not None else float("nan")
     return out, dt, peak
+
+
+def spread(ratios) -> str:
+    """'median (lower-upper quartile)' of per-round ratios: on a shared machine the ratio itself
+    moves with the memory system's load (this bench has read 0.85 and 1.03 on one afternoon)."""
+    if len(ratios) < 2:
+        return f"{statistics.median(ratios):.2f}"
+    q = statistics.quantiles(ratios, n=4, method="inclusive")
+    return f"{q[1]:.2f} ({q[0]:.2f}-{q[2]:.2f})"
 
 
 def camera_rays(w: int, h: int):
@@ -201,16 +211,16 @@ def run(report=print_table, small: bool = False, repeats: int = 3) -> dict:
             rows.append([label, nt, f"{n:,}", f"{rate['lampyr']:.2f}", f"{rate['lampyr+term']:.2f}",
                          f"{rate['wide']:.2f}", f"{rate['Embree']:.2f}", f"{rate['lampyr'] / rate['Embree']:.2f}",
                          f"{rate['lampyr+term'] / rate['Embree']:.2f}", f"{rate['wide'] / rate['Embree']:.2f}",
-                         f"{statistics.median(pairs):.2f}", f"{rate['wide'] / rate['lampyr+term']:.2f}",
+                         spread(pairs), f"{rate['wide'] / rate['lampyr+term']:.2f}",
                          f"{(k_out >= 0).mean():.2f}", f"{agree:.5f}"])
         numba.set_num_threads(threads)
     report("2. closest-hit Mrays/s (single thread: CPU time; all cores: wall time)",
            ["rays", "threads", "count", "lampyr", "lampyr+term", "wide", "Embree", "lampyr/Embree",
-            "+term/Embree", "wide/Embree", "same, median of rounds", "wide/+term", "hit fraction",
+            "+term/Embree", "wide/Embree", "same, median (quartiles) of rounds", "wide/+term", "hit fraction",
             "same hit/miss"], rows)
     report("3. shadow rays (any hit), Mrays/s: the incoherent rays above cut just short of their closest "
            "hit (a light in sight: the whole way is searched) and just past it (blocked)",
-           ["rays", "threads", "count", "wide", "Embree", "wide/Embree", "same, median of rounds", "blocked fraction",
+           ["rays", "threads", "count", "wide", "Embree", "wide/Embree", "same, median (quartiles) of rounds", "blocked fraction",
             "same answer"],
            shadow_rows(wide, trees["lampyr+term"][1], scene, *sets["incoherent (inside)"], threads, repeats,
                        numbers))
@@ -254,7 +264,7 @@ def shadow_rows(wide, tris, scene, o, d, threads: int, repeats: int, numbers: di
             numbers[f"shadow {label} wide {nt}t ratio"] = rate["wide"] / rate["Embree"]
             numbers[f"shadow {label} wide {nt}t median ratio"] = statistics.median(pairs)
             rows.append([label, nt, f"{n:,}", f"{rate['wide']:.2f}", f"{rate['Embree']:.2f}",
-                         f"{rate['wide'] / rate['Embree']:.2f}", f"{statistics.median(pairs):.2f}", f"{out.mean():.2f}",
+                         f"{rate['wide'] / rate['Embree']:.2f}", spread(pairs), f"{out.mean():.2f}",
                          f"{(out == (ge >= 0)).mean():.5f}"])
         numba.set_num_threads(threads)
     return rows
