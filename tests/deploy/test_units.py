@@ -155,6 +155,7 @@ def test_lan_redis_refuses_a_client_without_the_password(lan_redis):
     ("appendfsync", "everysec"),
     ("maxmemory-policy", "noeviction"),
     ("protected-mode", "yes"),
+    ("auto-aof-rewrite-min-size", str(256 << 20)),
 ])
 def test_lan_redis_keeps_the_settings_the_farm_relies_on(lan_redis, setting, value):
     r = _client(lan_redis, LAN_PASSWORDS["head"], "head")

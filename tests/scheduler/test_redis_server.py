@@ -23,7 +23,7 @@ def server(tmp_path):
 
 @pytest.mark.parametrize("setting, value", [
     ("appendonly", "yes"), ("appendfsync", "everysec"), ("maxmemory-policy", "noeviction"),
-    ("bind", "127.0.0.1"), ("protected-mode", "yes"),
+    ("bind", "127.0.0.1"), ("protected-mode", "yes"), ("auto-aof-rewrite-min-size", str(256 << 20)),
 ])
 def test_embedded_redis_configuration(server, setting, value):
     r = redis.Redis.from_url(server.url, decode_responses=True)
