@@ -70,7 +70,7 @@ NODE_BYTES = 8 * WIDTH * 4  # a node record: 8 rows of WIDTH float32 / int32
 # NODE_LINES prefetch.py asks for) and two aligned pairs of them. With numpy's own 16-byte
 # alignment a record straddles five lines. Measured on one thread, the same rays and hits,
 # alternating rounds against the traversal before (numpy's alignment, five lines prefetched;
-# 2026-12-04, medians of 40-60 per-round ratios, whose quartiles span about +-5 %): on the
+# 2026-12-04, medians of 24-60 per-round ratios, whose quartiles span about +-5 %): on the
 # 1.31 M-triangle sphere of bench/rays.py incoherent closest hits 1.02-1.04x, camera rays
 # 1.02-1.04x, shadow rays 0.98-0.99x; on 82 k triangles 1.02x, 1.01x and 1.06x. Small: what
 # a traversal waits for is a node's or a leaf's first line, however many lines follow.

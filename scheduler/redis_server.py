@@ -37,10 +37,11 @@ from . import acl
 
 LOOPBACK = {"127.0.0.1", "localhost", "::1"}
 # Every batch's result (a few hundred KB) is written into the append-only file on its way to
-# the head and deleted once merged, so at full rate the file grows by ~100 MB a second while
-# holding little. Redis rewrites it (a fork and a new base file) when it has doubled and passed
-# auto-aof-rewrite-min-size, 64 MB by default: twice a second here. At 256 MB it is every few
-# seconds; the file stays below ~256 MB plus its live data, and a restart replays at most that.
+# the head and deleted once merged, so at full rate the file grows by ~80 MB a second (2304
+# results of 344 KB: 799 MB in ~10 s) while holding little. Redis rewrites it (a fork and a new
+# base file) when it has doubled and passed auto-aof-rewrite-min-size, 64 MB by default: about
+# once a second here. At 256 MB it is every few seconds; the file stays below ~256 MB plus its
+# live data, and a restart replays at most that.
 # Measured (bench/farm.py's head_capacity at 32 spp, 2304 batches, alternating): Redis and its
 # rewrites 4.0 s of CPU with 10 rewrites at 64 MB against 2.6-2.9 s with 2 at 256 MB or none at
 # 4 GB; merged batches a second within this machine's noise (256 MB 227/224/260, 64 MB
