@@ -35,9 +35,9 @@ def slots(url, name):
             if (raw := r.get(k))]
 
 
-def rendering_a_full_batch(url, name):
-    """A slot of `name` rendering a 3-sample batch past its first chunk."""
-    return next((s for s in slots(url, name) if s["batch"].endswith("/3")
+def rendering_a_full_batch(url, name, count: int = 3):
+    """A slot of `name` rendering a `count`-sample batch (LAYOUT's: 3) past its first chunk."""
+    return next((s for s in slots(url, name) if s["batch"].endswith(f"/{count}")
                  and s["pixel_samples_per_second"] > 0), None)
 
 
@@ -70,7 +70,7 @@ def test_at_the_end_of_its_hours_a_worker_hands_back_and_the_frames_equal_an_uni
              and not slots(farm.url, "night"), what="the worker to stand down")
     handed = wait_for(lambda: [line for line in (tmp_path / "head.log").read_text().splitlines()
                                if "handed back by night" in line], what="the head to merge the part")
-    assert any(f"with {k} of 3 samples" in line for line in handed for k in (1, 2))
+    assert any(f"with {k} of 6 samples" in line for line in handed for k in range(1, 6))
     time.sleep(1.0)  # the head publishes status every 0.25 s: let it show the merged part
     before = farm.status(job)["pixel_samples_done"]
     time.sleep(2.0)
@@ -263,13 +263,14 @@ def test_the_head_queues_only_for_workers_that_can_take_work(redis_url, tmp_path
 def test_a_worker_killed_outright_leaves_nothing_running_and_its_batch_is_handed_back(
         farm, tiny_shot, tmp_path):
     farm.start_head()
-    # 2.5 s between one-sample chunks: the stop must reach the batch before its last chunk
-    # starts, and a CI run with the other test process busy once took over 1 s to get it there
-    # (the batch finished whole: no hand-back). A wider margin, not a guarantee: the test still
-    # rests on the stop arriving within about 2.5 s
-    proc = farm.start_worker("gone", fakes={"sample_delay": 2.5})
-    job = farm.submit(tiny_shot, "--out", tmp_path / "out", *LAYOUT)
-    wait_for(lambda: rendering_a_full_batch(farm.url, "gone"), what="a batch under way")
+    # The stop must reach the batch before its last one-sample chunk starts: seen from the
+    # batch's first chunk on, that leaves (count - 2) chunks. With 3-sample batches and 2.5 s a
+    # chunk (2.5 s of margin) a CI run with the other test process busy still missed it once
+    # (the batch finished whole: no hand-back); 6-sample batches (8 spp: ranges 1, 6, 1) at
+    # 1.5 s a chunk leave 6 s. A wider margin, not a guarantee.
+    proc = farm.start_worker("gone", fakes={"sample_delay": 1.5})
+    job = farm.submit(tiny_shot, "--out", tmp_path / "out", "--tile", 8, "--batch", 6)
+    wait_for(lambda: rendering_a_full_batch(farm.url, "gone", 6), what="a batch under way")
     tree = psutil.Process(proc.pid).children(recursive=True)
     assert tree  # the Celery worker and its pool process
     os.kill(proc.pid, signal.SIGKILL)  # the supervisor alone
@@ -278,7 +279,7 @@ def test_a_worker_killed_outright_leaves_nothing_running_and_its_batch_is_handed
              timeout=60, what="the render processes to end")
     handed = wait_for(lambda: [line for line in (tmp_path / "head.log").read_text().splitlines()
                                if "handed back by gone" in line], what="the hand-back")
-    assert any(f"with {k} of 3 samples" in line for line in handed for k in (1, 2))
+    assert any(f"with {k} of 6 samples" in line for line in handed for k in range(1, 6))
     farm.start_worker("next")
     assert farm.wait(job, timeout=120)["state"] == "done"
     assert_frames_match_engine(tmp_path / "out", tiny_shot)
