@@ -70,7 +70,7 @@ def test_at_the_end_of_its_hours_a_worker_hands_back_and_the_frames_equal_an_uni
              and not slots(farm.url, "night"), what="the worker to stand down")
     handed = wait_for(lambda: [line for line in (tmp_path / "head.log").read_text().splitlines()
                                if "handed back by night" in line], what="the head to merge the part")
-    assert any(f"with {k} of 6 samples" in line for line in handed for k in range(1, 6))
+    assert any(f"with {k} of 3 samples" in line for line in handed for k in (1, 2))
     time.sleep(1.0)  # the head publishes status every 0.25 s: let it show the merged part
     before = farm.status(job)["pixel_samples_done"]
     time.sleep(2.0)
