@@ -238,7 +238,7 @@ def _concat(a: MeshTable, b: MeshTable) -> MeshTable:
     n_verts = len(a.vtx_n)
     nodes = concat_nodes([a.blas_box, b.blas_box])
     return MeshTable(
-        blas_box=nodes.box, blas_meta=nodes.meta, tris=np.concatenate([a.tris, b.tris]),
+        blas_box=nodes.box, blas_meta=nodes.meta, blas_span=nodes.span, tris=np.concatenate([a.tris, b.tris]),
         tri_mat=np.concatenate([a.tri_mat, b.tri_mat]),
         tri_vtx=np.concatenate([a.tri_vtx, b.tri_vtx + n_verts]).astype(np.int32),
         vtx_n=np.concatenate([a.vtx_n, b.vtx_n]), vtx_uv=np.concatenate([a.vtx_uv, b.vtx_uv]),
@@ -379,7 +379,7 @@ def compile_frame(shot, geom: Geometry, frame: int):
     flags[FLAG_PASSABLE] = int(inst_passable[:k].any())  # some instance lets shadow rays pass
 
     scene = Scene(
-        meshes.blas_box, meshes.blas_meta, meshes.tris,
+        meshes.blas_box, meshes.blas_meta, meshes.blas_span, meshes.tris,
         meshes.mesh_node_base, meshes.mesh_tri_base, meshes.mesh_tri_count,
         meshes.tri_mat, meshes.tri_vtx, meshes.vtx_n, meshes.vtx_uv, meshes.vtx_t, meshes.mesh_attr,
         meshes.tris_end, meshes.mesh_end,

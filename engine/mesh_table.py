@@ -40,6 +40,7 @@ class MeshTable:
 
     blas_box: np.ndarray  # (N, 8, 8) float32 eight-wide nodes (wide_bvh.py)
     blas_meta: np.ndarray  # (N, 8, 8) int32 view of blas_box
+    blas_span: np.ndarray  # (N, 2) int32 leaf spans (wide_bvh.leaf_spans)
     tris: np.ndarray  # (T, 3, 3) float32
     tri_mat: np.ndarray  # (T,) int32
     tri_vtx: np.ndarray  # (T, 3) int32
@@ -145,6 +146,7 @@ class MeshTableBuilder:
         return MeshTable(
             blas_box=nodes.box,
             blas_meta=nodes.meta,
+            blas_span=nodes.span,
             tris=cat([p["tris"] for p in parts], (1, 3, 3), np.float32),
             tri_mat=cat([p["tri_mat"] for p in parts], (1,), np.int32),
             tri_vtx=cat(tri_vtx, (1, 3), np.int32),

@@ -35,6 +35,7 @@ class Scene(NamedTuple):
     # bottom level, object space (float32 geometry)
     blas_box: np.ndarray  # (N, 8, 8) float32 eight-wide nodes (wide_bvh.py)
     blas_meta: np.ndarray  # (N, 8, 8) int32 view of blas_box: child rows and counts
+    blas_span: np.ndarray  # (N, 2) int32 each node's leaf span (wide_bvh.leaf_spans)
     tris: np.ndarray  # (T, 3, 3) float32, in leaf order per mesh
     mesh_node_base: np.ndarray  # (M,) int64
     mesh_tri_base: np.ndarray  # (M,) int64
@@ -165,11 +166,11 @@ def intersect_instance(S, i, ox, oy, oz, dx, dy, dz, tmax, time_u, stack):
     m = S.inst_mesh[i]
     if S.mesh_end[m] < 0:
         return intersect_wide(
-            S.blas_box, S.blas_meta, S.tris,
+            S.blas_box, S.blas_meta, S.blas_span, S.tris,
             S.mesh_node_base[m], S.mesh_tri_base[m], lox, loy, loz, ldx, ldy, ldz, 0.0, tmax, stack,
         )
     return intersect_wide_at(
-        S.blas_box, S.blas_meta, S.tris, S.tris_end,
+        S.blas_box, S.blas_meta, S.blas_span, S.tris, S.tris_end,
         S.mesh_node_base[m], S.mesh_tri_base[m], S.mesh_end[m], time_u,
         lox, loy, loz, ldx, ldy, ldz, 0.0, tmax, stack,
     )
@@ -273,13 +274,13 @@ def occluded_scene(S, ox, oy, oz, dx, dy, dz, tmax, time_u, stack_top, stack, vi
                     m = S.inst_mesh[i]
                     if S.mesh_end[m] < 0:
                         if occluded_wide(
-                            S.blas_box, S.blas_meta, S.tris,
+                            S.blas_box, S.blas_meta, S.blas_span, S.tris,
                             S.mesh_node_base[m], S.mesh_tri_base[m],
                             lox, loy, loz, ldx, ldy, ldz, 0.0, tmax, stack,
                         ):
                             return True
                     elif occluded_wide_at(
-                        S.blas_box, S.blas_meta, S.tris, S.tris_end,
+                        S.blas_box, S.blas_meta, S.blas_span, S.tris, S.tris_end,
                         S.mesh_node_base[m], S.mesh_tri_base[m], S.mesh_end[m], time_u,
                         lox, loy, loz, ldx, ldy, ldz, 0.0, tmax, stack,
                     ):

@@ -10,9 +10,9 @@ import numpy as np
 import pytest
 from numba import njit
 
-from lampyr.engine.prefetch import LEAF_LINES, LINE, NODE_LINES, lines_of_rows, rows_line_addresses
+from lampyr.engine.prefetch import LEAF_LINES, LINE, NODE_LINES, SPAN_LINES, lines_of_rows, rows_line_addresses
 
-_ADDRESSES = {n: rows_line_addresses(n) for n in (1, NODE_LINES, LEAF_LINES)}
+_ADDRESSES = {n: rows_line_addresses(n) for n in (1, NODE_LINES, LEAF_LINES, SPAN_LINES)}
 
 
 def _kernel(lines):
@@ -27,7 +27,7 @@ def _kernel(lines):
 
 @pytest.mark.parametrize("shape, dtype", [((300, 3, 3), np.float32), ((40, 8, 8), np.float32),
                                           ((500,), np.float64), ((64, 5), np.uint8)])
-@pytest.mark.parametrize("lines", [1, NODE_LINES, LEAF_LINES])
+@pytest.mark.parametrize("lines", [1, NODE_LINES, LEAF_LINES, SPAN_LINES])
 @pytest.mark.parametrize("index", [np.int64, np.int32])  # the traversals pass int32 counts
 def test_the_intrinsic_asks_for_the_reference_lines(shape, dtype, lines, index):
     arr = np.zeros(shape, dtype)
@@ -70,7 +70,7 @@ def test_the_wide_traversals_prefetch(traversal):
     w = wide.collapse_bvh(b)
     tris = pack_triangles(v, f, b.order)
     fresh = njit(_nrt=False)(getattr(wide, traversal).py_func)
-    fresh(w.box, w.meta, tris, tris[:0], 0, 0, 0, 0.0, 0.1, 0.2, 0.3, 1.0, 0.5, 0.25, 0.0, 10.0,
+    fresh(w.box, w.meta, w.span, tris, tris[:0], 0, 0, 0, 0.0, 0.1, 0.2, 0.3, 1.0, 0.5, 0.25, 0.0, 10.0,
           wide.traversal_stack())
     asm = "\n".join(fresh.inspect_asm().values()).lower()
     assert "prefetcht0" in asm or "prfm" in asm

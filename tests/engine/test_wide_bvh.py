@@ -31,6 +31,8 @@ from lampyr.engine.wide_bvh import (
     ROW_CHILD,
     ROW_COUNT,
     SLOT_EMPTY,
+    SPAN_FIRST,
+    SPAN_ROWS,
     WIDTH,
     cast_wide,
     cast_wide_occluded,
@@ -39,6 +41,7 @@ from lampyr.engine.wide_bvh import (
     empty_wide,
     intersect_wide,
     intersect_wide_at,
+    leaf_spans,
     traversal_stack,
     wide_views,
 )
@@ -186,6 +189,42 @@ def test_an_aligned_node_array_is_not_copied(tree):
     assert wide_views(tree.wide.box).box is tree.wide.box
 
 
+def _spans_one_by_one(meta):
+    """The readable reference of leaf_spans: node by node, slot by slot."""
+    out = []
+    for nd in range(len(meta)):
+        rows = [(int(meta[nd, ROW_CHILD, j]), int(meta[nd, ROW_CHILD, j]) + int(meta[nd, ROW_COUNT, j]))
+                for j in range(WIDTH) if meta[nd, ROW_COUNT, j] > 0]
+        out.append((min(r[0] for r in rows), max(r[1] for r in rows) - min(r[0] for r in rows)) if rows
+                   else (0, 0))
+    return out
+
+
+def test_leaf_spans_equal_the_node_by_node_reference(tree):
+    span = tree.wide.span
+    assert span.dtype == np.int32 and span.shape == (len(tree.wide.box), 2)
+    assert [tuple(r) for r in span.tolist()] == _spans_one_by_one(tree.wide.meta)
+
+
+def test_a_node_of_leaves_only_spans_exactly_its_leaves(tree):
+    """Triangle rows are in the binary tree's leaf order, so the leaves of a node with no
+    interior child lie side by side: its span holds their rows and no other."""
+    meta, span = tree.wide.meta, tree.wide.span
+    count = meta[:, ROW_COUNT]
+    only_leaves = (count != 0).all(axis=1) & (count > 0).any(axis=1)
+    assert only_leaves.any()
+    rows = np.where(count > 0, count, 0).sum(axis=1)
+    assert (span[only_leaves, SPAN_ROWS] == rows[only_leaves]).all()
+    assert (span[~(count > 0).any(axis=1)] == 0).all()  # no leaf child: (0, 0)
+
+
+def test_concatenated_trees_keep_their_own_spans():
+    a, b = Tree("icosphere"), Tree("torus")
+    nodes = concat_nodes([a.wide.box, b.wide.box])
+    assert (nodes.span == np.concatenate([a.wide.span, b.wide.span])).all()  # rows stay local
+    assert (empty_wide().span == 0).all()
+
+
 # ------------------------------------------------------------------------------------------
 # traversal against the binary reference and against Embree
 
@@ -206,7 +245,7 @@ def _hit(tree, k, o, d):
     stack = traversal_stack()
     one = tree.tris[k:k + 1]
     sub = collapse_bvh(build_bvh(one.min(axis=1).astype(np.float64), one.max(axis=1).astype(np.float64)))
-    t, kk, u, v = intersect_wide(sub.box, sub.meta, one, 0, 0, *o, *d, 0.0, math.inf, stack)
+    t, kk, u, v = intersect_wide(sub.box, sub.meta, sub.span, one, 0, 0, *o, *d, 0.0, math.inf, stack)
     return kk >= 0, t, (u, v)
 
 
@@ -261,7 +300,7 @@ def test_offsets_address_concatenated_trees():
     _, _, t, k = both(b, o, d)
     stack = traversal_stack()
     for i in range(len(o)):
-        ti, ki, _, _ = intersect_wide(nodes.box, nodes.meta, tris, len(a.wide.box), len(a.tris),
+        ti, ki, _, _ = intersect_wide(nodes.box, nodes.meta, nodes.span, tris, len(a.wide.box), len(a.tris),
                                       *o[i], *d[i], 0.0, math.inf, stack)
         assert ki == (k[i] + len(a.tris) if k[i] >= 0 else -1) and ti == t[i]
 
@@ -279,7 +318,7 @@ def test_deforming_mesh_blends_towards_the_end_pose():
     for x, y in ((0.0, 0.0), (0.1, -0.05), (0.2, 0.2)):
         z0 = None
         for w in (0.0, 0.5, 1.0):
-            t, k, _, _ = intersect_wide_at(wide2.box, wide2.meta, tris, tris_end, 0, 0, 0, w,
+            t, k, _, _ = intersect_wide_at(wide2.box, wide2.meta, wide2.span, tris, tris_end, 0, 0, 0, w,
                                            x, y, 5.0, 0.0, 0.0, -1.0, 0.0, math.inf, stack)
             assert k >= 0
             z = 5.0 - t
