@@ -42,7 +42,7 @@ def main(argv=None) -> None:
     from lampyr.engine import lights, scene
     from lampyr.engine.render import FrameRenderer
     from lampyr.engine.shot import load_shot
-    from lampyr.engine.wide_bvh import traversal_stack
+    from lampyr.engine.wide_traversal import traversal_stack
 
     numba.set_num_threads(1)
     shot = load_shot(ROOT / "examples" / "courtyard" / "courtyard.toml")

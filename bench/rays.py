@@ -111,7 +111,8 @@ def run(report=print_table, small: bool = False, repeats: int = 3) -> dict:
     from embreex.mesh_construction import TriangleMesh
 
     from lampyr.engine.bvh import build_bvh, cast, corner_bounds, pack_triangles
-    from lampyr.engine.wide_bvh import cast_wide, collapse_bvh
+    from lampyr.engine.wide_bvh import collapse_bvh
+    from lampyr.engine.wide_traversal import cast_wide
 
     mesh = trimesh.creation.icosphere(subdivisions=6 if small else 8)
     v = np.asarray(mesh.vertices, np.float64)
@@ -231,7 +232,7 @@ def shadow_rows(wide, tris, scene, o, d, threads: int, repeats: int, numbers: di
     """Table rows of shadow rays through the wide tree and Embree; fills numbers."""
     import numba
 
-    from lampyr.engine.wide_bvh import cast_wide, cast_wide_occluded
+    from lampyr.engine.wide_traversal import cast_wide, cast_wide_occluded
 
     n = len(o)
     t, k = np.empty(n), np.empty(n, np.int64)

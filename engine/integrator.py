@@ -49,7 +49,7 @@ from .surface import (
     SF_NG, SF_NS, SURF_SIZE, apply_normal_map, hit_material, hit_surface, lifted_origin, normals_hug_face,
     resolve_material,
 )
-from .wide_bvh import traversal_stack
+from .wide_traversal import traversal_stack
 
 STACK_SIZE = 64
 MAX_LAYERS = 16  # cut-out or partly covered surfaces a ray passes in one segment (rule of thumb)

@@ -25,7 +25,7 @@ from numba import njit
 from .borrowing import borrowing
 from .intersect import ray_box, ray_sphere
 from .transforms import placement_at, quat_rotate
-from .wide_bvh import intersect_wide, intersect_wide_at, occluded_wide, occluded_wide_at
+from .wide_traversal import intersect_wide, intersect_wide_at, occluded_wide, occluded_wide_at
 
 KIND_MESH = 0
 KIND_SPHERE = 1

@@ -3,7 +3,7 @@
 A node of wide_bvh.py keeps its children's boxes side by side: row r of node nd is `lanes`
 float32 values at `box[nd, r, 0:lanes]`. The intrinsic that `slab_test(lanes)` makes loads each
 row the ray needs as one vector and tests every child at once in float32, one fused multiply-add
-a plane, with the same operations in the same order as the scalar `wide_bvh._slab` (the readable
+a plane, with the same operations in the same order as the scalar `wide_traversal._slab` (the readable
 reference), so each lane's result is the same bits:
 
   t0 = fma(near, a_near, b_near),  t1 = fma(far, a_far, b_far)   per axis x, y, z,

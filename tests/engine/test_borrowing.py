@@ -67,8 +67,8 @@ def test_every_kernel_that_takes_the_scene_and_is_called_borrows():
 
 def test_the_wide_bvh_traversals_borrow():
     names = {f"{m}.{n}" for m, n, _ in BORROWING}
-    assert {"wide_bvh.intersect_wide", "wide_bvh.intersect_wide_at", "wide_bvh.occluded_wide",
-            "wide_bvh.occluded_wide_at"} <= names
+    assert {"wide_traversal.intersect_wide", "wide_traversal.intersect_wide_at", "wide_traversal.occluded_wide",
+            "wide_traversal.occluded_wide_at"} <= names
 
 
 def _signatures(d: Dispatcher):
@@ -96,7 +96,7 @@ def test_no_borrowing_kernel_returns_an_array(tiny_shot):
     assert {"integrator.trace_path", "integrator.shadow_transmittance", "scene.intersect_scene",
             "scene.occluded_scene", "scene.intersect_instance", "lights.sample_light",
             "lights.env_radiance", "surface.resolve_material", "surface.hit_surface",
-            "wide_bvh.intersect_wide", "wide_bvh.occluded_wide"} <= reached
+            "wide_traversal.intersect_wide", "wide_traversal.occluded_wide"} <= reached
     returning_arrays = [f"{name} -> {sig.return_type}" for name, sigs in typed.items()
                         for sig in sigs if _holds_array(sig.return_type)]
     assert returning_arrays == []

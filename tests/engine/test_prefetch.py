@@ -60,14 +60,15 @@ def test_the_wide_traversals_prefetch(traversal):
     """The machine code of the wide traversals holds prefetch instructions (x86's prefetcht0,
     ARM's prfm), so the hint survived LLVM's passes. The traversal is compiled afresh from its
     Python source (a kernel loaded from numba's cache keeps no assembly text)."""
-    import lampyr.engine.wide_bvh as wide
+    import lampyr.engine.wide_traversal as wide
     from lampyr.engine.bvh import build_bvh, corner_bounds, pack_triangles
+    from lampyr.engine.wide_bvh import collapse_bvh
 
     rng = np.random.default_rng(1)
     v = rng.random((60, 3))
     f = rng.integers(0, 60, (40, 3))
     b = build_bvh(*corner_bounds(v[f]), max_leaf=16, trav_cost=4.0)
-    w = wide.collapse_bvh(b)
+    w = collapse_bvh(b)
     tris = pack_triangles(v, f, b.order)
     fresh = njit(_nrt=False)(getattr(wide, traversal).py_func)
     fresh(w.box, w.meta, w.span, tris, tris[:0], 0, 0, 0, 0.0, 0.1, 0.2, 0.3, 1.0, 0.5, 0.25, 0.0, 10.0,

@@ -1,4 +1,4 @@
-"""The wide BVH (engine/wide_bvh.py, eight children a node) against its readable reference, the binary traversal of
+"""The wide BVH (engine/wide_bvh.py, eight children a node; its traversals in engine/wide_traversal.py) against its readable reference, the binary traversal of
 engine/bvh.py, and against Embree (through embreex) on the same rays.
 
 Sources:
@@ -34,17 +34,12 @@ from lampyr.engine.wide_bvh import (
     SPAN_FIRST,
     SPAN_ROWS,
     WIDTH,
-    cast_wide,
-    cast_wide_occluded,
     collapse_bvh,
     concat_nodes,
     empty_wide,
-    intersect_wide,
-    intersect_wide_at,
-    leaf_spans,
-    traversal_stack,
     wide_views,
 )
+from lampyr.engine.wide_traversal import cast_wide, cast_wide_occluded, intersect_wide, intersect_wide_at, traversal_stack
 
 
 def _soup():

@@ -1,5 +1,5 @@
 """The float32 vector slab test of a wide node (engine/wide_slabs.py) against the scalar
-reference (wide_bvh._slab), lane by lane, to the bit; both against a float64 slab test written
+reference (wide_traversal._slab), lane by lane, to the bit; both against a float64 slab test written
 here from its textbook form (Kay and Kajiya, "Ray tracing complex scenes", SIGGRAPH 1986: a ray
 enters a box when the largest near-plane distance is at most the smallest far-plane one); and
 its rounding against exact rational arithmetic (Python's fractions): it never misses a box the
@@ -14,7 +14,8 @@ import numpy as np
 import pytest
 from numba import njit
 
-from lampyr.engine.wide_bvh import DIST_AT, HALF, WIDTH, _near_rows, _slab, slabs, slabs_half, traversal_stack
+from lampyr.engine.wide_bvh import HALF, WIDTH
+from lampyr.engine.wide_traversal import DIST_AT, _near_rows, _slab, slabs, slabs_half, traversal_stack
 from lampyr.engine.wide_slabs import fma32, interval32, ray_planes
 
 
