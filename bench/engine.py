@@ -5,6 +5,7 @@
 Sections:
   1. kernel start-up: compile cold (empty cache folder) vs load from the cache, in fresh processes
   2. courtyard: samples/s with one thread and with all cores; the same on a 1.3 M-triangle mesh
+     seen from outside, and from inside it (a closed room: every bounce hits the mesh)
   3. sampler quality: mean squared error at equal samples, Owen-scrambled Sobol vs independent
   4. ray casting and BVH build against Embree (bench/rays.py)
 """
@@ -132,6 +133,60 @@ sphere = {{ center = [0, -1000, 0], radius = 1000 }}
           THREAD_HEADER, rows)
 
 
+def inside_mesh(small: bool) -> None:
+    """Samples/s inside a ~1.3 M-triangle mesh: the camera and a point light in a closed room
+    (an icosphere of radius 3 seen from within), so every bounce hits the mesh again, in
+    directions that scatter (diffuse walls): the rays of an interior, far from coherent."""
+    import trimesh
+
+    from lampyr.engine.render import FrameRenderer
+    from lampyr.engine.shot import load_shot
+
+    subdiv = 6 if small else 8  # 82 k or 1.31 M faces
+    w, h, spp = (64, 36, 4) if small else (320, 180, 16)
+    with tempfile.TemporaryDirectory() as tmp:
+        trimesh.creation.icosphere(subdivisions=subdiv, radius=3.0).export(Path(tmp) / "room.ply")
+        (Path(tmp) / "room.toml").write_text(f"""
+name = "room"
+frames = 1
+[image]
+width = {w}
+height = {h}
+[sampling]
+samples = {spp}
+[camera]
+position = [0, 0, 1.5]
+target = [0, -0.5, -2]
+[[material]]
+name = "plaster"
+type = "diffuse"
+color = [0.8, 0.78, 0.75]
+[[material]]
+name = "brass"
+type = "metal"
+color = [0.9, 0.7, 0.4]
+roughness = 0.3
+[[object]]
+name = "room"
+material = "plaster"
+mesh = "room.ply"
+[[object]]
+name = "ball"
+material = "brass"
+sphere = {{ center = [0.3, -1.8, -1], radius = 0.8 }}
+[[light]]
+name = "lamp"
+type = "point"
+position = [0, 2, 0]
+intensity = 20
+""")
+        shot = load_shot(Path(tmp) / "room.toml")
+        renderer = FrameRenderer(shot, 1)
+        rows = thread_rows(renderer, w, h, spp)
+    print_table(f"2c. inside an icosphere of {renderer.geometry.triangle_count:,} triangles (a closed room, "
+                "diffuse walls, a point light)", THREAD_HEADER, rows)
+
+
 def sampler_quality(small: bool) -> None:
     from lampyr.engine.compiler import compile_geometry
     from lampyr.engine.render import render_frame
@@ -169,10 +224,10 @@ def rays(small: bool) -> None:
 def main(argv=None) -> None:
     ap = argparse.ArgumentParser(description="lampyr engine benchmark")
     ap.add_argument("--small", action="store_true", help="quick, smaller sizes")
-    ap.add_argument("--only", choices=["startup", "courtyard", "bigmesh", "sampler", "rays"], default=None)
+    ap.add_argument("--only", choices=["startup", "courtyard", "bigmesh", "inside", "sampler", "rays"], default=None)
     args = ap.parse_args(argv)
     sections = {"startup": lambda: startup(), "courtyard": lambda: courtyard(args.small),
-                "bigmesh": lambda: big_mesh(args.small),
+                "bigmesh": lambda: big_mesh(args.small), "inside": lambda: inside_mesh(args.small),
                 "sampler": lambda: sampler_quality(args.small), "rays": lambda: rays(args.small)}
     for name, fn in sections.items():
         if args.only in (None, name):

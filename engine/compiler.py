@@ -26,6 +26,7 @@ from .lights import build_env_distribution
 from .material_table import M_EMISSION, MATERIAL_SIZE, is_passable
 from .mesh_table import MeshTable, MeshTableBuilder
 from .layers import ENV_GROUP
+from .prefetch import SPAN_MIN_BYTES
 from .punctual import L_GROUP, PUNCT_SIZE, light_power, light_row
 from .scene import FLAG_COUNT, FLAG_PASSABLE, KIND_MESH, KIND_SPHERE, Scene
 from .scene_data import LIGHT_DIRECTIONAL, LIGHT_POINT, LIGHT_SPOT
@@ -278,8 +279,9 @@ def _punctual_rows(shot, geom: Geometry, worlds: _Worlds) -> list[np.ndarray]:
     return rows
 
 
-def compile_frame(shot, geom: Geometry, frame: int):
-    """(Scene, camera rows) for one frame."""
+def compile_frame(shot, geom: Geometry, frame: int, span_min_bytes: int = SPAN_MIN_BYTES):
+    """(Scene, camera rows) for one frame; span_min_bytes: the triangle rows (bytes) from which
+    the traversals prefetch leaf spans (prefetch.py)."""
     t_open, t_close = shutter_interval(shot, frame)
     worlds = _Worlds(shot, geom.scene, t_open, t_close)
     meshes = geom.meshes
@@ -379,7 +381,7 @@ def compile_frame(shot, geom: Geometry, frame: int):
     flags[FLAG_PASSABLE] = int(inst_passable[:k].any())  # some instance lets shadow rays pass
 
     scene = Scene(
-        meshes.blas_box, meshes.blas_meta, meshes.blas_span, meshes.tris,
+        meshes.blas_box, meshes.blas_meta, _span_hints(meshes, span_min_bytes), meshes.tris,
         meshes.mesh_node_base, meshes.mesh_tri_base, meshes.mesh_tri_count,
         meshes.tri_mat, meshes.tri_vtx, meshes.vtx_n, meshes.vtx_uv, meshes.vtx_t, meshes.mesh_attr,
         meshes.tris_end, meshes.mesh_end,
@@ -420,6 +422,14 @@ def compile_frame(shot, geom: Geometry, frame: int):
     else:
         cam = compile_camera(shot.camera, frame, t_open, t_close)
     return scene, cam
+
+
+def _span_hints(meshes: MeshTable, min_bytes: int) -> np.ndarray:
+    """The leaf spans the traversals prefetch from: the meshes' own when their triangle rows
+    (shutter open and close) take at least min_bytes, else all zero (no prefetch)."""
+    if meshes.tris.nbytes + meshes.tris_end.nbytes >= min_bytes:
+        return meshes.blas_span
+    return np.zeros_like(meshes.blas_span)
 
 
 def _passable_parts(parts, meshes: MeshTable, mats: np.ndarray, size: int) -> np.ndarray:

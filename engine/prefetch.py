@@ -45,6 +45,13 @@ LEAF_LINES = 10  # a leaf of 16 triangle rows (576 bytes) spans at most 10 lines
 # lines, 1.31 M triangles incoherent 1.12x, 1.14x, 1.12x, 1.12x, camera rays 0.99x, 0.99x,
 # 0.98x, 0.96x; 82 k triangles 1.01x, 1.02x, 1.01x, 0.99x and 0.98x, 0.97x, 0.96x, 0.94x.
 SPAN_LINES = 12
+# The span prefetches cost instructions a scene in the caches does not pay back: the courtyard
+# demo (2,244 triangles) rendered 13 % slower with them (bench/engine.py, one thread, three
+# alternating runs: 186-207 against 226-234 k samples/s), and 2 % slower with 4 lines a span.
+# A scene gets leaf spans only when its triangle rows take at least this many bytes (about a
+# core's L2 cache, rule of thumb; 29 k triangles); below, its spans are zero and the
+# traversals ask for none (compiler.compile_frame).
+SPAN_MIN_BYTES = 1 << 20
 # llvm.prefetch operands: a read (0), the highest temporal locality (3: keep it in every cache
 # level), the data cache (1)
 _READ, _LOCALITY, _DATA = 0, 3, 1
