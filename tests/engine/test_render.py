@@ -116,3 +116,45 @@ def test_error_falls_like_one_over_square_root_of_samples(scene_shot):
     slope = np.polyfit(np.log(counts), np.log(rmse), 1)[0]
     # the reference's own error (1/4 of the 1024-sample error) flattens the tail a little
     assert -0.62 < slope < -0.38, (slope, rmse)
+
+
+@pytest.fixture
+def ball_shot(tmp_path):
+    """SCENE with the plastic ball as a mesh of 5,120 triangles (trimesh's icosphere)."""
+    import trimesh
+
+    write_quad(tmp_path / "floor.obj", half=6.0)
+    ball = trimesh.creation.icosphere(subdivisions=4, radius=0.5)
+    ball.apply_translation([-0.6, 0.5, -3])
+    ball.export(tmp_path / "ball.obj")
+    text = SCENE.replace('sphere = { center = [-0.6, 0.5, -3], radius = 0.5 }', 'mesh = "ball.obj"')
+    return load(tmp_path, shot_text(text, camera=CAMERA, width=12, height=8, samples=4))
+
+
+def test_leaf_spans_are_kept_from_the_threshold_and_zero_below(ball_shot):
+    from lampyr.engine.compiler import compile_frame, compile_geometry
+
+    geom = compile_geometry(ball_shot)
+    rows = geom.meshes.tris.nbytes  # 5,122 triangles: 184 kB, under the default 1 MB
+    below, _ = compile_frame(ball_shot, geom, 1)
+    assert (below.blas_span == 0).all()
+    at, _ = compile_frame(ball_shot, geom, 1, span_min_bytes=rows)
+    assert (at.blas_span == geom.meshes.blas_span).all() and (at.blas_span[:, 1] > 0).any()
+    above, _ = compile_frame(ball_shot, geom, 1, span_min_bytes=rows + 1)
+    assert (above.blas_span == 0).all()
+
+
+def test_span_prefetches_leave_the_image_unchanged(ball_shot):
+    """Prefetching cannot change a value (LLVM Language Reference, "llvm.prefetch"): the same
+    bits with the scene's leaf spans as without."""
+    from lampyr.engine.compiler import compile_frame
+
+    r = FrameRenderer(ball_shot, 1)
+    assert (r.scene.blas_span == 0).all()
+    without = r.render(Tile(0, 0, 12, 8), 0, 4)
+    r.scene, _ = compile_frame(ball_shot, r.geometry, 1, span_min_bytes=0)
+    assert (r.scene.blas_span[:, 1] > 0).any()
+    with_spans = r.render(Tile(0, 0, 12, 8), 0, 4)
+    assert without.n.sum() > 0
+    for field in ("n", "rgb_sum", "rgb_sq", "albedo_sum", "normal_sum", "depth_sum"):
+        assert np.array_equal(getattr(without, field), getattr(with_spans, field)), field
