@@ -5,7 +5,8 @@ A ray's way through a wide BVH larger than the caches is a chain of waits on mem
 record (256 bytes) and each leaf's triangle rows (36 bytes a triangle, up to 16 a leaf) are
 loaded only when the traversal reaches them. When a node's slab tests enter several children,
 all of them are known at once, but they are visited one after the other, and a leaf's groups of
-four are loaded one group at a time. `prefetch_node` and `prefetch_leaf` issue LLVM's
+four are loaded one group at a time. `prefetch_node`, `prefetch_leaf` and `prefetch_span` (the
+start of a node's leaf span, wide_bvh.leaf_spans, asked for when the node is entered) issue LLVM's
 `llvm.prefetch` (a hint: it never faults and changes no value; LLVM Language Reference, the
 "llvm.prefetch" intrinsic) for the cache lines of the rows, so those loads overlap with the
 work on the child visited first.
@@ -23,7 +24,8 @@ The rows are row-major (C order) with the leading axis as the row. The prefetche
 free: a fixed number of them, one per cache line from the line holding the rows' first byte,
 each address clamped to the line holding their last byte (a repeated line costs an
 instruction, no memory traffic), so no line is asked for that holds none of the rows (given
-count >= 1; the traversals pass a leaf's count, which is at least 1, or 1 for a node).
+count >= 1; the traversals pass a leaf's count, which is at least 1, 1 for a node, or a span's
+rows, only when there are some).
 `rows_line_addresses` computes the same addresses into an array (for tests); `lines_of_rows` is
 the readable reference of the arithmetic.
 """

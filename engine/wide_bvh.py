@@ -1,5 +1,5 @@
 """Eight-wide BVH: the binary SAH tree of bvh.py collapsed so that a node holds up to eight
-children, their boxes side by side, and traversals over it.
+children, their boxes side by side (its traversals: wide_traversal.py).
 
 Collapsing: each wide node starts from the two children of a binary node and repeatedly opens
 the child of largest surface area that is not a leaf, until it has eight children or only
@@ -33,10 +33,7 @@ of the tree but its children's leaf spans:
   hi = -inf, so no slab test of a finite ray enters it);
 * `span` int32, (W, 2), beside the records: each node's leaf span (`leaf_spans`), the rows of
   its leaf children, which a traversal asks memory for when it enters the node (prefetch.py).
-
-The traversals are in wide_traversal.py.
 """
-
 
 from __future__ import annotations
 
@@ -86,8 +83,9 @@ def aligned_nodes(n: int) -> np.ndarray:
 
 
 def wide_views(box) -> WideBVH:
-    """The two views of a node array and its leaf spans: (box, its int32 view, spans); box: (W, 8, WIDTH) float32, copied
-    unless it is C-contiguous float32 with its records aligned (`aligned_nodes`)."""
+    """The two views of a node array and its leaf spans: (box, its int32 view, `leaf_spans`);
+    box: (W, 8, WIDTH) float32, copied unless it is C-contiguous float32 with its records
+    aligned (`aligned_nodes`)."""
     box = np.asarray(box)
     if not (box.dtype == np.float32 and box.flags.c_contiguous and box.ctypes.data % NODE_ALIGN == 0):
         src = box

@@ -1,4 +1,5 @@
-"""The wide BVH (engine/wide_bvh.py, eight children a node; its traversals in engine/wide_traversal.py) against its readable reference, the binary traversal of
+"""The wide BVH (engine/wide_bvh.py, eight children a node; its traversals in
+engine/wide_traversal.py) against its readable reference, the binary traversal of
 engine/bvh.py, and against Embree (through embreex) on the same rays.
 
 Sources:
@@ -39,7 +40,8 @@ from lampyr.engine.wide_bvh import (
     empty_wide,
     wide_views,
 )
-from lampyr.engine.wide_traversal import cast_wide, cast_wide_occluded, intersect_wide, intersect_wide_at, traversal_stack
+from lampyr.engine.wide_traversal import (cast_wide, cast_wide_occluded, intersect_wide, intersect_wide_at,
+                                         traversal_stack)
 
 
 def _soup():
