@@ -178,7 +178,7 @@ sphere = {{ center = [0.3, -1.8, -1], radius = 0.8 }}
 name = "lamp"
 type = "point"
 position = [0, 2, 0]
-intensity = 20
+intensity = 1.5
 """)
         shot = load_shot(Path(tmp) / "room.toml")
         renderer = FrameRenderer(shot, 1)
