@@ -63,7 +63,7 @@ def render_on_farm(shot_path: Path, shot, out: Path, workers: int, tile_size: in
         r.set(P.K_PROTOCOL, P.PROTOCOL_VERSION)
         with open(state / "worker.log", "wb") as log:  # the worker keeps its own copy
             worker = subprocess.Popen(
-                [sys.executable, "-m", "lampyr.cli", "worker", "--cores", str(workers),
+                [sys.executable, "-P", "-m", "lampyr.cli", "worker", "--cores", str(workers),
                  "--name", "local", "--normal-priority"],  # the artist asked for this render
                 env=dict(os.environ, LAMPYR_HEAD=server.worker_url),  # not on the command line
                 stdin=subprocess.DEVNULL, stdout=log, stderr=subprocess.STDOUT,

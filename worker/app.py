@@ -156,4 +156,8 @@ def _stop_with_supervisor(every: float = 0.5) -> None:
 if __name__ == "__main__":
     # the farm's address comes from the environment (the supervisor sets LAMPYR_HEAD), so its
     # password is not on this process's command line
+    if not os.environ.get("LAMPYR_HEAD") or len(sys.argv) != 2:
+        print("lampyr.worker.app: started without LAMPYR_HEAD or its CONFIG-JSON; this process is the "
+              "render process `lampyr worker` starts, with both: run `lampyr worker`", file=sys.stderr)
+        sys.exit(2)
     run_celery(url=os.environ["LAMPYR_HEAD"], **json.loads(sys.argv[1]))

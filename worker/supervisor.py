@@ -147,8 +147,11 @@ class Supervisor:
     # -- the Celery worker ------------------------------------------------------------------
 
     def child_command(self, config: dict) -> list[str]:
-        """The command line of the Celery worker process (worker/app.py)."""
-        return [sys.executable, "-m", "lampyr.worker.app", json.dumps(config)]
+        """The command line of the Celery worker process (worker/app.py). `-P`: the working folder
+        stays off the module path, so a folder named lampyr where the worker was started (a
+        source checkout after `pip install .`, whose lampyr/ holds no worker package) does not
+        hide the installed package (seen: the render process stopped at once, restarted forever)."""
+        return [sys.executable, "-P", "-m", "lampyr.worker.app", json.dumps(config)]
 
     def start_child(self) -> None:
         from ..scheduler.redis_server import die_with_parent
