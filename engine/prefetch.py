@@ -49,7 +49,7 @@ LEAF_LINES = 10  # a leaf of 16 triangle rows (576 bytes) spans at most 10 lines
 SPAN_LINES = 12
 # The span prefetches cost instructions a scene in the caches does not pay back: the courtyard
 # demo (2,244 triangles) rendered 13 % slower with them (bench/engine.py, one thread, three
-# alternating runs: 186-207 against 226-234 k samples/s), and 2 % slower with 4 lines a span.
+# alternating runs: 186-207 against 222-234 k samples/s), and 2 % slower with 4 lines a span.
 # A scene gets leaf spans only when its triangle rows take at least this many bytes (about a
 # core's L2 cache, rule of thumb; 29 k triangles); below, its spans are zero and the
 # traversals ask for none (compiler.compile_frame).

@@ -10,10 +10,11 @@ import subprocess
 from lampyr.worker.supervisor import Supervisor
 
 
-def _run(cwd, **env):
-    base = {k: v for k, v in os.environ.items() if k != "LAMPYR_HEAD"}
+def _run(cwd):
+    """The supervisor's command for its render process, run in cwd without LAMPYR_HEAD."""
+    env = {k: v for k, v in os.environ.items() if k != "LAMPYR_HEAD"}
     cmd = Supervisor.child_command(None, {"cores": 1})
-    return subprocess.run(cmd, cwd=cwd, env=dict(base, **env), capture_output=True, text=True, timeout=300)
+    return subprocess.run(cmd, cwd=cwd, env=env, capture_output=True, text=True, timeout=300)
 
 
 def test_a_lampyr_folder_where_the_worker_starts_does_not_hide_the_package(tmp_path):
